@@ -1,0 +1,224 @@
+"""The only module that imports PySCF: field-perturbed SCF and post-HF energies.
+
+The field term is applied in one place, :func:`_apply_field`, for every method:
+the core Hamiltonian gets +F.<r - O> (electrons carry charge -1, so -mu_op.F adds
++F.r per electron) and the nuclear repulsion gets -F.sum_A Z_A (R_A - O). MP2,
+CCSD and CCSD(T) then run on the field-perturbed orbitals and integrals, because
+they take the core Hamiltonian and nuclear energy from the mean-field object.
+
+PySCF objects are built inside the worker from the plain data of a
+:class:`~fieldprop.records.PointTask`, with ``verbose=0`` (stdout carries data).
+"""
+
+from __future__ import annotations
+
+import logging
+
+import numpy as np
+
+from fieldprop.errors import InputError, ScfNotConvergedError, StateSwitchError
+from fieldprop.job import Job
+from fieldprop.records import PointRecord, PointTask, ZeroFieldReference
+
+logger = logging.getLogger(__name__)
+
+#: Smallest singular value of the occupied-space overlap with zero field below
+#: which a point is on another state. Small fields rotate occupied orbitals by
+#: ~F <r> / gap ~ 1e-2, leaving singular values ~0.9999; a swapped orbital gives ~0.
+MIN_OCCUPIED_OVERLAP = 0.9
+#: Largest change of <S^2> from zero field before a point counts as another state:
+#: field-induced changes are O(F^2) ~ 1e-4, a spin flip or new contamination ~0.1-1.
+MAX_S2_CHANGE = 0.01
+
+
+def build_mole(molecule, basis: str, where: str = "[model] basis"):
+    """A PySCF ``Mole`` in bohr; basis problems become InputError naming ``where``."""
+    from pyscf import gto
+
+    try:
+        return gto.M(atom=[(s, c) for s, c in zip(molecule.symbols, molecule.coords_bohr)],
+                     unit="Bohr", basis=basis, charge=molecule.charge, spin=molecule.spin,
+                     verbose=0)
+    except (KeyError, RuntimeError, ValueError, OSError, IndexError) as exc:
+        text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise InputError(f"{where} {basis!r} is not available for this molecule "
+                         f"({text}); use a basis PySCF knows for every element, such as "
+                         "cc-pvdz, aug-cc-pvdz or def2-svp") from None
+
+
+def validate(job: Job, molecule) -> dict:
+    """Check what only PySCF can judge (basis, functional) before any work.
+
+    Returns facts for provenance: number of basis functions, Cartesian or
+    spherical functions, the functional as libxc parses it, PySCF's version.
+    """
+    import pyscf
+    from pyscf.dft import libxc
+
+    mol = build_mole(molecule, job.model.basis, f"{job.path}: [model] basis")
+    facts = {"pyscf_version": pyscf.__version__, "n_basis_functions": int(mol.nao),
+             "basis_functions": "cartesian" if mol.cart else "spherical"}
+    if job.model.method == "dft":
+        try:
+            libxc.parse_xc(job.model.functional)
+        except (KeyError, ValueError, TypeError) as exc:
+            raise InputError(f"{job.path}: [model] functional {job.model.functional!r} is "
+                             f"unknown to libxc ({exc}); use a name such as b3lyp, pbe0, "
+                             "pbe, cam-b3lyp") from None
+        facts["functional_is_hybrid"] = bool(libxc.is_hybrid_xc(job.model.functional))
+        facts["grid_level"] = job.scf.grid_level
+    return facts
+
+
+def _mean_field(mol, model, scf_spec):
+    from pyscf import dft, scf
+
+    unrestricted = model.reference == "unrestricted"
+    open_shell = mol.spin != 0
+    if model.method == "dft":
+        cls = dft.UKS if unrestricted else (dft.ROKS if open_shell else dft.RKS)
+        mf = cls(mol)
+        mf.xc = model.functional
+        mf.grids.level = scf_spec.grid_level
+    else:
+        cls = scf.UHF if unrestricted else (scf.ROHF if open_shell else scf.RHF)
+        mf = cls(mol)
+    mf.conv_tol = scf_spec.energy_conv_tol_au
+    mf.conv_tol_grad = scf_spec.gradient_conv_tol
+    mf.max_cycle = scf_spec.max_cycle
+    mf.verbose = 0
+    return mf
+
+
+def _apply_field(mf, mol, molecule, field_vector_au):
+    """Add -mu_op.F to the Hamiltonian of ``mf``, measured from the job's origin."""
+    f = np.asarray(field_vector_au, dtype=float)
+    with mol.with_common_orig(molecule.origin_bohr):
+        r = mol.intor_symmetric("int1e_r", comp=3)
+    h = mf.get_hcore() + np.einsum("x,xij->ij", f, r)
+    e_nuc = mol.energy_nuc() - float(f @ molecule.nuclear_dipole_au())
+    mf.get_hcore = lambda *args, **kwargs: h
+    mf.energy_nuc = lambda *args, **kwargs: e_nuc
+    return r
+
+
+def _scf_dipole(mf, r, molecule) -> np.ndarray:
+    dm = mf.make_rdm1()
+    if dm.ndim == 3:
+        dm = dm[0] + dm[1]
+    return molecule.nuclear_dipole_au() - np.einsum("xij,ji->x", r, dm).real
+
+
+def _occupied(mf) -> tuple[np.ndarray, ...]:
+    if np.asarray(mf.mo_occ).ndim == 2:  # unrestricted: one set per spin
+        return tuple(mf.mo_coeff[s][:, mf.mo_occ[s] > 0] for s in range(2))
+    return (mf.mo_coeff[:, mf.mo_occ > 0],)
+
+
+def _s2(mf) -> float:
+    if np.asarray(mf.mo_occ).ndim == 2:
+        return float(mf.spin_square()[0])
+    s = 0.5 * mf.mol.spin
+    return s * (s + 1.0)
+
+
+def _converge(mf, dm0, label: str) -> tuple[list[str], int]:
+    """Run the SCF, retrying along a ladder of strategies; returns attempts, cycles."""
+    attempts, cycles = [], 0
+    strategies = [
+        ("diis", {}),
+        ("diis+damping+level_shift", {"damp": 0.3, "level_shift": 0.2, "diis_start_cycle": 4}),
+        ("second_order", None),
+    ]
+    for name, settings in strategies:
+        attempts.append(name)
+        if settings is None:
+            solver = mf.newton()
+            solver.kernel(mf.make_rdm1() if mf.mo_coeff is not None else dm0)
+            cycles += int(getattr(solver, "cycles", 0) or 0)
+            if solver.converged:
+                for key in ("mo_coeff", "mo_occ", "mo_energy", "e_tot", "converged"):
+                    setattr(mf, key, getattr(solver, key))
+                return attempts, cycles
+            continue
+        for key, value in settings.items():
+            setattr(mf, key, value)
+        mf.kernel(dm0)
+        cycles += int(getattr(mf, "cycles", 0) or 0)
+        if mf.converged:
+            return attempts, cycles
+        dm0 = mf.make_rdm1()
+    raise ScfNotConvergedError(
+        f"SCF did not converge at field point {label} after {', '.join(attempts)} "
+        f"(energy tolerance {mf.conv_tol:g} Eh, {mf.max_cycle} cycles each); no number is "
+        "formed from it")
+
+
+def _correlated_energy(mf, model, scf_spec, label: str) -> float:
+    from pyscf import cc, mp
+
+    if model.method == "mp2":
+        solver = mp.MP2(mf)
+        solver.verbose = 0
+        e_corr = solver.kernel()[0]
+        return float(mf.e_tot + e_corr)
+    solver = cc.CCSD(mf)
+    solver.verbose = 0
+    # CC energies are not variational in the amplitudes: converge them to about
+    # the SCF energy tolerance so both noises stay comparable.
+    solver.conv_tol = max(scf_spec.energy_conv_tol_au, 1e-12)
+    solver.conv_tol_normt = 1e-7
+    solver.max_cycle = max(scf_spec.max_cycle, 100)
+    solver.kernel()
+    if not solver.converged:
+        raise ScfNotConvergedError(f"CCSD amplitudes did not converge at field point {label} "
+                                   f"(tolerance {solver.conv_tol:g} Eh); no number is formed")
+    e = float(solver.e_tot)
+    if model.method == "ccsd(t)":
+        e += float(solver.ccsd_t())
+    return e
+
+
+def evaluate_point(task: PointTask) -> PointRecord:
+    """Compute one field point: SCF (retried if needed), state checks, post-HF.
+
+    Raises
+    ------
+    ScfNotConvergedError : the SCF (or CC) never converged.
+    StateSwitchError : the point's occupied space or <S^2> departs from zero field.
+    """
+    from pyscf import lib
+
+    lib.logger.QUIET = 0
+    molecule, model, point = task.molecule, task.model, task.point
+    mol = build_mole(molecule, model.basis)
+    mf = _mean_field(mol, model, task.scf)
+    r = _apply_field(mf, mol, molecule, point.field_vector_au)
+    dm0 = task.reference.density if task.reference is not None else None
+    attempts, cycles = _converge(mf, dm0, point.label)
+    occupied, s2 = _occupied(mf), _s2(mf)
+    overlap = 1.0
+    if task.reference is not None:
+        s_ao = mol.intor_symmetric("int1e_ovlp")
+        for c_ref, c in zip(task.reference.occupied, occupied):
+            if c.shape[1] != c_ref.shape[1]:
+                overlap = 0.0
+                break
+            if c.shape[1]:
+                overlap = min(overlap, float(np.linalg.svd(c_ref.T @ s_ao @ c,
+                                                           compute_uv=False).min()))
+        if overlap < MIN_OCCUPIED_OVERLAP or abs(s2 - task.reference.s2) > MAX_S2_CHANGE:
+            raise StateSwitchError(
+                f"state switch at field point {point.label}, field_vector_au="
+                f"{list(point.field_vector_au)}: occupied-space overlap with zero field "
+                f"{overlap:.3f} (needs >= {MIN_OCCUPIED_OVERLAP}), <S^2> {s2:.4f} vs "
+                f"{task.reference.s2:.4f} at zero field; lower field_au or levels")
+    dipole = tuple(float(v) for v in _scf_dipole(mf, r, molecule)) if task.want_dipole else None
+    energy = (float(mf.e_tot) if model.method in ("hf", "dft")
+              else _correlated_energy(mf, model, task.scf, point.label))
+    gradient = float(np.linalg.norm(mf.get_grad(mf.mo_coeff, mf.mo_occ)))
+    reference = None
+    if task.reference is None:
+        reference = ZeroFieldReference(np.asarray(mf.make_rdm1()), occupied, s2)
+    return PointRecord(point, energy, float(mf.e_tot), dipole, cycles, tuple(attempts), s2,
+                       overlap, gradient, reference)

@@ -1,0 +1,149 @@
+"""From a validated job to tensors: the data flow in one place.
+
+job -> molecule -> field plan -> field points (executor, backend) -> raw stencil
+estimates -> Richardson extrapolation -> tensors -> invariants.
+"""
+
+from __future__ import annotations
+
+import logging
+import sys
+import time
+from dataclasses import dataclass
+
+import numpy as np
+
+from fieldprop.errors import UnstableResultError
+from fieldprop.execute import compute_points
+from fieldprop.extrapolate import ComponentEstimate, richardson
+from fieldprop.job import Job
+from fieldprop.molecule import MoleculeSpec, build_molecule
+from fieldprop.plan import FieldPlan, plan_fields, stencil_estimate
+from fieldprop.records import PointRecord, PointTask
+from fieldprop.tensors import Invariant, TensorResult, assemble, invariants
+
+logger = logging.getLogger(__name__)
+
+#: Double-precision floor of a total energy: a few units in the last place of |E|
+#: (REFERENCES sect. 2 observed ~4e-14 Eh of noise on |E| = 76 Eh, ~2 ulp).
+ENERGY_ULPS = 4.0
+
+
+@dataclass(frozen=True)
+class NoiseModel:
+    """Noise of the differentiated quantities, used for round-off floors.
+
+    Built from the convergence actually reached, g = the largest orbital-gradient
+    norm over all points (PySCF usually converges well past its thresholds, so
+    the thresholds themselves would overstate the noise by orders of magnitude).
+    An SCF energy is variational, its error quadratic in the orbital error: ~g^2.
+    The SCF dipole and post-HF energies are not: their errors are linear, ~g
+    (orbital rotations ~g/gap times matrix elements ~1 au). Each also has the
+    double-precision floor of its size (ENERGY_ULPS units in the last place), and
+    coupled-cluster energies their amplitude tolerance.
+    """
+
+    energy_au: float
+    dipole_au: float
+
+
+@dataclass(frozen=True)
+class RunResult:
+    """Everything a report needs."""
+
+    job: Job
+    molecule: MoleculeSpec
+    plan: FieldPlan
+    records: tuple[PointRecord, ...]
+    noise: NoiseModel
+    tensors: dict[str, TensorResult]
+    invariants: tuple[Invariant, ...]
+    backend_facts: dict
+    wall_time_s: float
+
+    @property
+    def energy_au(self) -> float:
+        return self.records[0].energy_au
+
+    @property
+    def unstable_components(self) -> list[str]:
+        return [c.plan.name + (f" ({c.estimate.reason})" if c.estimate.reason else "")
+                for t in self.tensors.values() for c in t.components if not c.stable]
+
+
+def make_plan(job: Job) -> FieldPlan:
+    r = job.response
+    return plan_fields(r.properties, r.field_au, r.ratio, r.levels, r.route)
+
+
+def make_tasks(job: Job, molecule: MoleculeSpec, plan: FieldPlan) -> list[PointTask]:
+    want_dipole = job.model.method in ("hf", "dft")
+    return [PointTask(molecule, job.model, job.scf, p, want_dipole) for p in plan.points]
+
+
+def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel) -> list[ComponentEstimate]:
+    energies = np.array([r.energy_au for r in records])
+    dipoles = (np.array([r.dipole_au for r in records])
+               if all(r.dipole_au is not None for r in records) else None)
+    estimates = []
+    for comp in plan.components:
+        eps = noise.energy_au if comp.source == "energy" else noise.dipole_au
+        values = [stencil_estimate(comp, s, energies, dipoles) for s in comp.stencils]
+        floors = [s.weight_norm * eps / s.step_au ** comp.order for s in comp.stencils]
+        estimates.append(richardson(values, plan.ratio, floors))
+    return estimates
+
+
+def noise_model(job: Job, records) -> NoiseModel:
+    """The NoiseModel of a finished set of points (see NoiseModel)."""
+    ulp = np.finfo(float).eps
+    g = max(r.gradient_norm for r in records)
+    e0 = abs(records[0].energy_au)
+    if job.model.method in ("hf", "dft"):
+        energy = ENERGY_ULPS * ulp * e0 + g * g
+    else:
+        energy = ENERGY_ULPS * ulp * e0 + g
+        if job.model.method.startswith("ccsd"):
+            energy += max(job.scf.energy_conv_tol_au, 1e-12)
+    dipoles = [np.linalg.norm(r.dipole_au) for r in records if r.dipole_au is not None]
+    dipole = g + ENERGY_ULPS * ulp * max(dipoles, default=0.0) * 10.0
+    return NoiseModel(float(energy), float(dipole))
+
+
+def compute(job: Job, workers: int = 1, progress: bool | None = None) -> RunResult:
+    """Run the whole job. Raises FieldpropError subclasses on failed points.
+
+    Unstable components do not raise here: the result carries them (no number
+    is reported for them) and the CLI turns them into exit code 1.
+    """
+    from fieldprop.backend_pyscf import validate
+
+    start = time.perf_counter()
+    molecule = build_molecule(job.molecule, job.response.origin)
+    facts = validate(job, molecule)
+    plan = make_plan(job)
+    tasks = make_tasks(job, molecule, plan)
+    logger.info("%s: %s/%s%s, %d field points on %d levels (h0 = %g au, ratio %g), route %s, "
+                "SCF energy tolerance %g Eh", job.path, job.model.method,
+                job.model.basis, f"/{job.model.functional}" if job.model.functional else "",
+                len(plan.points), plan.levels, plan.field_au, plan.ratio, plan.route,
+                job.scf.energy_conv_tol_au)
+    if progress is None:
+        progress = sys.stderr.isatty()
+    records = compute_points(tasks, workers=workers, progress=progress)
+    noise = noise_model(job, records)
+    estimates = extrapolate_components(plan, records, noise)
+    tensors = assemble(plan.components, estimates)
+    result = RunResult(job, molecule, plan, tuple(records), noise, tensors,
+                       tuple(invariants(tensors)), facts, time.perf_counter() - start)
+    return result
+
+
+def require_stable(result: RunResult) -> None:
+    """Raise UnstableResultError naming the unstable components, if any."""
+    bad = result.unstable_components
+    if bad:
+        raise UnstableResultError(
+            f"{result.job.path}: {len(bad)} component(s) unstable, reported without a "
+            f"number: {'; '.join(bad[:4])}{' ...' if len(bad) > 4 else ''}; try another "
+            "field_au or more levels")

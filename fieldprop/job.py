@@ -1,0 +1,515 @@
+"""Read and validate a job file (TOML) into a frozen :class:`Job`.
+
+Every problem is an :class:`~fieldprop.errors.InputError` whose message is one
+line naming the file, the section and key, what is wrong and what would be valid,
+e.g. ``water.toml: [response] field_au must be > 0, got -0.001``. Unknown keys are
+errors, never ignored. Nothing is computed or written here.
+
+Example
+-------
+>>> import tempfile, pathlib
+>>> d = pathlib.Path(tempfile.mkdtemp())
+>>> _ = (d / "h2.toml").write_text('''
+... [molecule]
+... geometry = "H 0 0 0\\nH 0 0 0.74"
+... [model]
+... method = "hf"
+... basis = "sto-3g"
+... [response]
+... properties = ["alpha"]
+... ''')
+>>> job = load_job(d / "h2.toml")
+>>> job.model.reference, job.response.levels, job.response.ratio
+('restricted', 3, 2.0)
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import tomllib
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+from fieldprop.errors import InputError
+from fieldprop.units import ANGSTROM_TO_BOHR, PROPERTY_ORDER
+
+#: Element symbols by atomic number (index 0 is a placeholder); the periodic table.
+ELEMENTS = (
+    "X H He Li Be B C N O F Ne Na Mg Al Si P S Cl Ar K Ca Sc Ti V Cr Mn Fe Co Ni Cu Zn "
+    "Ga Ge As Se Br Kr Rb Sr Y Zr Nb Mo Tc Ru Rh Pd Ag Cd In Sn Sb Te I Xe Cs Ba La Ce Pr "
+    "Nd Pm Sm Eu Gd Tb Dy Ho Er Tm Yb Lu Hf Ta W Re Os Ir Pt Au Hg Tl Pb Bi Po At Rn Fr Ra "
+    "Ac Th Pa U Np Pu Am Cm Bk Cf Es Fm Md No Lr Rf Db Sg Bh Hs Mt Ds Rg Cn Nh Fl Mc Lv Ts Og"
+).split()
+_Z_OF = {sym.lower(): z for z, sym in enumerate(ELEMENTS) if z > 0}
+
+METHODS = ("hf", "dft", "mp2", "ccsd", "ccsd(t)")
+REFERENCES = ("auto", "restricted", "unrestricted")
+ROUTES = ("auto", "energy", "dipole")
+UNITS = ("angstrom", "bohr")
+ORIGINS = ("nuclear-charge", "zero")
+#: Methods whose analytic dipole is available at every field point (the dipole route).
+DIPOLE_ROUTE_METHODS = ("hf", "dft")
+
+#: Two nuclei closer than this (bohr) are taken as a typing error: 0.5 bohr = 0.26 A,
+#: well below any chemical bond (H2 is 1.4 bohr).
+MIN_DISTANCE_BOHR = 0.5
+
+#: Default smallest field h0 (au) by highest derivative order of the energy when
+#: the job gives none: REFERENCES' practice, h0 ~ 1e-4..5e-4 au for alpha and a
+#: window of ~1e-3..1e-2 au for gamma, with a ladder of three steps of ratio 2.
+DEFAULT_FIELD_AU = {1: 0.0005, 2: 0.0005, 3: 0.001, 4: 0.002}
+
+_SECTIONS = {
+    "molecule": {"geometry", "xyz", "units", "charge", "multiplicity"},
+    "model": {"method", "functional", "basis", "reference"},
+    "response": {"properties", "field_au", "ratio", "levels", "origin", "route",
+                 "nuclear_relaxation"},
+    "scf": {"energy_conv_tol_au", "max_cycle", "grid_level"},
+}
+
+
+@dataclass(frozen=True)
+class Atom:
+    """One nucleus: element symbol and position in bohr."""
+
+    symbol: str
+    coords_bohr: tuple[float, float, float]
+
+    @property
+    def charge(self) -> int:
+        """Nuclear charge Z."""
+        return _Z_OF[self.symbol.lower()]
+
+
+@dataclass(frozen=True)
+class MoleculeInput:
+    """The molecule as given; coordinates already converted to bohr."""
+
+    atoms: tuple[Atom, ...]
+    charge: int
+    multiplicity: int
+    units: str
+    source: str  # "inline" or the xyz path as written in the job
+
+    @property
+    def n_electrons(self) -> int:
+        return sum(a.charge for a in self.atoms) - self.charge
+
+
+@dataclass(frozen=True)
+class ModelSpec:
+    """Model chemistry: method, functional (dft only), basis, reference."""
+
+    method: str
+    basis: str
+    reference: str  # resolved: "restricted" or "unrestricted"
+    functional: str | None = None
+
+
+@dataclass(frozen=True)
+class ResponseSpec:
+    """What to compute and on which field ladder."""
+
+    properties: tuple[str, ...]
+    field_au: float
+    field_au_source: str  # "job" or "default for order n"
+    ratio: float
+    levels: int
+    origin: str | tuple[float, float, float]  # "nuclear-charge", "zero" or bohr
+    route: str  # "energy" or "dipole" after resolution
+    nuclear_relaxation: bool = False
+
+    @property
+    def max_order(self) -> int:
+        return max(PROPERTY_ORDER[p] for p in self.properties)
+
+
+@dataclass(frozen=True)
+class ScfSpec:
+    """SCF settings; tolerances derived from the requested order unless given."""
+
+    energy_conv_tol_au: float
+    gradient_conv_tol: float
+    max_cycle: int
+    grid_level: int | None  # dft only
+
+
+@dataclass(frozen=True)
+class Job:
+    """A validated job; ``path`` is the job file it came from."""
+
+    path: str
+    molecule: MoleculeInput
+    model: ModelSpec
+    response: ResponseSpec
+    scf: ScfSpec = field(default_factory=lambda: ScfSpec(1e-12, 1e-8, 200, None))
+
+    def to_dict(self) -> dict[str, Any]:
+        """The job as understood, every default filled in (for the result JSON)."""
+        mol = self.molecule
+        return {
+            "path": self.path,
+            "molecule": {
+                "atoms": [{"symbol": a.symbol, "coords_bohr": list(a.coords_bohr)}
+                          for a in mol.atoms],
+                "units_in_job": mol.units, "source": mol.source,
+                "charge": mol.charge, "multiplicity": mol.multiplicity,
+            },
+            "model": asdict(self.model),
+            "response": {**asdict(self.response), "properties": list(self.response.properties),
+                         "origin": (self.response.origin if isinstance(self.response.origin, str)
+                                    else list(self.response.origin))},
+            "scf": asdict(self.scf),
+        }
+
+
+def derived_energy_conv_tol_au(max_order: int) -> float:
+    """SCF energy tolerance (Eh) for the highest derivative order requested.
+
+    Round-off in an n-th derivative is about C_n * dE / h**n (REFERENCES sect. 2);
+    for gamma at h = 0.002 au, dE = 1e-12 Eh already gives ~1 au, and tighter is
+    not reachable in double precision for |E| ~ 100 Eh. Lower orders tolerate
+    1e-10..1e-11 Eh (common practice).
+    """
+    return {1: 1e-10, 2: 1e-11}.get(max_order, 1e-12)
+
+
+class _Reader:
+    """Typed access to one TOML table, with messages naming file, section and key."""
+
+    def __init__(self, path: str, section: str, table: dict[str, Any]):
+        self.path, self.section, self.table = path, section, table
+
+    def fail(self, key: str, problem: str) -> InputError:
+        return InputError(f"{self.path}: [{self.section}] {key} {problem}")
+
+    def has(self, key: str) -> bool:
+        return key in self.table
+
+    def string(self, key: str, default: str | None = None, choices=None) -> str | None:
+        if key not in self.table:
+            if default is None:
+                raise self.fail(key, "is missing" + (f"; one of {', '.join(choices)}"
+                                                     if choices else ""))
+            return default
+        value = self.table[key]
+        if not isinstance(value, str):
+            raise self.fail(key, f"must be a string, got {value!r}")
+        value = value.strip()
+        if choices is not None and value.lower() not in choices:
+            raise self.fail(key, f"must be one of {', '.join(choices)}; got {value!r}")
+        if not value:
+            raise self.fail(key, "must not be empty")
+        return value.lower() if choices is not None else value
+
+    def integer(self, key: str, default: int | None, low: int | None = None) -> int:
+        if key not in self.table:
+            if default is None:
+                raise self.fail(key, "is missing")
+            return default
+        value = self.table[key]
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise self.fail(key, f"must be an integer, got {value!r}")
+        if low is not None and value < low:
+            raise self.fail(key, f"must be >= {low}, got {value}")
+        return value
+
+    def number(self, key: str, default: float | None) -> float | None:
+        if key not in self.table:
+            return default
+        value = self.table[key]
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise self.fail(key, f"must be a number, got {value!r}")
+        if not math.isfinite(value):
+            raise self.fail(key, f"must be finite, got {value!r}")
+        return float(value)
+
+
+def _read_toml(path: Path) -> dict[str, Any]:
+    try:
+        raw = path.read_bytes()
+    except FileNotFoundError:
+        raise InputError(f"{path}: job file not found") from None
+    except IsADirectoryError:
+        raise InputError(f"{path}: is a directory, expected a job file (TOML)") from None
+    except OSError as exc:
+        raise InputError(f"{path}: cannot read job file: {exc.strerror}") from None
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise InputError(f"{path}: not UTF-8 text (byte {exc.start}); save the job file "
+                         "as UTF-8") from None
+    try:
+        return tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"{path}: not valid TOML: {exc}") from None
+
+
+def parse_geometry_lines(lines: list[str], units: str, where: str) -> tuple[Atom, ...]:
+    """Parse ``symbol x y z`` lines (units "angstrom" or "bohr") into atoms in bohr.
+
+    ``where`` prefixes every message (file and key). Raises InputError on an
+    unknown element, a wrong column count, text or non-finite coordinates, an
+    empty geometry, or two nuclei closer than MIN_DISTANCE_BOHR.
+    """
+    scale = ANGSTROM_TO_BOHR if units == "angstrom" else 1.0
+    atoms = []
+    for number, line in enumerate(lines, start=1):
+        fields = line.split()
+        if not fields:
+            continue
+        if len(fields) != 4:
+            raise InputError(f"{where}: line {number} has {len(fields)} columns, expected 4 "
+                             f"(symbol x y z): {line.strip()!r}")
+        symbol = fields[0]
+        if symbol.lower() not in _Z_OF:
+            raise InputError(f"{where}: line {number}: unknown element {symbol!r}; use a "
+                             "symbol of the periodic table such as H, C, O")
+        try:
+            xyz = tuple(float(v) for v in fields[1:])
+        except ValueError:
+            raise InputError(f"{where}: line {number}: coordinates must be numbers, got "
+                             f"{' '.join(fields[1:])!r}") from None
+        if not all(math.isfinite(v) for v in xyz):
+            raise InputError(f"{where}: line {number}: coordinates must be finite, got "
+                             f"{' '.join(fields[1:])!r}")
+        canonical = ELEMENTS[_Z_OF[symbol.lower()]]
+        atoms.append(Atom(canonical, tuple(v * scale for v in xyz)))
+    if not atoms:
+        raise InputError(f"{where}: geometry is empty; give one 'symbol x y z' line per atom")
+    for i, a in enumerate(atoms):
+        for j in range(i):
+            d = math.dist(a.coords_bohr, atoms[j].coords_bohr)
+            if d < MIN_DISTANCE_BOHR:
+                raise InputError(
+                    f"{where}: atoms {j + 1} ({atoms[j].symbol}) and {i + 1} ({a.symbol}) are "
+                    f"{d:.3f} bohr apart; nuclei closer than {MIN_DISTANCE_BOHR} bohr overlap")
+    return tuple(atoms)
+
+
+def _read_xyz(job_path: Path, rel: str, units: str) -> tuple[Atom, ...]:
+    where_key = f"{job_path}: [molecule] xyz"
+    xyz_path = (job_path.parent / rel)
+    try:
+        text = xyz_path.read_bytes().decode("utf-8")
+    except FileNotFoundError:
+        raise InputError(f"{where_key}: file {rel!r} not found (paths are relative to the "
+                         "job file)") from None
+    except IsADirectoryError:
+        raise InputError(f"{where_key}: {rel!r} is a directory, expected an .xyz file") from None
+    except UnicodeDecodeError:
+        raise InputError(f"{where_key}: {rel!r} is not UTF-8 text") from None
+    except OSError as exc:
+        raise InputError(f"{where_key}: cannot read {rel!r}: {exc.strerror}") from None
+    lines = text.splitlines()
+    where = f"{xyz_path}"
+    if not lines or not lines[0].strip():
+        raise InputError(f"{where}: empty .xyz file; the first line must be the atom count")
+    try:
+        count = int(lines[0].strip())
+    except ValueError:
+        raise InputError(f"{where}: line 1 must be the atom count, got "
+                         f"{lines[0].strip()!r}") from None
+    body = [ln for ln in lines[2:] if ln.strip()]
+    if count < 1 or len(body) != count:
+        raise InputError(f"{where}: line 1 says {count} atoms but {len(body)} atom lines "
+                         "follow the comment line")
+    atoms = parse_geometry_lines(lines[2:], units, where)
+    return atoms
+
+
+def _parse_molecule(path: str, job_path: Path, table: dict[str, Any]) -> MoleculeInput:
+    r = _Reader(path, "molecule", table)
+    units = r.string("units", "angstrom", UNITS)
+    if r.has("geometry") and r.has("xyz"):
+        raise r.fail("geometry", "and xyz are both given; give exactly one")
+    if r.has("geometry"):
+        geometry = r.string("geometry")
+        atoms = parse_geometry_lines(geometry.splitlines(), units,
+                                     f"{path}: [molecule] geometry")
+        source = "inline"
+    elif r.has("xyz"):
+        source = r.string("xyz")
+        atoms = _read_xyz(job_path, source, units)
+    else:
+        raise r.fail("geometry", "is missing; give geometry = \"\"\"...\"\"\" or xyz = \"file.xyz\"")
+    charge = r.integer("charge", 0)
+    multiplicity = r.integer("multiplicity", 1, low=1)
+    n_el = sum(a.charge for a in atoms) - charge
+    if n_el < 1:
+        raise r.fail("charge", f"= {charge} leaves {n_el} electrons; at least one is needed")
+    unpaired = multiplicity - 1
+    if unpaired > n_el or (n_el - unpaired) % 2:
+        raise r.fail("multiplicity", f"= {multiplicity} is impossible with {n_el} electrons; "
+                     f"valid: {', '.join(str(m) for m in range(1 + n_el % 2, n_el + 2, 2)[:4])}"
+                     f"{', ...' if n_el > 6 else ''}")
+    return MoleculeInput(atoms, charge, multiplicity, units, source)
+
+
+def _parse_model(path: str, table: dict[str, Any], multiplicity: int) -> ModelSpec:
+    r = _Reader(path, "model", table)
+    method = r.string("method", None, METHODS)
+    basis = r.string("basis")
+    functional = r.string("functional") if r.has("functional") else None
+    if method == "dft" and functional is None:
+        raise r.fail("functional", "is missing; method = \"dft\" needs a functional such as "
+                     "\"b3lyp\" or \"pbe0\"")
+    if method != "dft" and functional is not None:
+        raise r.fail("functional", f"is given but method = {method!r} uses none; remove it or "
+                     "set method = \"dft\"")
+    reference = r.string("reference", "auto", REFERENCES)
+    if reference == "auto":
+        reference = "restricted" if multiplicity == 1 else "unrestricted"
+    if reference == "restricted" and multiplicity > 1 and method not in ("hf", "dft"):
+        raise r.fail("reference", f"= \"restricted\" with multiplicity {multiplicity} is "
+                     f"restricted open shell, available for hf and dft only; use "
+                     f"\"unrestricted\" for {method}")
+    return ModelSpec(method=method, basis=basis, reference=reference, functional=functional)
+
+
+def _parse_response(path: str, table: dict[str, Any], method: str,
+                    origin_scale: float) -> ResponseSpec:
+    r = _Reader(path, "response", table)
+    props = table.get("properties")
+    valid = ", ".join(PROPERTY_ORDER)
+    if props is None:
+        raise r.fail("properties", f"is missing; a list drawn from {valid}")
+    if not isinstance(props, list) or not props or not all(isinstance(p, str) for p in props):
+        raise r.fail("properties", f"must be a non-empty list of names from {valid}, got {props!r}")
+    for p in props:
+        if p.lower() not in PROPERTY_ORDER:
+            raise r.fail("properties", f"has unknown property {p!r}; valid: {valid}")
+    props_sorted = tuple(p for p in PROPERTY_ORDER if p in {q.lower() for q in props})
+    max_order = max(PROPERTY_ORDER[p] for p in props_sorted)
+
+    field_au = r.number("field_au", None)
+    source = "job"
+    if field_au is None:
+        field_au, source = DEFAULT_FIELD_AU[max_order], f"default for order {max_order}"
+    elif field_au <= 0:
+        raise r.fail("field_au", f"must be > 0, got {field_au}")
+    elif field_au > 0.05:
+        raise r.fail("field_au", f"= {field_au} au is far beyond the perturbative regime "
+                     "(2.6e10 V/m); use a value between 1e-4 and 1e-2")
+    ratio = r.number("ratio", 2.0)
+    if ratio <= 1.0:
+        raise r.fail("ratio", f"must be > 1 (the ladder is h_k = field_au * ratio**k), got {ratio}")
+    if ratio > 10.0:
+        raise r.fail("ratio", f"= {ratio} spaces the ladder too widely for extrapolation; use "
+                     "1.2 to 4 (2 is usual)")
+    levels = r.integer("levels", 3, low=1)
+    if levels > 8:
+        raise r.fail("levels", f"= {levels} is more field strengths than extrapolation of "
+                     "even-order error series can use; use 1 to 8")
+    top_field = field_au * ratio ** (levels - 1) * (2 if max_order >= 3 else 1)
+    if top_field > 0.1:
+        raise r.fail("levels", f"= {levels} with field_au = {field_au} and ratio = {ratio} "
+                     f"reaches a field of {top_field:.3g} au; lower one of them")
+    origin_raw = table.get("origin", "nuclear-charge")
+    if isinstance(origin_raw, str):
+        if origin_raw.lower() not in ORIGINS:
+            raise r.fail("origin", f"must be one of {', '.join(ORIGINS)} or [x, y, z]; "
+                         f"got {origin_raw!r}")
+        origin: str | tuple[float, float, float] = origin_raw.lower()
+    elif isinstance(origin_raw, list):
+        if len(origin_raw) != 3:
+            raise r.fail("origin", f"must have 3 coordinates [x, y, z], got {len(origin_raw)}")
+        if not all(isinstance(v, (int, float)) and not isinstance(v, bool)
+                   and math.isfinite(v) for v in origin_raw):
+            raise r.fail("origin", f"coordinates must be finite numbers, got {origin_raw!r}")
+        origin = tuple(float(v) * origin_scale for v in origin_raw)
+    else:
+        raise r.fail("origin", f"must be \"nuclear-charge\", \"zero\" or [x, y, z]; "
+                     f"got {origin_raw!r}")
+    route = r.string("route", "auto", ROUTES)
+    if route == "dipole" and method not in DIPOLE_ROUTE_METHODS:
+        raise r.fail("route", f"= \"dipole\" needs an analytic dipole at each field, which "
+                     f"fieldprop has for {', '.join(DIPOLE_ROUTE_METHODS)}; {method} "
+                     "takes route = \"energy\"")
+    if route == "auto":
+        route = "dipole" if method in DIPOLE_ROUTE_METHODS else "energy"
+    relax = table.get("nuclear_relaxation", False)
+    if not isinstance(relax, bool):
+        raise r.fail("nuclear_relaxation", f"must be true or false, got {relax!r}")
+    if relax:
+        raise r.fail("nuclear_relaxation", "= true is not available in this version; set it "
+                     "to false (electronic response at fixed nuclei)")
+    return ResponseSpec(props_sorted, field_au, source, ratio, levels, origin, route, relax)
+
+
+def _parse_scf(path: str, table: dict[str, Any], method: str, max_order: int,
+               route: str) -> ScfSpec:
+    r = _Reader(path, "scf", table)
+    tol = r.number("energy_conv_tol_au", None)
+    if tol is None:
+        tol = derived_energy_conv_tol_au(max_order)
+    elif not 1e-14 <= tol <= 1e-6:
+        raise r.fail("energy_conv_tol_au", f"must lie in [1e-14, 1e-6] Eh, got {tol}")
+    max_cycle = r.integer("max_cycle", 200, low=10)
+    grid_level = None
+    if r.has("grid_level"):
+        if method != "dft":
+            raise r.fail("grid_level", f"applies to method = \"dft\" only, not {method!r}")
+        grid_level = r.integer("grid_level", None, low=0)
+        if grid_level > 9:
+            raise r.fail("grid_level", f"must be 0..9 (PySCF grid levels), got {grid_level}")
+    elif method == "dft":
+        # One fixed, fine grid for every field point: grid noise is amplified by
+        # finite differences (REFERENCES sect. 6), and level 5 keeps it small.
+        grid_level = 5
+    # The SCF energy is variational (error ~ g^2 in the orbital gradient g), so
+    # g <= 1e-8 suffices for the energy route. The SCF dipole and post-HF energies
+    # are not variational (error ~ g): the dipole route, differentiating one order
+    # less, needs g <= 1e-10 to beat the energy route; post-HF 1e-9. DIIS reaches
+    # 1e-10 in ~35 cycles for water/aug-cc-pVDZ from the zero-field density.
+    if route == "dipole":
+        gradient_tol = 1e-10
+    elif method in ("hf", "dft"):
+        gradient_tol = 1e-8
+    else:
+        gradient_tol = 1e-9
+    return ScfSpec(tol, gradient_tol, max_cycle, grid_level)
+
+
+def load_job(path: str | os.PathLike[str]) -> Job:
+    """Read, validate and resolve a job file.
+
+    Parameters
+    ----------
+    path : path of a TOML job file (sections [molecule], [model], [response],
+        optional [scf]); an ``xyz`` path inside is relative to the job file.
+
+    Returns
+    -------
+    Job with every default filled in: reference resolved, route resolved, origin
+    as given (a name, or coordinates in bohr), SCF tolerances derived.
+
+    Raises
+    ------
+    InputError : one line naming the file and key.
+    """
+    job_path = Path(path)
+    shown = str(path)
+    data = _read_toml(job_path)
+    for section, value in data.items():
+        if section not in _SECTIONS:
+            raise InputError(f"{shown}: unknown section [{section}]; valid sections: "
+                             f"{', '.join('[' + s + ']' for s in _SECTIONS)}")
+        if not isinstance(value, dict):
+            raise InputError(f"{shown}: {section} must be a [{section}] table")
+        for key in value:
+            if key not in _SECTIONS[section]:
+                raise InputError(f"{shown}: [{section}] unknown key {key!r}; valid keys: "
+                                 f"{', '.join(sorted(_SECTIONS[section]))}")
+    for section in ("molecule", "model", "response"):
+        if section not in data:
+            raise InputError(f"{shown}: section [{section}] is missing")
+    molecule = _parse_molecule(shown, job_path, data["molecule"])
+    model = _parse_model(shown, data["model"], molecule.multiplicity)
+    scale = ANGSTROM_TO_BOHR if molecule.units == "angstrom" else 1.0
+    response = _parse_response(shown, data["response"], model.method, scale)
+    scf = _parse_scf(shown, data.get("scf", {}), model.method, response.max_order,
+                     response.route)
+    return Job(shown, molecule, model, response, scf)

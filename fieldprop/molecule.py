@@ -1,0 +1,84 @@
+"""The molecule as the backend needs it: nuclei in bohr, electrons, origin.
+
+Tensors are reported in the frame of the input geometry: nothing here reorients
+or recentres the molecule. Only the origin of the multipole operator is chosen,
+by default the centre of nuclear charge.
+
+Example
+-------
+>>> from fieldprop.job import Atom, MoleculeInput
+>>> m = MoleculeInput((Atom("H", (0.0, 0.0, 0.0)), Atom("H", (0.0, 0.0, 1.4))), 0, 1,
+...                   "bohr", "inline")
+>>> spec = build_molecule(m, "nuclear-charge")
+>>> spec.origin_bohr, spec.formula
+((0.0, 0.0, 0.7), 'H2')
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+from dataclasses import dataclass
+
+import numpy as np
+
+from fieldprop.job import MoleculeInput
+
+
+@dataclass(frozen=True)
+class MoleculeSpec:
+    """Everything that fixes the nuclear framework and the electron count.
+
+    ``coords_bohr`` and ``origin_bohr`` are plain tuples so the spec pickles and
+    hashes (a field point carries it to any worker process).
+    """
+
+    symbols: tuple[str, ...]
+    nuclear_charges: tuple[int, ...]
+    coords_bohr: tuple[tuple[float, float, float], ...]
+    charge: int
+    multiplicity: int
+    origin_bohr: tuple[float, float, float]
+
+    @property
+    def n_electrons(self) -> int:
+        return sum(self.nuclear_charges) - self.charge
+
+    @property
+    def spin(self) -> int:
+        """2S = number of unpaired electrons (PySCF's ``Mole.spin``)."""
+        return self.multiplicity - 1
+
+    @property
+    def formula(self) -> str:
+        """Hill order: C first, then H, then the rest alphabetically."""
+        counts = Counter(self.symbols)
+        order = (["C", "H"] if "C" in counts else []) + sorted(
+            s for s in counts if not ("C" in counts and s in ("C", "H")))
+        return "".join(s + (str(counts[s]) if counts[s] > 1 else "") for s in order)
+
+    def nuclear_dipole_au(self) -> np.ndarray:
+        """sum_A Z_A (R_A - O), shape (3,), in e bohr."""
+        z = np.asarray(self.nuclear_charges, dtype=float)
+        r = np.asarray(self.coords_bohr) - np.asarray(self.origin_bohr)
+        return z @ r
+
+
+def centre_of_nuclear_charge(charges, coords_bohr) -> tuple[float, float, float]:
+    """sum_A Z_A R_A / sum_A Z_A in bohr."""
+    z = np.asarray(charges, dtype=float)
+    c = (z @ np.asarray(coords_bohr, dtype=float)) / z.sum()
+    return tuple(float(v) for v in c)
+
+
+def build_molecule(mol: MoleculeInput, origin: str | tuple[float, float, float]) -> MoleculeSpec:
+    """Resolve the origin ("nuclear-charge", "zero" or bohr coordinates) and freeze."""
+    charges = tuple(a.charge for a in mol.atoms)
+    coords = tuple(tuple(float(v) for v in a.coords_bohr) for a in mol.atoms)
+    if origin == "nuclear-charge":
+        origin_bohr = centre_of_nuclear_charge(charges, coords)
+    elif origin == "zero":
+        origin_bohr = (0.0, 0.0, 0.0)
+    else:
+        origin_bohr = tuple(float(v) for v in origin)
+    return MoleculeSpec(tuple(a.symbol for a in mol.atoms), charges, coords, mol.charge,
+                        mol.multiplicity, origin_bohr)

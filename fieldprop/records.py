@@ -1,0 +1,68 @@
+"""Units of work and their results, shared by the executor, the backend and reports.
+
+A :class:`PointTask` is everything a worker needs to compute one field point; it
+is frozen and picklable (plain dataclasses, tuples and NumPy arrays; no PySCF
+object). A :class:`PointRecord` is what comes back.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from fieldprop.job import ModelSpec, ScfSpec
+from fieldprop.molecule import MoleculeSpec
+from fieldprop.plan import FieldPoint
+
+
+@dataclass(frozen=True, eq=False)
+class ZeroFieldReference:
+    """What each field point is started from and compared with.
+
+    ``density`` is the converged zero-field AO density (shape (nao, nao), or
+    (2, nao, nao) unrestricted): the warm start. ``occupied`` holds the occupied
+    orbital coefficients per spin (the state reference); ``s2`` is <S^2>.
+    """
+
+    density: np.ndarray
+    occupied: tuple[np.ndarray, ...]
+    s2: float
+
+
+@dataclass(frozen=True, eq=False)
+class PointTask:
+    """One field point of one job, ready for any worker process."""
+
+    molecule: MoleculeSpec
+    model: ModelSpec
+    scf: ScfSpec
+    point: FieldPoint
+    want_dipole: bool
+    reference: ZeroFieldReference | None = None
+
+
+@dataclass(frozen=True, eq=False)
+class PointRecord:
+    """The computed point.
+
+    ``energy_au`` is the total energy of the requested method; ``scf_energy_au``
+    that of the reference determinant; ``dipole_au`` (3,) the analytic SCF dipole
+    (nuclear minus electronic, about the job's origin) or None. ``attempts`` lists
+    the SCF strategies tried, the last one being the one that converged.
+    ``occupied_overlap`` is the smallest singular value of the overlap between
+    the occupied spaces at this field and at zero field (1 = same state).
+    ``gradient_norm`` is the norm of the converged SCF's orbital gradient: the
+    measured convergence, from which the noise model is built.
+    """
+
+    point: FieldPoint
+    energy_au: float
+    scf_energy_au: float
+    dipole_au: tuple[float, float, float] | None
+    scf_cycles: int
+    attempts: tuple[str, ...]
+    s2: float
+    occupied_overlap: float
+    gradient_norm: float
+    reference: ZeroFieldReference | None = field(default=None, repr=False)

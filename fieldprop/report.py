@@ -1,0 +1,248 @@
+"""Tables for people, JSON for programs. Writes only to the stream or path given.
+
+Every number is printed beside its error bar and the route that produced it; an
+unstable component is printed as ``unstable`` and written to JSON as ``null``
+with its reason, never as a number.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import tempfile
+from pathlib import Path
+from typing import Any, TextIO
+
+import numpy as np
+from tabulate import tabulate
+
+from fieldprop import __version__
+from fieldprop.engine import RunResult
+from fieldprop.plan import FieldPlan
+from fieldprop.units import (DISPLAY_UNITS, FIELD_AU_TO_V_PER_M, PROPERTY_ORDER)
+
+SCHEMA = "fieldprop-result-1"
+
+CAUTION = ("Results depend on method and basis set (beta and gamma strongly: diffuse "
+           "functions and correlation change them by tens of percent); computed NLO "
+           "figures guide, and do not replace, measurement.")
+
+_INVARIANT_PROPERTY = {"dipole_norm": "dipole", "alpha_iso": "alpha", "alpha_aniso": "alpha",
+                       "beta_parallel": "beta", "beta_vec": "beta", "beta_hrs": "beta",
+                       "gamma_parallel": "gamma"}
+_INVARIANT_TEXT = {
+    "dipole_norm": "|mu|",
+    "alpha_iso": "tr(alpha)/3",
+    "alpha_aniso": "anisotropy, alpha_par - alpha_perp for a linear molecule",
+    "beta_parallel": "3/5 mu.beta_vec/|mu| (EFISH projection)",
+    "beta_vec": "|beta_i|, beta_i = 1/3 sum_j (b_ijj + b_jij + b_jji)",
+    "beta_hrs": "sqrt(<b_ZZZ^2> + <b_XZZ^2>) (hyper-Rayleigh)",
+    "gamma_parallel": "1/15 sum_ij (g_iijj + g_ijij + g_ijji)",
+}
+
+
+def format_pair(value: float | None, error: float | None) -> tuple[str, str]:
+    """Value and error as text, the value rounded to the error's second digit.
+
+    >>> format_pair(8.0560071234, 2.3e-6)
+    ('8.0560071', '2.3e-06')
+    >>> format_pair(None, None)
+    ('unstable', '-')
+    """
+    if value is None or error is None or not math.isfinite(value):
+        return "unstable", "-"
+    if error <= 0 or not math.isfinite(error):
+        return f"{value:.10g}", f"{error:.2g}"
+    decimals = max(0, 1 - int(math.floor(math.log10(error))))
+    if abs(value) >= 1e7 or (decimals > 12):
+        digits = max(1, int(math.floor(math.log10(max(abs(value), error)))) -
+                     int(math.floor(math.log10(error))) + 1)
+        return f"{value:.{digits}e}", f"{error:.2g}"
+    return f"{value:.{decimals}f}", f"{error:.2g}"
+
+
+def _entry_text(est) -> str:
+    k, m = est.chosen_entry
+    return f"h{k}, {m} step{'s' if m != 1 else ''}"
+
+
+def write_tables(result: RunResult, out: TextIO) -> None:
+    """The human-readable report: header, one table per tensor, invariants."""
+    job, plan = result.job, result.plan
+    model = job.model
+    model_text = "/".join(x for x in (model.method.upper(), model.functional, model.basis) if x)
+    out.write(f"fieldprop {__version__}: {job.path}\n")
+    out.write(f"  molecule {result.molecule.formula}, charge {result.molecule.charge}, "
+              f"multiplicity {result.molecule.multiplicity}; {model_text} ({model.reference}); "
+              f"{result.backend_facts.get('n_basis_functions', '?')} basis functions\n")
+    origin = ", ".join(f"{v:.6f}" for v in result.molecule.origin_bohr)
+    steps = ", ".join(f"{h:g}" for h in plan.steps_au())
+    out.write(f"  route: {plan.route} (derivatives of "
+              f"{'E(F)' if plan.route == 'energy' else 'the SCF dipole mu(F)'}); fields {steps} au "
+              f"(h0 {job.response.field_au_source}); origin ({origin}) bohr\n")
+    out.write(f"  {len(result.records)} field points, "
+              f"{sum(r.scf_cycles for r in result.records)} SCF cycles; SCF energy tolerance "
+              f"{job.scf.energy_conv_tol_au:g} Eh; E(0) = {result.energy_au:.10f} Eh\n")
+    out.write("  atomic units, Taylor convention E = E0 - mu F - alpha F^2/2 - beta F^3/6 - "
+              "gamma F^4/24; error bars are estimates (Richardson table spread or round-off "
+              "floor), not bounds\n\n")
+    for name, tensor in result.tensors.items():
+        rows = []
+        for c in tensor.components:
+            est = c.estimate
+            value, err = ((est.value_au, est.error_au) if c.stable else (None, None))
+            v, e = format_pair(value, err)
+            rows.append([c.plan.name, v, e, _entry_text(est),
+                         est.status.value + (f": {est.reason}" if est.reason and not c.stable
+                                             else "")])
+        out.write(f"{name} ({'unique components' if plan.route == 'energy' else 'd^n mu_i / dF^n'}"
+                  f", au)\n")
+        out.write(tabulate(rows, headers=["component", "value", "+- error", "Richardson entry",
+                                          "status"], disable_numparse=True) + "\n\n")
+    rows = []
+    for inv in result.invariants:
+        prop = _INVARIANT_PROPERTY[inv.name]
+        v, e = format_pair(inv.value_au, inv.error_au)
+        label, factor = DISPLAY_UNITS[prop][0]
+        if inv.value_au is None:
+            cv, ce = "-", "-"
+        else:
+            cv, ce = format_pair(inv.value_au * factor, inv.error_au * factor)
+        rows.append([inv.name, v, e, f"{cv} +- {ce} {label}" if inv.value_au is not None
+                     else inv.reason, _INVARIANT_TEXT[inv.name]])
+    if rows:
+        out.write("invariants\n")
+        out.write(tabulate(rows, headers=["invariant", "value (au)", "+- error", "converted",
+                                          "definition"], disable_numparse=True) + "\n\n")
+    if any(p in result.tensors for p in ("beta", "gamma")):
+        out.write(f"note: {CAUTION}\n")
+
+
+def _nested(array: np.ndarray, mask: np.ndarray):
+    """Nested lists with None where ``mask`` is False."""
+    if array.ndim == 0:
+        return float(array) if bool(mask) else None
+    return [_nested(a, m) for a, m in zip(array, mask)]
+
+
+def result_document(result: RunResult) -> dict[str, Any]:
+    """The result JSON of the contract (schema fieldprop-result-1), with extensions."""
+    tensors = {}
+    for name, t in result.tensors.items():
+        status = np.empty(t.value_au.shape, dtype=object)
+        for c in t.components:
+            for e in c.entries:
+                status[e] = c.estimate.status.value
+        tensors[name] = {
+            "value": _nested(t.value_au, t.stable),
+            "error": _nested(t.error_au, t.stable),
+            "status": status.tolist(),
+            "route": result.plan.route,
+            "components": [{
+                "name": c.plan.name,
+                "indices": list(c.plan.indices),
+                "source": c.plan.source,
+                "value": c.estimate.value_au if c.stable else None,
+                "error": c.estimate.error_au if c.stable else None,
+                "status": c.estimate.status.value,
+                "reason": c.estimate.reason,
+                "roundoff_floor": c.estimate.roundoff_au,
+                "richardson_entry": {"level": c.estimate.chosen_entry[0],
+                                     "steps": c.estimate.chosen_entry[1]},
+                "richardson_table": [list(col) for col in c.estimate.table],
+            } for c in t.components],
+        }
+    invariants = {}
+    for inv in result.invariants:
+        prop = _INVARIANT_PROPERTY[inv.name]
+        entry: dict[str, Any] = {"value": inv.value_au, "error": inv.error_au}
+        if inv.value_au is None:
+            entry["reason"] = inv.reason
+        else:
+            entry["converted"] = {label: {"value": inv.value_au * f, "error": inv.error_au * f}
+                                  for label, f in DISPLAY_UNITS[prop]}
+        entry["definition"] = _INVARIANT_TEXT[inv.name]
+        invariants[inv.name] = entry
+    plan = result.plan
+    return {
+        "schema": SCHEMA,
+        "version": __version__,
+        "units": "au",
+        "convention": "taylor",
+        "job": result.job.to_dict(),
+        "origin_bohr": list(result.molecule.origin_bohr),
+        "energy_au": result.energy_au,
+        "tensors": tensors,
+        "invariants": invariants,
+        "points": {"planned": len(plan.points), "computed": len(result.records), "reused": 0,
+                   "scf_cycles": int(sum(r.scf_cycles for r in result.records))},
+        "field_plan": {"route": plan.route, "field_au": plan.field_au, "ratio": plan.ratio,
+                       "levels": plan.levels, "steps_au": list(plan.steps_au()),
+                       "largest_field_V_per_m": max(
+                           float(np.linalg.norm(p.field_vector_au)) for p in plan.points)
+                       * FIELD_AU_TO_V_PER_M},
+        "noise_model": {"energy_au": result.noise.energy_au,
+                        "dipole_au": result.noise.dipole_au},
+        "scf_retries": [{"point": r.point.label, "attempts": list(r.attempts)}
+                        for r in result.records if len(r.attempts) > 1],
+        "backend": result.backend_facts,
+        "unit_factors": {p: {label: f for label, f in DISPLAY_UNITS[p]}
+                         for p in PROPERTY_ORDER},
+        "caution": CAUTION,
+        "wall_time_s": result.wall_time_s,
+    }
+
+
+def check_output_path(path: Path, what: str = "--json") -> None:
+    """Refuse, before any work, a result path that cannot be written."""
+    if path.is_dir():
+        raise_input(f"{what} {path}: is a directory; give a file name such as result.json")
+    parent = path.parent if str(path.parent) else Path(".")
+    if not parent.is_dir():
+        raise_input(f"{what} {path}: folder {str(parent)!r} does not exist; create it first")
+    if not os.access(parent, os.W_OK):
+        raise_input(f"{what} {path}: folder {str(parent)!r} is not writable")
+
+
+def raise_input(message: str):
+    from fieldprop.errors import InputError
+
+    raise InputError(message)
+
+
+def write_json_atomic(document: dict[str, Any], path: Path) -> None:
+    """Write JSON to a temporary file beside ``path``, then rename it into place."""
+    fd, tmp = tempfile.mkstemp(dir=path.parent if str(path.parent) else ".",
+                               prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            json.dump(document, fh, indent=1, allow_nan=False)
+            fh.write("\n")
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def write_plan(plan: FieldPlan, out: TextIO, json_lines: bool = False) -> None:
+    """The field points ``run`` would compute (and which components use them)."""
+    uses: dict[int, int] = {}
+    for c in plan.components:
+        for s in c.stencils:
+            for p, _ in s.terms:
+                uses[p] = uses.get(p, 0) + 1
+    if json_lines:
+        for p in plan.points:
+            out.write(json.dumps({"id": p.index, "level": p.level, "offsets": list(p.offsets),
+                                  "field_vector_au": list(p.field_vector_au),
+                                  "stencil_uses": uses.get(p.index, 0)}) + "\n")
+        return
+    out.write(f"route {plan.route}; ladder h_k = {plan.field_au:g} * {plan.ratio:g}**k, "
+              f"k = 0..{plan.levels - 1}; {len(plan.points)} field points for "
+              f"{len(plan.components)} components\n")
+    rows = [[p.index, p.level, p.label, *(f"{v:+.6g}" for v in p.field_vector_au),
+             uses.get(p.index, 0)] for p in plan.points]
+    out.write(tabulate(rows, headers=["id", "level", "point", "F_x (au)", "F_y (au)",
+                                      "F_z (au)", "stencil uses"], disable_numparse=True) + "\n")

@@ -1,0 +1,233 @@
+"""Response tensors from extrapolated derivatives, and their invariants.
+
+Pure numerics, no PySCF.
+
+Sign convention (Taylor, the contract's)::
+
+    E(F) = E0 - mu_i F_i - 1/2 alpha_ij F_i F_j - 1/6 beta_ijk F_i F_j F_k
+              - 1/24 gamma_ijkl F_i F_j F_k F_l
+    mu_i(F) = -dE/dF_i = mu_i + alpha_ij F_j + 1/2 beta_ijk F_j F_k + 1/6 gamma_ijkl F_j F_k F_l
+
+so alpha_ij = -d2E/dF_i dF_j = d mu_i / dF_j and so on. On the energy route each
+unique component fills every permutation of its indices; on the dipole route
+component (i, j, k, ...) is the derivative of mu_i along j, k, ..., filling only
+permutations of the differentiated indices, so the tensor's deviation from full
+index symmetry is a measure of numerical quality.
+
+Invariants (REFERENCES sect. 3; the contract's names): ``dipole_norm`` = |mu|;
+``alpha_iso`` = tr(alpha)/3; ``alpha_aniso`` = sqrt{1/2[(axx-ayy)^2 + (ayy-azz)^2 +
+(azz-axx)^2 + 6(axy^2+axz^2+ayz^2)]} (symmetrised alpha); beta_i = 1/3 sum_j
+(beta_ijj + beta_jij + beta_jji), ``beta_vec`` = |beta_i|, ``beta_parallel`` =
+3/5 sum_i mu_i beta_i / |mu|; ``beta_hrs`` = sqrt(<beta_ZZZ^2> + <beta_XZZ^2>) with
+<beta_ZZZ^2> = 2/35 B2 + 3/35 V, <beta_XZZ^2> = 4/105 B2 - 1/105 V, B2 = sum beta_ijk^2,
+V = sum_i (sum_j beta_ijj)^2 of the symmetrised beta (Bersohn, Pao, Frisch, J. Chem.
+Phys. 45, 3184 (1966)); ``gamma_parallel`` = 1/15 sum_ij (gamma_iijj + gamma_ijij +
+gamma_ijji).
+
+Error bars of invariants propagate the component error bars linearly,
+sum_c |d inv / d c| err_c (components share field points, so their errors are
+not independent; the linear sum does not assume they are).
+
+Example
+-------
+>>> import numpy as np
+>>> b = np.zeros((3, 3, 3)); b[2, 2, 2] = 1.0
+>>> round(beta_hrs(b) / np.sqrt(6 / 35), 12)
+1.0
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from fieldprop.extrapolate import ComponentEstimate, ComponentStatus, mark_unstable
+from fieldprop.plan import ComponentPlan
+from fieldprop.units import PROPERTY_ORDER
+
+#: A component is unstable when its error bar exceeds this fraction of the
+#: largest magnitude in its tensor (and the negligible level below).
+UNSTABLE_FRACTION = 0.1
+#: Error bars below these (au) are negligible for any use of the numbers, whatever
+#: the tensor's size, so symmetry-zero tensors (beta of a centrosymmetric molecule)
+#: are not flagged for their noise: small next to typical molecular values of
+#: |mu| ~ 1, alpha ~ 10, beta ~ 10-1000, gamma ~ 1e3-1e5 au (common practice).
+NEGLIGIBLE_ERROR_AU = {1: 1e-5, 2: 1e-4, 3: 1e-2, 4: 1.0}
+
+
+@dataclass(frozen=True)
+class ComponentResult:
+    """One computed component, the tensor entries it fills, and its estimate."""
+
+    plan: ComponentPlan
+    estimate: ComponentEstimate
+    entries: tuple[tuple[int, ...], ...]
+
+    @property
+    def stable(self) -> bool:
+        return self.estimate.status is not ComponentStatus.UNSTABLE
+
+
+@dataclass(frozen=True)
+class TensorResult:
+    """A full response tensor: value and error arrays of shape (3,)*order, au.
+
+    ``stable`` has the same shape; an unstable entry has no trustworthy number.
+    """
+
+    name: str
+    order: int
+    value_au: np.ndarray
+    error_au: np.ndarray
+    stable: np.ndarray
+    components: tuple[ComponentResult, ...]
+
+
+@dataclass(frozen=True)
+class Invariant:
+    """A scalar invariant (au) with its propagated error; ``value_au`` is None if
+    unavailable, with the reason."""
+
+    name: str
+    value_au: float | None
+    error_au: float | None
+    reason: str = ""
+
+
+def _entries(plan: ComponentPlan) -> tuple[tuple[int, ...], ...]:
+    if plan.source == "energy":
+        perms = set(itertools.permutations(plan.indices))
+    else:
+        first, rest = plan.indices[0], plan.indices[1:]
+        perms = {(first, *p) for p in itertools.permutations(rest)}
+    return tuple(sorted(perms))
+
+
+def assemble(plans, estimates) -> dict[str, TensorResult]:
+    """Full tensors from component plans and their Richardson estimates.
+
+    Components whose error exceeds UNSTABLE_FRACTION of the tensor's largest
+    magnitude and NEGLIGIBLE_ERROR_AU are flagged unstable here.
+    """
+    by_tensor: dict[str, list[ComponentResult]] = {}
+    for plan, est in zip(plans, estimates, strict=True):
+        by_tensor.setdefault(plan.tensor, []).append(ComponentResult(plan, est, _entries(plan)))
+    out = {}
+    for name in PROPERTY_ORDER:
+        if name not in by_tensor:
+            continue
+        order = PROPERTY_ORDER[name]
+        comps = by_tensor[name]
+        finite = [abs(c.estimate.value_au) for c in comps if math.isfinite(c.estimate.value_au)]
+        scale = max(finite, default=0.0)
+        limit = max(UNSTABLE_FRACTION * scale, NEGLIGIBLE_ERROR_AU[order])
+        checked = []
+        for c in comps:
+            est = c.estimate
+            if est.status is not ComponentStatus.UNSTABLE and not est.error_au <= limit:
+                est = mark_unstable(est, f"error bar {est.error_au:.2g} au exceeds "
+                                         f"{UNSTABLE_FRACTION:.0%} of the tensor's largest "
+                                         f"component ({scale:.3g} au): the Richardson table "
+                                         "did not settle")
+            checked.append(ComponentResult(c.plan, est, c.entries))
+        value = np.zeros((3,) * order)
+        error = np.zeros((3,) * order)
+        stable = np.ones((3,) * order, dtype=bool)
+        for c in checked:
+            for e in c.entries:
+                value[e], error[e], stable[e] = c.estimate.value_au, c.estimate.error_au, c.stable
+        out[name] = TensorResult(name, order, value, error, stable, tuple(checked))
+    return out
+
+
+def symmetrize(t: np.ndarray) -> np.ndarray:
+    """Average over all index permutations."""
+    perms = list(itertools.permutations(range(t.ndim)))
+    return sum(np.transpose(t, p) for p in perms) / len(perms)
+
+
+def alpha_iso(a: np.ndarray) -> float:
+    return float(np.trace(a) / 3.0)
+
+
+def alpha_aniso(a: np.ndarray) -> float:
+    s = symmetrize(a)
+    d = (s[0, 0] - s[1, 1]) ** 2 + (s[1, 1] - s[2, 2]) ** 2 + (s[2, 2] - s[0, 0]) ** 2
+    off = s[0, 1] ** 2 + s[0, 2] ** 2 + s[1, 2] ** 2
+    return float(math.sqrt(max(0.5 * (d + 6.0 * off), 0.0)))
+
+
+def beta_vector(b: np.ndarray) -> np.ndarray:
+    """beta_i = 1/3 sum_j (beta_ijj + beta_jij + beta_jji), shape (3,)."""
+    return (np.einsum("ijj->i", b) + np.einsum("jij->i", b) + np.einsum("jji->i", b)) / 3.0
+
+
+def beta_hrs(b: np.ndarray) -> float:
+    s = symmetrize(b)
+    b2 = float(np.sum(s * s))
+    v = float(np.sum(np.einsum("ijj->i", s) ** 2))
+    zzz = 2.0 / 35.0 * b2 + 3.0 / 35.0 * v
+    xzz = 4.0 / 105.0 * b2 - 1.0 / 105.0 * v
+    return float(math.sqrt(max(zzz + xzz, 0.0)))
+
+
+def gamma_parallel(g: np.ndarray) -> float:
+    return float((np.einsum("iijj->", g) + np.einsum("ijij->", g) + np.einsum("ijji->", g)) / 15.0)
+
+
+def _propagate(fn, tensors: dict[str, TensorResult], names) -> tuple[float, float]:
+    """Value and linear error of fn(*values) over the components of ``names``."""
+    values = [tensors[n].value_au for n in names]
+    base = fn(*values)
+    err = 0.0
+    for slot, n in enumerate(names):
+        for c in tensors[n].components:
+            e = c.estimate.error_au
+            if e == 0.0:
+                continue
+            # Central difference of a smooth function at a step of one error bar:
+            # exact for the linear and quadratic invariants used here.
+            shifted = []
+            for sign in (1.0, -1.0):
+                vals = [v.copy() for v in values]
+                for idx in c.entries:
+                    vals[slot][idx] += sign * e
+                shifted.append(fn(*vals))
+            err += abs(shifted[0] - shifted[1]) / 2.0
+    return float(base), float(err)
+
+
+def invariants(tensors: dict[str, TensorResult]) -> list[Invariant]:
+    """The contract's invariants that the computed tensors allow."""
+    specs = []
+    if "dipole" in tensors:
+        specs.append(("dipole_norm", ("dipole",), lambda m: float(np.linalg.norm(m))))
+    if "alpha" in tensors:
+        specs += [("alpha_iso", ("alpha",), alpha_iso), ("alpha_aniso", ("alpha",), alpha_aniso)]
+    if "beta" in tensors:
+        if "dipole" in tensors:
+            specs.append(("beta_parallel", ("dipole", "beta"), None))
+        specs += [("beta_vec", ("beta",), lambda b: float(np.linalg.norm(beta_vector(b)))),
+                  ("beta_hrs", ("beta",), beta_hrs)]
+    if "gamma" in tensors:
+        specs.append(("gamma_parallel", ("gamma",), gamma_parallel))
+    out = []
+    for name, needs, fn in specs:
+        bad = [c.plan.name for n in needs for c in tensors[n].components if not c.stable]
+        if bad:
+            out.append(Invariant(name, None, None, "unstable components: " + ", ".join(bad)))
+            continue
+        if name == "beta_parallel":
+            mu, mu_err = tensors["dipole"].value_au, tensors["dipole"].error_au
+            norm = float(np.linalg.norm(mu))
+            if norm <= 3.0 * float(np.linalg.norm(mu_err)) or norm < 1e-6:
+                out.append(Invariant(name, None, None, "dipole moment is zero within its error "
+                                     "bar: the projection on it is undefined"))
+                continue
+            fn = lambda m, b: 0.6 * float(m @ beta_vector(b)) / float(np.linalg.norm(m))  # noqa: E731
+        value, err = _propagate(fn, tensors, needs)
+        out.append(Invariant(name, value, err))
+    return out

@@ -1,0 +1,62 @@
+"""Conversion factors from atomic units, derived from CODATA via ``scipy.constants``.
+
+Nothing here is typed in: every factor is built from the elementary charge e, the
+Bohr radius a0, the Hartree energy Eh and epsilon_0 (the CODATA edition is that of
+the installed SciPy). The n-th order response tensor (n = 1 dipole, 2 alpha,
+3 beta, 4 gamma) has the SI unit e^n a0^n / Eh^(n-1) and the Gaussian (esu) unit
+e_G^n a0_cm^n / Eh_erg^(n-1), where e_G = e * sqrt(1e9 / (4 pi eps0)) statC.
+
+Example
+-------
+>>> round(DIPOLE_AU_TO_DEBYE, 5)
+2.54175
+>>> round(ALPHA_AU_TO_ANGSTROM3, 6)
+0.148185
+"""
+
+import math
+
+from scipy import constants as _c
+
+ELEMENTARY_CHARGE_C = _c.e
+BOHR_M = _c.physical_constants["Bohr radius"][0]
+HARTREE_J = _c.physical_constants["Hartree energy"][0]
+EPSILON0_SI = _c.epsilon_0
+
+BOHR_TO_ANGSTROM = BOHR_M / _c.angstrom
+ANGSTROM_TO_BOHR = 1.0 / BOHR_TO_ANGSTROM
+
+#: Elementary charge in statcoulomb (Gaussian units): e * sqrt(1e9 / (4 pi eps0)).
+ELEMENTARY_CHARGE_STATC = ELEMENTARY_CHARGE_C * math.sqrt(1e9 / (4.0 * math.pi * EPSILON0_SI))
+_BOHR_CM = BOHR_M * 100.0
+_HARTREE_ERG = HARTREE_J * 1e7
+
+FIELD_AU_TO_V_PER_M = HARTREE_J / (ELEMENTARY_CHARGE_C * BOHR_M)
+
+#: Order of each property in the field (the n of the n-th derivative of E).
+PROPERTY_ORDER = {"dipole": 1, "alpha": 2, "beta": 3, "gamma": 4}
+
+
+def si_factor(order: int) -> float:
+    """SI value of one atomic unit of the ``order``-th response (C^n m^n J^-(n-1))."""
+    return (ELEMENTARY_CHARGE_C * BOHR_M) ** order / HARTREE_J ** (order - 1)
+
+
+def esu_factor(order: int) -> float:
+    """Gaussian (esu) value of one atomic unit of the ``order``-th response."""
+    return (ELEMENTARY_CHARGE_STATC * _BOHR_CM) ** order / _HARTREE_ERG ** (order - 1)
+
+
+#: 1 D = 1e-18 statC cm.
+DIPOLE_AU_TO_DEBYE = esu_factor(1) / 1e-18
+#: alpha / (4 pi eps0) as a volume: one atomic unit is a0^3.
+ALPHA_AU_TO_ANGSTROM3 = BOHR_TO_ANGSTROM**3
+
+#: For each property, the extra units reported beside atomic units:
+#: ``{property: [(unit label, factor from au), ...]}``.
+DISPLAY_UNITS = {
+    "dipole": [("debye", DIPOLE_AU_TO_DEBYE), ("C m", si_factor(1))],
+    "alpha": [("angstrom^3", ALPHA_AU_TO_ANGSTROM3), ("C m^2 V^-1", si_factor(2))],
+    "beta": [("esu", esu_factor(3)), ("C m^3 V^-2", si_factor(3))],
+    "gamma": [("esu", esu_factor(4)), ("C m^4 V^-3", si_factor(4))],
+}
