@@ -13,6 +13,7 @@ PySCF objects are built inside the worker from the plain data of a
 from __future__ import annotations
 
 import logging
+import warnings
 
 import numpy as np
 
@@ -31,17 +32,50 @@ MIN_OCCUPIED_OVERLAP = 0.9
 MAX_S2_CHANGE = 0.01
 
 
-def build_mole(molecule, basis: str, where: str = "[model] basis"):
+def _pyscf_basis(basis):
+    """A name, or {symbol: name or parsed NWChem-format text} for per-element bases."""
+    from pyscf import gto
+
+    if isinstance(basis, str):
+        return basis
+    out = {}
+    for symbol, text in basis:
+        out[symbol] = gto.basis.parse(text, symb=symbol) if "\n" in text.strip() else text
+    return out
+
+
+def build_mole(molecule, basis, where: str = "[model] basis"):
     """A PySCF ``Mole`` in bohr; basis problems become InputError naming ``where``."""
     from pyscf import gto
 
     try:
-        return gto.M(atom=[(s, c) for s, c in zip(molecule.symbols, molecule.coords_bohr)],
-                     unit="Bohr", basis=basis, charge=molecule.charge, spin=molecule.spin,
-                     verbose=0)
+        if not isinstance(basis, str):
+            # Checked before PySCF, which would print a warning line of its own.
+            absent = sorted(set(molecule.symbols) - {symbol for symbol, _ in basis})
+            if absent:
+                raise ValueError(f"no basis given for {', '.join(absent)}")
+        with warnings.catch_warnings():
+            # PySCF's advice to install basis-set-exchange, printed for an unknown
+            # basis, would add lines to the one-line error below.
+            warnings.filterwarnings("ignore", message="Basis may be available in "
+                                    "basis-set-exchange")
+            # ... and so would NumPy's, normalising a zero or negative exponent.
+            warnings.filterwarnings("ignore", category=RuntimeWarning)
+            mol = gto.M(atom=[(s, c) for s, c in zip(molecule.symbols, molecule.coords_bohr)],
+                        unit="Bohr", basis=_pyscf_basis(basis), charge=molecule.charge,
+                        spin=molecule.spin, verbose=0)
+        missing = sorted({s for s in molecule.symbols} - {mol.atom_symbol(i) for i in
+                                                          range(mol.natm) if mol.atom_nshells(i)})
+        if missing:
+            raise KeyError(f"no basis functions for {', '.join(missing)}")
+        if not np.all(np.isfinite(mol._env)):
+            raise ValueError("exponents must be > 0 and coefficients finite")
+        return mol
     except (KeyError, RuntimeError, ValueError, OSError, IndexError) as exc:
         text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise InputError(f"{where} {basis!r} is not available for this molecule "
+        shown = basis if isinstance(basis, str) else {
+            sym: (text if "\n" not in text else "<basis text>") for sym, text in basis}
+        raise InputError(f"{where} {shown!r} is not available for this molecule "
                          f"({text}); use a basis PySCF knows for every element, such as "
                          "cc-pvdz, aug-cc-pvdz or def2-svp") from None
 
@@ -144,7 +178,7 @@ def _converge(mf, dm0, label: str) -> tuple[list[str], int]:
         for key, value in settings.items():
             setattr(mf, key, value)
         mf.kernel(dm0)
-        cycles += int(getattr(mf, "cycles", 0) or 0)
+        cycles += int(getattr(mf, "cycles", 1) or 1)
         if mf.converged:
             return attempts, cycles
         dm0 = mf.make_rdm1()
@@ -216,7 +250,14 @@ def evaluate_point(task: PointTask) -> PointRecord:
     dipole = tuple(float(v) for v in _scf_dipole(mf, r, molecule)) if task.want_dipole else None
     energy = (float(mf.e_tot) if model.method in ("hf", "dft")
               else _correlated_energy(mf, model, task.scf, point.label))
-    gradient = float(np.linalg.norm(mf.get_grad(mf.mo_coeff, mf.mo_occ)))
+    # A one-electron system has no electron-electron terms (PySCF's HF1e): its Fock
+    # matrix is the core Hamiltonian, and building the generic one would compute
+    # two-electron integrals for nothing.
+    fock = None
+    if mol.nelectron == 1:
+        h = mf.get_hcore()
+        fock = np.array([h, h]) if np.asarray(mf.mo_occ).ndim == 2 else h
+    gradient = float(np.linalg.norm(mf.get_grad(mf.mo_coeff, mf.mo_occ, fock)))
     reference = None
     if task.reference is None:
         reference = ZeroFieldReference(np.asarray(mf.make_rdm1()), occupied, s2)

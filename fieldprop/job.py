@@ -55,6 +55,9 @@ DIPOLE_ROUTE_METHODS = ("hf", "dft")
 #: Two nuclei closer than this (bohr) are taken as a typing error: 0.5 bohr = 0.26 A,
 #: well below any chemical bond (H2 is 1.4 bohr).
 MIN_DISTANCE_BOHR = 0.5
+#: A coordinate (or origin component) farther than this from zero (bohr, 53 um) is
+#: taken as a typing error; far larger values overflow in PySCF (inf, NaN).
+MAX_COORDINATE_BOHR = 1e6
 
 #: Default smallest field h0 (au) by highest derivative order of the energy when
 #: the job gives none: REFERENCES' practice, h0 ~ 1e-4..5e-4 au for alpha and a
@@ -100,10 +103,14 @@ class MoleculeInput:
 
 @dataclass(frozen=True)
 class ModelSpec:
-    """Model chemistry: method, functional (dft only), basis, reference."""
+    """Model chemistry: method, functional (dft only), basis, reference.
+
+    ``basis`` is a basis name PySCF knows, or per element a tuple of
+    (symbol, name or basis text in NWChem format) pairs, sorted by symbol.
+    """
 
     method: str
-    basis: str
+    basis: str | tuple[tuple[str, str], ...]
     reference: str  # resolved: "restricted" or "unrestricted"
     functional: str | None = None
 
@@ -247,16 +254,18 @@ def _read_toml(path: Path) -> dict[str, Any]:
         raise InputError(f"{path}: not valid TOML: {exc}") from None
 
 
-def parse_geometry_lines(lines: list[str], units: str, where: str) -> tuple[Atom, ...]:
+def parse_geometry_lines(lines: list[str], units: str, where: str,
+                         first_line: int = 1) -> tuple[Atom, ...]:
     """Parse ``symbol x y z`` lines (units "angstrom" or "bohr") into atoms in bohr.
 
-    ``where`` prefixes every message (file and key). Raises InputError on an
+    ``where`` prefixes every message (file and key); ``first_line`` is the line
+    number of ``lines[0]`` in its file (3 in an .xyz file). Raises InputError on an
     unknown element, a wrong column count, text or non-finite coordinates, an
     empty geometry, or two nuclei closer than MIN_DISTANCE_BOHR.
     """
     scale = ANGSTROM_TO_BOHR if units == "angstrom" else 1.0
     atoms = []
-    for number, line in enumerate(lines, start=1):
+    for number, line in enumerate(lines, start=first_line):
         fields = line.split()
         if not fields:
             continue
@@ -275,6 +284,10 @@ def parse_geometry_lines(lines: list[str], units: str, where: str) -> tuple[Atom
         if not all(math.isfinite(v) for v in xyz):
             raise InputError(f"{where}: line {number}: coordinates must be finite, got "
                              f"{' '.join(fields[1:])!r}")
+        if not all(abs(v * scale) <= MAX_COORDINATE_BOHR for v in xyz):
+            raise InputError(f"{where}: line {number}: coordinates beyond "
+                             f"{MAX_COORDINATE_BOHR:g} bohr from the origin, got "
+                             f"{' '.join(fields[1:])!r} {units}; check the numbers and units")
         canonical = ELEMENTS[_Z_OF[symbol.lower()]]
         atoms.append(Atom(canonical, tuple(v * scale for v in xyz)))
     if not atoms:
@@ -316,7 +329,7 @@ def _read_xyz(job_path: Path, rel: str, units: str) -> tuple[Atom, ...]:
     if count < 1 or len(body) != count:
         raise InputError(f"{where}: line 1 says {count} atoms but {len(body)} atom lines "
                          "follow the comment line")
-    atoms = parse_geometry_lines(lines[2:], units, where)
+    atoms = parse_geometry_lines(lines[2:], units, where, first_line=3)
     return atoms
 
 
@@ -351,7 +364,21 @@ def _parse_molecule(path: str, job_path: Path, table: dict[str, Any]) -> Molecul
 def _parse_model(path: str, table: dict[str, Any], multiplicity: int) -> ModelSpec:
     r = _Reader(path, "model", table)
     method = r.string("method", None, METHODS)
-    basis = r.string("basis")
+    raw_basis = table.get("basis")
+    if isinstance(raw_basis, dict):
+        if not raw_basis:
+            raise r.fail("basis", "table is empty; give element = \"basis name\" pairs")
+        pairs = []
+        for symbol, value in raw_basis.items():
+            if symbol.lower() not in _Z_OF:
+                raise r.fail("basis", f"table has unknown element {symbol!r}")
+            if not isinstance(value, str) or not value.strip():
+                raise r.fail("basis", f"for {symbol} must be a basis name or NWChem-format "
+                             f"text, got {value!r}")
+            pairs.append((ELEMENTS[_Z_OF[symbol.lower()]], value.strip()))
+        basis: str | tuple[tuple[str, str], ...] = tuple(sorted(pairs))
+    else:
+        basis = r.string("basis")
     functional = r.string("functional") if r.has("functional") else None
     if method == "dft" and functional is None:
         raise r.fail("functional", "is missing; method = \"dft\" needs a functional such as "
@@ -420,6 +447,9 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
                    and math.isfinite(v) for v in origin_raw):
             raise r.fail("origin", f"coordinates must be finite numbers, got {origin_raw!r}")
         origin = tuple(float(v) * origin_scale for v in origin_raw)
+        if not all(abs(v) <= MAX_COORDINATE_BOHR for v in origin):
+            raise r.fail("origin", f"coordinates must lie within {MAX_COORDINATE_BOHR:g} bohr "
+                         f"of zero, got {origin_raw!r}")
     else:
         raise r.fail("origin", f"must be \"nuclear-charge\", \"zero\" or [x, y, z]; "
                      f"got {origin_raw!r}")

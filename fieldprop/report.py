@@ -71,7 +71,10 @@ def write_tables(result: RunResult, out: TextIO) -> None:
     """The human-readable report: header, one table per tensor, invariants."""
     job, plan = result.job, result.plan
     model = job.model
-    model_text = "/".join(x for x in (model.method.upper(), model.functional, model.basis) if x)
+    basis = (model.basis if isinstance(model.basis, str)
+             else "+".join(f"{sym}:{text if chr(10) not in text else 'custom'}"
+                           for sym, text in model.basis))
+    model_text = "/".join(x for x in (model.method.upper(), model.functional, basis) if x)
     out.write(f"fieldprop {__version__}: {job.path}\n")
     out.write(f"  molecule {result.molecule.formula}, charge {result.molecule.charge}, "
               f"multiplicity {result.molecule.multiplicity}; {model_text} ({model.reference}); "

@@ -1,0 +1,64 @@
+"""Shared set-up for physics tests: jobs written to a temporary folder, run in-process."""
+
+import textwrap
+
+import numpy as np
+import pytest
+
+pytest.importorskip("pyscf")
+
+from fieldprop.engine import compute  # noqa: E402
+from fieldprop.job import load_job  # noqa: E402
+
+#: Water built by us (O-H 0.958 A, H-O-H 104.4 deg, roughly the experimental
+#: equilibrium, a fact of the trade), in angstrom.
+WATER_ANGSTROM = np.array([[0.0, 0.0, 0.1173], [0.0, 0.7572, -0.4692], [0.0, -0.7572, -0.4692]])
+
+
+def rotation(seed: int = 7) -> np.ndarray:
+    """A fixed proper rotation that moves every symmetry axis off x, y, z."""
+    from scipy.spatial.transform import Rotation
+
+    return Rotation.from_euler("zyx", [37.0, 23.0, -61.0], degrees=True).as_matrix()
+
+
+def geometry_text(symbols, coords) -> str:
+    return "\n".join(f"{s} {x:.10f} {y:.10f} {z:.10f}" for s, (x, y, z) in zip(symbols, coords))
+
+
+def rotated_water() -> str:
+    return geometry_text("OHH", WATER_ANGSTROM @ rotation().T + np.array([0.3, -0.2, 0.1]))
+
+
+def run_job(tmp_path, text: str, name: str = "job.toml", workers: int = 1):
+    path = tmp_path / name
+    path.write_text(textwrap.dedent(text))
+    job = load_job(path)
+    return job, compute(job, workers=workers, progress=False)
+
+
+def mean_field(job, conv_tol=1e-12):
+    """An independent PySCF SCF of the job's molecule and model (no fieldprop code)."""
+    from pyscf import dft, gto, scf
+
+    m = job.molecule
+    mol = gto.M(atom=[(a.symbol, a.coords_bohr) for a in m.atoms], unit="Bohr",
+                basis=job.model.basis, charge=m.charge, spin=m.multiplicity - 1, verbose=0)
+    unrestricted = job.model.reference == "unrestricted"
+    if job.model.method == "dft":
+        mf = (dft.UKS if unrestricted else dft.RKS)(mol)
+        mf.xc = job.model.functional
+        mf.grids.level = job.scf.grid_level
+    else:
+        mf = (scf.UHF if unrestricted else scf.RHF)(mol)
+    mf.conv_tol = conv_tol
+    mf.conv_tol_grad = 1e-9
+    mf.kernel()
+    assert mf.converged
+    return mf
+
+
+def agree(ff_value, ff_error, reference, floor):
+    """|ff - ref| within three error bars, or an absolute floor (style guide rule)."""
+    return np.abs(np.asarray(ff_value) - reference) <= np.maximum(3.0 * np.asarray(ff_error),
+                                                                  floor)

@@ -1,0 +1,103 @@
+"""Finite-field mu and alpha against PySCF's analytic SCF quantities.
+
+Outside references: PySCF's SCF dipole (``mf.dip_moment``) and an analytic
+coupled-perturbed (CPHF/CPKS) polarizability solved in tests/physics/analytic_reference.py
+with PySCF's ``cphf``/``ucphf`` solvers. Molecules are rotated off their symmetry
+axes so that off-diagonal components are non-zero.
+"""
+
+import numpy as np
+import pytest
+
+from analytic_reference import cphf_polarizability
+from conftest import agree, geometry_text, mean_field, rotated_water, rotation, run_job
+
+
+def water_job(method_lines: str, props: str, route: str, field_au: float = 0.002) -> str:
+    return f"""
+        [molecule]
+        geometry = \"\"\"
+{rotated_water()}
+        \"\"\"
+        [model]
+        {method_lines}
+        basis = "6-31g*"
+        [response]
+        properties = {props}
+        route = "{route}"
+        field_au = {field_au}
+        [scf]
+        {'grid_level = 3' if 'dft' in method_lines else ''}
+        """
+
+
+@pytest.mark.parametrize("method_lines", [
+    'method = "hf"',
+    'method = "dft"\n        functional = "pbe0"',
+], ids=["hf", "dft-pbe0"])
+def test_energy_route_dipole_equals_analytic_scf_dipole(tmp_path, method_lines):
+    job, result = run_job(tmp_path, water_job(method_lines, '["dipole"]', "energy"))
+    mf = mean_field(job)
+    reference = mf.dip_moment(unit="AU", verbose=0)  # neutral: origin-independent
+    dipole = result.tensors["dipole"]
+    # Issue requirement: 1e-6 au. The analytic side is converged to an orbital
+    # gradient of 1e-9, which moves mu by ~1e-9 au.
+    assert np.max(np.abs(dipole.value_au - reference)) < 1e-6
+    assert np.all(agree(dipole.value_au, dipole.error_au, reference, 1e-8))
+    assert np.min(np.abs(reference)) > 0.05  # rotated: every component is non-zero
+
+
+@pytest.mark.parametrize("route", ["energy", "dipole"])
+def test_hf_alpha_equals_cphf_full_tensor(tmp_path, route):
+    job, result = run_job(tmp_path, water_job('method = "hf"', '["alpha"]', route))
+    reference = cphf_polarizability(mean_field(job), result.molecule.origin_bohr)
+    alpha = result.tensors["alpha"]
+    assert np.min(np.abs(reference)) > 0.01  # off-diagonal components present
+    rel = np.max(np.abs(alpha.value_au - reference)) / np.max(np.abs(reference))
+    assert rel < 1e-5
+    # The error bar must cover the difference (floor: CPHF residual 1e-10 relative).
+    assert np.all(agree(alpha.value_au, alpha.error_au, reference, 1e-8))
+
+
+def test_dft_alpha_equals_cpks_full_tensor(tmp_path):
+    job, result = run_job(tmp_path, water_job('method = "dft"\n        functional = "b3lyp"',
+                                              '["alpha"]', "dipole"))
+    reference = cphf_polarizability(mean_field(job), result.molecule.origin_bohr)
+    alpha = result.tensors["alpha"]
+    rel = np.max(np.abs(alpha.value_au - reference)) / np.max(np.abs(reference))
+    assert rel < 1e-5
+    assert np.all(agree(alpha.value_au, alpha.error_au, reference, 1e-7))
+
+
+def test_open_shell_uhf_alpha_equals_ucphf(tmp_path):
+    # The NH2 radical (doublet, non-degenerate 2B1 ground state; OH's degenerate
+    # 2Pi state is avoided on purpose), our own geometry: N-H 1.024 A, 103 deg,
+    # rotated off the axes.
+    half = np.radians(103.0) / 2.0
+    local = np.array([[0.0, 0.0, 0.0],
+                      [0.0, 1.024 * np.sin(half), 1.024 * np.cos(half)],
+                      [0.0, -1.024 * np.sin(half), 1.024 * np.cos(half)]])
+    geometry = geometry_text("NHH", local @ rotation().T)
+    job, result = run_job(tmp_path, f"""
+        [molecule]
+        geometry = \"\"\"
+{geometry}
+        \"\"\"
+        multiplicity = 2
+        [model]
+        method = "hf"
+        basis = "6-31g*"
+        [response]
+        properties = ["dipole", "alpha"]
+        field_au = 0.002
+        """)
+    assert job.model.reference == "unrestricted" and result.plan.route == "dipole"
+    mf = mean_field(job)
+    reference = cphf_polarizability(mf, result.molecule.origin_bohr)
+    alpha = result.tensors["alpha"]
+    assert np.min(np.abs(reference)) > 0.01
+    rel = np.max(np.abs(alpha.value_au - reference)) / np.max(np.abs(reference))
+    assert rel < 1e-5
+    assert np.all(agree(alpha.value_au, alpha.error_au, reference, 1e-7))
+    assert np.max(np.abs(result.tensors["dipole"].value_au
+                         - mf.dip_moment(unit="AU", verbose=0))) < 1e-6
