@@ -15,7 +15,7 @@ import numpy as np
 
 from fieldprop.errors import UnstableResultError
 from fieldprop.execute import compute_points
-from fieldprop.extrapolate import ComponentEstimate, richardson
+from fieldprop.extrapolate import ComponentEstimate, mark_unstable, richardson
 from fieldprop.job import Job
 from fieldprop.molecule import MoleculeSpec, build_molecule
 from fieldprop.plan import FieldPlan, plan_fields, stencil_estimate
@@ -90,7 +90,11 @@ def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel) -> list[
         eps = noise.energy_au if comp.source == "energy" else noise.dipole_au
         values = [stencil_estimate(comp, s, energies, dipoles) for s in comp.stencils]
         floors = [s.weight_norm * eps / s.step_au ** comp.order for s in comp.stencils]
-        estimates.append(richardson(values, plan.ratio, floors))
+        est = richardson(values, plan.ratio, floors)
+        if comp.order > 0 and len(values) == 1:
+            est = mark_unstable(est, "one field strength: the truncation error cannot be "
+                                     "estimated; use levels >= 2")
+        estimates.append(est)
     return estimates
 
 

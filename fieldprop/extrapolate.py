@@ -20,8 +20,8 @@ chosen. The estimate is not a bound.
 
 Example
 -------
->>> est = richardson([1.0 + 0.5 * h**2 for h in (0.01, 0.02, 0.04)], ratio=2.0,
-...                  noise_au=[1e-12, 1e-12, 1e-12])
+>>> est = richardson([1.0 + 0.5 * h**2 for h in (0.01, 0.02)], ratio=2.0,
+...                  noise_au=[1e-12, 1e-12])
 >>> round(est.value_au, 12), est.chosen_entry
 (1.0, (0, 1))
 """

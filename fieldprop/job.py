@@ -1,4 +1,4 @@
-"""Read and validate a job file (TOML) into a frozen :class:`Job`.
+r"""Read and validate a job file (TOML) into a frozen :class:`Job`.
 
 Every problem is an :class:`~fieldprop.errors.InputError` whose message is one
 line naming the file, the section and key, what is wrong and what would be valid,
@@ -396,6 +396,12 @@ def _parse_model(path: str, table: dict[str, Any], multiplicity: int) -> ModelSp
     return ModelSpec(method=method, basis=basis, reference=reference, functional=functional)
 
 
+def route_hint_is_dipole(table: dict[str, Any], method: str) -> bool:
+    """True when the route (given or automatic) will be the dipole route."""
+    route = str(table.get("route", "auto")).lower()
+    return route == "dipole" or (route == "auto" and method in DIPOLE_ROUTE_METHODS)
+
+
 def _parse_response(path: str, table: dict[str, Any], method: str,
                     origin_scale: float) -> ResponseSpec:
     r = _Reader(path, "response", table)
@@ -427,6 +433,9 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
         raise r.fail("ratio", f"= {ratio} spaces the ladder too widely for extrapolation; use "
                      "1.2 to 4 (2 is usual)")
     levels = r.integer("levels", 3, low=1)
+    if levels < 2 and not (route_hint_is_dipole(table, method) and max_order == 1):
+        raise r.fail("levels", f"= {levels} gives one field strength, whose truncation error "
+                     "cannot be estimated; use levels >= 2 (3 is usual)")
     if levels > 8:
         raise r.fail("levels", f"= {levels} is more field strengths than extrapolation of "
                      "even-order error series can use; use 1 to 8")

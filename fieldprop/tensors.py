@@ -32,7 +32,7 @@ Example
 -------
 >>> import numpy as np
 >>> b = np.zeros((3, 3, 3)); b[2, 2, 2] = 1.0
->>> round(beta_hrs(b) / np.sqrt(6 / 35), 12)
+>>> round(float(beta_hrs(b) / np.sqrt(6 / 35)), 12)
 1.0
 """
 

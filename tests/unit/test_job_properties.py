@@ -195,6 +195,7 @@ KEYS = {
     ("scf", "grid_level"): _either(st.integers(0, 9), st.one_of(st.integers(-3, -1),
                                                                 st.integers(10, 99))),
 }
+_Z = {"h": 1, "he": 2, "li": 3, "c": 6, "n": 7, "o": 8, "f": 9, "cl": 17}
 REQUIRED = {("molecule", "geometry"), ("model", "method"), ("model", "basis"),
             ("response", "properties")}
 #: Valid only with method = "dft", otherwise to be left out.
@@ -229,6 +230,15 @@ def targeted_documents(draw):
         doc[name][key] = draw(values["valid"])
         if key == "method":
             method = doc[name][key].strip().lower()
+    mol = doc["molecule"]
+    if not faults & {("molecule", k) for k in ("geometry", "charge", "multiplicity")}:
+        # Mostly a spin state the electron count allows (else the parity check).
+        electrons = sum(_Z.get(line.split()[0].lower(), 0)
+                        for line in mol["geometry"].splitlines() if line.split())
+        electrons -= mol.get("charge", 0)
+        multiplicity = mol.get("multiplicity", 1)
+        if (electrons - multiplicity + 1) % 2 and draw(st.integers(0, 4)):
+            mol["multiplicity"] = multiplicity + 1
     xyz = None
     if draw(st.integers(0, 4)) == 0:
         geometry = doc["molecule"].pop("geometry", _GEOMETRIES[0])
@@ -254,7 +264,7 @@ def hostile_documents(draw):
                      for k in keys if draw(st.booleans())}
     if draw(st.integers(0, 3)) == 0:
         doc.setdefault(draw(st.sampled_from(["molecule", "model", "response", "scf"])), {})[
-            draw(st.sampled_from(["basis_set", "field", "Units", "x", "xyz"]))] = draw(junk)
+            draw(st.sampled_from(["basis_set", "field", "Units", "x"]))] = draw(junk)
     if draw(st.integers(0, 3)) == 0:
         doc[draw(st.sampled_from(["output", "Model", "scf", "molecule"]))] = draw(
             st.one_of(st.just({}), junk))
@@ -270,8 +280,12 @@ job_documents = st.one_of(targeted_documents(), targeted_documents(), targeted_d
 _SECTION_NAMED = re.compile(r"\[(molecule|model|response|scf)\]|unknown section \[")
 
 
-def check_outcome(job_path: Path, xyz_name) -> Job | None:
-    """load_job returns a Job or raises a one-line InputError naming the file."""
+def check_outcome(job_path: Path, xyz_name, names_section: bool = False) -> Job | None:
+    """load_job returns a Job or raises a one-line InputError naming the file.
+
+    ``names_section``: the document is valid TOML, so a message about the job
+    file must name the section (and key) at fault.
+    """
     try:
         job = load_job(job_path)
     except InputError as exc:
@@ -280,6 +294,8 @@ def check_outcome(job_path: Path, xyz_name) -> Job | None:
         xyz_path = str(job_path.parent / xyz_name) if isinstance(xyz_name, str) else None
         assert (message.startswith(f"{job_path}: ")
                 or (xyz_path is not None and message.startswith(f"{xyz_path}: "))), message
+        if names_section and message.startswith(f"{job_path}: "):
+            assert _SECTION_NAMED.search(message), message
         return None
     check_job_invariants(job)
     return job
@@ -339,7 +355,7 @@ def test_load_job_returns_job_or_one_line_input_error(generated):
                                                                  dict) else None
     with tempfile.TemporaryDirectory() as tmp:
         job_path = _write_job(Path(tmp), text, xyz_name, xyz_text)
-        job = check_outcome(job_path, xyz_name)
+        job = check_outcome(job_path, xyz_name, names_section=True)
     if job is None:
         return
     # What the document said, the job says (nothing silently ignored).
@@ -405,9 +421,20 @@ _RATIOS = st.one_of(st.floats(1.2, 4.0), st.sampled_from([1.5, 2.0, 3.0, 4.0, 2*
                                                           3**0.5]))
 
 
-def _multi_indices(n: int):
-    """Every (m_x, m_y, m_z) with m_x + m_y + m_z <= n."""
-    return [m for m in itertools.product(range(n + 1), repeat=3) if sum(m) <= n]
+def taylor_residual(weights, offsets, derivative) -> tuple[tuple[int, int, int], float]:
+    """The worst |sum_p w_p o_p^m / m! - delta(m, derivative)| over |m| <= n, and its m."""
+    n = sum(derivative)
+    worst = ((0, 0, 0), 0.0)
+    for m in itertools.product(range(n + 1), repeat=3):
+        if sum(m) > n:
+            continue
+        total = math.fsum(w * math.prod(o[a] ** m[a] for a in range(3))
+                          for w, o in zip(weights, offsets))
+        total /= math.prod(math.factorial(k) for k in m)
+        residual = abs(total - (1.0 if m == tuple(derivative) else 0.0))
+        if residual > worst[1]:
+            worst = (m, residual)
+    return worst
 
 
 @settings(max_examples=150, deadline=None)
@@ -451,12 +478,8 @@ def test_plan_fields_points_and_stencils(props, field_au, ratio, levels, route):
                        for i in indices]
             weights = [w for _, w in stencil.terms]
             # Taylor matching: sum_p w_p o_p^m / m! = delta(m, derivative), |m| <= n.
-            for m in _multi_indices(n):
-                total = math.fsum(w * math.prod(o[a] ** m[a] for a in range(3))
-                                  for w, o in zip(weights, offsets))
-                total /= math.prod(math.factorial(k) for k in m)
-                target = 1.0 if m == comp.derivative else 0.0
-                assert abs(total - target) <= 1e-9, (comp.name, stencil.level, m, total)
+            m, residual = taylor_residual(weights, offsets, comp.derivative)
+            assert residual <= 1e-9, (comp.name, stencil.level, m, residual)
             # Inversion symmetry w(-o) = (-1)^n w(o) (even error series in h).
             by_offset = {tuple(round(x) for x in o): w for o, w in zip(offsets, weights)}
             for o, w in by_offset.items():
@@ -467,18 +490,14 @@ def test_plan_fields_points_and_stencils(props, field_au, ratio, levels, route):
 
 
 def test_plan_taylor_check_detects_a_wrong_weight():
-    """The Taylor check above would catch a perturbed weight (it is not vacuous)."""
-    plan = plan_fields(("alpha",), 1e-3, 2.0, 1, "energy")
-    comp = plan.components[0]
-    stencil = comp.stencils[0]
-    offsets = [tuple(v / stencil.step_au for v in plan.points[i].field_vector_au)
-               for i, _ in stencil.terms]
-    weights = [w for _, w in stencil.terms]
-    weights[0] += 1e-6
-    worst = 0.0
-    for m in _multi_indices(comp.order):
-        total = math.fsum(w * math.prod(o[a] ** m[a] for a in range(3))
-                          for w, o in zip(weights, offsets))
-        total /= math.prod(math.factorial(k) for k in m)
-        worst = max(worst, abs(total - (1.0 if m == comp.derivative else 0.0)))
-    assert worst > 1e-9
+    """The Taylor check is not vacuous: a perturbed or misplaced weight fails it."""
+    plan = plan_fields(("beta",), 1e-3, 2.0, 1, "energy")
+    for comp in plan.components:
+        stencil = comp.stencils[0]
+        offsets = [tuple(v / stencil.step_au for v in plan.points[i].field_vector_au)
+                   for i, _ in stencil.terms]
+        weights = [w for _, w in stencil.terms]
+        assert taylor_residual(weights, offsets, comp.derivative)[1] <= 1e-9
+        assert taylor_residual([weights[0] + 1e-6, *weights[1:]], offsets,
+                               comp.derivative)[1] > 1e-9
+        assert taylor_residual(weights, offsets[1:] + offsets[:1], comp.derivative)[1] > 1e-9

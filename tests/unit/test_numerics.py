@@ -403,18 +403,13 @@ def test_reference_stencil_leading_terms():
             assert corr == pytest.approx(k * st.step_au**2, rel=1e-3), (name, lvl)
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "BUG: with levels = 1 (allowed by plan_fields and by the job schema, levels >= 1) "
-    "richardson() gives every derivative component its round-off floor alone as the "
-    "error bar, status NOISE_LIMITED, so the O(h^2) truncation error is neither "
-    "covered nor flagged: E = -exp(F_z), h = 0.01, alpha_zz = 1.0000083 +- 9e-12 "
-    "(exact 1), gamma_zzzz = 1.0000167 +- 3.6e-7"))
 def test_single_level_derivative_error_bar_is_honest():
     """One field strength: the raw estimate D(h) = D + c1 h^2 + ... has no table
     difference to judge its truncation by. For E = -exp(F_z) (all derivatives 1)
     at h = 0.01 the truncation is h^2/6, h^2/12, h^2/4, h^2/6 (REFERENCES sect. 2)
     ~1e-5, while the round-off floor is sum|w| EPS / h^n <= 4e-7. An honest result
-    either covers the true error or marks the component UNSTABLE."""
+    either covers the true error or marks the component UNSTABLE (the job parser
+    refuses levels = 1 for derivatives; the engine marks them unstable)."""
     model = ExponentialModel(0.0, [1.0], [[0.0, 0.0, 1.0]])
     plan, ests, _, _, _ = _run(model, "energy", 0.01, 2.0, 1)
     tens = ft.assemble(plan.components, ests)
