@@ -5,7 +5,7 @@ through the same path (CCSD = FCI for two electrons)."""
 import numpy as np
 import pytest
 
-from conftest import agree, run_job
+from support import agree, run_job
 
 
 def even_tempered_hydrogen_basis() -> str:

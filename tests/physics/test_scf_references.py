@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from analytic_reference import cphf_polarizability
-from conftest import agree, geometry_text, mean_field, rotated_water, rotation, run_job
+from support import agree, geometry_text, mean_field, rotated_water, rotation, run_job
 
 
 def water_job(method_lines: str, props: str, route: str, field_au: float = 0.002) -> str:

@@ -1,0 +1,69 @@
+"""The commands as users' scripts call them: exit codes, stdout, the result JSON."""
+
+import json
+import subprocess
+import sys
+import textwrap
+
+import pytest
+
+JOB = textwrap.dedent("""
+    [molecule]
+    geometry = \"\"\"
+    Li 0.0 0.0 0.0
+    H  0.3 0.4 1.5
+    \"\"\"
+    [model]
+    method = "hf"
+    basis = "sto-3g"
+    [response]
+    properties = ["dipole", "alpha", "beta"]
+    field_au = 0.002
+    """)
+
+
+def fieldprop(*args, cwd):
+    return subprocess.run([sys.executable, "-m", "fieldprop", *args], capture_output=True,
+                          text=True, cwd=cwd, timeout=600)
+
+
+def test_plan_json_lines_parse_and_match_the_run(tmp_path):
+    (tmp_path / "lih.toml").write_text(JOB)
+    done = fieldprop("plan", "lih.toml", "--json-lines", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    points = [json.loads(line) for line in done.stdout.splitlines()]
+    assert points[0]["offsets"] == [0, 0, 0] and points[0]["id"] == 0
+    vectors = {tuple(p["field_vector_au"]) for p in points}
+    assert len(vectors) == len(points)  # every field vector planned once
+    table = fieldprop("plan", "lih.toml", cwd=tmp_path)
+    assert table.returncode == 0 and f"{len(points)} field points" in table.stdout
+
+
+def test_run_writes_the_contract_json_beside_the_job(tmp_path):
+    pytest.importorskip("pyscf")
+    (tmp_path / "lih.toml").write_text(JOB)
+    done = fieldprop("run", "lih.toml", "--quiet", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    assert "beta_hrs" in done.stdout and "+- error" in done.stdout
+    doc = json.loads((tmp_path / "lih.result.json").read_text())
+    assert doc["schema"] == "fieldprop-result-1" and doc["units"] == "au"
+    assert doc["convention"] == "taylor"
+    assert set(doc["tensors"]) == {"dipole", "alpha", "beta"}
+    assert len(doc["tensors"]["alpha"]["value"]) == 3
+    assert len(doc["tensors"]["beta"]["error"][2][1]) == 3
+    assert set(doc["invariants"]) == {"dipole_norm", "alpha_iso", "alpha_aniso",
+                                      "beta_parallel", "beta_vec", "beta_hrs"}
+    for inv in doc["invariants"].values():
+        assert inv["value"] is not None and inv["error"] > 0
+    assert doc["points"]["planned"] == doc["points"]["computed"] > 1
+    assert doc["job"]["model"]["reference"] == "restricted"
+    assert doc["job"]["scf"]["energy_conv_tol_au"] > 0
+    assert len(doc["origin_bohr"]) == 3 and doc["energy_au"] < -7.0
+    # The dipole points from H- to Li+ (physics sign convention, REFERENCES
+    # sect. 5: LiH polarity Li+H-): here H sits at +z, so mu_z < 0.
+    assert doc["tensors"]["dipole"]["value"][2] < 0
+
+
+def test_version_and_help_exit_zero(tmp_path):
+    assert fieldprop("--version", cwd=tmp_path).stdout.startswith("fieldprop ")
+    assert fieldprop("run", "--help", cwd=tmp_path).returncode == 0
