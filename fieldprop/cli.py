@@ -88,6 +88,8 @@ def cmd_run(args) -> int:
 
     job = load_job(args.job)
     out_path = args.json if args.json is not None else default_result_path(args.job)
+    if out_path.resolve() == args.job.resolve():
+        raise InputError(f"--json {out_path}: is the job file itself; give another path")
     check_output_path(out_path)
     result = compute(job, workers=args.workers, progress=not args.quiet and sys.stderr.isatty())
     write_tables(result, sys.stdout)

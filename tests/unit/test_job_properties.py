@@ -351,7 +351,7 @@ def _write_job(folder: Path, text: str | bytes, xyz_name, xyz_text) -> Path:
 # --------------------------------------------------------------------------- (a) parser
 
 @pytest.mark.parametrize("fault", [None, *sorted(KEYS)], ids=lambda k: "-".join(k or ["none"]))
-@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(data=st.data())
 def test_load_job_returns_job_or_one_line_input_error(fault, data):
     """Each key in turn given a wrong value (or left out), the rest mostly valid."""
@@ -384,6 +384,56 @@ def check_document(doc: dict, xyz_text: str | None) -> None:
     assert set(job.response.properties) == {p.lower() for p in given_r["properties"]}
     assert job.molecule.charge == doc["molecule"].get("charge", 0)
     assert job.molecule.multiplicity == doc["molecule"].get("multiplicity", 1)
+
+
+NAN, INF = float("nan"), float("inf")
+#: Values each wrong on their own, in a job that is valid otherwise (water, HF).
+NEAR_MISSES = {
+    ("molecule", "geometry"): ["", "  \n ", "H 0 0", "Xx 0 0 0", "H 0 0 zero", "H 0 0 nan",
+                               "H 1e400 0 0", "H 1e300 0 0", "H 0 0 0\nH 0 0 0.1", 5,
+                               ["H 0 0 0"]],
+    ("molecule", "units"): ["nm", "", 1],
+    ("molecule", "charge"): [0.5, "0", 10, True],
+    ("molecule", "multiplicity"): [0, -1, 2, 12, 1.0, "1"],
+    ("model", "method"): ["casscf", "", 1],
+    ("model", "functional"): ["b3lyp"],  # with method = "hf"
+    ("model", "basis"): ["", {}, {"Qq": "sto-3g"}, {"H": ""}, 3],
+    ("model", "reference"): ["rohf", "", True],
+    ("response", "properties"): [[], ["polarizability"], "alpha", [1], [""]],
+    ("response", "field_au"): [0.0, -1e-3, 0, 0.06, NAN, INF, "0.001", True],
+    ("response", "ratio"): [1.0, 0.5, -2.0, 10.5, NAN, "2"],
+    ("response", "levels"): [0, -1, 9, 3.0, "3", True],
+    ("response", "origin"): ["centre", [0, 0], [0, 0, 0, 0], ["a", 0, 0], [NAN, 0, 0],
+                             [1e308, 0, 0], True, {}],
+    ("response", "route"): ["numerical", "", 3],
+    ("response", "nuclear_relaxation"): [True, "no", 0],
+    ("scf", "energy_conv_tol_au"): [1e-3, 1e-15, 0.0, NAN, "tight"],
+    ("scf", "max_cycle"): [5, 0, 50.0],
+    ("scf", "grid_level"): [3],  # with method = "hf"
+}
+_NEAR_MISS_CASES = [(section, key, value) for (section, key), values in NEAR_MISSES.items()
+                    for value in values]
+
+
+@pytest.mark.parametrize("section, key, value", _NEAR_MISS_CASES,
+                         ids=[f"{s}.{k}={v!r}" for s, k, v in _NEAR_MISS_CASES])
+def test_each_near_miss_is_refused_naming_its_key(section, key, value):
+    """Every key refuses its near misses, and the message names that key."""
+    doc = {"molecule": {"geometry": _GEOMETRIES[1]},
+           "model": {"method": "hf", "basis": "sto-3g"},
+           "response": {"properties": ["alpha"]}, "scf": {}}
+    with tempfile.TemporaryDirectory() as tmp:
+        path = _write_job(Path(tmp), toml_document(doc), None, None)
+        check_job_invariants(load_job(path))  # the base job is valid
+        doc[section][key] = value
+        path = _write_job(Path(tmp), toml_document(doc), None, None)
+        try:
+            load_job(path)
+        except InputError as exc:
+            message = str(exc)
+        else:
+            raise AssertionError(f"[{section}] {key} = {value!r} was accepted")
+    assert "\n" not in message and message.startswith(f"{path}: [{section}] {key}"), message
 
 
 def test_load_job_accepts_a_full_valid_document():
