@@ -213,6 +213,83 @@ def _correlated_energy(mf, model, scf_spec, label: str) -> float:
     return e
 
 
+#: Relative residual at which the CPHF/CPKS linear equations count as solved: far
+#: below the finite-difference precision of any derivative taken of alpha.
+CPHF_RTOL = 1e-11
+
+
+def analytic_polarizability(mf, r) -> np.ndarray:
+    """Static alpha_ij = d mu_i / dF_j (au) from the coupled-perturbed equations.
+
+    For a converged RHF, UHF, RKS or UKS object ``mf`` and dipole integrals ``r``
+    (3, nao, nao) about the job's origin. The perturbation +F_j r_j enters the
+    one-electron Hamiltonian; the first-order orbital rotations x_ai solve the
+    symmetric positive definite system (e_a - e_i) x + [V(dD)]_ai = -r_ai (the
+    orbital Hessian A + B of a stable real SCF), with dD the first-order density
+    and V PySCF's response function. Solved by preconditioned conjugate
+    gradients to CPHF_RTOL; then alpha_ij = -n sum_ai r_i,ai x^(j)_ai with n = 4
+    for closed shells (two electrons per orbital, dD = 2(x + x^T)) and n = 2 per
+    spin otherwise. One-electron systems have no two-electron response (PySCF's
+    generic response function would add one, giving 18.4 instead of 4.48 for H).
+    """
+    from pyscf.scf import hf, rohf, uhf
+    from scipy.sparse.linalg import LinearOperator, cg
+
+    if isinstance(mf, uhf.UHF):
+        coeffs, energies, occs, weight = mf.mo_coeff, mf.mo_energy, mf.mo_occ, 1.0
+    elif isinstance(mf, hf.RHF) and not isinstance(mf, rohf.ROHF):
+        coeffs, energies, occs, weight = [mf.mo_coeff], [mf.mo_energy], [mf.mo_occ], 2.0
+    else:
+        raise TypeError(f"no analytic polarizability for {type(mf).__name__}")
+    blocks = []
+    for c, e, occ in zip(coeffs, energies, occs):
+        o, v = occ > 0, occ == 0
+        blocks.append((c[:, o], c[:, v], e[v][:, None] - e[o][None, :]))
+    sizes = [b[2].size for b in blocks]
+    one_electron = mf.mol.nelectron == 1
+    response = None if one_electron else (
+        mf.gen_response(hermi=1) if len(blocks) == 2 else mf.gen_response(singlet=None, hermi=1))
+
+    def split(x):
+        parts, start = [], 0
+        for (co, cv, de), n in zip(blocks, sizes):
+            parts.append(x[start:start + n].reshape(de.shape))
+            start += n
+        return parts
+
+    def matvec(x):
+        parts = split(np.asarray(x).ravel())
+        out = [de * xs for (co, cv, de), xs in zip(blocks, parts)]
+        if response is not None:
+            dms = [weight * (cv @ xs @ co.T) for (co, cv, de), xs in zip(blocks, parts)]
+            dms = [d + d.T for d in dms]
+            v1 = response(np.array(dms) if len(dms) == 2 else dms[0])
+            v1 = v1 if len(dms) == 2 else [v1]
+            out = [o_ + cv.T @ vs @ co for o_, (co, cv, de), vs in zip(out, blocks, v1)]
+        return np.concatenate([o_.ravel() for o_ in out])
+
+    n = sum(sizes)
+    operator = LinearOperator((n, n), matvec=matvec, dtype=float)
+    diagonal = np.concatenate([de.ravel() for (co, cv, de) in blocks])
+    precondition = LinearOperator((n, n), matvec=lambda x: np.asarray(x).ravel() / diagonal,
+                                  dtype=float)
+    rhs = np.array([np.concatenate([(cv.T @ r[j] @ co).ravel() for (co, cv, de) in blocks])
+                    for j in range(3)])
+    alpha = np.zeros((3, 3))
+    for j in range(3):
+        norm = np.linalg.norm(rhs[j])
+        if norm == 0.0:
+            continue
+        x, info = cg(operator, -rhs[j] / norm, rtol=CPHF_RTOL, atol=0.0, M=precondition,
+                     maxiter=500)
+        residual = np.linalg.norm(matvec(x) + rhs[j] / norm)
+        if info != 0 or residual > 10 * CPHF_RTOL:
+            raise ScfNotConvergedError(f"CPHF equations did not converge (residual "
+                                       f"{residual:.1e}); the SCF may be unstable")
+        alpha[:, j] = -2.0 * weight * (rhs @ x) * norm
+    return 0.5 * (alpha + alpha.T)
+
+
 def evaluate_point(task: PointTask) -> PointRecord:
     """Compute one field point: SCF (retried if needed), state checks, post-HF.
 
@@ -258,8 +335,11 @@ def evaluate_point(task: PointTask) -> PointRecord:
         h = mf.get_hcore()
         fock = np.array([h, h]) if np.asarray(mf.mo_occ).ndim == 2 else h
     gradient = float(np.linalg.norm(mf.get_grad(mf.mo_coeff, mf.mo_occ, fock)))
+    alpha = None
+    if task.want_alpha:
+        alpha = tuple(tuple(float(v) for v in row) for row in analytic_polarizability(mf, r))
     reference = None
     if task.reference is None:
         reference = ZeroFieldReference(np.asarray(mf.make_rdm1()), occupied, s2)
     return PointRecord(point, energy, float(mf.e_tot), dipole, cycles, tuple(attempts), s2,
-                       overlap, gradient, reference)
+                       overlap, gradient, alpha, reference)

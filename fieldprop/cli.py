@@ -44,6 +44,16 @@ def _positive_int(text: str) -> int:
     return value
 
 
+def _positive_float(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a number, got {text!r}") from None
+    if not value > 0 or value == float("inf"):
+        raise argparse.ArgumentTypeError(f"must be a finite number > 0, got {text}")
+    return value
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(prog="fieldprop", description="Static dipole moment, polarizability and "
                      "hyperpolarizabilities by finite fields with Richardson extrapolation.")
@@ -58,6 +68,24 @@ def build_parser() -> argparse.ArgumentParser:
                      help="processes computing field points in parallel (default 1)")
     run.add_argument("--quiet", action="store_true", help="no progress or log lines on stderr")
     run.set_defaults(handler=cmd_run)
+
+    check = sub.add_parser("check", help="finite-field tensors versus analytic ones (PySCF's, "
+                           "or a tensor file of another code); exit 0 agree, 1 disagree")
+    check.add_argument("job", type=Path, help="job file (TOML)")
+    check.add_argument("--against", type=Path, help="reference tensors: result-style JSON, "
+                       ".npy or .npz (default: fieldprop's analytic SCF references)")
+    check.add_argument("--json", type=Path, help="write the comparison as JSON to this path")
+    check.add_argument("--sigmas", type=_positive_float, default=None,
+                       help="agreement within this many error bars (default 3)")
+    check.add_argument("--rel-floor", type=_positive_float, default=None,
+                       help="relative floor of the allowed difference (default 1e-6)")
+    check.add_argument("--abs-floor-au", type=_positive_float, default=None,
+                       help="absolute floor for every order, au (default 1e-6, 1e-5, 1e-3, "
+                       "0.1 for mu, alpha, beta, gamma)")
+    check.add_argument("--workers", type=_positive_int, default=1,
+                       help="processes computing field points in parallel (default 1)")
+    check.add_argument("--quiet", action="store_true", help="no progress or log lines on stderr")
+    check.set_defaults(handler=cmd_check)
 
     plan = sub.add_parser("plan", help="print the field points run would compute")
     plan.add_argument("job", type=Path, help="job file (TOML)")
@@ -96,6 +124,60 @@ def cmd_run(args) -> int:
     write_json_atomic(result_document(result), out_path)
     logger.info("result written to %s (%.1f s)", out_path, result.wall_time_s)
     require_stable(result)
+    return 0
+
+
+def cmd_check(args) -> int:
+    from fieldprop import compare
+    from fieldprop.engine import compute, reference_tensors
+    from fieldprop.job import load_job
+    from fieldprop.report import (check_output_path, comparison_document, write_comparison,
+                                  write_json_atomic)
+
+    job = load_job(args.job)
+    if args.json is not None:
+        if args.json.resolve() == args.job.resolve():
+            raise InputError(f"--json {args.json}: is the job file itself; give another path")
+        check_output_path(args.json)
+    reference_file = None
+    if args.against is not None:
+        reference_file = compare.load_reference_file(args.against)
+    elif job.model.method not in ("hf", "dft"):
+        raise InputError(f"{job.path}: [model] method {job.model.method!r} has no analytic "
+                         "reference in fieldprop (hf and dft have); give --against FILE")
+    progress = not args.quiet and sys.stderr.isatty()
+    result = compute(job, workers=args.workers, progress=progress)
+    if reference_file is not None:
+        m = result.molecule
+        reference = compare.align_reference(str(args.against), reference_file, m.symbols,
+                                            m.coords_bohr, m.charge, m.origin_bohr)
+    else:
+        reference = reference_tensors(job, result, workers=args.workers, progress=progress)
+    sigmas = compare.DEFAULT_SIGMAS if args.sigmas is None else args.sigmas
+    rel_floor = compare.DEFAULT_REL_FLOOR if args.rel_floor is None else args.rel_floor
+    floors = None if args.abs_floor_au is None else {n: args.abs_floor_au for n in range(1, 5)}
+    comparisons = compare.compare_tensors(result.tensors, reference, sigmas, rel_floor, floors)
+    if not comparisons:
+        raise InputError(f"{args.against or job.path}: no tensor in common between the job's "
+                         f"properties ({', '.join(result.tensors)}) and the reference "
+                         f"({', '.join(reference.value) or 'none'})")
+    write_comparison(comparisons, reference, sigmas, sys.stdout)
+    bad = compare.worst(comparisons)
+    total = sum(len(rows) for rows in comparisons.values())
+    if bad:
+        names = ", ".join(f"{c.name} (diff {c.difference:+.3g}, allowed {c.allowed:.2g})"
+                          if c.ff_value is not None else f"{c.name} (unstable)" for c in bad[:3])
+        verdict = (f"DISAGREE: {len(bad)} of {total} tensor entries outside {sigmas:g} error "
+                   f"bars; worst: {names}")
+    else:
+        verdict = (f"AGREE: all {total} tensor entries of {', '.join(comparisons)} within "
+                   f"{sigmas:g} error bars")
+    print(f"fieldprop check: {verdict}")
+    if args.json is not None:
+        write_json_atomic(comparison_document(comparisons, reference, sigmas, verdict), args.json)
+    if bad:
+        print(f"fieldprop: error: check failed: {verdict}", file=sys.stderr)
+        return 1
     return 0
 
 

@@ -40,11 +40,14 @@ class NoiseModel:
     The SCF dipole and post-HF energies are not: their errors are linear, ~g
     (orbital rotations ~g/gap times matrix elements ~1 au). Each also has the
     double-precision floor of its size (ENERGY_ULPS units in the last place), and
-    coupled-cluster energies their amplitude tolerance.
+    coupled-cluster energies their amplitude tolerance. The analytic alpha
+    (alpha route) is linear in the orbital error too, with the CPHF residual
+    tolerance on top: ~g * |alpha| plus CPHF_RTOL * |alpha|.
     """
 
     energy_au: float
     dipole_au: float
+    alpha_au: float = 0.0
 
 
 @dataclass(frozen=True)
@@ -71,24 +74,30 @@ class RunResult:
                 for t in self.tensors.values() for c in t.components if not c.stable]
 
 
-def make_plan(job: Job) -> FieldPlan:
+def make_plan(job: Job, route: str | None = None) -> FieldPlan:
+    """The job's field plan, on its own route or on ``route``."""
     r = job.response
-    return plan_fields(r.properties, r.field_au, r.ratio, r.levels, r.route)
+    return plan_fields(r.properties, r.field_au, r.ratio, r.levels, route or r.route)
 
 
 def make_tasks(job: Job, molecule: MoleculeSpec, plan: FieldPlan) -> list[PointTask]:
     want_dipole = job.model.method in ("hf", "dft")
-    return [PointTask(molecule, job.model, job.scf, p, want_dipole) for p in plan.points]
+    want_alpha = plan.route == "alpha"
+    return [PointTask(molecule, job.model, job.scf, p, want_dipole, want_alpha=want_alpha)
+            for p in plan.points]
 
 
 def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel) -> list[ComponentEstimate]:
     energies = np.array([r.energy_au for r in records])
     dipoles = (np.array([r.dipole_au for r in records])
                if all(r.dipole_au is not None for r in records) else None)
+    alphas = (np.array([r.alpha_au for r in records])
+              if all(r.alpha_au is not None for r in records) else None)
     estimates = []
     for comp in plan.components:
-        eps = noise.energy_au if comp.source == "energy" else noise.dipole_au
-        values = [stencil_estimate(comp, s, energies, dipoles) for s in comp.stencils]
+        eps = {"energy": noise.energy_au, "dipole": noise.dipole_au,
+               "alpha": noise.alpha_au}[comp.source.split("_")[0]]
+        values = [stencil_estimate(comp, s, energies, dipoles, alphas) for s in comp.stencils]
         floors = [s.weight_norm * eps / s.step_au ** comp.order for s in comp.stencils]
         est = richardson(values, plan.ratio, floors)
         if comp.order > 0 and len(values) == 1:
@@ -100,6 +109,8 @@ def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel) -> list[
 
 def noise_model(job: Job, records) -> NoiseModel:
     """The NoiseModel of a finished set of points (see NoiseModel)."""
+    from fieldprop.backend_pyscf import CPHF_RTOL
+
     ulp = np.finfo(float).eps
     g = max(r.gradient_norm for r in records)
     e0 = abs(records[0].energy_au)
@@ -111,11 +122,15 @@ def noise_model(job: Job, records) -> NoiseModel:
             energy += max(job.scf.energy_conv_tol_au, 1e-12)
     dipoles = [np.linalg.norm(r.dipole_au) for r in records if r.dipole_au is not None]
     dipole = g + ENERGY_ULPS * ulp * max(dipoles, default=0.0) * 10.0
-    return NoiseModel(float(energy), float(dipole))
+    alphas = [np.abs(r.alpha_au).max() for r in records if r.alpha_au is not None]
+    alpha = (g + CPHF_RTOL) * max(alphas, default=0.0) * 10.0
+    return NoiseModel(float(energy), float(dipole), float(alpha))
 
 
-def compute(job: Job, workers: int = 1, progress: bool | None = None) -> RunResult:
-    """Run the whole job. Raises FieldpropError subclasses on failed points.
+def compute(job: Job, workers: int = 1, progress: bool | None = None,
+            route: str | None = None) -> RunResult:
+    """Run the whole job (on its route, or on ``route``). Raises FieldpropError
+    subclasses on failed points.
 
     Unstable components do not raise here: the result carries them (no number
     is reported for them) and the CLI turns them into exit code 1.
@@ -125,7 +140,7 @@ def compute(job: Job, workers: int = 1, progress: bool | None = None) -> RunResu
     start = time.perf_counter()
     molecule = build_molecule(job.molecule, job.response.origin)
     facts = validate(job, molecule)
-    plan = make_plan(job)
+    plan = make_plan(job, route)
     tasks = make_tasks(job, molecule, plan)
     logger.info("%s: %s/%s%s, %d field points on %d levels (h0 = %g au, ratio %g), route %s, "
                 "SCF energy tolerance %g Eh", job.path, job.model.method,
@@ -151,3 +166,32 @@ def require_stable(result: RunResult) -> None:
             f"{result.job.path}: {len(bad)} component(s) unstable, reported without a "
             f"number: {'; '.join(bad[:4])}{' ...' if len(bad) > 4 else ''}; try another "
             "field_au or more levels")
+
+
+def reference_tensors(job: Job, result: RunResult, workers: int = 1, progress: bool = False):
+    """fieldprop's analytic references for ``fieldprop check`` (SCF methods only).
+
+    The dipole is the analytic SCF dipole and alpha the CPHF/CPKS polarizability,
+    both at zero field; beta and gamma are the first and second field
+    derivatives of the analytic alpha on the same ladder (the "alpha" route),
+    two orders below the energy route, with their own error bars. The dipole is
+    left out when the finite-field run itself used the analytic dipole (the
+    dipole route), which would compare a number with itself.
+    """
+    from fieldprop.compare import ReferenceTensors
+
+    analytic = compute(job, workers=workers, progress=progress, route="alpha")
+    values = {n: t.value_au for n, t in analytic.tensors.items()}
+    errors = {n: t.error_au for n, t in analytic.tensors.items()}
+    note = "analytic SCF dipole, CPHF/CPKS alpha, beta and gamma from field derivatives of it"
+    if result.plan.route == "dipole" and "dipole" in values:
+        del values["dipole"], errors["dipole"]
+        note += "; dipole not compared: the dipole route uses the analytic dipole itself " \
+                "(set route = \"energy\" to check it)"
+    bad = analytic.unstable_components
+    if bad:
+        raise UnstableResultError(f"{job.path}: analytic reference unstable for "
+                                  f"{'; '.join(bad[:3])}")
+    return ReferenceTensors("fieldprop analytic (PySCF " +
+                            str(analytic.backend_facts.get("pyscf_version")) + ")",
+                            values, errors, note)

@@ -9,6 +9,7 @@ objects from the task's plain data.
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import os
 from concurrent.futures import ProcessPoolExecutor
@@ -46,8 +47,7 @@ def compute_points(tasks: list[PointTask], workers: int = 1,
     first = evaluate_point(tasks[0])
     bar.update()
     reference = first.reference
-    rest = [PointTask(t.molecule, t.model, t.scf, t.point, t.want_dipole, reference)
-            for t in tasks[1:]]
+    rest = [dataclasses.replace(t, reference=reference) for t in tasks[1:]]
     records: list[PointRecord] = [first]
     failures: list[FieldpropError] = []
     if workers <= 1:

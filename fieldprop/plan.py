@@ -31,6 +31,9 @@ index tuple (3, 6, 10, 15 components).
 of order n needs derivatives of order n - 1 of each mu_i, so the first index is
 computed separately from the others and index-permutation symmetry is a real
 check rather than a construction.
+``alpha``: q = the analytic (CPHF/CPKS) alpha_ij(F), sign = +1; beta and gamma
+are its first and second derivatives, two orders below the energy route (the
+reference route of ``fieldprop check``); the dipole is the analytic one.
 
 Identical field vectors are planned once: the zero point is shared by all levels,
 and for an integer ratio r an offset divisible by r at level k is the offset / r
@@ -295,13 +298,19 @@ def component_recipes(properties, route: str) -> list[tuple[str, tuple[int, ...]
             for idx in itertools.combinations_with_replacement(range(3), n):
                 counts = tuple(idx.count(a) for a in range(3))
                 recipes.append((prop, idx, "energy", counts, -1.0))
-        elif route == "dipole":
+        elif route == "dipole" or (route == "alpha" and n == 1):
             for i in range(3):
                 for rest in itertools.combinations_with_replacement(range(3), n - 1):
                     counts = tuple(rest.count(a) for a in range(3))
                     recipes.append((prop, (i, *rest), f"dipole_{AXES[i]}", counts, 1.0))
+        elif route == "alpha":
+            for i, j in itertools.combinations_with_replacement(range(3), 2):
+                for rest in itertools.combinations_with_replacement(range(3), n - 2):
+                    counts = tuple(rest.count(a) for a in range(3))
+                    recipes.append((prop, (i, j, *rest), f"alpha_{AXES[i]}{AXES[j]}",
+                                    counts, 1.0))
         else:
-            raise ValueError(f"route must be 'energy' or 'dipole', got {route!r}")
+            raise ValueError(f"route must be 'energy', 'dipole' or 'alpha', got {route!r}")
     return recipes
 
 
@@ -362,15 +371,20 @@ def plan_fields(properties, field_au: float, ratio: float, levels: int,
     return FieldPlan(route, field_au, ratio, levels, points, tuple(components))
 
 
-def stencil_estimate(component: ComponentPlan, stencil: Stencil, energies_au, dipoles_au) -> float:
+def stencil_estimate(component: ComponentPlan, stencil: Stencil, energies_au, dipoles_au,
+                     alphas_au=None) -> float:
     """Evaluate one stencil on computed point data.
 
     ``energies_au`` has shape (n_points,), ``dipoles_au`` shape (n_points, 3) (or
-    None on the energy route), indexed by point; point 0 is the zero field.
+    None on the energy route), ``alphas_au`` shape (n_points, 3, 3) (alpha route
+    only), indexed by point; point 0 is the zero field.
     Returns the raw (unextrapolated) derivative estimate in au.
     """
     if component.source == "energy":
         q = np.asarray(energies_au, dtype=float)
+    elif component.source.startswith("alpha_"):
+        i, j = (AXES.index(a) for a in component.source[-2:])
+        q = np.asarray(alphas_au, dtype=float)[:, i, j]
     else:
         q = np.asarray(dipoles_au, dtype=float)[:, AXES.index(component.source[-1])]
     # The weights of a derivative of order >= 1 sum to zero, so subtracting the

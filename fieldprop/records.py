@@ -40,6 +40,7 @@ class PointTask:
     point: FieldPoint
     want_dipole: bool
     reference: ZeroFieldReference | None = None
+    want_alpha: bool = False  # analytic CPHF/CPKS polarizability at this field
 
 
 @dataclass(frozen=True, eq=False)
@@ -52,7 +53,8 @@ class PointRecord:
     the SCF strategies tried, the last one being the one that converged.
     ``occupied_overlap`` is the smallest singular value of the overlap between
     the occupied spaces at this field and at zero field (1 = same state).
-    ``gradient_norm`` is the norm of the converged SCF's orbital gradient: the
+    ``alpha_au`` (3, 3) is the analytic (CPHF/CPKS) polarizability at this field,
+    when asked for. ``gradient_norm`` is the norm of the converged SCF's orbital gradient: the
     measured convergence, from which the noise model is built.
     """
 
@@ -65,4 +67,5 @@ class PointRecord:
     s2: float
     occupied_overlap: float
     gradient_norm: float
+    alpha_au: tuple[tuple[float, float, float], ...] | None = None
     reference: ZeroFieldReference | None = field(default=None, repr=False)

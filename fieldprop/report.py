@@ -249,3 +249,48 @@ def write_plan(plan: FieldPlan, out: TextIO, json_lines: bool = False) -> None:
              uses.get(p.index, 0)] for p in plan.points]
     out.write(tabulate(rows, headers=["id", "level", "point", "F_x (au)", "F_y (au)",
                                       "F_z (au)", "stencil uses"], disable_numparse=True) + "\n")
+
+
+def write_comparison(comparisons, reference, sigmas: float, out: TextIO) -> None:
+    """One table per tensor: finite field vs reference, difference, verdict per entry.
+
+    Entries are listed in sorted index order (beta_xyz, not beta_zyx) unless they
+    disagree; every entry of the full tensor is compared.
+    """
+    out.write(f"reference: {reference.source}" + (f" ({reference.note})" if reference.note
+                                                 else "") + "\n")
+    out.write(f"agreement: |ff - ref| <= {sigmas:g} x (ff error + ref error) + floor\n\n")
+    for name, rows in comparisons.items():
+        table = []
+        for c in rows:
+            if list(c.index) != sorted(c.index) and c.agrees:
+                continue
+            v, e = format_pair(c.ff_value, c.ff_error)
+            rv, re = format_pair(c.ref_value, c.ref_error) if c.ref_error > 0 else (
+                f"{c.ref_value:.10g}", "0")
+            diff = "-" if c.difference is None else f"{c.difference:+.3g}"
+            ratio = "-" if c.ratio is None else (f"{c.ratio:.2g}" if math.isfinite(c.ratio)
+                                                 else "inf")
+            table.append([c.name, v, e, rv, re, diff, ratio, "ok" if c.agrees else "DISAGREE"])
+        out.write(f"{name} (au)\n")
+        out.write(tabulate(table, headers=["component", "finite field", "+- error", "reference",
+                                           "+- error", "difference", "diff/error", "verdict"],
+                           disable_numparse=True) + "\n\n")
+
+
+def comparison_document(comparisons, reference, sigmas: float, verdict: str) -> dict[str, Any]:
+    """The comparison as JSON: every entry, and the verdict."""
+    return {
+        "schema": "fieldprop-check-1",
+        "version": __version__,
+        "units": "au",
+        "convention": "taylor",
+        "reference": {"source": reference.source, "note": reference.note},
+        "sigmas": sigmas,
+        "verdict": verdict,
+        "tensors": {name: [{"name": c.name, "index": list(c.index), "value": c.ff_value,
+                            "error": c.ff_error, "reference": c.ref_value,
+                            "reference_error": c.ref_error, "difference": c.difference,
+                            "allowed": c.allowed, "agrees": c.agrees} for c in rows]
+                    for name, rows in comparisons.items()},
+    }

@@ -100,6 +100,9 @@ class Invariant:
 def _entries(plan: ComponentPlan) -> tuple[tuple[int, ...], ...]:
     if plan.source == "energy":
         perms = set(itertools.permutations(plan.indices))
+    elif plan.source.startswith("alpha_"):
+        (i, j), rest = plan.indices[:2], plan.indices[2:]
+        perms = {(a, b, *p) for p in itertools.permutations(rest) for a, b in ((i, j), (j, i))}
     else:
         first, rest = plan.indices[0], plan.indices[1:]
         perms = {(first, *p) for p in itertools.permutations(rest)}
