@@ -91,8 +91,7 @@ def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel) -> list[
     energies = np.array([r.energy_au for r in records])
     dipoles = (np.array([r.dipole_au for r in records])
                if all(r.dipole_au is not None for r in records) else None)
-    alphas = (np.array([r.alpha_au for r in records])
-              if all(r.alpha_au is not None for r in records) else None)
+    alphas = (np.array([r.alpha_au for r in records]) if plan.route == "alpha" else None)
     estimates = []
     for comp in plan.components:
         eps = {"energy": noise.energy_au, "dipole": noise.dipole_au,
