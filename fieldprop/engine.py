@@ -33,9 +33,10 @@ ENERGY_ULPS = 4.0
 class NoiseModel:
     """Noise of the differentiated quantities, used for round-off floors.
 
-    Built from the convergence actually reached, g = the largest orbital-gradient
-    norm over all points (PySCF usually converges well past its thresholds, so
-    the thresholds themselves would overstate the noise by orders of magnitude).
+    Built point by point from the convergence actually reached there, g = the
+    orbital-gradient norm of that point (PySCF usually converges well past its
+    thresholds, so the thresholds themselves would overstate the noise by orders
+    of magnitude). A stencil's floor is sum_p |w_p| noise_p / h^n.
     An SCF energy is variational, its error quadratic in the orbital error: ~g^2.
     The SCF dipole and post-HF energies are not: their errors are linear, ~g
     (orbital rotations ~g/gap times matrix elements ~1 au). Each also has the
@@ -45,9 +46,14 @@ class NoiseModel:
     tolerance on top: ~g * |alpha| plus CPHF_RTOL * |alpha|.
     """
 
-    energy_au: float
-    dipole_au: float
-    alpha_au: float = 0.0
+    energy_au: float | tuple[float, ...]  # Eh, one per point (or one for all)
+    dipole_au: float | tuple[float, ...]  # e bohr
+    alpha_au: float | tuple[float, ...] = 0.0  # au
+
+    def largest(self) -> dict[str, float]:
+        """The largest noise of each quantity over the points (for reports)."""
+        return {k: float(np.max(getattr(self, k))) for k in ("energy_au", "dipole_au",
+                                                               "alpha_au")}
 
 
 @dataclass(frozen=True)
@@ -92,12 +98,16 @@ def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel) -> list[
     dipoles = (np.array([r.dipole_au for r in records])
                if all(r.dipole_au is not None for r in records) else None)
     alphas = (np.array([r.alpha_au for r in records]) if plan.route == "alpha" else None)
+    n = len(records)
+    per_point = {"energy": np.broadcast_to(np.asarray(noise.energy_au, dtype=float), (n,)),
+                 "dipole": np.broadcast_to(np.asarray(noise.dipole_au, dtype=float), (n,)),
+                 "alpha": np.broadcast_to(np.asarray(noise.alpha_au, dtype=float), (n,))}
     estimates = []
     for comp in plan.components:
-        eps = {"energy": noise.energy_au, "dipole": noise.dipole_au,
-               "alpha": noise.alpha_au}[comp.source.split("_")[0]]
+        eps = per_point[comp.source.split("_")[0]]
         values = [stencil_estimate(comp, s, energies, dipoles, alphas) for s in comp.stencils]
-        floors = [s.weight_norm * eps / s.step_au ** comp.order for s in comp.stencils]
+        floors = [sum(abs(w) * eps[p] for p, w in s.terms) / s.step_au ** comp.order
+                  for s in comp.stencils]
         est = richardson(values, plan.ratio, floors)
         if comp.order > 0 and len(values) == 1:
             est = mark_unstable(est, "one field strength: the truncation error cannot be "
@@ -111,19 +121,25 @@ def noise_model(job: Job, records) -> NoiseModel:
     from fieldprop.backend_pyscf import CPHF_RTOL
 
     ulp = np.finfo(float).eps
-    g = max(r.gradient_norm for r in records)
-    e0 = abs(records[0].energy_au)
-    if job.model.method in ("hf", "dft"):
-        energy = ENERGY_ULPS * ulp * e0 + g * g
-    else:
-        energy = ENERGY_ULPS * ulp * e0 + g
-        if job.model.method.startswith("ccsd"):
-            energy += max(job.scf.energy_conv_tol_au, 1e-12)
-    dipoles = [np.linalg.norm(r.dipole_au) for r in records if r.dipole_au is not None]
-    dipole = g + ENERGY_ULPS * ulp * max(dipoles, default=0.0) * 10.0
-    alphas = [np.abs(r.alpha_au).max() for r in records if r.alpha_au is not None]
-    alpha = (g + CPHF_RTOL) * max(alphas, default=0.0) * 10.0
-    return NoiseModel(float(energy), float(dipole), float(alpha))
+    energy, dipole, alpha = [], [], []
+    for r in records:
+        g = r.gradient_norm
+        e = ENERGY_ULPS * ulp * abs(r.energy_au)
+        if job.model.method in ("hf", "dft"):
+            e += g * g
+        else:
+            e += g
+            if job.model.method.startswith("ccsd"):
+                e += max(job.scf.energy_conv_tol_au, 1e-12)
+        energy.append(float(e))
+        mu = 0.0 if r.dipole_au is None else float(np.linalg.norm(r.dipole_au))
+        # The dipole's own rounding: a sum of ~nao^2 products of size |mu|.
+        dipole.append(float(g + 10.0 * ENERGY_ULPS * ulp * mu))
+        a = 0.0 if r.alpha_au is None else float(np.abs(r.alpha_au).max())
+        # Ten CPHF residual tolerances: the solver stops at or below it, and the
+        # residual maps into alpha through an operator of norm ~|alpha|.
+        alpha.append(float((g + 10.0 * CPHF_RTOL) * max(a, 1.0)))
+    return NoiseModel(tuple(energy), tuple(dipole), tuple(alpha))
 
 
 def compute(job: Job, workers: int = 1, progress: bool | None = None,

@@ -185,8 +185,7 @@ def result_document(result: RunResult) -> dict[str, Any]:
                        "largest_field_V_per_m": max(
                            float(np.linalg.norm(p.field_vector_au)) for p in plan.points)
                        * FIELD_AU_TO_V_PER_M},
-        "noise_model": {"energy_au": result.noise.energy_au,
-                        "dipole_au": result.noise.dipole_au},
+        "noise_model": {"largest_" + k: v for k, v in result.noise.largest().items()},
         "scf_retries": [{"point": r.point.label, "attempts": list(r.attempts)}
                         for r in result.records if len(r.attempts) > 1],
         "backend": result.backend_facts,
