@@ -67,6 +67,8 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--workers", type=_positive_int, default=1,
                      help="processes computing field points in parallel (default 1)")
     run.add_argument("--quiet", action="store_true", help="no progress or log lines on stderr")
+    run.add_argument("--plot", type=Path, metavar="DIR", help="write a PNG per property into "
+                     "DIR: each component's Richardson table against field strength")
     run.set_defaults(handler=cmd_run)
 
     check = sub.add_parser("check", help="finite-field tensors versus analytic ones (PySCF's, "
@@ -119,10 +121,17 @@ def cmd_run(args) -> int:
     if out_path.resolve() == args.job.resolve():
         raise InputError(f"--json {out_path}: is the job file itself; give another path")
     check_output_path(out_path)
+    if args.plot is not None and not args.plot.is_dir():
+        raise InputError(f"--plot {args.plot}: is not an existing folder; create it first")
     result = compute(job, workers=args.workers, progress=not args.quiet and sys.stderr.isatty())
     write_tables(result, sys.stdout)
     write_json_atomic(result_document(result), out_path)
     logger.info("result written to %s (%.1f s)", out_path, result.wall_time_s)
+    if args.plot is not None:
+        from fieldprop.plots import write_plots
+
+        for name in write_plots(result.tensors, result.plan, args.plot):
+            logger.info("plot written to %s", args.plot / name)
     require_stable(result)
     return 0
 

@@ -67,3 +67,34 @@ def test_run_writes_the_contract_json_beside_the_job(tmp_path):
 def test_version_and_help_exit_zero(tmp_path):
     assert fieldprop("--version", cwd=tmp_path).stdout.startswith("fieldprop ")
     assert fieldprop("run", "--help", cwd=tmp_path).returncode == 0
+
+
+def test_run_plot_writes_one_png_per_property_with_every_component(tmp_path):
+    pytest.importorskip("pyscf")
+    (tmp_path / "lih.toml").write_text(JOB)
+    (tmp_path / "pictures").mkdir()
+    done = fieldprop("run", "lih.toml", "--quiet", "--plot", "pictures", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    files = sorted(p.name for p in (tmp_path / "pictures").iterdir())
+    # The dipole on the dipole route is a zero-field value: no table to draw.
+    assert files == ["alpha.png", "beta.png"]
+    for name in files:
+        data = (tmp_path / "pictures" / name).read_bytes()
+        assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 10_000
+
+    # The panels are the computed components (9 for alpha, 18 for beta on this route).
+    from fieldprop.engine import compute
+    from fieldprop.job import load_job
+    from fieldprop.plots import write_plots
+
+    result = compute(load_job(tmp_path / "lih.toml"), progress=False)
+    written = write_plots(result.tensors, result.plan, tmp_path / "pictures")
+    assert written["alpha.png"] == [c.plan.name for c in result.tensors["alpha"].components]
+    assert len(written["beta.png"]) == 18 and "beta_xyz" in written["beta.png"]
+
+
+def test_run_plot_into_a_missing_folder_is_refused_before_work(tmp_path):
+    (tmp_path / "lih.toml").write_text(JOB)
+    done = fieldprop("run", "lih.toml", "--plot", "nowhere", cwd=tmp_path)
+    assert done.returncode == 2 and "--plot" in done.stderr
+    assert not (tmp_path / "lih.result.json").exists()

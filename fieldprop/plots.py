@@ -1,0 +1,68 @@
+"""Stability pictures: each component's Richardson table against field strength.
+
+One PNG per property (``<DIR>/<property>.png``), one panel per computed component.
+In each panel the raw estimates D(k, 0) and every extrapolated column D(k, m) are
+drawn against the field strength h_k of their first level; the chosen entry is
+marked with its error bar, and the band value +- error is shaded. A stable
+derivative shows columns that flatten and meet; noise shows as scatter at small h,
+contamination as drift at large h. Written with matplotlib's Agg backend (no
+display needed).
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+from fieldprop.plan import FieldPlan
+
+
+def write_plots(tensors, plan: FieldPlan, directory: Path) -> dict[str, list[str]]:
+    """Write one PNG per tensor into ``directory``; returns {file name: component names}."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    steps = plan.steps_au()
+    written: dict[str, list[str]] = {}
+    for name, tensor in tensors.items():
+        comps = [c for c in tensor.components if c.plan.order > 0]
+        if not comps:
+            continue
+        ncols = min(5, len(comps))
+        nrows = math.ceil(len(comps) / ncols)
+        fig, axes = plt.subplots(nrows, ncols, figsize=(3.2 * ncols, 2.6 * nrows),
+                                 squeeze=False, constrained_layout=True)
+        for ax in axes.flat[len(comps):]:
+            ax.set_visible(False)
+        for ax, comp in zip(axes.flat, comps):
+            est = comp.estimate
+            for m, column in enumerate(est.table):
+                hs = steps[:len(column)]
+                ax.plot(hs, column, marker="o", ms=3, lw=1,
+                        label="raw" if m == 0 else f"{m} step{'s' if m > 1 else ''}")
+            k, m = est.chosen_entry
+            if comp.stable and math.isfinite(est.value_au):
+                ax.axhspan(est.value_au - est.error_au, est.value_au + est.error_au,
+                           color="tab:green", alpha=0.2, lw=0)
+                ax.errorbar([steps[k]], [est.value_au], yerr=[est.error_au], fmt="s",
+                            color="black", ms=5, capsize=3, label="chosen")
+                status = est.status.value
+            else:
+                status = "UNSTABLE"
+            ax.set_xscale("log")
+            ax.set_xticks(steps, [f"{h:g}" for h in steps])
+            ax.minorticks_off()
+            ax.set_title(f"{comp.plan.name} ({status})", fontsize=9)
+            ax.set_xlabel("field strength h (au)", fontsize=8)
+            ax.tick_params(labelsize=7)
+            ax.ticklabel_format(axis="y", useOffset=False, style="sci", scilimits=(-3, 4))
+        axes.flat[0].legend(fontsize=6)
+        fig.suptitle(f"{name}: Richardson table by field strength ({plan.route} route, au)",
+                     fontsize=10)
+        path = directory / f"{name}.png"
+        fig.savefig(path, dpi=90)
+        plt.close(fig)
+        written[path.name] = [c.plan.name for c in comps]
+    return written
