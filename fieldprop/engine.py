@@ -69,6 +69,7 @@ class RunResult:
     invariants: tuple[Invariant, ...]
     backend_facts: dict
     wall_time_s: float
+    warnings: tuple[str, ...] = ()
 
     @property
     def energy_au(self) -> float:
@@ -168,9 +169,54 @@ def compute(job: Job, workers: int = 1, progress: bool | None = None,
     noise = noise_model(job, records)
     estimates = extrapolate_components(plan, records, noise)
     tensors = assemble(plan.components, estimates)
+    warnings = window_warnings(job, plan, tensors)
+    for text in warnings:
+        logger.warning("%s", text)
     result = RunResult(job, molecule, plan, tuple(records), noise, tensors,
-                       tuple(invariants(tensors)), facts, time.perf_counter() - start)
+                       tuple(invariants(tensors)), facts, time.perf_counter() - start,
+                       warnings)
     return result
+
+
+def entry_window_au(plan: FieldPlan, entry: tuple[int, int]) -> tuple[float, float]:
+    """Smallest and largest field strength entering Richardson entry (k, m)."""
+    steps = plan.steps_au()
+    k, m = entry
+    return steps[k], steps[min(k + m, len(steps) - 1)]
+
+
+def window_warnings(job: Job, plan: FieldPlan, tensors) -> tuple[str, ...]:
+    """Warn when the job's own field_au lies below the stable window.
+
+    A significant component (|value| > 10 error) whose best entry does not use
+    the smallest field was noise-limited there: the job's h0 is below its window.
+    A component chosen at the largest field alone had no smaller field to
+    confirm it. With the automatic window both are expected and not warned.
+    """
+    if job.response.field_au_source != "job" or plan.levels < 2:
+        return ()
+    below, above = [], []
+    for tensor in tensors.values():
+        for c in tensor.components:
+            est = c.estimate
+            if not c.stable or c.plan.order == 0 or abs(est.value_au) <= 10 * est.error_au:
+                continue
+            k, m = est.chosen_entry
+            if k == plan.levels - 1:
+                above.append(c.plan.name)
+            elif k > 0:
+                below.append(f"{c.plan.name} (from {plan.steps_au()[k]:g} au)")
+    out = []
+    if below:
+        out.append(f"{job.path}: [response] field_au = {plan.field_au:g} au lies below the "
+                   f"stable window of {len(below)} component(s), whose best Richardson entries "
+                   f"start at a larger field: {', '.join(below[:4])}{' ...' if len(below) > 4 else ''}"
+                   "; omit field_au for the automatic window")
+    if above:
+        out.append(f"{job.path}: [response] only the largest field gave a usable estimate for "
+                   f"{', '.join(above[:4])}{' ...' if len(above) > 4 else ''}: no smaller field "
+                   "confirms it; omit field_au for the automatic window")
+    return tuple(out)
 
 
 def require_stable(result: RunResult) -> None:

@@ -20,7 +20,7 @@ Example
 ... ''')
 >>> job = load_job(d / "h2.toml")
 >>> job.model.reference, job.response.levels, job.response.ratio
-('restricted', 3, 2.0)
+('restricted', 6, 2.0)
 """
 
 from __future__ import annotations
@@ -59,10 +59,19 @@ MIN_DISTANCE_BOHR = 0.5
 #: taken as a typing error; far larger values overflow in PySCF (inf, NaN).
 MAX_COORDINATE_BOHR = 1e6
 
-#: Default smallest field h0 (au) by highest derivative order of the energy when
-#: the job gives none: REFERENCES' practice, h0 ~ 1e-4..5e-4 au for alpha and a
-#: window of ~1e-3..1e-2 au for gamma, with a ladder of three steps of ratio 2.
-DEFAULT_FIELD_AU = {1: 0.0005, 2: 0.0005, 3: 0.001, 4: 0.002}
+#: The automatic window, used when the job gives no field_au: a wide ladder whose
+#: Richardson table picks, per component, the entry between the round-off floor
+#: (small h) and contamination by higher orders (large h). Smallest field by
+#: highest order of the energy derivative, with AUTO_LEVELS steps of ratio 2:
+#: 2.5e-4..8e-3 au for mu and alpha, 5e-4..1.6e-2 au for beta and gamma, which
+#: spans REFERENCES' practice (h0 ~ 1e-4..5e-4 au for alpha, a window of
+#: ~1e-3..1e-2 au for gamma) with room on both sides.
+AUTO_FIELD_AU = {1: 0.00025, 2: 0.00025, 3: 0.0005, 4: 0.0005}
+AUTO_LEVELS = 6
+#: Most field strengths a job may ask for: five Richardson steps remove the h^2
+#: to h^10 terms, beyond which the largest field (32 h0 at ratio 2) is no longer
+#: perturbative for any useful h0 (common practice: 4-6 amplitudes).
+MAX_LEVELS = 6
 
 _SECTIONS = {
     "molecule": {"geometry", "xyz", "units", "charge", "multiplicity"},
@@ -419,8 +428,9 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
 
     field_au = r.number("field_au", None)
     source = "job"
-    if field_au is None:
-        field_au, source = DEFAULT_FIELD_AU[max_order], f"default for order {max_order}"
+    automatic = field_au is None
+    if automatic:
+        field_au, source = AUTO_FIELD_AU[max_order], "automatic window"
     elif field_au <= 0:
         raise r.fail("field_au", f"must be > 0, got {field_au}")
     elif field_au > 0.05:
@@ -432,13 +442,18 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
     if ratio > 10.0:
         raise r.fail("ratio", f"= {ratio} spaces the ladder too widely for extrapolation; use "
                      "1.2 to 4 (2 is usual)")
-    levels = r.integer("levels", 3, low=1)
-    if levels < 2 and not (route_hint_is_dipole(table, method) and max_order == 1):
+    no_derivatives = route_hint_is_dipole(table, method) and max_order == 1
+    levels = r.integer("levels", 1 if no_derivatives else (AUTO_LEVELS if automatic else 3),
+                       low=1)
+    if levels < 2 and not no_derivatives:
         raise r.fail("levels", f"= {levels} gives one field strength, whose truncation error "
                      "cannot be estimated; use levels >= 2 (3 is usual)")
-    if levels > 8:
-        raise r.fail("levels", f"= {levels} is more field strengths than extrapolation of "
-                     "even-order error series can use; use 1 to 8")
+    if levels > 1 and no_derivatives and "levels" in table:
+        raise r.fail("levels", f"= {levels} is more than the order needs: the dipole alone on "
+                     "the dipole route is the zero-field value, no ladder; remove levels")
+    if levels > MAX_LEVELS:
+        raise r.fail("levels", f"= {levels} is more field strengths than a Richardson table "
+                     f"can use; use 2 to {MAX_LEVELS}")
     top_field = field_au * ratio ** (levels - 1) * (2 if max_order >= 3 else 1)
     if top_field > 0.1:
         raise r.fail("levels", f"= {levels} with field_au = {field_au} and ratio = {ratio} "
@@ -479,7 +494,7 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
 
 
 def _parse_scf(path: str, table: dict[str, Any], method: str, max_order: int,
-               route: str) -> ScfSpec:
+               route: str, open_shell: bool) -> ScfSpec:
     r = _Reader(path, "scf", table)
     tol = r.number("energy_conv_tol_au", None)
     if tol is None:
@@ -506,9 +521,12 @@ def _parse_scf(path: str, table: dict[str, Any], method: str, max_order: int,
     # (DIIS: ~65 cycles for water/6-31+G* from the zero-field density, against
     # ~35 for 1e-10). DFT takes 1e-11: its grid noise limits beta and gamma
     # before that (REFERENCES sect. 6) and g = 1e-12 costs it ~60 % more cycles.
+    # Open shells take 1e-10: UHF reached g = 1e-12 for the NH2 radical only after
+    # ~230 cycles per point and not at all for H2O+ at 0.008 au; 1e-10 takes
+    # ~100-150 cycles there.
     # Post-HF energies: 1e-9.
     if route == "dipole":
-        gradient_tol = 1e-12 if method == "hf" else 1e-11
+        gradient_tol = (1e-10 if open_shell else 1e-12 if method == "hf" else 1e-11)
     elif method in ("hf", "dft"):
         gradient_tol = 1e-8
     else:
@@ -554,5 +572,5 @@ def load_job(path: str | os.PathLike[str]) -> Job:
     scale = ANGSTROM_TO_BOHR if molecule.units == "angstrom" else 1.0
     response = _parse_response(shown, data["response"], model.method, scale)
     scf = _parse_scf(shown, data.get("scf", {}), model.method, response.max_order,
-                     response.route)
+                     response.route, molecule.multiplicity > 1)
     return Job(shown, molecule, model, response, scf)

@@ -18,7 +18,7 @@ import numpy as np
 from tabulate import tabulate
 
 from fieldprop import __version__
-from fieldprop.engine import RunResult
+from fieldprop.engine import RunResult, entry_window_au
 from fieldprop.plan import FieldPlan
 from fieldprop.units import (DISPLAY_UNITS, FIELD_AU_TO_V_PER_M, PROPERTY_ORDER)
 
@@ -83,7 +83,7 @@ def write_tables(result: RunResult, out: TextIO) -> None:
     steps = ", ".join(f"{h:g}" for h in plan.steps_au())
     out.write(f"  route: {plan.route} (derivatives of "
               f"{'E(F)' if plan.route == 'energy' else 'the SCF dipole mu(F)'}); fields {steps} au "
-              f"(h0 {job.response.field_au_source}); origin ({origin}) bohr\n")
+              f"(h0: {job.response.field_au_source}); origin ({origin}) bohr\n")
     out.write(f"  {len(result.records)} field points, "
               f"{sum(r.scf_cycles for r in result.records)} SCF cycles; SCF energy tolerance "
               f"{job.scf.energy_conv_tol_au:g} Eh; E(0) = {result.energy_au:.10f} Eh\n")
@@ -118,6 +118,8 @@ def write_tables(result: RunResult, out: TextIO) -> None:
         out.write("invariants\n")
         out.write(tabulate(rows, headers=["invariant", "value (au)", "+- error", "converted",
                                           "definition"], disable_numparse=True) + "\n\n")
+    for text in result.warnings:
+        out.write(f"warning: {text}\n")
     if any(p in result.tensors for p in ("beta", "gamma")):
         out.write(f"note: {CAUTION}\n")
 
@@ -153,6 +155,7 @@ def result_document(result: RunResult) -> dict[str, Any]:
                 "roundoff_floor": c.estimate.roundoff_au,
                 "richardson_entry": {"level": c.estimate.chosen_entry[0],
                                      "steps": c.estimate.chosen_entry[1]},
+                "window_au": list(entry_window_au(result.plan, c.estimate.chosen_entry)),
                 "richardson_table": [list(col) for col in c.estimate.table],
             } for c in t.components],
         }
@@ -191,6 +194,7 @@ def result_document(result: RunResult) -> dict[str, Any]:
         "backend": result.backend_facts,
         "unit_factors": {p: {label: f for label, f in DISPLAY_UNITS[p]}
                          for p in PROPERTY_ORDER},
+        "warnings": list(result.warnings),
         "caution": CAUTION,
         "wall_time_s": result.wall_time_s,
     }

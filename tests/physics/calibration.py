@@ -1,0 +1,125 @@
+"""Calibration of fieldprop's error bars on a validation set (used by the slow test
+and by tests/benchmarks/bench_calibration.py).
+
+For each molecule and model, finite-field tensors (energy route: mu, alpha, beta;
+dipole route: alpha, beta) are compared with references that are far more precise:
+PySCF's analytic SCF dipole, the CPHF/CPKS alpha of analytic_reference.py (an
+independent solver), and beta from field derivatives of fieldprop's analytic alpha
+(two orders below the energy route). For every component the true error
+|ff - ref| and the reported error bar are collected.
+
+Coverage: the fraction of components whose error bar covers the true error.
+Sharpness: the median of error bar / true error over components whose true error
+is resolvable above the reference's own uncertainty (a bar 1000x the error is as
+useless as one that misses).
+"""
+
+import textwrap
+from pathlib import Path
+
+import numpy as np
+
+from analytic_reference import cphf_polarizability
+from support import geometry_text, mean_field, rotation
+
+from fieldprop.engine import compute, reference_tensors
+from fieldprop.job import load_job
+
+
+def _tilted(symbols, local_angstrom):
+    return geometry_text(symbols, np.asarray(local_angstrom) @ rotation().T)
+
+
+_HALF_WATER = np.radians(104.5) / 2
+_HALF_NH2 = np.radians(103.0) / 2
+#: Our own geometries (angstrom), near the usual equilibrium ones, tilted off the axes.
+MOLECULES = {
+    "water": ("OHH", [[0, 0, 0], [0, 0.958 * np.sin(_HALF_WATER), 0.958 * np.cos(_HALF_WATER)],
+                      [0, -0.958 * np.sin(_HALF_WATER), 0.958 * np.cos(_HALF_WATER)]], 0, 1),
+    "ammonia": ("NHHH", [[0, 0, 0.0], [0.94, 0, 0.38], [-0.47, 0.814, 0.38],
+                         [-0.47, -0.814, 0.38]], 0, 1),
+    "hydrogen fluoride": ("FH", [[0, 0, 0], [0, 0, 0.917]], 0, 1),
+    "formaldehyde": ("COHH", [[0, 0, 0], [0, 0, 1.205], [0, 0.94, -0.58], [0, -0.94, -0.58]],
+                     0, 1),
+    "amidogen radical": ("NHH", [[0, 0, 0],
+                                 [0, 1.024 * np.sin(_HALF_NH2), 1.024 * np.cos(_HALF_NH2)],
+                                 [0, -1.024 * np.sin(_HALF_NH2), 1.024 * np.cos(_HALF_NH2)]],
+                         0, 2),
+    "water cation": ("OHH", [[0, 0, 0], [0, 0.99 * np.sin(0.95), 0.99 * np.cos(0.95)],
+                             [0, -0.99 * np.sin(0.95), 0.99 * np.cos(0.95)]], 1, 2),
+}
+
+#: (molecule, model lines): HF and DFT, closed and open shell.
+VALIDATION_SET = [
+    ("water", 'method = "hf"'),
+    ("ammonia", 'method = "hf"'),
+    ("formaldehyde", 'method = "hf"'),
+    ("amidogen radical", 'method = "hf"'),
+    ("water cation", 'method = "hf"'),
+    ("hydrogen fluoride", 'method = "dft"\nfunctional = "pbe0"'),
+    ("water", 'method = "dft"\nfunctional = "b3lyp"'),
+    ("amidogen radical", 'method = "dft"\nfunctional = "pbe"'),
+]
+
+
+def job_text(name: str, model: str, route: str, props) -> str:
+    symbols, local, charge, multiplicity = MOLECULES[name]
+    dft = "dft" in model
+    return textwrap.dedent("""
+        [molecule]
+        geometry = \"\"\"
+        {geometry}
+        \"\"\"
+        charge = {charge}
+        multiplicity = {multiplicity}
+        [model]
+        {model}
+        basis = "6-31+g*"
+        [response]
+        properties = {props}
+        route = "{route}"
+        field_au = 0.002
+        {scf}
+        """).format(geometry=_tilted(symbols, local).replace("\n", "\n        "),
+                    charge=charge, multiplicity=multiplicity,
+                    model=model.replace("\n", "\n        "),
+                    props="[" + ", ".join(f'"{p}"' for p in props) + "]", route=route,
+                    scf="[scf]\n        grid_level = 3" if dft else "")
+
+
+def collect(tmp_dir: Path, cases=VALIDATION_SET):
+    """Rows (case, route, component, value, error bar, true error, reference error)."""
+    rows = []
+    for n, (name, model) in enumerate(cases):
+        for route, props in (("energy", ("dipole", "alpha", "beta")),
+                             ("dipole", ("alpha", "beta"))):
+            path = Path(tmp_dir) / f"case{n}_{route}.toml"
+            path.write_text(job_text(name, model, route, props))
+            job = load_job(path)
+            result = compute(job, progress=False)
+            mf = mean_field(job)
+            origin = result.molecule.origin_bohr
+            refs = {"alpha": (cphf_polarizability(mf, origin), np.zeros((3, 3)))}
+            if "dipole" in props:
+                from analytic_reference import scf_dipole
+
+                refs["dipole"] = (scf_dipole(mf, origin), np.zeros(3))
+            analytic = reference_tensors(job, result)
+            refs["beta"] = (analytic.value["beta"], analytic.error["beta"])
+            label = f"{name} {model.split(chr(10))[-1].split('=')[-1].strip()}"
+            for tensor, (ref, ref_err) in refs.items():
+                t = result.tensors[tensor]
+                for c in t.components:
+                    idx = c.entries[0]
+                    rows.append((label, route, c.plan.name, c.estimate.value_au,
+                                 c.estimate.error_au, abs(c.estimate.value_au - ref[idx]),
+                                 float(ref_err[idx])))
+    return rows
+
+
+def figures(rows):
+    """Coverage and median sharpness (see the module docstring)."""
+    covered = [abs_err <= err + ref_err for _, _, _, _, err, abs_err, ref_err in rows]
+    ratios = [err / abs_err for _, _, _, _, err, abs_err, ref_err in rows
+              if abs_err > 3 * ref_err and abs_err > 0]
+    return float(np.mean(covered)), float(np.median(ratios)), len(rows), len(ratios)
