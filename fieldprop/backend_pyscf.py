@@ -143,6 +143,39 @@ def _scf_dipole(mf, r, molecule) -> np.ndarray:
     return molecule.nuclear_dipole_au() - np.einsum("xij,ji->x", r, dm).real
 
 
+def _dipole_error_estimate(mf, r, grad) -> float:
+    """|d mu| of the one orbital-rotation step the residual gradient still asks for.
+
+    The remaining rotation is kappa_ai = -F_ai / (e_a - e_i); the dipole moves by
+    -4 sum_ai kappa_ai r_ai (closed shell; F_ai = g_ai / 2 in PySCF's gradient) or
+    -2 sum_s sum_ai kappa_ai r_ai (unrestricted, g_ai = F_ai per spin). Small
+    gaps, as in open shells, amplify it well beyond |g|. ROHF: |g| is returned.
+    """
+    from pyscf.scf import hf, rohf, uhf
+
+    if isinstance(mf, uhf.UHF):
+        blocks, start, total = [], 0, np.zeros(3)
+        for s in range(2):
+            occ = mf.mo_occ[s] > 0
+            c, e = mf.mo_coeff[s], mf.mo_energy[s]
+            n = int((~occ).sum() * occ.sum())
+            f_ai = np.asarray(grad[start:start + n]).reshape((~occ).sum(), occ.sum())
+            start += n
+            kappa = -f_ai / (e[~occ][:, None] - e[occ][None, :])
+            rmo = np.einsum("pa,xpq,qi->xai", c[:, ~occ], r, c[:, occ])
+            total += -2.0 * np.einsum("xai,ai->x", rmo, kappa)
+            blocks.append(n)
+        return float(np.linalg.norm(total))
+    if isinstance(mf, hf.RHF) and not isinstance(mf, rohf.ROHF):
+        occ = mf.mo_occ > 0
+        c, e = mf.mo_coeff, mf.mo_energy
+        f_ai = 0.5 * np.asarray(grad).reshape((~occ).sum(), occ.sum())
+        kappa = -f_ai / (e[~occ][:, None] - e[occ][None, :])
+        rmo = np.einsum("pa,xpq,qi->xai", c[:, ~occ], r, c[:, occ])
+        return float(np.linalg.norm(-4.0 * np.einsum("xai,ai->x", rmo, kappa)))
+    return float(np.linalg.norm(grad))
+
+
 def _occupied(mf) -> tuple[np.ndarray, ...]:
     if np.asarray(mf.mo_occ).ndim == 2:  # unrestricted: one set per spin
         return tuple(mf.mo_coeff[s][:, mf.mo_occ[s] > 0] for s in range(2))
@@ -334,7 +367,9 @@ def evaluate_point(task: PointTask) -> PointRecord:
     if mol.nelectron == 1:
         h = mf.get_hcore()
         fock = np.array([h, h]) if np.asarray(mf.mo_occ).ndim == 2 else h
-    gradient = float(np.linalg.norm(mf.get_grad(mf.mo_coeff, mf.mo_occ, fock)))
+    grad = mf.get_grad(mf.mo_coeff, mf.mo_occ, fock)
+    gradient = float(np.linalg.norm(grad))
+    dipole_error = _dipole_error_estimate(mf, r, grad) if task.want_dipole else 0.0
     alpha = None
     if task.want_alpha:
         alpha = tuple(tuple(float(v) for v in row) for row in analytic_polarizability(mf, r))
@@ -342,4 +377,4 @@ def evaluate_point(task: PointTask) -> PointRecord:
     if task.reference is None:
         reference = ZeroFieldReference(np.asarray(mf.make_rdm1()), occupied, s2)
     return PointRecord(point, energy, float(mf.e_tot), dipole, cycles, tuple(attempts), s2,
-                       overlap, gradient, alpha, reference)
+                       overlap, gradient, alpha, reference, dipole_error)

@@ -46,8 +46,8 @@ class ComponentEstimate:
     """One tensor component from its Richardson table.
 
     ``table[m][k]`` is D(k, m) (column m has levels - m entries); ``chosen_entry``
-    is (k, m) of the reported value; ``error_au`` is the larger of the table
-    difference and the round-off floor of that entry: an estimate, not a bound.
+    is (k, m) of the reported value; ``error_au`` is the table difference plus the
+    round-off floor of that entry: an estimate, not a bound.
     """
 
     value_au: float
@@ -112,7 +112,7 @@ def richardson(values, ratio: float, noise_au) -> ComponentEstimate:
                 continue
             floor = sum(abs(c) * r for c, r in zip(coeffs[m][k], noise))
             spread = max(diffs)
-            err = max(spread, floor)
+            err = spread + floor
             # Prefer the lower column on a tie: fewer noise-amplifying steps.
             key = (err, m, k)
             if best is None or key < best[0]:

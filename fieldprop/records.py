@@ -69,3 +69,4 @@ class PointRecord:
     gradient_norm: float
     alpha_au: tuple[tuple[float, float, float], ...] | None = None
     reference: ZeroFieldReference | None = field(default=None, repr=False)
+    dipole_error_au: float = 0.0  # first-order estimate of the dipole's convergence error

@@ -88,7 +88,7 @@ def write_tables(result: RunResult, out: TextIO) -> None:
               f"{sum(r.scf_cycles for r in result.records)} SCF cycles; SCF energy tolerance "
               f"{job.scf.energy_conv_tol_au:g} Eh; E(0) = {result.energy_au:.10f} Eh\n")
     out.write("  atomic units, Taylor convention E = E0 - mu F - alpha F^2/2 - beta F^3/6 - "
-              "gamma F^4/24; error bars are estimates (Richardson table spread or round-off "
+              "gamma F^4/24; error bars are estimates (Richardson table spread plus round-off "
               "floor), not bounds\n\n")
     for name, tensor in result.tensors.items():
         rows = []
