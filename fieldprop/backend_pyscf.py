@@ -154,7 +154,7 @@ def _dipole_error_estimate(mf, r, grad) -> float:
     from pyscf.scf import hf, rohf, uhf
 
     if isinstance(mf, uhf.UHF):
-        blocks, start, total = [], 0, np.zeros(3)
+        start, total = 0, np.zeros(3)
         for s in range(2):
             occ = mf.mo_occ[s] > 0
             c, e = mf.mo_coeff[s], mf.mo_energy[s]
@@ -164,7 +164,6 @@ def _dipole_error_estimate(mf, r, grad) -> float:
             kappa = -f_ai / (e[~occ][:, None] - e[occ][None, :])
             rmo = np.einsum("pa,xpq,qi->xai", c[:, ~occ], r, c[:, occ])
             total += -2.0 * np.einsum("xai,ai->x", rmo, kappa)
-            blocks.append(n)
         return float(np.linalg.norm(total))
     if isinstance(mf, hf.RHF) and not isinstance(mf, rohf.ROHF):
         occ = mf.mo_occ > 0
