@@ -212,3 +212,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("fieldprop: error: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # The reader of stdout went away (e.g. `| head`): stop quietly, and keep
+        # Python from complaining again when it flushes stdout at exit.
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 1

@@ -55,7 +55,7 @@ def format_pair(value: float | None, error: float | None) -> tuple[str, str]:
     if error <= 0 or not math.isfinite(error):
         return f"{value:.10g}", f"{error:.2g}"
     decimals = max(0, 1 - int(math.floor(math.log10(error))))
-    if abs(value) >= 1e7 or (decimals > 12):
+    if abs(value) >= 1e7 or decimals > 15:
         digits = max(1, int(math.floor(math.log10(max(abs(value), error)))) -
                      int(math.floor(math.log10(error))) + 1)
         return f"{value:.{digits}e}", f"{error:.2g}"
