@@ -7,7 +7,7 @@ and round-off floors under energy noise of known size; the Richardson table by
 itself; the tensor invariants (fieldprop.tensors) on hand-computable cases and
 against brute-force orientational averages; the unit factors (fieldprop.units).
 
-Sources. "REFERENCES" is /work/shared/REFERENCES.md: sect. 1 (Taylor
+Sources. "REFERENCES" is docs/REFERENCES.md: sect. 1 (Taylor
 convention), sect. 2 (central stencils, their noise factors C_n, the Richardson
 recursion), sect. 3 (invariants; HRS averages after Bersohn, Pao, Frisch,
 J. Chem. Phys. 45, 3184 (1966)), sect. 4 (unit check values, CODATA 2022 via
