@@ -124,9 +124,10 @@ def cmd_run(args) -> int:
     if args.plot is not None and not args.plot.is_dir():
         raise InputError(f"--plot {args.plot}: is not an existing folder; create it first")
     result = compute(job, workers=args.workers, progress=not args.quiet and sys.stderr.isatty())
-    write_tables(result, sys.stdout)
+    # The file first: a closed stdout (``| head``) must not lose the result.
     write_json_atomic(result_document(result), out_path)
     logger.info("result written to %s (%.1f s)", out_path, result.wall_time_s)
+    write_tables(result, sys.stdout)
     if args.plot is not None:
         from fieldprop.plots import write_plots
 
