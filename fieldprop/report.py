@@ -225,6 +225,10 @@ def write_json_atomic(document: dict[str, Any], path: Path) -> None:
         with os.fdopen(fd, "w", encoding="utf-8") as fh:
             json.dump(document, fh, indent=1, allow_nan=False)
             fh.write("\n")
+        # mkstemp makes the file private (0600); give it the usual permissions.
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
