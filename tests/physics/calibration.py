@@ -20,7 +20,7 @@ from pathlib import Path
 import numpy as np
 
 from analytic_reference import cphf_polarizability
-from support import geometry_text, mean_field, rotation
+from support import NH2_ANGSTROM, bent_triatomic, geometry_text, mean_field, rotation
 
 from fieldprop.engine import compute, reference_tensors
 from fieldprop.job import load_job
@@ -30,23 +30,16 @@ def _tilted(symbols, local_angstrom):
     return geometry_text(symbols, np.asarray(local_angstrom) @ rotation().T)
 
 
-_HALF_WATER = np.radians(104.5) / 2
-_HALF_NH2 = np.radians(103.0) / 2
 #: Our own geometries (angstrom), near the usual equilibrium ones, tilted off the axes.
 MOLECULES = {
-    "water": ("OHH", [[0, 0, 0], [0, 0.958 * np.sin(_HALF_WATER), 0.958 * np.cos(_HALF_WATER)],
-                      [0, -0.958 * np.sin(_HALF_WATER), 0.958 * np.cos(_HALF_WATER)]], 0, 1),
+    "water": ("OHH", bent_triatomic(0.958, 104.5), 0, 1),
     "ammonia": ("NHHH", [[0, 0, 0.0], [0.94, 0, 0.38], [-0.47, 0.814, 0.38],
                          [-0.47, -0.814, 0.38]], 0, 1),
     "hydrogen fluoride": ("FH", [[0, 0, 0], [0, 0, 0.917]], 0, 1),
     "formaldehyde": ("COHH", [[0, 0, 0], [0, 0, 1.205], [0, 0.94, -0.58], [0, -0.94, -0.58]],
                      0, 1),
-    "amidogen radical": ("NHH", [[0, 0, 0],
-                                 [0, 1.024 * np.sin(_HALF_NH2), 1.024 * np.cos(_HALF_NH2)],
-                                 [0, -1.024 * np.sin(_HALF_NH2), 1.024 * np.cos(_HALF_NH2)]],
-                         0, 2),
-    "water cation": ("OHH", [[0, 0, 0], [0, 0.99 * np.sin(0.95), 0.99 * np.cos(0.95)],
-                             [0, -0.99 * np.sin(0.95), 0.99 * np.cos(0.95)]], 1, 2),
+    "amidogen radical": ("NHH", NH2_ANGSTROM, 0, 2),
+    "water cation": ("OHH", bent_triatomic(0.99, np.degrees(1.9)), 1, 2),
 }
 
 #: (molecule, model lines): HF and DFT, closed and open shell.

@@ -15,6 +15,23 @@ from fieldprop.job import load_job  # noqa: E402
 WATER_ANGSTROM = np.array([[0.0, 0.0, 0.1173], [0.0, 0.7572, -0.4692], [0.0, -0.7572, -0.4692]])
 
 
+def bent_triatomic(bond_angstrom: float, angle_degrees: float) -> np.ndarray:
+    """A-B2 in the yz plane, A at the origin (angstrom): our water and NH2 builder."""
+    half = np.radians(angle_degrees) / 2.0
+    y, z = bond_angstrom * np.sin(half), bond_angstrom * np.cos(half)
+    return np.array([[0.0, 0.0, 0.0], [0.0, y, z], [0.0, -y, z]])
+
+
+#: The NH2 radical (2B1, a non-degenerate ground state; OH's degenerate 2Pi is
+#: avoided on purpose), our geometry: N-H 1.024 A, 103 deg.
+NH2_ANGSTROM = bent_triatomic(1.024, 103.0)
+
+
+def nh2_geometry() -> str:
+    """NH2 rotated off the axes, as geometry lines in angstrom."""
+    return geometry_text("NHH", NH2_ANGSTROM @ rotation().T)
+
+
 def rotation(seed: int = 7) -> np.ndarray:
     """A fixed proper rotation that moves every symmetry axis off x, y, z."""
     from scipy.spatial.transform import Rotation

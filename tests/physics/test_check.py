@@ -13,17 +13,9 @@ import numpy as np
 import pytest
 
 from analytic_reference import cphf_polarizability
-from support import geometry_text, mean_field, rotated_water, rotation, run_job
+from support import mean_field, nh2_geometry, rotated_water, rotation, run_job
 
 from fieldprop.cli import main
-
-
-def nh2_geometry() -> str:
-    # The NH2 radical (2B1, non-degenerate), our geometry: N-H 1.024 A, 103 deg, rotated.
-    half = np.radians(103.0) / 2.0
-    local = np.array([[0.0, 0.0, 0.0], [0.0, 1.024 * np.sin(half), 1.024 * np.cos(half)],
-                      [0.0, -1.024 * np.sin(half), 1.024 * np.cos(half)]])
-    return geometry_text("NHH", local @ rotation().T)
 
 
 def job_text(geometry: str, model: str, multiplicity: int = 1, extra: str = "",

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from analytic_reference import cphf_polarizability
-from support import agree, geometry_text, mean_field, rotated_water, rotation, run_job
+from support import agree, mean_field, nh2_geometry, rotated_water, run_job
 
 
 def water_job(method_lines: str, props: str, route: str, field_au: float = 0.002) -> str:
@@ -70,14 +70,7 @@ def test_dft_alpha_equals_cpks_full_tensor(tmp_path):
 
 
 def test_open_shell_uhf_alpha_equals_ucphf(tmp_path):
-    # The NH2 radical (doublet, non-degenerate 2B1 ground state; OH's degenerate
-    # 2Pi state is avoided on purpose), our own geometry: N-H 1.024 A, 103 deg,
-    # rotated off the axes.
-    half = np.radians(103.0) / 2.0
-    local = np.array([[0.0, 0.0, 0.0],
-                      [0.0, 1.024 * np.sin(half), 1.024 * np.cos(half)],
-                      [0.0, -1.024 * np.sin(half), 1.024 * np.cos(half)]])
-    geometry = geometry_text("NHH", local @ rotation().T)
+    geometry = nh2_geometry()
     job, result = run_job(tmp_path, f"""
         [molecule]
         geometry = \"\"\"
