@@ -17,9 +17,9 @@ import warnings
 
 import numpy as np
 
-from fieldprop.errors import InputError, ScfNotConvergedError, StateSwitchError
+from fieldprop.errors import InputError, ScfNotConvergedError
 from fieldprop.job import Job
-from fieldprop.records import PointRecord, PointTask, ZeroFieldReference
+from fieldprop.records import PointRecord, PointTask, SymmetryOperation, ZeroFieldReference
 
 logger = logging.getLogger(__name__)
 
@@ -30,6 +30,14 @@ MIN_OCCUPIED_OVERLAP = 0.9
 #: Largest change of <S^2> from zero field before a point counts as another state:
 #: field-induced changes are O(F^2) ~ 1e-4, a spin flip or new contamination ~0.1-1.
 MAX_S2_CHANGE = 0.01
+#: Largest distance (bohr) between an atom's image and an atom of the same element
+#: for a symmetry operation to count; PySCF's own detection tolerance is tighter.
+SYMMETRY_TOLERANCE_BOHR = 1e-4
+#: A zero-field character this far from an integer means the state does not have
+#: that operation's symmetry (a broken-symmetry solution): the operation is not used.
+CHARACTER_TOLERANCE = 0.05
+#: Grid points per block when integrating basis-function products (memory bound).
+_GRID_BLOCK = 20000
 
 
 def _pyscf_basis(basis):
@@ -181,6 +189,115 @@ def _occupied(mf) -> tuple[np.ndarray, ...]:
     return (mf.mo_coeff[:, mf.mo_occ > 0],)
 
 
+def _orbital_sets(mf) -> tuple[np.ndarray, ...]:
+    """Occupied orbitals per set for the symmetry check: alpha and beta
+    (unrestricted); all occupied and doubly occupied (restricted open shell);
+    the occupied ones (closed shell)."""
+    occ = np.asarray(mf.mo_occ)
+    if occ.ndim == 2:
+        return tuple(mf.mo_coeff[s][:, occ[s] > 0] for s in range(2))
+    if np.any(np.isclose(occ, 1.0)):
+        return mf.mo_coeff[:, occ > 0], mf.mo_coeff[:, occ > 1.5]
+    return (mf.mo_coeff[:, occ > 0],)
+
+
+def _characters(sets, representation) -> tuple[float, ...]:
+    return tuple(float(np.einsum("pi,pq,qi->", c, representation, c)) for c in sets)
+
+
+def _operation_name(signs, axes) -> str:
+    def vec(v):
+        return "(" + ", ".join(f"{x:.3f}" for x in v) + ")"
+    minus = [k for k in range(3) if signs[k] < 0]
+    if len(minus) == 3:
+        return "inversion"
+    if len(minus) == 1:
+        return f"mirror plane normal to {vec(axes[minus[0]])}"
+    plus = next(k for k in range(3) if signs[k] > 0)
+    return f"C2 rotation about {vec(axes[plus])}"
+
+
+def symmetry_operations(mol, mf) -> tuple[SymmetryOperation, ...]:
+    """The operations of the molecule's largest abelian point subgroup (D2h and
+    its subgroups) that the zero-field state ``mf`` shares, with their action on
+    the basis functions.
+
+    PySCF's detection gives the symmetry frame; each of the seven sign changes
+    of its axes is kept if it maps every atom onto an atom of the same element
+    (same basis). <chi_mu | R chi_nu> is integrated on a DFT grid (level 3,
+    ~1e-6 accurate for the overlap), so characters come out within ~1e-5 of
+    their integers; the comparison allows 0.5.
+    """
+    import itertools
+
+    from pyscf import dft, symm
+
+    try:
+        group, origin, axes = symm.detect_symm(mol._atom)
+        group, axes = symm.as_subgroup(group, axes)
+    except Exception as exc:  # noqa: BLE001 - detection is a bonus, never fatal
+        logger.debug("no symmetry detection: %s", exc)
+        return ()
+    if group == "C1":
+        return ()
+    coords = mol.atom_coords()
+    symbols = [mol.atom_symbol(i) for i in range(mol.natm)]
+    chosen = []
+    for signs in itertools.product((1, -1), repeat=3):
+        if signs == (1, 1, 1):
+            continue
+        matrix = axes.T @ np.diag(signs) @ axes
+        image = (coords - origin) @ matrix.T + origin
+        if all(any(symbols[i] == symbols[j] and
+                   np.linalg.norm(image[i] - coords[j]) < SYMMETRY_TOLERANCE_BOHR
+                   for j in range(mol.natm)) for i in range(mol.natm)):
+            chosen.append((signs, matrix))
+    if not chosen:
+        return ()
+    grids = dft.gen_grid.Grids(mol)
+    grids.level = 3
+    grids.verbose = 0
+    grids.build()
+    reps = [np.zeros((mol.nao, mol.nao)) for _ in chosen]
+    for start in range(0, len(grids.weights), _GRID_BLOCK):
+        points = grids.coords[start:start + _GRID_BLOCK]
+        weighted = dft.numint.eval_ao(mol, points) * grids.weights[start:start + _GRID_BLOCK,
+                                                                    None]
+        for rep, (signs, matrix) in zip(reps, chosen):
+            # (R chi)(r) = chi(R^-1 (r - O) + O), and R^-1 = R for these operations.
+            rep += weighted.T @ dft.numint.eval_ao(mol, (points - origin) @ matrix.T + origin)
+    sets = _orbital_sets(mf)
+    out = []
+    for rep, (signs, matrix) in zip(reps, chosen):
+        chars = _characters(sets, rep)
+        if all(abs(c - round(c)) < CHARACTER_TOLERANCE for c in chars):
+            out.append(SymmetryOperation(_operation_name(signs, axes), matrix, rep, chars))
+    return tuple(out)
+
+
+def state_issues(reference: ZeroFieldReference, field_vector_au, occupied, sets, s2,
+                 overlap) -> list[str]:
+    """What marks a point as another state than zero field's (empty: none)."""
+    issues = []
+    if overlap < MIN_OCCUPIED_OVERLAP:
+        issues.append(f"occupied-space overlap with zero field {overlap:.3f} (needs >= "
+                      f"{MIN_OCCUPIED_OVERLAP})")
+    if abs(s2 - reference.s2) > MAX_S2_CHANGE:
+        issues.append(f"<S^2> {s2:.4f} against {reference.s2:.4f} at zero field")
+    f = np.asarray(field_vector_au, dtype=float)
+    for op in reference.symmetry:
+        if np.linalg.norm(op.matrix @ f - f) > 1e-9 * max(np.linalg.norm(f), 1e-300):
+            continue  # the field breaks this symmetry: its characters may change
+        chars = _characters(sets, op.representation)
+        if any(abs(c - c0) > 0.5 for c, c0 in zip(chars, op.characters)):
+            shown = "/".join(f"{c:.0f}" for c in chars)
+            zero = "/".join(f"{c:.0f}" for c in op.characters)
+            issues.append(f"occupation by symmetry changed: under the {op.name}, which the "
+                          f"field keeps, the occupied orbitals' character is {shown} "
+                          f"(zero field: {zero})")
+    return issues
+
+
 def _s2(mf) -> float:
     if np.asarray(mf.mo_occ).ndim == 2:
         return float(mf.spin_square()[0])
@@ -325,10 +442,13 @@ def analytic_polarizability(mf, r) -> np.ndarray:
 def evaluate_point(task: PointTask) -> PointRecord:
     """Compute one field point: SCF (retried if needed), state checks, post-HF.
 
+    A point on another state than zero field's (occupied overlap, <S^2>,
+    occupation by symmetry) is returned with ``state_issue`` set; the engine
+    leaves it out of every derivative.
+
     Raises
     ------
     ScfNotConvergedError : the SCF (or CC) never converged.
-    StateSwitchError : the point's occupied space or <S^2> departs from zero field.
     """
     from pyscf import lib
 
@@ -340,7 +460,7 @@ def evaluate_point(task: PointTask) -> PointRecord:
     dm0 = task.reference.density if task.reference is not None else None
     attempts, cycles = _converge(mf, dm0, point.label)
     occupied, s2 = _occupied(mf), _s2(mf)
-    overlap = 1.0
+    overlap, issues = 1.0, []
     if task.reference is not None:
         s_ao = mol.intor_symmetric("int1e_ovlp")
         for c_ref, c in zip(task.reference.occupied, occupied):
@@ -350,12 +470,10 @@ def evaluate_point(task: PointTask) -> PointRecord:
             if c.shape[1]:
                 overlap = min(overlap, float(np.linalg.svd(c_ref.T @ s_ao @ c,
                                                            compute_uv=False).min()))
-        if overlap < MIN_OCCUPIED_OVERLAP or abs(s2 - task.reference.s2) > MAX_S2_CHANGE:
-            raise StateSwitchError(
-                f"state switch at field point {point.label}, field_vector_au="
-                f"{list(point.field_vector_au)}: occupied-space overlap with zero field "
-                f"{overlap:.3f} (needs >= {MIN_OCCUPIED_OVERLAP}), <S^2> {s2:.4f} vs "
-                f"{task.reference.s2:.4f} at zero field; lower field_au or levels")
+        issues = state_issues(task.reference, point.field_vector_au, occupied,
+                              _orbital_sets(mf), s2, overlap)
+        if issues:
+            logger.debug("point %s is on another state: %s", point.label, "; ".join(issues))
     dipole = tuple(float(v) for v in _scf_dipole(mf, r, molecule)) if task.want_dipole else None
     energy = (float(mf.e_tot) if model.method in ("hf", "dft")
               else _correlated_energy(mf, model, task.scf, point.label))
@@ -374,6 +492,7 @@ def evaluate_point(task: PointTask) -> PointRecord:
         alpha = tuple(tuple(float(v) for v in row) for row in analytic_polarizability(mf, r))
     reference = None
     if task.reference is None:
-        reference = ZeroFieldReference(np.asarray(mf.make_rdm1()), occupied, s2)
+        reference = ZeroFieldReference(np.asarray(mf.make_rdm1()), occupied, s2,
+                                       symmetry_operations(mol, mf))
     return PointRecord(point, energy, float(mf.e_tot), dipole, cycles, tuple(attempts), s2,
-                       overlap, gradient, alpha, reference, dipole_error)
+                       overlap, gradient, alpha, reference, dipole_error, "; ".join(issues))

@@ -7,15 +7,17 @@ estimates -> Richardson extrapolation -> tensors -> invariants.
 from __future__ import annotations
 
 import logging
+import math
 import sys
 import time
 from dataclasses import dataclass
 
 import numpy as np
 
+from fieldprop.continuity import ContinuityReport, check_continuity
 from fieldprop.errors import UnstableResultError
 from fieldprop.execute import compute_points
-from fieldprop.extrapolate import ComponentEstimate, mark_unstable, richardson
+from fieldprop.extrapolate import ComponentEstimate, ComponentStatus, mark_unstable, richardson
 from fieldprop.job import Job
 from fieldprop.molecule import MoleculeSpec, build_molecule
 from fieldprop.plan import FieldPlan, plan_fields, stencil_estimate
@@ -70,6 +72,7 @@ class RunResult:
     backend_facts: dict
     wall_time_s: float
     warnings: tuple[str, ...] = ()
+    continuity: ContinuityReport | None = None
 
     @property
     def energy_au(self) -> float:
@@ -94,7 +97,34 @@ def make_tasks(job: Job, molecule: MoleculeSpec, plan: FieldPlan) -> list[PointT
             for p in plan.points]
 
 
-def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel) -> list[ComponentEstimate]:
+def _route_values(plan: FieldPlan, records, noise: NoiseModel):
+    """The differentiated quantity per point, (n, m), and its noise, (n,)."""
+    n = len(records)
+    if plan.route == "dipole":
+        return (np.array([r.dipole_au for r in records]),
+                np.broadcast_to(np.asarray(noise.dipole_au, dtype=float), (n,)))
+    if plan.route == "alpha":
+        return (np.array([np.ravel(r.alpha_au) for r in records]),
+                np.broadcast_to(np.asarray(noise.alpha_au, dtype=float), (n,)))
+    return (np.array([[r.energy_au] for r in records]),
+            np.broadcast_to(np.asarray(noise.energy_au, dtype=float), (n,)))
+
+
+def continuity(plan: FieldPlan, records, noise: NoiseModel) -> ContinuityReport:
+    """Taylor continuity of the route's quantity along every line of field points."""
+    values, eps = _route_values(plan, records, noise)
+    flagged = {i: r.state_issue for i, r in enumerate(records) if r.state_issue}
+    return check_continuity(plan.points, values, eps, flagged)
+
+
+def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel,
+                           excluded=frozenset(), departures=()) -> list[ComponentEstimate]:
+    """Richardson estimates of every component.
+
+    A component's ladder stops below the first level whose stencil uses an
+    ``excluded`` point (one at or beyond a Taylor departure): nothing is
+    extrapolated through it.
+    """
     energies = np.array([r.energy_au for r in records])
     dipoles = (np.array([r.dipole_au for r in records])
                if all(r.dipole_au is not None for r in records) else None)
@@ -103,16 +133,35 @@ def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel) -> list[
     per_point = {"energy": np.broadcast_to(np.asarray(noise.energy_au, dtype=float), (n,)),
                  "dipole": np.broadcast_to(np.asarray(noise.dipole_au, dtype=float), (n,)),
                  "alpha": np.broadcast_to(np.asarray(noise.alpha_au, dtype=float), (n,))}
+    labels = {d.index: d.label for d in departures}
     estimates = []
     for comp in plan.components:
         eps = per_point[comp.source.split("_")[0]]
-        values = [stencil_estimate(comp, s, energies, dipoles, alphas) for s in comp.stencils]
+        stencils = list(comp.stencils)
+        cut = next((k for k, s in enumerate(stencils)
+                    if any(p in excluded for p, _ in s.terms)), None)
+        if cut is not None:
+            stencils = stencils[:cut]
+        why = ""
+        if cut is not None:
+            hit = sorted({p for s in comp.stencils[cut:] for p, _ in s.terms} & set(excluded))
+            named = [labels[p] for p in hit if p in labels] or [plan.points[p].label
+                                                                 for p in hit[:1]]
+            why = (f"level {cut} and above use field points at or beyond a departure from "
+                   f"the zero-field state ({', '.join(named[:2])})")
+        if not stencils:
+            estimates.append(ComponentEstimate(math.nan, math.nan, (0, 0),
+                                               ComponentStatus.UNSTABLE, math.nan, ((),),
+                                               f"every field strength is excluded: {why}"))
+            continue
+        values = [stencil_estimate(comp, s, energies, dipoles, alphas) for s in stencils]
         floors = [sum(abs(w) * eps[p] for p, w in s.terms) / s.step_au ** comp.order
-                  for s in comp.stencils]
+                  for s in stencils]
         est = richardson(values, plan.ratio, floors)
         if comp.order > 0 and len(values) == 1:
-            est = mark_unstable(est, "one field strength: the truncation error cannot be "
-                                     "estimated; use levels >= 2")
+            est = mark_unstable(est, f"one field strength: {why}" if why else
+                                "one field strength: the truncation error cannot be "
+                                "estimated; use levels >= 2")
         estimates.append(est)
     return estimates
 
@@ -171,15 +220,40 @@ def compute(job: Job, workers: int = 1, progress: bool | None = None,
         progress = sys.stderr.isatty()
     records = compute_points(tasks, workers=workers, progress=progress)
     noise = noise_model(job, records)
-    estimates = extrapolate_components(plan, records, noise)
+    smooth = continuity(plan, records, noise)
+    estimates = extrapolate_components(plan, records, noise, smooth.excluded, smooth.departures)
     tensors = assemble(plan.components, estimates)
-    warnings = window_warnings(job, plan, tensors)
+    warnings = departure_warnings(job, plan, smooth) + window_warnings(job, plan, tensors)
     for text in warnings:
         logger.warning("%s", text)
     result = RunResult(job, molecule, plan, tuple(records), noise, tensors,
                        tuple(invariants(tensors)), facts, time.perf_counter() - start,
-                       warnings)
+                       warnings, smooth)
     return result
+
+
+QUANTITY = {"energy": ("energy", "Eh"), "dipole": ("dipole", "au"),
+            "alpha": ("analytic alpha", "au")}
+
+
+def departure_warnings(job: Job, plan: FieldPlan, report: ContinuityReport) -> tuple[str, ...]:
+    """One line per Taylor departure: where, by how much, and what it costs."""
+    what, unit = QUANTITY[plan.route]
+    out = []
+    for d in report.departures:
+        where = (f"{job.path}: field point {d.label}, field_vector_au="
+                 f"{[float(v) for v in d.field_vector_au]}: ")
+        if d.kind == "state":
+            what_happened = f"the state checks put it on another state than zero field ({d.reason})"
+        else:
+            what_happened = (f"its {what} departs from the Taylor prediction of the {d.nodes} "
+                             f"smaller-field points on its line by {d.residual:.2e} {unit} "
+                             f"({d.relative:.0%} of the field-induced change; noise "
+                             f"{d.noise:.1e}): another electronic state, or beyond the "
+                             "Taylor series' convergence")
+        out.append(where + what_happened + ". It and the larger fields on its line are left "
+                   "out of every derivative")
+    return tuple(out)
 
 
 def entry_window_au(plan: FieldPlan, entry: tuple[int, int]) -> tuple[float, float]:
@@ -189,33 +263,71 @@ def entry_window_au(plan: FieldPlan, entry: tuple[int, int]) -> tuple[float, flo
     return steps[k], steps[min(k + m, len(steps) - 1)]
 
 
-def window_warnings(job: Job, plan: FieldPlan, tensors) -> tuple[str, ...]:
-    """Warn when the job's own field_au lies below the stable window.
+#: A chosen entry at the smallest field whose table spread exceeds this many
+#: round-off floors is truncation-limited: a smaller field would do better.
+TRUNCATION_DOMINANCE = 10.0
+#: ... warned only when that error bar matters: above this fraction of the
+#: tensor's largest component.
+MATERIAL_ERROR = 1e-4
 
-    A significant component (|value| > 10 error) whose best entry does not use
-    the smallest field was noise-limited there: the job's h0 is below its window.
+
+def _balanced_field(plan: FieldPlan, est, order: int) -> float:
+    """The h0 at which the chosen entry's truncation error (~h^(2m+2)) and
+    round-off floor (~h^-n) would be equal, from their values at this h0."""
+    k, m = est.chosen_entry
+    spread = max(est.error_au - est.roundoff_au, 0.0)
+    floor = max(est.roundoff_au, 1e-300)
+    return plan.field_au * (floor / spread) ** (1.0 / (2 * m + 2 + order))
+
+
+def window_warnings(job: Job, plan: FieldPlan, tensors) -> tuple[str, ...]:
+    """Warn when the field ladder lies outside a component's stable window.
+
+    Below: a significant component (|value| > 10 error) whose best entry does not
+    use the smallest field was noise-limited there (job's field_au only).
+    Above: a component whose best entry starts at the smallest field and whose
+    error bar is set by the truncation error (table spread > TRUNCATION_DOMINANCE
+    round-off floors) and matters (> MATERIAL_ERROR of its tensor's largest
+    component) would be better from a smaller field; the warning names the h0
+    that would balance truncation and round-off (for the automatic window too).
     A component chosen at the largest field alone had no smaller field to
-    confirm it. With the automatic window both are expected and not warned.
+    confirm it (job's field_au only).
     """
-    if job.response.field_au_source != "job" or plan.levels < 2:
+    if plan.levels < 2:
         return ()
-    below, above = [], []
+    from_job = job.response.field_au_source == "job"
+    below, above, too_big = [], [], []
     for tensor in tensors.values():
+        largest = float(np.max(np.abs(tensor.value_au), initial=0.0))
         for c in tensor.components:
             est = c.estimate
             if not c.stable or c.plan.order == 0 or abs(est.value_au) <= 10 * est.error_au:
                 continue
             k, m = est.chosen_entry
+            if k == 0 and est.error_au - est.roundoff_au > TRUNCATION_DOMINANCE * \
+                    est.roundoff_au and est.error_au > MATERIAL_ERROR * largest:
+                too_big.append((c.plan.name, _balanced_field(plan, est, c.plan.order)))
+            if not from_job:
+                continue
             if k == plan.levels - 1:
                 above.append(c.plan.name)
             elif k > 0:
                 below.append(f"{c.plan.name} (from {plan.steps_au()[k]:g} au)")
     out = []
+    source = "[response] field_au" if from_job else "the automatic window's smallest field"
     if below:
         out.append(f"{job.path}: [response] field_au = {plan.field_au:g} au lies below the "
                    f"stable window of {len(below)} component(s), whose best Richardson entries "
                    f"start at a larger field: {', '.join(below[:4])}{' ...' if len(below) > 4 else ''}"
                    "; omit field_au for the automatic window")
+    if too_big:
+        names = [n for n, _ in too_big]
+        suggestion = max(h for _, h in too_big)
+        out.append(f"{job.path}: {source} = {plan.field_au:g} au lies above the stable window "
+                   f"of {len(names)} component(s), whose error bars are set by the truncation "
+                   f"error, > {TRUNCATION_DOMINANCE:g}x the round-off floor: "
+                   f"{', '.join(names[:4])}{' ...' if len(names) > 4 else ''}; field_au = "
+                   f"{suggestion:.2g} au would balance the two")
     if above:
         out.append(f"{job.path}: [response] only the largest field gave a usable estimate for "
                    f"{', '.join(above[:4])}{' ...' if len(above) > 4 else ''}: no smaller field "

@@ -17,17 +17,37 @@ from fieldprop.plan import FieldPoint
 
 
 @dataclass(frozen=True, eq=False)
+class SymmetryOperation:
+    """A point-group operation of the molecule (nuclei, charges and basis alike).
+
+    ``matrix`` (3, 3) acts on vectors of the input frame; ``representation``
+    (nao, nao) holds <chi_mu | R chi_nu>, the operation on the basis functions;
+    ``characters`` are those of the zero-field occupied space, one per orbital
+    set (see the backend): trace(C^T representation C), integers for a state of
+    the molecule's symmetry.
+    """
+
+    name: str
+    matrix: np.ndarray
+    representation: np.ndarray
+    characters: tuple[float, ...]
+
+
+@dataclass(frozen=True, eq=False)
 class ZeroFieldReference:
     """What each field point is started from and compared with.
 
     ``density`` is the converged zero-field AO density (shape (nao, nao), or
     (2, nao, nao) unrestricted): the warm start. ``occupied`` holds the occupied
-    orbital coefficients per spin (the state reference); ``s2`` is <S^2>.
+    orbital coefficients per spin (the state reference); ``s2`` is <S^2>;
+    ``symmetry`` the operations (of the largest abelian subgroup) whose
+    characters the zero-field state has, for the occupation-by-symmetry check.
     """
 
     density: np.ndarray
     occupied: tuple[np.ndarray, ...]
     s2: float
+    symmetry: tuple[SymmetryOperation, ...] = ()
 
 
 @dataclass(frozen=True, eq=False)
@@ -54,7 +74,10 @@ class PointRecord:
     ``occupied_overlap`` is the smallest singular value of the overlap between
     the occupied spaces at this field and at zero field (1 = same state).
     ``alpha_au`` (3, 3) is the analytic (CPHF/CPKS) polarizability at this field,
-    when asked for. ``gradient_norm`` is the norm of the converged SCF's orbital gradient: the
+    when asked for. ``state_issue`` is empty when the point is on the zero-field
+    state, and otherwise says which state check failed (occupied overlap below
+    MIN_OCCUPIED_OVERLAP, <S^2> moved, occupation by symmetry changed); such a
+    point is never differentiated through. ``gradient_norm`` is the norm of the converged SCF's orbital gradient: the
     measured convergence, from which the noise model is built.
     """
 
@@ -70,3 +93,4 @@ class PointRecord:
     alpha_au: tuple[tuple[float, float, float], ...] | None = None
     reference: ZeroFieldReference | None = field(default=None, repr=False)
     dipole_error_au: float = 0.0  # first-order estimate of the dipole's convergence error
+    state_issue: str = ""

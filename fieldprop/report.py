@@ -131,6 +131,11 @@ def _nested(array: np.ndarray, mask: np.ndarray):
     return [_nested(a, m) for a, m in zip(array, mask)]
 
 
+def _finite(x: float) -> float | None:
+    """JSON has no NaN: a missing number is null."""
+    return float(x) if math.isfinite(x) else None
+
+
 def result_document(result: RunResult) -> dict[str, Any]:
     """The result JSON of the contract (schema fieldprop-result-1), with extensions."""
     tensors = {}
@@ -152,11 +157,11 @@ def result_document(result: RunResult) -> dict[str, Any]:
                 "error": c.estimate.error_au if c.stable else None,
                 "status": c.estimate.status.value,
                 "reason": c.estimate.reason,
-                "roundoff_floor": c.estimate.roundoff_au,
+                "roundoff_floor": _finite(c.estimate.roundoff_au),
                 "richardson_entry": {"level": c.estimate.chosen_entry[0],
                                      "steps": c.estimate.chosen_entry[1]},
                 "window_au": list(entry_window_au(result.plan, c.estimate.chosen_entry)),
-                "richardson_table": [list(col) for col in c.estimate.table],
+                "richardson_table": [[_finite(v) for v in col] for col in c.estimate.table],
             } for c in t.components],
         }
     invariants = {}
@@ -191,6 +196,7 @@ def result_document(result: RunResult) -> dict[str, Any]:
         "noise_model": {"largest_" + k: v for k, v in result.noise.largest().items()},
         "scf_retries": [{"point": r.point.label, "attempts": list(r.attempts)}
                         for r in result.records if len(r.attempts) > 1],
+        "state_checks": state_checks_document(result),
         "backend": result.backend_facts,
         "unit_factors": {p: {label: f for label, f in DISPLAY_UNITS[p]}
                          for p in PROPERTY_ORDER},
@@ -198,6 +204,30 @@ def result_document(result: RunResult) -> dict[str, Any]:
         "caution": CAUTION,
         "wall_time_s": result.wall_time_s,
     }
+
+
+def state_checks_document(result: RunResult) -> dict[str, Any]:
+    """What the state checks measured: the worst point of each, and every departure."""
+    records = result.records[1:]
+    out: dict[str, Any] = {
+        "smallest_occupied_overlap": min((r.occupied_overlap for r in records), default=1.0),
+        "largest_s2_change": max((abs(r.s2 - result.records[0].s2) for r in records),
+                                 default=0.0),
+    }
+    report = result.continuity
+    if report is not None:
+        out["taylor_continuity"] = {
+            "quantity": result.plan.route,
+            "points_checked": report.checked,
+            "largest_relative_residual": report.largest_relative,
+            "departures": [{"point": d.label, "field_vector_au": list(d.field_vector_au),
+                            "kind": d.kind, "reason": d.reason, "residual": d.residual, "noise": d.noise, "change": d.change,
+                            "relative": d.relative if d.kind == "taylor" else None,
+                            "nodes": d.nodes}
+                           for d in report.departures],
+            "excluded_points": sorted(result.plan.points[i].label for i in report.excluded),
+        }
+    return out
 
 
 def check_output_path(path: Path, what: str = "--json") -> None:

@@ -61,35 +61,87 @@ def test_a_point_that_never_converges_fails_the_job(tmp_path, capsys, monkeypatc
     assert not (tmp_path / "water.result.json").exists()  # no number formed
 
 
-def test_a_state_switch_at_one_field_point_is_caught(tmp_path, capsys, monkeypatch):
-    # At the point F = (0, 0, +h), steer the SCF onto another electronic state:
-    # the determinant with the highest occupied orbital of the zero-field ground
-    # state replaced by the lowest virtual one, held there by the maximum-overlap
-    # method (PySCF's scf.addons.mom_occ). An excited SCF solution is a
-    # stationary point too, as a strong field or a poor start can reach
-    # (common practice); fieldprop must refuse to difference across it.
+def _steer_to_excited_state(monkeypatch, at_field):
+    """At the field vector ``at_field``, steer the SCF onto another electronic state:
+    the determinant with the zero-field ground state's highest occupied orbital
+    replaced by its lowest virtual one (1b1^2 -> 4a1^2 in water), held by the
+    maximum-overlap method (occupy the orbitals most like that determinant's). An
+    excited SCF solution is a stationary point too, as a strong field or a poor
+    start can reach (common practice); fieldprop must not difference across it."""
     from pyscf import scf
 
     real = backend_pyscf._apply_field
 
     def steer(mf, mol, molecule, field_vector_au):
         r = real(mf, mol, molecule, field_vector_au)
-        if tuple(field_vector_au) == (0.0, 0.0, 0.002):
+        if tuple(field_vector_au) == at_field:
             ground = scf.RHF(mol).run()
-            occ = ground.mo_occ.copy()
-            homo = int(np.where(occ > 0)[0][-1])
-            occ[homo], occ[homo + 1] = 0.0, 2.0
-            scf.addons.mom_occ(mf, ground.mo_coeff, occ)
+            nocc = mol.nelectron // 2
+            target = ground.mo_coeff[:, list(range(nocc - 1)) + [nocc]]
+            s_ao = mol.intor_symmetric("int1e_ovlp")
+
+            def get_occ(mo_energy=None, mo_coeff=None):
+                weight = ((target.T @ s_ao @ mo_coeff) ** 2).sum(axis=0)
+                occ = np.zeros(len(weight))
+                occ[np.argsort(-weight)[:nocc]] = 2.0
+                return occ
+
+            mf.get_occ = get_occ
         return r
 
     monkeypatch.setattr(backend_pyscf, "_apply_field", steer)
+
+
+def test_a_state_switch_at_the_smallest_field_leaves_no_number(tmp_path, capsys, monkeypatch):
+    _steer_to_excited_state(monkeypatch, (0.0, 0.0, 0.002))
     job = tmp_path / "water.toml"
     job.write_text(WATER.format(extra=""))
     assert main(["run", str(job), "--quiet"]) == 1
-    err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and "state switch at field point L0(0,0,+1)" in err[0], err
-    assert "field_vector_au=[0.0, 0.0, 0.002]" in err[0]
-    assert not (tmp_path / "water.result.json").exists()
+    err = capsys.readouterr().err
+    assert "field point L0(0,0,+1), field_vector_au=[0.0, 0.0, 0.002]" in err
+    assert "another state than zero field" in err
+    # Every field strength on the z axis is beyond the switch: dipole_z and
+    # alpha_zz have no number, the other components do.
+    assert "unstable" in err and "alpha_zz" in err and "dipole_z" in err
+    doc = json.loads((tmp_path / "water.result.json").read_text())
+    assert doc["tensors"]["alpha"]["value"][2][2] is None
+    assert doc["tensors"]["alpha"]["value"][0][0] > 1.0
+    departures = doc["state_checks"]["taylor_continuity"]["departures"]
+    assert [d["point"] for d in departures] == ["L0(0,0,+1)"]
+    assert "L1(0,0,-1)" in doc["state_checks"]["taylor_continuity"]["excluded_points"]
+
+
+def test_a_state_switch_at_a_larger_field_shortens_the_ladder(tmp_path, capsys, monkeypatch):
+    _steer_to_excited_state(monkeypatch, (0.0, 0.0, 0.008))
+    job = tmp_path / "water.toml"
+    job.write_text(WATER.format(extra="levels = 4"))
+    assert main(["run", str(job), "--quiet"]) == 0
+    err = capsys.readouterr().err
+    assert "field point L2(0,0,+1), field_vector_au=[0.0, 0.0, 0.008]" in err
+    doc = json.loads((tmp_path / "water.result.json").read_text())
+    comps = {c["name"]: c for c in doc["tensors"]["alpha"]["components"]}
+    # alpha_zz keeps levels 0 and 1 only: nothing is extrapolated through the switch.
+    assert len(comps["alpha_zz"]["richardson_table"][0]) == 2
+    assert comps["alpha_zz"]["value"] is not None
+    assert len(comps["alpha_xx"]["richardson_table"][0]) == 4
+    assert sorted(doc["state_checks"]["taylor_continuity"]["excluded_points"]) == [
+        "L2(0,0,+1)", "L2(0,0,-1)", "L3(0,0,+1)", "L3(0,0,-1)"]
+
+
+def test_the_occupation_by_symmetry_alone_catches_the_switch(tmp_path, capsys, monkeypatch):
+    # With the overlap and <S^2> checks switched off, the characters of the
+    # occupied space under the C2 axis and mirror planes the field keeps must
+    # still see that an a1 orbital replaced a b1 one.
+    monkeypatch.setattr(backend_pyscf, "MIN_OCCUPIED_OVERLAP", -1.0)
+    monkeypatch.setattr(backend_pyscf, "MAX_S2_CHANGE", np.inf)
+    _steer_to_excited_state(monkeypatch, (0.0, 0.0, 0.002))
+    job = tmp_path / "water.toml"
+    job.write_text(WATER.format(extra=""))
+    assert main(["run", str(job), "--quiet"]) == 1
+    err = capsys.readouterr().err
+    assert "occupation by symmetry changed" in err and "C2 rotation about (0.000, 0.000, " \
+        "1.000)" in err
+    assert "overlap" not in err.split("L0(0,0,+1)")[1].split("\n")[0]
 
 
 def test_failures_are_reported_from_worker_processes(tmp_path, capsys, monkeypatch):
@@ -111,3 +163,47 @@ def test_failures_are_reported_from_worker_processes(tmp_path, capsys, monkeypat
     assert all(t in err for t in targets) and "and 1 more point" in err
     assert "Traceback" not in err
     assert not (tmp_path / "water.result.json").exists()
+
+
+def test_a_strong_field_that_moves_the_electron_pair_of_stretched_lih_is_caught(tmp_path):
+    # LiH stretched to 10 bohr (our geometry): the field along the bond moves its
+    # electron pair between the two ends, and with it the dipole from -5 au to
+    # +11 au by 0.032 au (a field-induced change of the ground state; the occupied
+    # overlap with zero field falls to 0.65). The ladder of this job reaches
+    # 0.064 au; the tool must leave 0.032 au and beyond out, say where, and still
+    # give alpha from the smaller fields, agreeing with CPHF (analytic_reference).
+    from analytic_reference import cphf_polarizability
+    from support import agree, mean_field, run_job
+
+    job, result = run_job(tmp_path, """
+        [molecule]
+        geometry = \"\"\"
+        Li 0 0 0
+        H  0 0 10.0
+        \"\"\"
+        units = "bohr"
+        [model]
+        method = "hf"
+        basis = "6-31g"
+        [response]
+        properties = ["alpha"]
+        route = "dipole"
+        field_au = 0.004
+        levels = 5
+        """)
+    report = result.continuity
+    departed = {d.label: d.kind for d in report.departures}
+    assert departed.get("L3(0,0,+1)") == "state", departed
+    assert all(label.startswith("L3") for label in departed), departed
+    excluded = {result.plan.points[i].label for i in report.excluded}
+    assert {"L3(0,0,+1)", "L3(0,0,-1)", "L4(0,0,+1)", "L4(0,0,-1)"} <= excluded
+    assert any("L3(0,0,+1)" in w and "field_vector_au=[0.0, 0.0, 0.032]" in w
+               for w in result.warnings)
+    alpha = result.tensors["alpha"]
+    assert alpha.stable.all()
+    zz = next(c for c in alpha.components if c.plan.name == "alpha_zz")
+    assert len(zz.estimate.table[0]) == 3  # 0.004, 0.008 and 0.016 au only
+    reference = cphf_polarizability(mean_field(job), result.molecule.origin_bohr)
+    assert reference[2, 2] > 300.0  # the huge axial response of the stretched bond
+    assert agree(alpha.value_au, alpha.error_au, reference, 1e-6).all(), (
+        alpha.value_au, alpha.error_au, reference)
