@@ -3,7 +3,9 @@
 One PNG per property (``<DIR>/<property>.png``), one panel per computed component.
 In each panel the raw estimates D(k, 0) and every extrapolated column D(k, m) are
 drawn against the field strength h_k of their first level; the chosen entry is
-marked with its error bar, and the band value +- error is shaded. A stable
+marked with its error bar, and the band value +- error is shaded; fields left
+out of the component (at or beyond a departure from the zero-field state) are
+shaded red. A stable
 derivative shows columns that flatten and meet; noise shows as scatter at small h,
 contamination as drift at large h. Written with matplotlib's Agg backend (no
 display needed).
@@ -42,6 +44,10 @@ def write_plots(tensors, plan: FieldPlan, directory: Path) -> dict[str, list[str
                 hs = steps[:len(column)]
                 ax.plot(hs, column, marker="o", ms=3, lw=1,
                         label="raw" if m == 0 else f"{m} step{'s' if m > 1 else ''}")
+            kept = len(est.table[0]) if est.table else 0
+            if kept < len(steps):  # fields left out: at or beyond a departure from the state
+                ax.axvspan(steps[kept] / plan.ratio ** 0.5, steps[-1] * plan.ratio ** 0.5,
+                           color="tab:red", alpha=0.12, lw=0, label="left out")
             k, m = est.chosen_entry
             if comp.stable and math.isfinite(est.value_au):
                 ax.axhspan(est.value_au - est.error_au, est.value_au + est.error_au,
