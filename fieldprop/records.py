@@ -61,7 +61,8 @@ class PointTask:
     want_dipole: bool
     reference: ZeroFieldReference | None = None
     want_alpha: bool = False  # analytic CPHF/CPKS polarizability at this field
-    correct_dipole: bool = False  # Newton-correct the dipole (open shells; dipole route)
+    dipole_route: bool = False  # the dipole is differentiated: open shells get the
+    # full-Hessian estimate of its convergence error (backend.newton_dipole_step)
 
 
 @dataclass(frozen=True, eq=False)
@@ -95,7 +96,3 @@ class PointRecord:
     reference: ZeroFieldReference | None = field(default=None, repr=False)
     dipole_error_au: float = 0.0  # first-order estimate of the dipole's convergence error
     state_issue: str = ""
-    #: True when ``dipole_au`` carries the Newton step that removes the remaining
-    #: orbital gradient (open shells on the dipole route); ``dipole_error_au`` is
-    #: then the error left after it.
-    dipole_corrected: bool = False

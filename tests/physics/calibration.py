@@ -92,11 +92,22 @@ def collect(tmp_dir: Path, cases=VALIDATION_SET):
             result = compute(job, progress=False)
             mf = mean_field(job)
             origin = result.molecule.origin_bohr
-            refs = {"alpha": (cphf_polarizability(mf, origin), np.zeros((3, 3)))}
+            # The references' own uncertainty, from the reference SCF's measured
+            # orbital gradient g (support.mean_field converges it to ~1e-11): the
+            # CPHF alpha errs by ~g |alpha| plus its residual tolerance (1e-10
+            # relative, analytic_reference._RESIDUAL_TOL) times |alpha|; the SCF
+            # dipole by ~g for a closed shell and up to ~6 g for the open shells
+            # here (measured against second-order SCF at 1e-13), hence 10 g.
+            g_ref = float(np.linalg.norm(mf.get_grad(mf.mo_coeff, mf.mo_occ)))
+            alpha_ref = cphf_polarizability(mf, origin)
+            alpha_err = (g_ref + 1e-10) * max(float(np.abs(alpha_ref).max()), 1.0)
+            refs = {"alpha": (alpha_ref, np.full((3, 3), alpha_err))}
             if "dipole" in props:
                 from analytic_reference import scf_dipole
 
-                refs["dipole"] = (scf_dipole(mf, origin), np.zeros(3))
+                open_shell = MOLECULES[name][3] > 1
+                refs["dipole"] = (scf_dipole(mf, origin),
+                                  np.full(3, (10.0 if open_shell else 1.0) * g_ref))
             analytic = reference_tensors(job, result)
             refs["beta"] = (analytic.value["beta"], analytic.error["beta"])
             label = f"{name} {model.split(chr(10))[-1].split('=')[-1].strip()}"
