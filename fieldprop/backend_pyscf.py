@@ -52,8 +52,27 @@ def _pyscf_basis(basis):
     return out
 
 
+def _pyscf_ecp(basis, symbols) -> dict[str, str]:
+    """{symbol: basis name} for the elements whose named basis comes with an
+    effective core potential (def2 and LANL sets on heavy elements, as PySCF's
+    basis library defines them); basis text given inline has none."""
+    from pyscf import gto
+
+    names = ({s: basis for s in set(symbols)} if isinstance(basis, str)
+             else {s: t for s, t in basis if "\n" not in t.strip()})
+    out = {}
+    for symbol, name in names.items():
+        try:
+            if gto.basis.load_ecp(name, symbol):
+                out[symbol] = name
+        except (KeyError, RuntimeError, ValueError, OSError, IndexError):
+            continue  # the basis itself is judged (and refused) by build_mole
+    return out
+
+
 def build_mole(molecule, basis, where: str = "[model] basis"):
-    """A PySCF ``Mole`` in bohr; basis problems become InputError naming ``where``."""
+    """A PySCF ``Mole`` in bohr, with the basis' effective core potentials where it
+    has them; basis problems become InputError naming ``where``."""
     from pyscf import gto
 
     try:
@@ -70,7 +89,8 @@ def build_mole(molecule, basis, where: str = "[model] basis"):
             # ... and so would NumPy's, normalising a zero or negative exponent.
             warnings.filterwarnings("ignore", category=RuntimeWarning)
             mol = gto.M(atom=[(s, c) for s, c in zip(molecule.symbols, molecule.coords_bohr)],
-                        unit="Bohr", basis=_pyscf_basis(basis), charge=molecule.charge,
+                        unit="Bohr", basis=_pyscf_basis(basis),
+                        ecp=_pyscf_ecp(basis, molecule.symbols), charge=molecule.charge,
                         spin=molecule.spin, verbose=0)
         missing = sorted({s for s in molecule.symbols} - {mol.atom_symbol(i) for i in
                                                           range(mol.natm) if mol.atom_nshells(i)})
@@ -92,14 +112,16 @@ def validate(job: Job, molecule) -> dict:
     """Check what only PySCF can judge (basis, functional) before any work.
 
     Returns facts for provenance: number of basis functions, Cartesian or
-    spherical functions, the functional as libxc parses it, PySCF's version.
+    spherical functions, the electrons each atom's effective core potential
+    replaces (0 without one), the functional as libxc parses it, PySCF's version.
     """
     import pyscf
     from pyscf.dft import libxc
 
     mol = build_mole(molecule, job.model.basis, f"{job.path}: [model] basis")
     facts = {"pyscf_version": pyscf.__version__, "n_basis_functions": int(mol.nao),
-             "basis_functions": "cartesian" if mol.cart else "spherical"}
+             "basis_functions": "cartesian" if mol.cart else "spherical",
+             "core_electrons": [int(mol.atom_nelec_core(i)) for i in range(mol.natm)]}
     if job.model.method == "dft":
         try:
             libxc.parse_xc(job.model.functional)

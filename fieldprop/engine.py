@@ -6,6 +6,7 @@ estimates -> Richardson extrapolation -> tensors -> invariants.
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import math
 import sys
@@ -209,6 +210,8 @@ def compute(job: Job, workers: int = 1, progress: bool | None = None,
     start = time.perf_counter()
     molecule = build_molecule(job.molecule, job.response.origin)
     facts = validate(job, molecule)
+    if any(facts["core_electrons"]):
+        molecule = dataclasses.replace(molecule, core_electrons=tuple(facts["core_electrons"]))
     plan = make_plan(job, route)
     tasks = make_tasks(job, molecule, plan)
     logger.info("%s: %s/%s%s, %d field points on %d levels (h0 = %g au, ratio %g), route %s, "

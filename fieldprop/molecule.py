@@ -38,6 +38,8 @@ class MoleculeSpec:
     charge: int
     multiplicity: int
     origin_bohr: tuple[float, float, float]
+    #: Electrons an effective core potential replaces, per atom (empty: none).
+    core_electrons: tuple[int, ...] = ()
 
     @property
     def n_electrons(self) -> int:
@@ -57,8 +59,15 @@ class MoleculeSpec:
         return "".join(s + (str(counts[s]) if counts[s] > 1 else "") for s in order)
 
     def nuclear_dipole_au(self) -> np.ndarray:
-        """sum_A Z_A (R_A - O), shape (3,), in e bohr."""
+        """sum_A Z_A (R_A - O), shape (3,), in e bohr.
+
+        With effective core potentials Z_A is the core's charge, Z_A minus the
+        electrons the potential replaces: the electrons left are the valence
+        ones, and the dipole of a neutral molecule stays origin independent.
+        """
         z = np.asarray(self.nuclear_charges, dtype=float)
+        if self.core_electrons:
+            z = z - np.asarray(self.core_electrons, dtype=float)
         r = np.asarray(self.coords_bohr) - np.asarray(self.origin_bohr)
         return z @ r
 

@@ -67,6 +67,19 @@ def _entry_text(est) -> str:
     return f"h{k}, {m} step{'s' if m != 1 else ''}"
 
 
+def _ecp_text(result: RunResult) -> str:
+    """'; effective core potentials: I (28 electrons)' or ''."""
+    cores = result.molecule.core_electrons
+    seen = {}
+    for symbol, n in zip(result.molecule.symbols, cores):
+        if n:
+            seen.setdefault(symbol, n)
+    if not seen:
+        return ""
+    return "; effective core potentials: " + ", ".join(f"{s} ({n} electrons)"
+                                                       for s, n in seen.items())
+
+
 def write_tables(result: RunResult, out: TextIO) -> None:
     """The human-readable report: header, one table per tensor, invariants."""
     job, plan = result.job, result.plan
@@ -78,7 +91,8 @@ def write_tables(result: RunResult, out: TextIO) -> None:
     out.write(f"fieldprop {__version__}: {job.path}\n")
     out.write(f"  molecule {result.molecule.formula}, charge {result.molecule.charge}, "
               f"multiplicity {result.molecule.multiplicity}; {model_text} ({model.reference}); "
-              f"{result.backend_facts.get('n_basis_functions', '?')} basis functions\n")
+              f"{result.backend_facts.get('n_basis_functions', '?')} basis functions"
+              f"{_ecp_text(result)}\n")
     origin = ", ".join(f"{v:.6f}" for v in result.molecule.origin_bohr)
     steps = ", ".join(f"{h:g}" for h in plan.steps_au())
     out.write(f"  route: {plan.route} (derivatives of "

@@ -137,3 +137,41 @@ def test_the_newton_step_measures_an_open_shell_dipole_error(xc):
     assert before > 1e-9, "the loose SCF was already converged: the test lost its premise"
     assert abs(np.linalg.norm(step) - before) < 0.1 * before, (before, np.linalg.norm(step))
     assert after < 1e-2 * before, (before, after)
+
+
+def test_effective_core_potentials_enter_the_hamiltonian_and_the_dipole(tmp_path):
+    # HI in def2-SVP (our geometry, 1.609 A, near the usual bond length): iodine's
+    # 28 core electrons are the basis set's effective core potential, as PySCF's
+    # basis library defines it. The zero-field energy must be PySCF's own with that
+    # potential, and the finite-field dipole the analytic SCF dipole: a nuclear
+    # dipole with the full Z = 53 of iodine would be off by 28 (R_I - O), ~9 au.
+    from pyscf import gto, scf
+
+    job, result = run_job(tmp_path, """
+        [molecule]
+        geometry = \"\"\"
+        H 0 0 0
+        I 0.3 -0.2 1.55
+        \"\"\"
+        [model]
+        method = "hf"
+        basis = "def2-svp"
+        [response]
+        properties = ["dipole", "alpha"]
+        route = "energy"
+        field_au = 0.002
+        """)
+    assert result.molecule.core_electrons == (0, 28)
+    mol = gto.M(atom="H 0 0 0; I 0.3 -0.2 1.55", basis="def2-svp", ecp={"I": "def2-svp"},
+                verbose=0)
+    mf = scf.RHF(mol)
+    mf.conv_tol, mf.conv_tol_grad = 1e-12, 1e-10
+    mf.kernel()
+    assert result.energy_au == pytest.approx(mf.e_tot, abs=1e-9)
+    dipole = mf.dip_moment(unit="au", verbose=0)  # neutral: origin independent
+    t = result.tensors["dipole"]
+    assert agree(t.value_au, t.error_au, dipole, 1e-7).all(), (t.value_au, dipole)
+    alpha = result.tensors["alpha"]
+    reference = cphf_polarizability(mf)
+    assert agree(alpha.value_au, alpha.error_au, reference, 1e-5).all(), (alpha.value_au,
+                                                                          reference)
