@@ -97,3 +97,45 @@ def test_stencil_rescaling_matches_the_plan():
     h = 0.002
     rebuilt = -sum(w * (energy(h * OFFSETS[p]) - E0) for p, w in s0.terms) / h**4
     assert rebuilt == pytest.approx(planned, rel=1e-9)
+
+
+@pytest.mark.parametrize("prop, name, field_au", [
+    ("alpha", "alpha_zz", 0.02),
+    ("beta", "beta_zzz", 0.01),
+])
+def test_a_field_above_the_window_is_warned_with_a_better_one(prop, name, field_au):
+    # A job's own field_au far above the window: the best entry starts at the
+    # smallest field and its error is truncation. The warning must say so and
+    # name an h0 within a factor of 2 of the step that minimises the true error of
+    # that entry on the same two-level ladder (scanned on the model above).
+    from fieldprop.engine import window_warnings
+    from fieldprop.tensors import assemble
+
+    eps, levels = 1e-12, 2
+    plan = plan_fields((prop,), field_au, 2.0, levels, "energy")
+    comp = next(c for c in plan.components if c.name == name)
+    set_offsets(plan)
+    records = [SimpleNamespace(energy_au=energy(np.array(p.field_vector_au)), dipole_au=None)
+               for p in plan.points]
+    tensors = assemble(plan.components, extrapolate_components(plan, records,
+                                                               NoiseModel(eps, 0.0)))
+    job = SimpleNamespace(path="job.toml", response=SimpleNamespace(field_au_source="job"))
+    (text,) = [w for w in window_warnings(job, plan, tensors) if "lies above" in w]
+    assert name in text
+    suggested = float(text.split("field_au = ")[-1].split()[0])
+    grid = field_au * np.logspace(-3, 0, 200)
+    best = grid[np.argmin([column_error(comp, h, levels - 1, eps) for h in grid])]
+    assert 0.5 <= suggested / best <= 2.0, (suggested, best)
+
+
+def test_a_field_inside_the_window_is_not_warned():
+    from fieldprop.engine import window_warnings
+    from fieldprop.tensors import assemble
+
+    plan = plan_fields(("alpha",), 0.002, 2.0, 3, "energy")
+    records = [SimpleNamespace(energy_au=energy(np.array(p.field_vector_au)), dipole_au=None)
+               for p in plan.points]
+    tensors = assemble(plan.components, extrapolate_components(plan, records,
+                                                               NoiseModel(1e-12, 0.0)))
+    job = SimpleNamespace(path="job.toml", response=SimpleNamespace(field_au_source="job"))
+    assert window_warnings(job, plan, tensors) == ()
