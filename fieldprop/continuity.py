@@ -116,6 +116,7 @@ class ContinuityReport:
     largest_relative: float
     departures: tuple[Departure, ...]
     excluded: frozenset[int]
+    cause: dict | None = None  # excluded point index -> label of its line's departure
 
 
 def _line(offsets: tuple[int, int, int]) -> tuple[tuple[int, int, int], int]:
@@ -161,7 +162,7 @@ def check_continuity(points, values, noise, flagged=None, relative=RELATIVE_DEPA
         direction, factor_int = _line(p.offsets)
         strength = math.copysign(float(np.linalg.norm(p.field_vector_au)), factor_int)
         lines.setdefault(direction, []).append((strength, i))
-    checked, largest, found, excluded = 0, 0.0, [], set()
+    checked, largest, found, cause = 0, 0.0, [], {}
     for members in lines.values():
         members.sort(key=lambda m: abs(m[0]))
         strengths = sorted({abs(s) for s, _ in members})
@@ -175,7 +176,7 @@ def check_continuity(points, values, noise, flagged=None, relative=RELATIVE_DEPA
         departed = False
         for size, group in groups:
             if departed:
-                excluded.update(i for _, i in group)
+                cause.update((i, departed_at) for _, i in group)
                 continue
             refused = [(s, i) for s, i in group if i in flagged]
             for s, i in refused:
@@ -204,8 +205,9 @@ def check_continuity(points, values, noise, flagged=None, relative=RELATIVE_DEPA
                     if residual > factor * sigma:
                         largest = max(largest, residual / change if change > 0 else math.inf)
             if departed:
-                excluded.update(i for _, i in group)
+                departed_at = found[-1].label
+                cause.update((i, departed_at) for _, i in group)
             else:
                 node_groups.append(group)
     found.sort(key=lambda d: d.index)
-    return ContinuityReport(checked, largest, tuple(found), frozenset(excluded))
+    return ContinuityReport(checked, largest, tuple(found), frozenset(cause), cause)

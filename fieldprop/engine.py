@@ -119,13 +119,14 @@ def continuity(plan: FieldPlan, records, noise: NoiseModel) -> ContinuityReport:
 
 
 def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel,
-                           excluded=frozenset(), departures=()) -> list[ComponentEstimate]:
+                           excluded=None) -> list[ComponentEstimate]:
     """Richardson estimates of every component.
 
     A component's ladder stops below the first level whose stencil uses an
-    ``excluded`` point (one at or beyond a Taylor departure): nothing is
-    extrapolated through it.
+    ``excluded`` point ({point index: label of the departure that excluded it},
+    ContinuityReport.cause): nothing is extrapolated through another state.
     """
+    excluded = excluded or {}
     energies = np.array([r.energy_au for r in records])
     dipoles = (np.array([r.dipole_au for r in records])
                if all(r.dipole_au is not None for r in records) else None)
@@ -134,7 +135,6 @@ def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel,
     per_point = {"energy": np.broadcast_to(np.asarray(noise.energy_au, dtype=float), (n,)),
                  "dipole": np.broadcast_to(np.asarray(noise.dipole_au, dtype=float), (n,)),
                  "alpha": np.broadcast_to(np.asarray(noise.alpha_au, dtype=float), (n,))}
-    labels = {d.index: d.label for d in departures}
     estimates = []
     for comp in plan.components:
         eps = per_point[comp.source.split("_")[0]]
@@ -145,9 +145,7 @@ def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel,
             stencils = stencils[:cut]
         why = ""
         if cut is not None:
-            hit = sorted({p for s in comp.stencils[cut:] for p, _ in s.terms} & set(excluded))
-            named = [labels[p] for p in hit if p in labels] or [plan.points[p].label
-                                                                 for p in hit[:1]]
+            named = sorted({excluded[p] for p, _ in comp.stencils[cut].terms if p in excluded})
             why = (f"level {cut} and above use field points at or beyond a departure from "
                    f"the zero-field state ({', '.join(named[:2])})")
         if not stencils:
@@ -224,7 +222,7 @@ def compute(job: Job, workers: int = 1, progress: bool | None = None,
     records = compute_points(tasks, workers=workers, progress=progress)
     noise = noise_model(job, records)
     smooth = continuity(plan, records, noise)
-    estimates = extrapolate_components(plan, records, noise, smooth.excluded, smooth.departures)
+    estimates = extrapolate_components(plan, records, noise, smooth.cause)
     tensors = assemble(plan.components, estimates)
     warnings = departure_warnings(job, plan, smooth) + window_warnings(job, plan, tensors)
     for text in warnings:

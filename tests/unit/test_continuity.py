@@ -153,8 +153,7 @@ def test_components_stop_below_the_departure_and_keep_their_accuracy():
     flagged = {labels.index("L2(0,0,+1)"): "moved"}
     report = check_continuity(plan.points, energy[:, None], np.full(len(f), 1e-12), flagged)
     noise = NoiseModel(1e-12, 1e-10)
-    estimates = extrapolate_components(plan, _records(plan, energy), noise, report.excluded,
-                                       report.departures)
+    estimates = extrapolate_components(plan, _records(plan, energy), noise, report.cause)
     by_name = dict(zip((c.name for c in plan.components), estimates))
     assert len(by_name["alpha_zz"].table[0]) == 2  # levels 0 and 1 only
     assert len(by_name["alpha_xx"].table[0]) == 4
@@ -171,7 +170,7 @@ def test_a_component_with_every_level_excluded_has_no_number():
     report = check_continuity(plan.points, energy[:, None], np.full(len(f), 1e-12),
                               {labels.index("L0(0,+1,0)"): "moved"})
     estimates = extrapolate_components(plan, _records(plan, energy), NoiseModel(1e-12, 1e-10),
-                                       report.excluded, report.departures)
+                                       report.cause)
     yy = dict(zip((c.name for c in plan.components), estimates))["alpha_yy"]
     assert yy.status.value == "unstable" and "L0(0,+1,0)" in yy.reason
     tensor = assemble(plan.components, estimates)["alpha"]
