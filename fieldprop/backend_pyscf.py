@@ -63,8 +63,12 @@ def _pyscf_ecp(basis, symbols) -> dict[str, str]:
     out = {}
     for symbol, name in names.items():
         try:
-            if gto.basis.load_ecp(name, symbol):
-                out[symbol] = name
+            with warnings.catch_warnings():
+                # PySCF's advice to install basis-set-exchange, printed for a
+                # name it does not know, would add lines to stderr.
+                warnings.simplefilter("ignore")
+                if gto.basis.load_ecp(name, symbol):
+                    out[symbol] = name
         except (KeyError, RuntimeError, ValueError, OSError, IndexError):
             continue  # the basis itself is judged (and refused) by build_mole
     return out
