@@ -79,8 +79,9 @@ class PointRecord:
     when asked for. ``state_issue`` is empty when the point is on the zero-field
     state, and otherwise says which state check failed (occupied overlap below
     MIN_OCCUPIED_OVERLAP, <S^2> moved, occupation by symmetry changed); such a
-    point is never differentiated through. ``gradient_norm`` is the norm of the converged SCF's orbital gradient: the
-    measured convergence, from which the noise model is built.
+    point is never differentiated through. ``gradient_norm`` is the norm of the
+    converged SCF's orbital gradient: the measured convergence, from which the
+    noise model is built.
     """
 
     point: FieldPoint

@@ -233,10 +233,10 @@ def state_checks_document(result: RunResult) -> dict[str, Any]:
         out["taylor_continuity"] = {
             "quantity": result.plan.route,
             "points_checked": report.checked,
-            "largest_relative_residual": report.largest_relative,
+            "largest_relative_residual": _finite(report.largest_relative),
             "departures": [{"point": d.label, "field_vector_au": list(d.field_vector_au),
                             "kind": d.kind, "reason": d.reason, "residual": d.residual, "noise": d.noise, "change": d.change,
-                            "relative": d.relative if d.kind == "taylor" else None,
+                            "relative": _finite(d.relative) if d.kind == "taylor" else None,
                             "nodes": d.nodes}
                            for d in report.departures],
             "excluded_points": sorted(result.plan.points[i].label for i in report.excluded),
