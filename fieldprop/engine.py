@@ -53,6 +53,10 @@ class NoiseModel:
     dipole_au: float | tuple[float, ...]  # e bohr
     alpha_au: float | tuple[float, ...] = 0.0  # au
 
+    def per_point(self, kind: str, n: int) -> np.ndarray:
+        """The (n,) noise of "energy", "dipole" or "alpha" at each point."""
+        return np.broadcast_to(np.asarray(getattr(self, kind + "_au"), dtype=float), (n,))
+
     def largest(self) -> dict[str, float]:
         """The largest noise of each quantity over the points (for reports)."""
         return {k: float(np.max(getattr(self, k))) for k in ("energy_au", "dipole_au",
@@ -100,15 +104,13 @@ def make_tasks(job: Job, molecule: MoleculeSpec, plan: FieldPlan) -> list[PointT
 
 def _route_values(plan: FieldPlan, records, noise: NoiseModel):
     """The differentiated quantity per point, (n, m), and its noise, (n,)."""
-    n = len(records)
     if plan.route == "dipole":
-        return (np.array([r.dipole_au for r in records]),
-                np.broadcast_to(np.asarray(noise.dipole_au, dtype=float), (n,)))
-    if plan.route == "alpha":
-        return (np.array([np.ravel(r.alpha_au) for r in records]),
-                np.broadcast_to(np.asarray(noise.alpha_au, dtype=float), (n,)))
-    return (np.array([[r.energy_au] for r in records]),
-            np.broadcast_to(np.asarray(noise.energy_au, dtype=float), (n,)))
+        values = [r.dipole_au for r in records]
+    elif plan.route == "alpha":
+        values = [np.ravel(r.alpha_au) for r in records]
+    else:
+        values = [[r.energy_au] for r in records]
+    return np.array(values, dtype=float), noise.per_point(plan.route, len(records))
 
 
 def continuity(plan: FieldPlan, records, noise: NoiseModel) -> ContinuityReport:
@@ -131,13 +133,9 @@ def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel,
     dipoles = (np.array([r.dipole_au for r in records])
                if all(r.dipole_au is not None for r in records) else None)
     alphas = (np.array([r.alpha_au for r in records]) if plan.route == "alpha" else None)
-    n = len(records)
-    per_point = {"energy": np.broadcast_to(np.asarray(noise.energy_au, dtype=float), (n,)),
-                 "dipole": np.broadcast_to(np.asarray(noise.dipole_au, dtype=float), (n,)),
-                 "alpha": np.broadcast_to(np.asarray(noise.alpha_au, dtype=float), (n,))}
     estimates = []
     for comp in plan.components:
-        eps = per_point[comp.source.split("_")[0]]
+        eps = noise.per_point(comp.source.split("_")[0], len(records))
         stencils = list(comp.stencils)
         cut = next((k for k, s in enumerate(stencils)
                     if any(p in excluded for p, _ in s.terms)), None)
