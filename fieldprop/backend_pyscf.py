@@ -15,13 +15,16 @@ from __future__ import annotations
 import contextlib
 import functools
 import logging
+import time
 import warnings
 
 import numpy as np
 
 from fieldprop.errors import InputError, ScfNotConvergedError
 from fieldprop.job import Job
-from fieldprop.records import PointRecord, PointTask, SymmetryOperation, ZeroFieldReference
+from fieldprop.methods import METHODS
+from fieldprop.records import (CPHF_RTOL, PointRecord, PointTask, SymmetryOperation,
+                               ZeroFieldReference)
 
 logger = logging.getLogger(__name__)
 
@@ -372,11 +375,6 @@ def _correlated_energy(mf, model, scf_spec, label: str) -> float:
     return e
 
 
-#: Relative residual at which the CPHF/CPKS linear equations count as solved: far
-#: below the finite-difference precision of any derivative taken of alpha.
-CPHF_RTOL = 1e-11
-
-
 class _OrbitalHessian:
     """The real orbital Hessian A + B of a converged RHF, UHF, RKS or UKS object,
     as a preconditioned conjugate-gradient solver over occupied-virtual blocks.
@@ -523,42 +521,63 @@ def newton_dipole_step(mf, r, fock=None) -> np.ndarray:
     return np.array([hessian.density_trace(hessian.vo(r[i]), x) for i in range(3)])
 
 
-def evaluate_point(task: PointTask) -> PointRecord:
-    """Compute one field point: SCF (retried if needed), state checks, post-HF.
+def evaluate_reference(task: PointTask) -> tuple[PointRecord, ZeroFieldReference]:
+    """Compute the zero-field point from scratch and the reference it gives every
+    other point: its density (the warm start), occupied orbitals, <S^2> and the
+    symmetry operations its state has (the state checks).
+
+    Raises
+    ------
+    ScfNotConvergedError : the SCF (or CC) never converged.
+    """
+    if not task.is_zero_field:
+        raise ValueError(f"the reference is computed at zero field, not at {task.point.label}")
+    return _evaluate(task, None)
+
+
+def evaluate_point(task: PointTask, reference: ZeroFieldReference) -> PointRecord:
+    """Compute one field point from the zero-field ``reference``: SCF started
+    from its density (retried if needed), state checks against it, post-HF.
 
     A point on another state than zero field's (occupied overlap, <S^2>,
-    occupation by symmetry) is returned with ``state_issue`` set; the engine
+    occupation by symmetry) is returned with ``state_issue`` set; the analysis
     leaves it out of every derivative.
 
     Raises
     ------
     ScfNotConvergedError : the SCF (or CC) never converged.
     """
+    return _evaluate(task, reference)[0]
+
+
+def _evaluate(task: PointTask, reference: ZeroFieldReference | None):
     from pyscf import lib
 
+    start = time.perf_counter()
     lib.logger.QUIET = 0
     molecule, model, point = task.molecule, task.model, task.point
     mol = build_mole(molecule, model.basis)
     mf = _mean_field(mol, model, task.scf)
     r = _apply_field(mf, mol, molecule, point.field_vector_au)
-    dm0 = task.reference.density if task.reference is not None else None
+    dm0 = reference.density if reference is not None else None
     attempts, cycles = _converge(mf, dm0, point.label)
     occupied, s2 = _orbital_sets(mf), _s2(mf)
     overlap, issues = 1.0, []
-    if task.reference is not None:
+    if reference is not None:
         s_ao = mol.intor_symmetric("int1e_ovlp")
-        for c_ref, c in zip(task.reference.occupied, occupied):
+        for c_ref, c in zip(reference.occupied, occupied):
             if c.shape[1] != c_ref.shape[1]:
                 overlap = 0.0
                 break
             if c.shape[1]:
                 overlap = min(overlap, float(np.linalg.svd(c_ref.T @ s_ao @ c,
                                                            compute_uv=False).min()))
-        issues = state_issues(task.reference, point.field_vector_au, occupied, s2, overlap)
+        issues = state_issues(reference, point.field_vector_au, occupied, s2, overlap)
         if issues:
             logger.debug("point %s is on another state: %s", point.label, "; ".join(issues))
-    dipole = tuple(float(v) for v in _scf_dipole(mf, r, molecule)) if task.want_dipole else None
-    energy = (float(mf.e_tot) if model.method in ("hf", "dft")
+    want = task.quantities
+    dipole = tuple(float(v) for v in _scf_dipole(mf, r, molecule)) if want.dipole else None
+    energy = (float(mf.e_tot) if METHODS[model.method].mean_field
               else _correlated_energy(mf, model, task.scf, point.label))
     # One Fock build serves the gradient and the dipole's error estimate. A
     # one-electron system has no electron-electron terms (PySCF's HF1e): its Fock
@@ -572,14 +591,16 @@ def evaluate_point(task: PointTask) -> PointRecord:
     grad = mf.get_grad(mf.mo_coeff, mf.mo_occ, fock)
     gradient = float(np.linalg.norm(grad))
     dipole_error = 0.0
-    if task.want_dipole:
-        dipole_error = _dipole_error(mf, r, fock, gradient, task.dipole_route)
+    if want.dipole:
+        dipole_error = _dipole_error(mf, r, fock, gradient, want.newton_dipole_error)
     alpha = None
-    if task.want_alpha:
+    if want.alpha:
         alpha = tuple(tuple(float(v) for v in row) for row in analytic_polarizability(mf, r))
-    reference = None
-    if task.reference is None:
-        reference = ZeroFieldReference(np.asarray(mf.make_rdm1()), occupied, s2,
-                                       symmetry_operations(mol, mf))
-    return PointRecord(point, energy, float(mf.e_tot), dipole, cycles, tuple(attempts), s2,
-                       overlap, gradient, alpha, reference, dipole_error, "; ".join(issues))
+    new_reference = None
+    if reference is None:
+        new_reference = ZeroFieldReference(np.asarray(mf.make_rdm1()), occupied, s2,
+                                           symmetry_operations(mol, mf))
+    record = PointRecord(point, energy, float(mf.e_tot), dipole, cycles, tuple(attempts), s2,
+                         overlap, gradient, alpha, dipole_error, "; ".join(issues),
+                         time.perf_counter() - start)
+    return record, new_reference

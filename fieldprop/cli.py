@@ -22,7 +22,7 @@ from pathlib import Path  # noqa: E402
 from typing import Sequence  # noqa: E402
 
 from fieldprop import __version__  # noqa: E402
-from fieldprop.errors import FieldpropError, InputError  # noqa: E402
+from fieldprop.errors import FieldpropError, IncompleteError, InputError  # noqa: E402
 
 logger = logging.getLogger("fieldprop")
 
@@ -69,6 +69,7 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--quiet", action="store_true", help="no progress or log lines on stderr")
     run.add_argument("--plot", type=Path, metavar="DIR", help="write a PNG per property into "
                      "DIR: each component's Richardson table against field strength")
+    _store_options(run)
     run.set_defaults(handler=cmd_run)
 
     check = sub.add_parser("check", help="finite-field tensors versus analytic ones (PySCF's, "
@@ -87,13 +88,61 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("--workers", type=_positive_int, default=1,
                        help="processes computing field points in parallel (default 1)")
     check.add_argument("--quiet", action="store_true", help="no progress or log lines on stderr")
+    _store_options(check)
     check.set_defaults(handler=cmd_check)
 
-    plan = sub.add_parser("plan", help="print the field points run would compute")
+    plan = sub.add_parser("plan", help="print the field points run would compute, and which "
+                          "of them the store holds already")
     plan.add_argument("job", type=Path, help="job file (TOML)")
     plan.add_argument("--json-lines", action="store_true", help="one JSON object per point")
+    plan.add_argument("--store", type=Path, metavar="PATH", help="the point store to look in "
+                      f"(default {DEFAULT_STORE_NAME} beside the job file); never written")
     plan.set_defaults(handler=cmd_plan)
+
+    collect = sub.add_parser("collect", help="the result from stored points alone, no "
+                             "computation; exit 3 naming the missing points if any")
+    collect.add_argument("job", type=Path, help="job file (TOML)")
+    collect.add_argument("--json", type=Path, help="result JSON path (default JOB.result.json "
+                         "beside the job file)")
+    collect.add_argument("--store", type=Path, metavar="PATH", help="the point store (default "
+                         f"{DEFAULT_STORE_NAME} beside the job file); never written")
+    collect.add_argument("--quiet", action="store_true", help="no log lines on stderr")
+    collect.set_defaults(handler=cmd_collect)
+
+    inspect = sub.add_parser("inspect", help="what a point store holds: molecules and models, "
+                             "points computed and failed, size; or every point as JSON lines")
+    inspect.add_argument("store", type=Path, help="a point store file")
+    inspect.add_argument("--json-lines", action="store_true", help="export every stored point "
+                         "as one JSON object per line")
+    inspect.set_defaults(handler=cmd_inspect)
     return parser
+
+
+#: Imported lazily elsewhere; the name is only needed for the help texts here.
+DEFAULT_STORE_NAME = "fieldprop-points.sqlite"
+
+
+def _store_options(parser) -> None:
+    group = parser.add_mutually_exclusive_group()
+    group.add_argument("--store", type=Path, metavar="PATH", help="point store: computed points "
+                       "are kept there and reused by any job that needs them (default "
+                       f"{DEFAULT_STORE_NAME} beside the job file)")
+    group.add_argument("--no-store", action="store_true", help="keep the points in memory "
+                       "only: nothing is read or written")
+    parser.add_argument("--retry-failed", action="store_true", help="compute again the points "
+                        "stored as failed (by default a stored failure fails the job again)")
+
+
+def _open_store(args, job_path: Path, read_only: bool = False):
+    """The store the options name: in memory, --store PATH, or the default file."""
+    from fieldprop.store import PointStore, default_store_path
+
+    if getattr(args, "no_store", False):
+        return PointStore.in_memory()
+    path = args.store if args.store is not None else default_store_path(job_path)
+    if read_only and not path.exists():
+        return None  # nothing stored yet
+    return PointStore.open(path, read_only=read_only)
 
 
 def _configure_logging(quiet: bool) -> None:
@@ -111,7 +160,7 @@ def default_result_path(job_path: Path) -> Path:
 
 
 def cmd_run(args) -> int:
-    from fieldprop.engine import compute, require_stable
+    from fieldprop.engine import prepare, require_stable, run_prepared
     from fieldprop.job import load_job
     from fieldprop.report import (check_output_path, result_document, write_json_atomic,
                                   write_tables)
@@ -123,7 +172,11 @@ def cmd_run(args) -> int:
     check_output_path(out_path)
     if args.plot is not None and not args.plot.is_dir():
         raise InputError(f"--plot {args.plot}: is not an existing folder; create it first")
-    result = compute(job, workers=args.workers, progress=not args.quiet and sys.stderr.isatty())
+    prepared = prepare(job)
+    with _open_store(args, args.job) as store:
+        result = run_prepared(prepared, store, workers=args.workers,
+                              progress=not args.quiet and sys.stderr.isatty(),
+                              retry_failed=args.retry_failed)
     # The file first: a closed stdout (``| head``) must not lose the result.
     write_json_atomic(result_document(result), out_path)
     logger.info("result written to %s (%.1f s)", out_path, result.wall_time_s)
@@ -139,8 +192,9 @@ def cmd_run(args) -> int:
 
 def cmd_check(args) -> int:
     from fieldprop import compare
-    from fieldprop.engine import compute, reference_tensors
+    from fieldprop.engine import prepare, reference_tensors, run_prepared
     from fieldprop.job import load_job
+    from fieldprop.methods import METHODS
     from fieldprop.report import (check_output_path, comparison_document, write_comparison,
                                   write_json_atomic)
 
@@ -152,17 +206,29 @@ def cmd_check(args) -> int:
     reference_file = None
     if args.against is not None:
         reference_file = compare.load_reference_file(args.against)
-    elif job.model.method not in ("hf", "dft"):
-        raise InputError(f"{job.path}: [model] method {job.model.method!r} has no analytic "
-                         "reference in fieldprop (hf and dft have); give --against FILE")
-    progress = not args.quiet and sys.stderr.isatty()
-    result = compute(job, workers=args.workers, progress=progress)
-    if reference_file is not None:
-        m = result.molecule
-        reference = compare.align_reference(str(args.against), reference_file, m.symbols,
-                                            m.coords_bohr, m.charge, m.origin_bohr)
     else:
-        reference = reference_tensors(job, result, workers=args.workers, progress=progress)
+        traits = METHODS[job.model.method]
+        if not traits.has("alpha"):
+            having = ", ".join(n for n, t in METHODS.items() if t.has("alpha"))
+            raise InputError(f"{job.path}: [model] method {job.model.method!r} has no analytic "
+                             f"reference in fieldprop ({having} have); give --against FILE")
+        if not traits.alpha_route_for(job.model.reference, job.molecule.multiplicity):
+            raise InputError(f"{job.path}: [model] reference = \"restricted\" with "
+                             f"multiplicity {job.molecule.multiplicity} (restricted open shell) "
+                             "has no analytic polarizability in fieldprop; set reference = "
+                             "\"unrestricted\", or give --against FILE")
+    progress = not args.quiet and sys.stderr.isatty()
+    prepared = prepare(job)
+    with _open_store(args, args.job) as store:
+        result = run_prepared(prepared, store, workers=args.workers, progress=progress,
+                              retry_failed=args.retry_failed)
+        if reference_file is not None:
+            m = result.molecule
+            reference = compare.align_reference(str(args.against), reference_file, m.symbols,
+                                                m.coords_bohr, m.charge, m.origin_bohr)
+        else:
+            reference = reference_tensors(job, result, workers=args.workers, progress=progress,
+                                          store=store, retry_failed=args.retry_failed)
     sigmas = compare.DEFAULT_SIGMAS if args.sigmas is None else args.sigmas
     rel_floor = compare.DEFAULT_REL_FLOOR if args.rel_floor is None else args.rel_floor
     floors = None if args.abs_floor_au is None else {n: args.abs_floor_au for n in range(1, 5)}
@@ -192,12 +258,59 @@ def cmd_check(args) -> int:
 
 
 def cmd_plan(args) -> int:
-    from fieldprop.engine import make_plan
+    from fieldprop.engine import make_plan, make_tasks
     from fieldprop.job import load_job
+    from fieldprop.molecule import build_molecule
     from fieldprop.report import write_plan
 
     job = load_job(args.job)
-    write_plan(make_plan(job), sys.stdout, json_lines=args.json_lines)
+    plan = make_plan(job)
+    tasks = make_tasks(job, build_molecule(job.molecule, job.response.origin), plan)
+    store = _open_store(args, args.job, read_only=True)
+    stored = {}
+    if store is not None:
+        with store:
+            stored = store.get_points(t.key for t in tasks)
+    write_plan(plan, tasks, stored, sys.stdout, json_lines=args.json_lines,
+               store_label=store.label if store is not None else None)
+    return 0
+
+
+def cmd_collect(args) -> int:
+    from fieldprop.engine import collect, require_stable
+    from fieldprop.job import load_job
+    from fieldprop.report import check_output_path, result_document, write_json_atomic, \
+        write_tables
+
+    job = load_job(args.job)
+    out_path = args.json if args.json is not None else default_result_path(args.job)
+    if out_path.resolve() == args.job.resolve():
+        raise InputError(f"--json {out_path}: is the job file itself; give another path")
+    check_output_path(out_path)
+    from fieldprop.store import PointStore, default_store_path
+
+    path = args.store if args.store is not None else default_store_path(args.job)
+    if not path.exists():
+        raise IncompleteError(f"{job.path}: no point store at {path}: nothing computed yet; "
+                              "compute the points with fieldprop run (or --store PATH)")
+    with PointStore.open(path, read_only=True) as store:
+        result = collect(job, store)
+    write_json_atomic(result_document(result), out_path)
+    logger.info("result written to %s (from %d stored points)", out_path, len(result.records))
+    write_tables(result, sys.stdout)
+    require_stable(result)
+    return 0
+
+
+def cmd_inspect(args) -> int:
+    from fieldprop.report import write_store_lines, write_store_summary
+    from fieldprop.store import PointStore
+
+    with PointStore.open(args.store, read_only=True) as store:
+        if args.json_lines:
+            write_store_lines(store, sys.stdout)
+        else:
+            write_store_summary(store, args.store, sys.stdout)
     return 0
 
 

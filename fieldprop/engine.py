@@ -1,7 +1,13 @@
-"""From a validated job to tensors: the data flow in one place.
+"""From a validated job to tensors: the data flow in one place, in three steps.
 
-job -> molecule -> field plan -> field points (executor, backend) -> raw stencil
-estimates -> Richardson extrapolation -> tensors -> invariants.
+1. :func:`prepare`: job -> molecule, backend facts, field plan, point tasks with
+   their store keys (PySCF only to validate the basis and functional, or not at
+   all when the facts come from a store).
+2. computing points: :func:`fieldprop.execute.compute_points` over a
+   :class:`~fieldprop.store.PointStore` (stored points are reused).
+3. :func:`analyse`: records -> Taylor continuity -> Richardson extrapolation ->
+   tensors -> invariants and warnings; pure, no PySCF (:func:`collect` runs it on
+   a store's records alone).
 """
 
 from __future__ import annotations
@@ -15,14 +21,16 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from fieldprop import errors
 from fieldprop.continuity import ContinuityReport, check_continuity
-from fieldprop.errors import UnstableResultError
-from fieldprop.execute import compute_points
+from fieldprop.errors import IncompleteError, UnstableResultError
 from fieldprop.extrapolate import ComponentEstimate, ComponentStatus, mark_unstable, richardson
 from fieldprop.job import Job
+from fieldprop.keys import Quantities, model_document, model_key, point_key, short_id
+from fieldprop.methods import METHODS, Route
 from fieldprop.molecule import MoleculeSpec, build_molecule
 from fieldprop.plan import FieldPlan, plan_fields, stencil_estimate
-from fieldprop.records import PointRecord, PointTask
+from fieldprop.records import CPHF_RTOL, PointRecord, PointTask
 from fieldprop.tensors import Invariant, TensorResult, assemble, invariants
 
 logger = logging.getLogger(__name__)
@@ -53,14 +61,45 @@ class NoiseModel:
     dipole_au: float | tuple[float, ...]  # e bohr
     alpha_au: float | tuple[float, ...] = 0.0  # au
 
-    def per_point(self, kind: str, n: int) -> np.ndarray:
-        """The (n,) noise of "energy", "dipole" or "alpha" at each point."""
-        return np.broadcast_to(np.asarray(getattr(self, kind + "_au"), dtype=float), (n,))
+    def per_point(self, kind: Route | str, n: int) -> np.ndarray:
+        """The (n,) noise of the energy, dipole or alpha at each point."""
+        return np.broadcast_to(np.asarray(getattr(self, Route(kind).value + "_au"),
+                                          dtype=float), (n,))
 
     def largest(self) -> dict[str, float]:
         """The largest noise of each quantity over the points (for reports)."""
         return {k: float(np.max(getattr(self, k))) for k in ("energy_au", "dipole_au",
                                                                "alpha_au")}
+
+
+@dataclass(frozen=True)
+class PointCounts:
+    """Points planned, computed in this run, and reused from the store."""
+
+    planned: int
+    computed: int
+    reused: int
+
+
+@dataclass(frozen=True)
+class Prepared:
+    """A job ready to compute or analyse: molecule, backend facts, plan, tasks.
+
+    ``tasks`` follow ``plan.points`` (zero field first); ``model_key`` is the key
+    of the zero-field reference the tasks share.
+    """
+
+    job: Job
+    molecule: MoleculeSpec
+    facts: dict
+    plan: FieldPlan
+    tasks: tuple[PointTask, ...]
+    model_key: str
+
+    def description(self) -> dict:
+        """The model's canonical description (stored beside its reference)."""
+        return {**model_document(self.molecule, self.job.model, self.job.scf),
+                "formula": self.molecule.formula}
 
 
 @dataclass(frozen=True)
@@ -78,6 +117,8 @@ class RunResult:
     wall_time_s: float
     warnings: tuple[str, ...] = ()
     continuity: ContinuityReport | None = None
+    counts: PointCounts | None = None
+    store: str = ""
 
     @property
     def energy_au(self) -> float:
@@ -89,24 +130,53 @@ class RunResult:
                 for t in self.tensors.values() for c in t.components if not c.stable]
 
 
-def make_plan(job: Job, route: str | None = None) -> FieldPlan:
+def make_plan(job: Job, route: Route | str | None = None) -> FieldPlan:
     """The job's field plan, on its own route or on ``route``."""
     r = job.response
     return plan_fields(r.properties, r.field_au, r.ratio, r.levels, route or r.route)
 
 
+def quantities(job: Job, route: Route) -> Quantities:
+    """What each point of ``job`` computes on ``route`` beside the energy."""
+    dipole = METHODS[job.model.method].has(Route.DIPOLE)
+    return Quantities(dipole=dipole, alpha=route is Route.ALPHA,
+                      newton_dipole_error=dipole and route is Route.DIPOLE
+                      and job.molecule.multiplicity > 1)
+
+
 def make_tasks(job: Job, molecule: MoleculeSpec, plan: FieldPlan) -> list[PointTask]:
-    want_dipole = job.model.method in ("hf", "dft")
-    want_alpha = plan.route == "alpha"
-    return [PointTask(molecule, job.model, job.scf, p, want_dipole, want_alpha=want_alpha,
-                      dipole_route=plan.route == "dipole") for p in plan.points]
+    """One task per planned point, with its store key."""
+    want = quantities(job, plan.route)
+    mkey = model_key(molecule, job.model, job.scf)
+    return [PointTask(molecule, job.model, job.scf, p, want,
+                      point_key(mkey, molecule.origin_bohr, want, p.field_vector_au), mkey)
+            for p in plan.points]
+
+
+def prepare(job: Job, route: Route | str | None = None, facts: dict | None = None) -> Prepared:
+    """Molecule, backend facts, plan and tasks of ``job`` (on ``route``).
+
+    Without ``facts``, the backend validates what only PySCF can judge (basis,
+    functional) and reports them; with ``facts`` (from a store) PySCF is not
+    imported.
+    """
+    molecule = build_molecule(job.molecule, job.response.origin)
+    if facts is None:
+        from fieldprop.backend_pyscf import validate
+
+        facts = validate(job, molecule)
+    if any(facts.get("core_electrons", ())):
+        molecule = dataclasses.replace(molecule, core_electrons=tuple(facts["core_electrons"]))
+    plan = make_plan(job, route)
+    tasks = make_tasks(job, molecule, plan)
+    return Prepared(job, molecule, facts, plan, tuple(tasks), tasks[0].model_key)
 
 
 def _route_values(plan: FieldPlan, records, noise: NoiseModel):
     """The differentiated quantity per point, (n, m), and its noise, (n,)."""
-    if plan.route == "dipole":
+    if plan.route is Route.DIPOLE:
         values = [r.dipole_au for r in records]
-    elif plan.route == "alpha":
+    elif plan.route is Route.ALPHA:
         values = [np.ravel(r.alpha_au) for r in records]
     else:
         values = [[r.energy_au] for r in records]
@@ -132,10 +202,10 @@ def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel,
     energies = np.array([r.energy_au for r in records])
     dipoles = (np.array([r.dipole_au for r in records])
                if all(r.dipole_au is not None for r in records) else None)
-    alphas = (np.array([r.alpha_au for r in records]) if plan.route == "alpha" else None)
+    alphas = (np.array([r.alpha_au for r in records]) if plan.route is Route.ALPHA else None)
     estimates = []
     for comp in plan.components:
-        eps = noise.per_point(comp.source.split("_")[0], len(records))
+        eps = noise.per_point(comp.quantity, len(records))
         stencils = list(comp.stencils)
         cut = next((k for k, s in enumerate(stencils)
                     if any(p in excluded for p, _ in s.terms)), None)
@@ -165,18 +235,17 @@ def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel,
 
 def noise_model(job: Job, records) -> NoiseModel:
     """The NoiseModel of a finished set of points (see NoiseModel)."""
-    from fieldprop.backend_pyscf import CPHF_RTOL
-
+    traits = METHODS[job.model.method]
     ulp = np.finfo(float).eps
     energy, dipole, alpha = [], [], []
     for r in records:
         g = r.gradient_norm
         e = ENERGY_ULPS * ulp * abs(r.energy_au)
-        if job.model.method in ("hf", "dft"):
+        if traits.mean_field:
             e += g * g
         else:
             e += g
-            if job.model.method.startswith("ccsd"):
+            if traits.amplitude_solver:
                 e += max(job.scf.energy_conv_tol_au, 1e-12)
         energy.append(float(e))
         mu = 0.0 if r.dipole_au is None else float(np.linalg.norm(r.dipole_au))
@@ -194,30 +263,75 @@ def noise_model(job: Job, records) -> NoiseModel:
 
 
 def compute(job: Job, workers: int = 1, progress: bool | None = None,
-            route: str | None = None) -> RunResult:
-    """Run the whole job (on its route, or on ``route``). Raises FieldpropError
-    subclasses on failed points.
+            route: Route | str | None = None, store=None,
+            retry_failed: bool = False) -> RunResult:
+    """Run the whole job (on its route, or on ``route``): prepare, compute the
+    points ``store`` does not hold (default: a store in memory), analyse.
 
-    Unstable components do not raise here: the result carries them (no number
-    is reported for them) and the CLI turns them into exit code 1.
+    Raises a FieldpropError subclass naming the failed points, if any (after
+    every other point has finished and been stored). Unstable components do not
+    raise here: the result carries them (no number is reported for them) and
+    the CLI turns them into exit code 1.
     """
-    from fieldprop.backend_pyscf import validate
+    return run_prepared(prepare(job, route), store, workers, progress, retry_failed)
+
+
+def run_prepared(prepared: Prepared, store=None, workers: int = 1,
+                 progress: bool | None = None, retry_failed: bool = False) -> RunResult:
+    """:func:`compute` for a job already prepared (the CLI opens its store only
+    once the job has passed every check)."""
+    from fieldprop.execute import compute_points
+    from fieldprop.store import PointStore
 
     start = time.perf_counter()
-    molecule = build_molecule(job.molecule, job.response.origin)
-    facts = validate(job, molecule)
-    if any(facts["core_electrons"]):
-        molecule = dataclasses.replace(molecule, core_electrons=tuple(facts["core_electrons"]))
-    plan = make_plan(job, route)
-    tasks = make_tasks(job, molecule, plan)
+    job, plan = prepared.job, prepared.plan
+    own_store = store is None
+    store = PointStore.in_memory() if own_store else store
     logger.info("%s: %s/%s%s, %d field points on %d levels (h0 = %g au, ratio %g), route %s, "
-                "SCF energy tolerance %g Eh", job.path, job.model.method,
+                "SCF energy tolerance %g Eh; store %s", job.path, job.model.method,
                 job.model.basis, f"/{job.model.functional}" if job.model.functional else "",
                 len(plan.points), plan.levels, plan.field_au, plan.ratio, plan.route,
-                job.scf.energy_conv_tol_au)
+                job.scf.energy_conv_tol_au, store.label)
     if progress is None:
         progress = sys.stderr.isatty()
-    records = compute_points(tasks, workers=workers, progress=progress)
+    try:
+        outcome = compute_points(list(prepared.tasks), store, prepared.facts,
+                                 prepared.description(), workers=workers, progress=progress,
+                                 retry_failed=retry_failed)
+    finally:
+        if own_store:
+            store.close()
+    counts = PointCounts(len(plan.points), outcome.computed, outcome.reused)
+    logger.info("%d field points: %d computed, %d reused from %s", counts.planned,
+                counts.computed, counts.reused, store.label)
+    if outcome.failures:
+        raise failed_points_error(prepared, outcome.failures, retry_failed)
+    return analyse(prepared, outcome.records, counts, store.label,
+                   time.perf_counter() - start)
+
+
+def failed_points_error(prepared: Prepared, failures, retried: bool = False):
+    """One error naming every failed point (the first in full, the others after it)."""
+    first = failures[0]
+    kind = getattr(errors, first.kind, errors.FieldpropError)
+    if not (isinstance(kind, type) and issubclass(kind, errors.FieldpropError)):
+        kind = errors.FieldpropError
+    for f in failures[1:]:
+        logger.error("%s", f.reason)
+    more = f" (and {len(failures) - 1} more points, listed above)" if len(failures) > 1 else ""
+    hint = "" if retried else ("; a failure stays stored: rerun with --retry-failed to "
+                               "compute failed points again")
+    return kind(f"{first.reason}{more}{hint}")
+
+
+def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
+            store_label: str = "", wall_time_s: float = 0.0) -> RunResult:
+    """Tensors, invariants and warnings from the records of every planned point
+    (in plan order). Pure: no PySCF."""
+    job, plan = prepared.job, prepared.plan
+    records = tuple(records)
+    if len(records) != len(plan.points):
+        raise ValueError(f"{len(records)} records for {len(plan.points)} planned points")
     noise = noise_model(job, records)
     smooth = continuity(plan, records, noise)
     estimates = extrapolate_components(plan, records, noise, smooth.cause)
@@ -225,10 +339,40 @@ def compute(job: Job, workers: int = 1, progress: bool | None = None,
     warnings = departure_warnings(job, plan, smooth) + window_warnings(job, plan, tensors)
     for text in warnings:
         logger.warning("%s", text)
-    result = RunResult(job, molecule, plan, tuple(records), noise, tensors,
-                       tuple(invariants(tensors)), facts, time.perf_counter() - start,
-                       warnings, smooth)
-    return result
+    return RunResult(job, prepared.molecule, plan, records, noise, tensors,
+                     tuple(invariants(tensors)), prepared.facts, wall_time_s, warnings, smooth,
+                     counts, store_label)
+
+
+def collect(job: Job, store, route: Route | str | None = None) -> RunResult:
+    """The result of ``job`` from the points ``store`` holds, with no PySCF work.
+
+    Raises IncompleteError (exit 3) naming the missing points' ids when any
+    planned point is not stored, and the points' own error when a stored point
+    failed: never an extrapolation from a partial set.
+    """
+    from fieldprop.keys import model_key as _model_key
+
+    start = time.perf_counter()
+    molecule = build_molecule(job.molecule, job.response.origin)
+    facts = store.get_facts(_model_key(molecule, job.model, job.scf))
+    if facts is None:
+        raise IncompleteError(f"{job.path}: {store.label} holds no point of this molecule and "
+                              "model; compute them with fieldprop run")
+    prepared = prepare(job, route, facts=facts)
+    rows = store.get_points(t.key for t in prepared.tasks)
+    missing = [t for t in prepared.tasks if t.key not in rows]
+    if missing:
+        ids = " ".join(short_id(t.key) for t in missing[:8])
+        raise IncompleteError(f"{job.path}: {len(missing)} of {len(prepared.tasks)} planned "
+                              f"field points are not in {store.label}: {ids}"
+                              f"{' ...' if len(missing) > 8 else ''}")
+    failures = [rows[t.key].failure(t.point) for t in prepared.tasks if not rows[t.key].ok]
+    if failures:
+        raise failed_points_error(prepared, failures)
+    records = [rows[t.key].record(t.point) for t in prepared.tasks]
+    counts = PointCounts(len(records), 0, len(records))
+    return analyse(prepared, records, counts, store.label, time.perf_counter() - start)
 
 
 QUANTITY = {"energy": ("energy", "Eh"), "dipole": ("dipole", "au"),
@@ -344,7 +488,8 @@ def require_stable(result: RunResult) -> None:
             "field_au or more levels")
 
 
-def reference_tensors(job: Job, result: RunResult, workers: int = 1, progress: bool = False):
+def reference_tensors(job: Job, result: RunResult, workers: int = 1, progress: bool = False,
+                      store=None, retry_failed: bool = False):
     """fieldprop's analytic references for ``fieldprop check`` (SCF methods only).
 
     The dipole is the analytic SCF dipole and alpha the CPHF/CPKS polarizability,
@@ -356,11 +501,12 @@ def reference_tensors(job: Job, result: RunResult, workers: int = 1, progress: b
     """
     from fieldprop.compare import ReferenceTensors
 
-    analytic = compute(job, workers=workers, progress=progress, route="alpha")
+    analytic = compute(job, workers=workers, progress=progress, route=Route.ALPHA, store=store,
+                       retry_failed=retry_failed)
     values = {n: t.value_au for n, t in analytic.tensors.items()}
     errors = {n: t.error_au for n, t in analytic.tensors.items()}
     note = "analytic SCF dipole, CPHF/CPKS alpha, beta and gamma from field derivatives of it"
-    if result.plan.route == "dipole" and "dipole" in values:
+    if result.plan.route is Route.DIPOLE and "dipole" in values:
         del values["dipole"], errors["dipole"]
         note += "; dipole not compared: the dipole route uses the analytic dipole itself " \
                 "(set route = \"energy\" to check it)"

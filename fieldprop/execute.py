@@ -1,26 +1,52 @@
-"""Executors: compute the planned field points, zero field first.
+"""Executors: compute the field points a store does not hold yet.
 
-The zero-field point is computed first, in this process: it is the warm start
-(its density) and the state reference (its occupied orbitals and <S^2>) of every
-other point. The others are independent :class:`~fieldprop.records.PointTask`
-units, computed in order here or in a process pool; a worker rebuilds the PySCF
-objects from the task's plain data.
+Every planned point is first looked up in the store by its key; only the missing
+ones are computed. The zero-field reference (the warm start and the state
+reference of every other point) comes from the store too, or is computed first,
+in this process, and stored. The missing points are independent
+:class:`~fieldprop.records.PointTask` units, computed here or in a process pool,
+each with the reference passed beside it; results are taken as they complete and
+committed at once, by this process alone (the store's only writer in a run), so
+a killed run loses only the points in flight.
+
+A point that fails is stored as a failure with its reason; the others still
+finish and are kept. A stored failure is not computed again unless asked
+(``retry_failed``).
 """
 
 from __future__ import annotations
 
-import dataclasses
 import logging
 import os
-from concurrent.futures import ProcessPoolExecutor
+import time
+from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+from dataclasses import dataclass
 
 from tqdm import tqdm
 
-from fieldprop.backend_pyscf import evaluate_point
+from fieldprop.backend_pyscf import evaluate_point, evaluate_reference
 from fieldprop.errors import FieldpropError
-from fieldprop.records import PointRecord, PointTask
+from fieldprop.records import PointFailure, PointRecord, PointTask, ZeroFieldReference
+from fieldprop.store import PointStore
 
 logger = logging.getLogger(__name__)
+
+
+@dataclass(frozen=True)
+class PointsOutcome:
+    """What the executor found and did.
+
+    ``records`` and ``failures`` follow the order of the tasks (a task has one
+    or the other); ``computed`` counts the points computed now, ``reused`` those
+    taken from the store (failures included), ``stored_failures`` the failures
+    taken from the store without retrying them.
+    """
+
+    records: tuple[PointRecord, ...]
+    failures: tuple[PointFailure, ...]
+    computed: int
+    reused: int
+    stored_failures: int = 0
 
 
 def _init_worker() -> None:
@@ -31,45 +57,99 @@ def _init_worker() -> None:
     lib.num_threads(1)
 
 
-def compute_points(tasks: list[PointTask], workers: int = 1,
-                   progress: bool = True) -> list[PointRecord]:
-    """Compute every task; ``tasks[0]`` must be the zero-field point.
+def run_task(task: PointTask, reference: ZeroFieldReference) -> PointRecord | PointFailure:
+    """Compute one point; a FieldpropError becomes a PointFailure (picklable, named)."""
+    start = time.perf_counter()
+    try:
+        return evaluate_point(task, reference)
+    except FieldpropError as exc:
+        return PointFailure(task.point, str(exc), type(exc).__name__,
+                            time.perf_counter() - start)
 
-    Returns records in the order of ``tasks``. A failing point (no convergence,
-    state switch) raises after the points in flight have finished; nothing is
-    formed from a failed point. With ``workers > 1`` the points after the first
-    run in a process pool of that size.
+
+def _reference(tasks: list[PointTask], store: PointStore, facts: dict,
+               description: dict) -> tuple[ZeroFieldReference, int]:
+    """The model's zero-field reference from the store, or computed and stored
+    (with the zero-field point of these tasks). Returns it and the number of
+    points computed for it (0 or 1)."""
+    zero = tasks[0]
+    found = store.get_model(zero.model_key)
+    if found is not None:
+        return found[0], 0
+    logger.debug("no stored reference for model %s: computing zero field", zero.model_key[:12])
+    record, reference = evaluate_reference(zero)
+    store.put_model(zero.model_key, description, facts, reference, (zero, record))
+    stored = store.get_model(zero.model_key)  # another process may have stored one first
+    return (stored[0] if stored is not None else reference), 1
+
+
+def compute_points(tasks: list[PointTask], store: PointStore, facts: dict, description: dict,
+                   workers: int = 1, progress: bool = True,
+                   retry_failed: bool = False) -> PointsOutcome:
+    """Find or compute every task; ``tasks[0]`` must be the zero-field point.
+
+    ``facts`` and ``description`` are stored with a newly computed reference
+    (backend facts; the model's canonical description). A failure of the
+    zero-field point raises at once (nothing else can be computed). With
+    ``workers > 1`` the missing points run in a process pool of that size.
     """
-    if not tasks or tasks[0].point.offsets != (0, 0, 0):
+    if not tasks or not tasks[0].is_zero_field:
         raise ValueError("the first task must be the zero-field point")
-    bar = tqdm(total=len(tasks), desc="field points", unit="pt", disable=not progress,
-               leave=False)
-    first = evaluate_point(tasks[0])
-    bar.update()
-    reference = first.reference
-    rest = [dataclasses.replace(t, reference=reference) for t in tasks[1:]]
-    records: list[PointRecord] = [first]
-    failures: list[FieldpropError] = []
-    if workers <= 1:
-        for task in rest:
-            try:
-                records.append(evaluate_point(task))
-            except FieldpropError as exc:
-                failures.append(exc)
-            bar.update()
-    else:
-        with ProcessPoolExecutor(max_workers=workers, initializer=_init_worker) as pool:
-            futures = [pool.submit(evaluate_point, task) for task in rest]
-            for future in futures:
-                try:
-                    records.append(future.result())
-                except FieldpropError as exc:
-                    failures.append(exc)
-                bar.update()
+    stored = store.get_points(t.key for t in tasks)
+    reference, computed = _reference(tasks, store, facts, description)
+    if computed:
+        stored = store.get_points(t.key for t in tasks)
+    outcomes: dict[int, PointRecord | PointFailure] = {}
+    missing: list[int] = []
+    reused = stored_failures = 0
+    for i, task in enumerate(tasks):
+        row = stored.get(task.key)
+        if row is not None and (row.ok or not retry_failed):
+            outcomes[i] = row.record(task.point) if row.ok else row.failure(task.point)
+            if not (computed and i == 0):
+                reused += 1
+                stored_failures += not row.ok
+        else:
+            missing.append(i)
+    if reused:
+        logger.info("%d of %d field points found in %s", reused, len(tasks), store.label)
+    bar = tqdm(total=len(tasks), initial=len(tasks) - len(missing), desc="field points",
+               unit="pt", disable=not progress, leave=False)
+
+    def finish(i: int, outcome) -> None:
+        store.put_point(tasks[i], outcome)
+        outcomes[i] = outcome
+        bar.update()
+
+    try:
+        if workers <= 1 or len(missing) <= 1:
+            for i in missing:
+                finish(i, run_task(tasks[i], reference))
+        else:
+            _pool(tasks, missing, reference, workers, finish)
+    except KeyboardInterrupt:
+        bar.close()
+        done = sum(1 for i in missing if i in outcomes)
+        logger.warning("interrupted: %d new field point(s) stored in %s; %d still to compute. "
+                       "Run the same command again to resume.", done, store.label,
+                       len(missing) - done)
+        raise
     bar.close()
-    if failures:
-        for exc in failures[1:]:
-            logger.error("%s", exc)
-        more = f" (and {len(failures) - 1} more points, listed above)" if len(failures) > 1 else ""
-        raise type(failures[0])(f"{failures[0]}{more}")
-    return records
+    records = tuple(o for _, o in sorted(outcomes.items()) if isinstance(o, PointRecord))
+    failures = tuple(o for _, o in sorted(outcomes.items()) if isinstance(o, PointFailure))
+    return PointsOutcome(records, failures, computed + len(missing), reused, stored_failures)
+
+
+def _pool(tasks, missing, reference, workers, finish) -> None:
+    """The missing points in a process pool, each committed as it completes."""
+    pool = ProcessPoolExecutor(max_workers=min(workers, len(missing)), initializer=_init_worker)
+    try:
+        pending = {pool.submit(run_task, tasks[i], reference): i for i in missing}
+        while pending:
+            done, _ = wait(pending, return_when=FIRST_COMPLETED)
+            for future in done:
+                finish(pending.pop(future), future.result())
+    except BaseException:
+        pool.shutdown(wait=False, cancel_futures=True)
+        raise
+    pool.shutdown()

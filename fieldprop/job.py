@@ -33,6 +33,8 @@ from pathlib import Path
 from typing import Any
 
 from fieldprop.errors import InputError
+from fieldprop.methods import METHODS as METHOD_TRAITS
+from fieldprop.methods import Route, methods_with
 from fieldprop.units import ANGSTROM_TO_BOHR, PROPERTY_ORDER
 
 #: Element symbols by atomic number (index 0 is a placeholder); the periodic table.
@@ -44,13 +46,13 @@ ELEMENTS = (
 ).split()
 _Z_OF = {sym.lower(): z for z, sym in enumerate(ELEMENTS) if z > 0}
 
-METHODS = ("hf", "dft", "mp2", "ccsd", "ccsd(t)")
+METHODS = tuple(METHOD_TRAITS)
 REFERENCES = ("auto", "restricted", "unrestricted")
 ROUTES = ("auto", "energy", "dipole")
 UNITS = ("angstrom", "bohr")
 ORIGINS = ("nuclear-charge", "zero")
 #: Methods whose analytic dipole is available at every field point (the dipole route).
-DIPOLE_ROUTE_METHODS = ("hf", "dft")
+DIPOLE_ROUTE_METHODS = methods_with(Route.DIPOLE)
 
 #: Two nuclei closer than this (bohr) are taken as a typing error: 0.5 bohr = 0.26 A,
 #: well below any chemical bond (H2 is 1.4 bohr).
@@ -134,7 +136,7 @@ class ResponseSpec:
     ratio: float
     levels: int
     origin: str | tuple[float, float, float]  # "nuclear-charge", "zero" or bohr
-    route: str  # "energy" or "dipole" after resolution
+    route: Route  # ENERGY or DIPOLE after resolution
     nuclear_relaxation: bool = False
 
     @property
@@ -398,9 +400,11 @@ def _parse_model(path: str, table: dict[str, Any], multiplicity: int) -> ModelSp
     reference = r.string("reference", "auto", REFERENCES)
     if reference == "auto":
         reference = "restricted" if multiplicity == 1 else "unrestricted"
-    if reference == "restricted" and multiplicity > 1 and method not in ("hf", "dft"):
+    if reference == "restricted" and multiplicity > 1 and \
+            not METHOD_TRAITS[method].restricted_open_shell:
+        allowed = " and ".join(m for m, t in METHOD_TRAITS.items() if t.restricted_open_shell)
         raise r.fail("reference", f"= \"restricted\" with multiplicity {multiplicity} is "
-                     f"restricted open shell, available for hf and dft only; use "
+                     f"restricted open shell, available for {allowed} only; use "
                      f"\"unrestricted\" for {method}")
     return ModelSpec(method=method, basis=basis, reference=reference, functional=functional)
 
@@ -484,6 +488,7 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
                      "takes route = \"energy\"")
     if route == "auto":
         route = "dipole" if method in DIPOLE_ROUTE_METHODS else "energy"
+    route = Route(route)
     relax = table.get("nuclear_relaxation", False)
     if not isinstance(relax, bool):
         raise r.fail("nuclear_relaxation", f"must be true or false, got {relax!r}")
@@ -528,7 +533,7 @@ def _parse_scf(path: str, table: dict[str, Any], method: str, max_order: int,
     # cheap next to MP2 or CC: 1e-11 for closed shells, 1e-10 for open ones.
     if route == "dipole":
         gradient_tol = (1e-10 if open_shell else 1e-12 if method == "hf" else 1e-11)
-    elif method in ("hf", "dft"):
+    elif METHOD_TRAITS[method].mean_field:
         gradient_tol = 1e-8
     else:
         gradient_tol = 1e-10 if open_shell else 1e-11

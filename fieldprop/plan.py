@@ -57,6 +57,7 @@ from functools import lru_cache
 
 import numpy as np
 
+from fieldprop.methods import Route
 from fieldprop.units import PROPERTY_ORDER
 
 AXES = "xyz"
@@ -103,14 +104,17 @@ class Stencil:
 class ComponentPlan:
     """How one tensor component is obtained.
 
-    ``source`` is ``"energy"`` or ``"dipole_x|y|z"``; ``derivative`` counts the
+    ``quantity`` is the per-point quantity differentiated (the route's: energy,
+    dipole or analytic alpha) and ``element`` which element of it: () for the
+    energy, (i,) for mu_i, (i, j) for alpha_ij. ``derivative`` counts the
     differentiations along x, y, z; ``indices`` are the tensor indices it fills
     (with all permutations of the differentiated ones).
     """
 
     tensor: str
     indices: tuple[int, ...]
-    source: str
+    quantity: Route
+    element: tuple[int, ...]
     derivative: tuple[int, int, int]
     sign: float
     stencils: tuple[Stencil, ...]  # one per ladder level, level 0 first
@@ -124,12 +128,19 @@ class ComponentPlan:
         """Component name such as ``beta_xyy``."""
         return self.tensor + "_" + "".join(AXES[i] for i in self.indices)
 
+    @property
+    def source(self) -> str:
+        """The differentiated quantity as text: ``energy``, ``dipole_x``, ``alpha_xy``."""
+        if not self.element:
+            return self.quantity.value
+        return self.quantity.value + "_" + "".join(AXES[i] for i in self.element)
+
 
 @dataclass(frozen=True)
 class FieldPlan:
     """Field points and component recipes for one job."""
 
-    route: str
+    route: Route
     field_au: float
     ratio: float
     levels: int
@@ -288,29 +299,31 @@ def canonical(offsets: tuple[int, int, int], level: int, ratio: float,
     return offsets, level
 
 
-def component_recipes(properties, route: str) -> list[tuple[str, tuple[int, ...], str,
-                                                           tuple[int, int, int], float]]:
-    """(tensor, indices, source, derivative counts, sign) for every component needed."""
+def component_recipes(properties, route: Route | str) -> list[
+        tuple[str, tuple[int, ...], Route, tuple[int, ...], tuple[int, int, int], float]]:
+    """(tensor, indices, quantity, element, derivative counts, sign) per component needed."""
+    try:
+        route = Route(route)
+    except ValueError:
+        raise ValueError(f"route must be 'energy', 'dipole' or 'alpha', got {route!r}") from None
     recipes = []
     for prop in properties:
         n = PROPERTY_ORDER[prop]
-        if route == "energy":
+        if route is Route.ENERGY:
             for idx in itertools.combinations_with_replacement(range(3), n):
                 counts = tuple(idx.count(a) for a in range(3))
-                recipes.append((prop, idx, "energy", counts, -1.0))
-        elif route == "dipole" or (route == "alpha" and n == 1):
+                recipes.append((prop, idx, Route.ENERGY, (), counts, -1.0))
+        elif route is Route.DIPOLE or n == 1:
+            # The dipole route, and the dipole itself on the alpha route: d^(n-1) mu_i.
             for i in range(3):
                 for rest in itertools.combinations_with_replacement(range(3), n - 1):
                     counts = tuple(rest.count(a) for a in range(3))
-                    recipes.append((prop, (i, *rest), f"dipole_{AXES[i]}", counts, 1.0))
-        elif route == "alpha":
+                    recipes.append((prop, (i, *rest), Route.DIPOLE, (i,), counts, 1.0))
+        else:
             for i, j in itertools.combinations_with_replacement(range(3), 2):
                 for rest in itertools.combinations_with_replacement(range(3), n - 2):
                     counts = tuple(rest.count(a) for a in range(3))
-                    recipes.append((prop, (i, j, *rest), f"alpha_{AXES[i]}{AXES[j]}",
-                                    counts, 1.0))
-        else:
-            raise ValueError(f"route must be 'energy', 'dipole' or 'alpha', got {route!r}")
+                    recipes.append((prop, (i, j, *rest), Route.ALPHA, (i, j), counts, 1.0))
     return recipes
 
 
@@ -334,6 +347,7 @@ def plan_fields(properties, field_au: float, ratio: float, levels: int,
     """
     if field_au <= 0 or ratio <= 1 or levels < 1:
         raise ValueError("need field_au > 0, ratio > 1, levels >= 1")
+    route = Route(route)
     recipes = component_recipes(properties, route)
     # The zero-field point is always computed: it gives E0 and the warm start.
     keys: dict[tuple[tuple[int, int, int], int], None] = {((0, 0, 0), 0): None}
@@ -341,10 +355,10 @@ def plan_fields(properties, field_au: float, ratio: float, levels: int,
     available: set[tuple[int, int, int]] = {(0, 0, 0)}
     # Diagonal components first, so mixed ones can reuse the axis points.
     order = sorted(range(len(recipes)), key=lambda r: (
-        sum(1 for d in recipes[r][3] if d), sum(recipes[r][3]), r))
+        sum(1 for d in recipes[r][4] if d), sum(recipes[r][4]), r))
     for r in order:
         recipe = recipes[r]
-        counts = recipe[3]
+        counts = recipe[4]
         weights = sparse_weights(counts, frozenset(available))
         available.update(weights)
         per_level = []
@@ -363,11 +377,11 @@ def plan_fields(properties, field_au: float, ratio: float, levels: int,
     points = tuple(FieldPoint(i, off, lvl, field_vector(off, field_au, ratio, lvl))
                    for i, (off, lvl) in enumerate(ordered))
     components = []
-    for _, (tensor, idx, source, counts, sign), per_level in raw:
+    for _, (tensor, idx, quantity, element, counts, sign), per_level in raw:
         stencils = tuple(Stencil(k, step_au(field_au, ratio, k),
                                  tuple((index[key], w) for key, w in terms))
                          for k, terms in per_level)
-        components.append(ComponentPlan(tensor, idx, source, counts, sign, stencils))
+        components.append(ComponentPlan(tensor, idx, quantity, element, counts, sign, stencils))
     return FieldPlan(route, field_au, ratio, levels, points, tuple(components))
 
 
@@ -380,13 +394,13 @@ def stencil_estimate(component: ComponentPlan, stencil: Stencil, energies_au, di
     only), indexed by point; point 0 is the zero field.
     Returns the raw (unextrapolated) derivative estimate in au.
     """
-    if component.source == "energy":
+    if component.quantity is Route.ENERGY:
         q = np.asarray(energies_au, dtype=float)
-    elif component.source.startswith("alpha_"):
-        i, j = (AXES.index(a) for a in component.source[-2:])
+    elif component.quantity is Route.ALPHA:
+        i, j = component.element
         q = np.asarray(alphas_au, dtype=float)[:, i, j]
     else:
-        q = np.asarray(dipoles_au, dtype=float)[:, AXES.index(component.source[-1])]
+        q = np.asarray(dipoles_au, dtype=float)[:, component.element[0]]
     # The weights of a derivative of order >= 1 sum to zero, so subtracting the
     # zero-field value changes nothing but the rounding: E ~ -100 Eh while the
     # differences that matter are ~1e-8 Eh.

@@ -1,19 +1,28 @@
 """Units of work and their results, shared by the executor, the backend and reports.
 
-A :class:`PointTask` is everything a worker needs to compute one field point; it
-is frozen and picklable (plain dataclasses, tuples and NumPy arrays; no PySCF
-object). A :class:`PointRecord` is what comes back.
+A :class:`PointTask` is everything a worker needs to compute one field point
+besides the zero-field reference, which is passed beside it (computed once per
+molecule and model, stored once, sent once); it is frozen and picklable (plain
+dataclasses, tuples and NumPy arrays; no PySCF object). A :class:`PointRecord`
+is what comes back; a :class:`PointFailure` is a point that could not be
+computed, with the reason.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
 from fieldprop.job import ModelSpec, ScfSpec
+from fieldprop.keys import Quantities
 from fieldprop.molecule import MoleculeSpec
 from fieldprop.plan import FieldPoint
+
+#: Relative residual at which the CPHF/CPKS linear equations count as solved: far
+#: below the finite-difference precision of any derivative taken of alpha. Used
+#: by the backend's solver and by the noise model of the analysis.
+CPHF_RTOL = 1e-11
 
 
 @dataclass(frozen=True, eq=False)
@@ -52,17 +61,26 @@ class ZeroFieldReference:
 
 @dataclass(frozen=True, eq=False)
 class PointTask:
-    """One field point of one job, ready for any worker process."""
+    """One field point of one job, ready for any worker process.
+
+    ``key`` is the point's store key (:func:`fieldprop.keys.point_key`),
+    ``model_key`` that of its zero-field reference. ``quantities`` says what is
+    computed beside the energy: the analytic dipole, the analytic CPHF/CPKS alpha,
+    and for the dipole's convergence error the full-Hessian estimate
+    (backend.newton_dipole_step) rather than the diagonal one.
+    """
 
     molecule: MoleculeSpec
     model: ModelSpec
     scf: ScfSpec
     point: FieldPoint
-    want_dipole: bool
-    reference: ZeroFieldReference | None = None
-    want_alpha: bool = False  # analytic CPHF/CPKS polarizability at this field
-    dipole_route: bool = False  # the dipole is differentiated: open shells get the
-    # full-Hessian estimate of its convergence error (backend.newton_dipole_step)
+    quantities: Quantities
+    key: str = ""
+    model_key: str = ""
+
+    @property
+    def is_zero_field(self) -> bool:
+        return self.point.offsets == (0, 0, 0)
 
 
 @dataclass(frozen=True, eq=False)
@@ -94,6 +112,20 @@ class PointRecord:
     occupied_overlap: float
     gradient_norm: float
     alpha_au: tuple[tuple[float, float, float], ...] | None = None
-    reference: ZeroFieldReference | None = field(default=None, repr=False)
     dipole_error_au: float = 0.0  # first-order estimate of the dipole's convergence error
     state_issue: str = ""
+    wall_time_s: float = 0.0
+
+
+@dataclass(frozen=True)
+class PointFailure:
+    """A point that could not be computed: no number is ever formed from it.
+
+    ``reason`` is the one-line message (it names the point); ``kind`` the
+    exception class name (``ScfNotConvergedError``, ...).
+    """
+
+    point: FieldPoint
+    reason: str
+    kind: str
+    wall_time_s: float = 0.0

@@ -19,6 +19,7 @@ from tabulate import tabulate
 
 from fieldprop import __version__
 from fieldprop.engine import RunResult, entry_window_au
+from fieldprop.keys import short_id
 from fieldprop.plan import FieldPlan
 from fieldprop.units import (DISPLAY_UNITS, FIELD_AU_TO_V_PER_M, PROPERTY_ORDER)
 
@@ -98,7 +99,9 @@ def write_tables(result: RunResult, out: TextIO) -> None:
     out.write(f"  route: {plan.route} (derivatives of "
               f"{'E(F)' if plan.route == 'energy' else 'the SCF dipole mu(F)'}); fields {steps} au "
               f"(h0: {job.response.field_au_source}); origin ({origin}) bohr\n")
-    out.write(f"  {len(result.records)} field points, "
+    counts = result.counts
+    reused = f" ({counts.reused} reused from the store)" if counts and counts.reused else ""
+    out.write(f"  {len(result.records)} field points{reused}, "
               f"{sum(r.scf_cycles for r in result.records)} SCF cycles; SCF energy tolerance "
               f"{job.scf.energy_conv_tol_au:g} Eh; E(0) = {result.energy_au:.10f} Eh\n")
     out.write("  atomic units, Taylor convention E = E0 - mu F - alpha F^2/2 - beta F^3/6 - "
@@ -200,8 +203,7 @@ def result_document(result: RunResult) -> dict[str, Any]:
         "energy_au": result.energy_au,
         "tensors": tensors,
         "invariants": invariants,
-        "points": {"planned": len(plan.points), "computed": len(result.records), "reused": 0,
-                   "scf_cycles": int(sum(r.scf_cycles for r in result.records))},
+        "points": _points_document(result),
         "field_plan": {"route": plan.route, "field_au": plan.field_au, "ratio": plan.ratio,
                        "levels": plan.levels, "steps_au": list(plan.steps_au()),
                        "largest_field_V_per_m": max(
@@ -218,6 +220,18 @@ def result_document(result: RunResult) -> dict[str, Any]:
         "caution": CAUTION,
         "wall_time_s": result.wall_time_s,
     }
+
+
+def _points_document(result: RunResult) -> dict[str, Any]:
+    """Planned, computed now, reused from the store; SCF cycles of every point
+    (when it was computed), and where the store is."""
+    counts = result.counts
+    planned = len(result.plan.points)
+    return {"planned": planned,
+            "computed": counts.computed if counts else len(result.records),
+            "reused": counts.reused if counts else 0,
+            "scf_cycles": int(sum(r.scf_cycles for r in result.records)),
+            "store": result.store or None}
 
 
 def state_checks_document(result: RunResult) -> dict[str, Any]:
@@ -280,26 +294,71 @@ def write_json_atomic(document: dict[str, Any], path: Path) -> None:
         raise
 
 
-def write_plan(plan: FieldPlan, out: TextIO, json_lines: bool = False) -> None:
-    """The field points ``run`` would compute (and which components use them)."""
+def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, json_lines: bool = False,
+               store_label: str | None = None) -> None:
+    """The field points ``run`` would compute, which components use them, and
+    which the store holds already (``stored``: {key: StoredPoint})."""
     uses: dict[int, int] = {}
     for c in plan.components:
         for s in c.stencils:
             for p, _ in s.terms:
                 uses[p] = uses.get(p, 0) + 1
+
+    def status(task) -> str:
+        row = stored.get(task.key)
+        return "missing" if row is None else ("stored" if row.ok else "failed")
+
     if json_lines:
-        for p in plan.points:
-            out.write(json.dumps({"id": p.index, "level": p.level, "offsets": list(p.offsets),
+        for p, t in zip(plan.points, tasks):
+            out.write(json.dumps({"id": short_id(t.key), "key": t.key, "index": p.index,
+                                  "level": p.level, "offsets": list(p.offsets),
                                   "field_vector_au": list(p.field_vector_au),
-                                  "stencil_uses": uses.get(p.index, 0)}) + "\n")
+                                  "stencil_uses": uses.get(p.index, 0),
+                                  "stored": status(t)}) + "\n")
         return
+    counts = {s: sum(1 for t in tasks if status(t) == s) for s in ("stored", "failed", "missing")}
     out.write(f"route {plan.route}; ladder h_k = {plan.field_au:g} * {plan.ratio:g}**k, "
               f"k = 0..{plan.levels - 1}; {len(plan.points)} field points for "
               f"{len(plan.components)} components\n")
-    rows = [[p.index, p.level, p.label, *(f"{v:+.6g}" for v in p.field_vector_au),
-             uses.get(p.index, 0)] for p in plan.points]
+    out.write(f"store {store_label or '(none yet)'}: {counts['stored']} stored, "
+              f"{counts['failed']} failed, {counts['missing']} to compute\n")
+    rows = [[short_id(t.key), p.level, p.label, *(f"{v:+.6g}" for v in p.field_vector_au),
+             uses.get(p.index, 0), status(t)] for p, t in zip(plan.points, tasks)]
     out.write(tabulate(rows, headers=["id", "level", "point", "F_x (au)", "F_y (au)",
-                                      "F_z (au)", "stencil uses"], disable_numparse=True) + "\n")
+                                      "F_z (au)", "stencil uses", "store"],
+                       disable_numparse=True) + "\n")
+
+
+def write_store_summary(store, path: Path, out: TextIO) -> None:
+    """Molecules and models in a store, points computed and failed, size."""
+    models = store.summary()
+    size = sum(p.stat().st_size for p in (path, Path(str(path) + "-wal")) if p.exists())
+    total_ok = sum(m["points_ok"] for m in models)
+    total_failed = sum(m["points_failed"] for m in models)
+    out.write(f"fieldprop point store {path}: {len(models)} model(s), {total_ok} points "
+              f"computed, {total_failed} failed; {size / 1e6:.2f} MB\n")
+    rows = []
+    for m in models:
+        basis = m["basis"] if isinstance(m["basis"], str) else "per element"
+        model = "/".join(x for x in (m["method"], m.get("functional"), basis) if x)
+        rows.append([m["model_key"][:12], m.get("formula", "?"), m["charge"], m["multiplicity"],
+                     f"{model} ({m['reference']})", m["points_ok"], m["points_failed"],
+                     f"{m['compute_time_s']:.0f}", m["last_point_at"] or "-"])
+    if rows:
+        out.write(tabulate(rows, headers=["model", "formula", "charge", "mult.", "model chemistry",
+                                          "points", "failed", "compute s", "last point (UTC)"],
+                           disable_numparse=True) + "\n")
+
+
+def write_store_lines(store, out: TextIO) -> None:
+    """Every stored point as one JSON object per line (computed and failed)."""
+    for row, extra, description in store.iter_points():
+        doc = {"id": short_id(row.key), "key": row.key, "model_key": row.model_key,
+               "formula": description.get("formula"), "method": description.get("method"),
+               "functional": description.get("functional"), "basis": description.get("basis"),
+               **extra, "status": row.status, **row.fields, "wall_time_s": row.wall_time_s,
+               "host": row.host, "version": row.version, "created_at": row.created_at}
+        out.write(json.dumps(doc, allow_nan=False) + "\n")
 
 
 def write_comparison(comparisons, reference, sigmas: float, out: TextIO) -> None:

@@ -351,10 +351,11 @@ def _no_scf(monkeypatch):
     """Bad input must be refused before any field point is computed."""
     import fieldprop.execute
 
-    def tripwire(task):
+    def tripwire(task, *reference):
         raise AssertionError(f"an SCF was started for field point {task.point.label}")
 
     monkeypatch.setattr(fieldprop.execute, "evaluate_point", tripwire)
+    monkeypatch.setattr(fieldprop.execute, "evaluate_reference", tripwire)
 
 
 # --------------------------------------------------------------------------- tests

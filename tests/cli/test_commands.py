@@ -32,9 +32,13 @@ def test_plan_json_lines_parse_and_match_the_run(tmp_path):
     done = fieldprop("plan", "lih.toml", "--json-lines", cwd=tmp_path)
     assert done.returncode == 0, done.stderr
     points = [json.loads(line) for line in done.stdout.splitlines()]
-    assert points[0]["offsets"] == [0, 0, 0] and points[0]["id"] == 0
+    assert points[0]["offsets"] == [0, 0, 0] and points[0]["index"] == 0
     vectors = {tuple(p["field_vector_au"]) for p in points}
     assert len(vectors) == len(points)  # every field vector planned once
+    # Ids are the first 12 hex digits of the store key, unique within the plan.
+    assert all(p["key"].startswith(p["id"]) and len(p["key"]) == 64 for p in points)
+    assert len({p["id"] for p in points}) == len(points)
+    assert {p["stored"] for p in points} == {"missing"}
     table = fieldprop("plan", "lih.toml", cwd=tmp_path)
     assert table.returncode == 0 and f"{len(points)} field points" in table.stdout
 

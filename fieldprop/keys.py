@@ -1,0 +1,126 @@
+"""Content keys of stored results: what determines a number, hashed.
+
+A field point is identified by what fixes its numbers, not by its place in a
+plan: two jobs that ask for the same field vector of the same molecule and model
+share one stored point, whatever their ladders, levels or property lists.
+
+- :func:`model_key` covers the zero-field reference (the start and state
+  reference of every point): nuclei (symbols, bohr at 1e-10), charge,
+  multiplicity, the basis as given (name, or per element name or text), method,
+  functional, reference (restricted/unrestricted), the SCF settings that change
+  results (energy and orbital-gradient tolerances, DFT grid level; not
+  ``max_cycle``, which only decides whether a point converges), and
+  :data:`NUMERICS_VERSION`.
+- :func:`point_key` adds the quantities computed at the point (:class:`Quantities`),
+  the origin of the dipole operator (bohr at 1e-10) and the field vector exactly
+  (``float.hex`` of each component).
+
+Keys are SHA-256 over a canonical JSON text (sorted keys, no spaces); never
+Python's salted ``hash``. Pure: no PySCF, no I/O.
+
+>>> from fieldprop.job import ModelSpec, ScfSpec
+>>> from fieldprop.molecule import MoleculeSpec
+>>> m = MoleculeSpec(("H", "H"), (1, 1), ((0.0, 0.0, 0.0), (0.0, 0.0, 1.4)), 0, 1,
+...                  (0.0, 0.0, 0.7))
+>>> k = model_key(m, ModelSpec("hf", "sto-3g", "restricted"), ScfSpec(1e-11, 1e-8, 200, None))
+>>> len(k), k == model_key(m, ModelSpec("hf", "sto-3g", "restricted"),
+...                        ScfSpec(1e-11, 1e-8, 50, None))
+(64, True)
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from dataclasses import dataclass
+
+#: Bumped whenever the backend's numbers change for the same inputs (a new field
+#: term, another SCF finish, another state check): stored points of an older
+#: numerics version are then not reused.
+NUMERICS_VERSION = 1
+
+#: Coordinates and origins enter keys rounded to this many decimals of a bohr:
+#: far below any geometric difference that matters (1e-10 bohr moves an energy
+#: by ~1e-10 x gradient), far above the rounding of an angstrom-to-bohr
+#: conversion (~1e-16 bohr), so the same geometry typed twice keys alike.
+COORDINATE_DECIMALS = 10
+
+
+@dataclass(frozen=True)
+class Quantities:
+    """What a point computes beside the energy.
+
+    ``dipole``: the analytic SCF dipole; ``alpha``: the analytic CPHF/CPKS alpha
+    at the field; ``newton_dipole_error``: the dipole's convergence error from the
+    full-Hessian Newton step (open shells on the dipole route) rather than the
+    diagonal estimate.
+    """
+
+    dipole: bool
+    alpha: bool = False
+    newton_dipole_error: bool = False
+
+    def canonical(self) -> list[str]:
+        out = ["energy"]
+        if self.dipole:
+            out.append("dipole")
+            out.append("dipole_error:" + ("newton" if self.newton_dipole_error else "diagonal"))
+        if self.alpha:
+            out.append("alpha")
+        return out
+
+
+def _fixed(x: float) -> str:
+    text = f"{float(x):.{COORDINATE_DECIMALS}f}"
+    return "0." + "0" * COORDINATE_DECIMALS if float(text) == 0.0 else text  # no "-0.000..."
+
+
+def _exact(x: float) -> str:
+    return (float(x) + 0.0).hex()  # + 0.0 turns -0.0 into 0.0
+
+
+def digest(document) -> str:
+    """SHA-256 (hex) of the canonical JSON text of ``document``."""
+    text = json.dumps(document, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
+    return hashlib.sha256(text.encode("ascii")).hexdigest()
+
+
+def model_document(molecule, model, scf) -> dict:
+    """The canonical form hashed by :func:`model_key` (also stored, for people)."""
+    basis = model.basis if isinstance(model.basis, str) else [list(p) for p in model.basis]
+    return {
+        "kind": "fieldprop-model",
+        "numerics": NUMERICS_VERSION,
+        "atoms": [[s, [_fixed(v) for v in xyz]]
+                  for s, xyz in zip(molecule.symbols, molecule.coords_bohr)],
+        "charge": int(molecule.charge),
+        "multiplicity": int(molecule.multiplicity),
+        "method": model.method,
+        "functional": model.functional,
+        "basis": basis.lower() if isinstance(basis, str) else basis,
+        "reference": model.reference,
+        "scf": {"energy_conv_tol_au": _exact(scf.energy_conv_tol_au),
+                "gradient_conv_tol": _exact(scf.gradient_conv_tol),
+                "grid_level": scf.grid_level},
+    }
+
+
+def model_key(molecule, model, scf) -> str:
+    """Key of the zero-field reference of a molecule and model (hex SHA-256)."""
+    return digest(model_document(molecule, model, scf))
+
+
+def point_key(model_key_: str, origin_bohr, quantities: Quantities, field_vector_au) -> str:
+    """Key of one field point (hex SHA-256); see the module notes."""
+    return digest({
+        "kind": "fieldprop-point",
+        "model": model_key_,
+        "origin_bohr": [_fixed(v) for v in origin_bohr],
+        "quantities": quantities.canonical(),
+        "field_vector_au": [_exact(v) for v in field_vector_au],
+    })
+
+
+def short_id(key: str) -> str:
+    """The first 12 hex digits: a point's id in tables and on command lines."""
+    return key[:12]

@@ -1,0 +1,438 @@
+"""The point store: every computed field point, kept in one SQLite file.
+
+A point is stored under its content key (:mod:`fieldprop.keys`), so any job
+that needs the same field vector of the same molecule and model finds it,
+whatever its plan. The zero-field reference each point starts from and is
+checked against (density, occupied orbitals, <S^2>, symmetry operations) is
+stored once per model key, with the backend facts of that model (basis
+functions, core electrons, PySCF version): any process can compute any point
+later without redoing zero field, and the analysis of stored points needs no
+PySCF at all.
+
+File format (``SCHEMA_VERSION`` 1), SQLite from the standard library, WAL
+journal, a busy timeout so several processes can share one file, one
+transaction per finished point:
+
+- ``meta(name, value)``: ``format`` = ``fieldprop-store``, ``schema``, ``created_at``,
+  ``created_by``;
+- ``models(model_key, description, facts, reference, created_at, host, version)``:
+  ``description`` and ``facts`` JSON text, ``reference`` an ``.npz`` blob;
+- ``points(point_key, model_key, field_vector_au, origin_bohr, quantities,
+  status, energy_au, scf_energy_au, dipole_au, alpha_au, scf_cycles, attempts,
+  s2, occupied_overlap, gradient_norm, dipole_error_au, state_issue, failure,
+  failure_kind, wall_time_s, host, version, created_at)``: ``status`` is ``ok``
+  or ``failed``; vectors, matrices and lists are JSON text (floats round-trip
+  exactly).
+
+Every problem with a store file (a directory, not SQLite, not a fieldprop
+store, a newer schema, corrupt, not writable) is an :class:`InputError` naming
+the path; the file is left untouched.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import logging
+import os
+import socket
+import sqlite3
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Iterator
+
+import numpy as np
+
+from fieldprop import __version__
+from fieldprop.errors import InputError
+from fieldprop.records import PointFailure, PointRecord, SymmetryOperation, ZeroFieldReference
+
+logger = logging.getLogger(__name__)
+
+FORMAT = "fieldprop-store"
+SCHEMA_VERSION = 1
+#: Default store file name, in the job file's folder: jobs in one folder share it.
+DEFAULT_NAME = "fieldprop-points.sqlite"
+#: How long a writer waits for another process's transaction (ms).
+BUSY_TIMEOUT_MS = 120_000
+_SQLITE_HEADER = b"SQLite format 3\x00"
+
+_SCHEMA = """
+CREATE TABLE meta (name TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE models (
+    model_key TEXT PRIMARY KEY,
+    description TEXT NOT NULL,
+    facts TEXT NOT NULL,
+    reference BLOB NOT NULL,
+    created_at TEXT NOT NULL,
+    host TEXT NOT NULL,
+    version TEXT NOT NULL
+);
+CREATE TABLE points (
+    point_key TEXT PRIMARY KEY,
+    model_key TEXT NOT NULL,
+    field_vector_au TEXT NOT NULL,
+    origin_bohr TEXT NOT NULL,
+    quantities TEXT NOT NULL,
+    status TEXT NOT NULL CHECK (status IN ('ok', 'failed')),
+    energy_au REAL,
+    scf_energy_au REAL,
+    dipole_au TEXT,
+    alpha_au TEXT,
+    scf_cycles INTEGER,
+    attempts TEXT,
+    s2 REAL,
+    occupied_overlap REAL,
+    gradient_norm REAL,
+    dipole_error_au REAL,
+    state_issue TEXT,
+    failure TEXT,
+    failure_kind TEXT,
+    wall_time_s REAL,
+    host TEXT NOT NULL,
+    version TEXT NOT NULL,
+    created_at TEXT NOT NULL
+);
+CREATE INDEX points_by_model ON points (model_key);
+"""
+
+_RECORD_COLUMNS = ("energy_au", "scf_energy_au", "dipole_au", "alpha_au", "scf_cycles",
+                   "attempts", "s2", "occupied_overlap", "gradient_norm", "dipole_error_au",
+                   "state_issue")
+
+
+def _now() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+def default_store_path(job_path: Path) -> Path:
+    """The store beside the job file: ``DEFAULT_NAME`` in its folder."""
+    return Path(job_path).parent / DEFAULT_NAME
+
+
+@dataclass(frozen=True)
+class StoredPoint:
+    """One row of ``points``: a computed point (``record`` fields) or a failure."""
+
+    key: str
+    model_key: str
+    status: str  # "ok" or "failed"
+    fields: dict  # PointRecord fields without ``point`` (ok), or reason and kind (failed)
+    wall_time_s: float
+    host: str
+    version: str
+    created_at: str
+
+    @property
+    def ok(self) -> bool:
+        return self.status == "ok"
+
+    def record(self, point) -> PointRecord:
+        """The PointRecord of this row, attached to the plan's ``point``."""
+        return PointRecord(point=point, wall_time_s=self.wall_time_s, **self.fields)
+
+    def failure(self, point) -> PointFailure:
+        return PointFailure(point, self.fields["reason"], self.fields["kind"], self.wall_time_s)
+
+
+# ----------------------------------------------------------------------- reference blobs
+
+def reference_to_bytes(reference: ZeroFieldReference) -> bytes:
+    """The reference as an ``.npz`` blob (no pickle)."""
+    arrays = {"density": np.asarray(reference.density), "s2": np.array(reference.s2),
+              "n_sets": np.array(len(reference.occupied))}
+    for i, c in enumerate(reference.occupied):
+        arrays[f"occupied_{i}"] = np.asarray(c)
+    ops = reference.symmetry
+    arrays["op_names"] = np.array([op.name for op in ops], dtype=str)
+    if ops:
+        arrays["op_matrices"] = np.array([op.matrix for op in ops])
+        arrays["op_representations"] = np.array([op.representation for op in ops])
+        arrays["op_characters"] = np.array([op.characters for op in ops], dtype=float)
+    buffer = io.BytesIO()
+    np.savez(buffer, **arrays)
+    return buffer.getvalue()
+
+
+def reference_from_bytes(blob: bytes) -> ZeroFieldReference:
+    with np.load(io.BytesIO(blob), allow_pickle=False) as data:
+        occupied = tuple(data[f"occupied_{i}"] for i in range(int(data["n_sets"])))
+        names = [str(n) for n in data["op_names"]]
+        ops = tuple(SymmetryOperation(name, data["op_matrices"][i],
+                                      data["op_representations"][i],
+                                      tuple(float(c) for c in data["op_characters"][i]))
+                    for i, name in enumerate(names))
+        return ZeroFieldReference(data["density"], occupied, float(data["s2"]), ops)
+
+
+# ----------------------------------------------------------------------- the store
+
+class PointStore:
+    """A point store: a file (shared, persistent) or in memory (``--no-store``).
+
+    Use :meth:`open` (validates the file; creates it if missing) or
+    :meth:`in_memory`; close with :meth:`close` or a ``with`` block. Writes are
+    one transaction each; a point already stored as computed is never replaced,
+    a stored failure is replaced by a computed point.
+    """
+
+    def __init__(self, connection: sqlite3.Connection, path: Path | None):
+        self._db = connection
+        self.path = path
+
+    # -- opening
+
+    @classmethod
+    def in_memory(cls) -> "PointStore":
+        db = sqlite3.connect(":memory:")
+        _initialise(db)
+        return cls(db, None)
+
+    @classmethod
+    def open(cls, path: Path, create: bool = True, read_only: bool = False) -> "PointStore":
+        """Open the store at ``path``, validating it first (InputError naming the path).
+
+        ``create``: make a new store if the file does not exist (else InputError).
+        ``read_only``: never write (``plan``, ``inspect``); the file must exist.
+        """
+        path = Path(path)
+        shown = f"store {path}"
+        if path.is_dir():
+            raise InputError(f"{shown}: is a directory; give a file name such as "
+                             f"{path / DEFAULT_NAME}")
+        folder = path.parent if str(path.parent) else Path(".")
+        exists = path.exists()
+        if not exists:
+            if read_only or not create:
+                raise InputError(f"{shown}: no such file")
+            if not folder.is_dir():
+                raise InputError(f"{shown}: folder {str(folder)!r} does not exist; create it "
+                                 "first")
+        if exists:
+            _validate_file(path, shown)
+        if not read_only:
+            # SQLite's WAL journal keeps two files beside the store: the folder
+            # must be writable, and so must the file.
+            if not os.access(folder, os.W_OK | os.X_OK):
+                raise InputError(f"{shown}: folder {str(folder)!r} is not writable (the store "
+                                 "needs its journal files beside it); give --store a path in "
+                                 "a writable folder, or --no-store")
+            if exists and not os.access(path, os.W_OK):
+                raise InputError(f"{shown}: file is not writable; give --store another path, "
+                                 "or --no-store")
+        try:
+            if read_only:
+                db = sqlite3.connect(f"file:{path}?mode=ro", uri=True,
+                                     timeout=BUSY_TIMEOUT_MS / 1000)
+            else:
+                db = sqlite3.connect(path, timeout=BUSY_TIMEOUT_MS / 1000)
+                db.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
+                if not exists:
+                    db.execute("PRAGMA journal_mode = WAL")
+                    _initialise(db)
+                db.execute("PRAGMA synchronous = NORMAL")
+        except sqlite3.Error as exc:
+            raise InputError(f"{shown}: cannot be opened ({exc})") from None
+        return cls(db, path)
+
+    def close(self) -> None:
+        self._db.close()
+
+    def __enter__(self) -> "PointStore":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    @property
+    def label(self) -> str:
+        return str(self.path) if self.path is not None else "memory (--no-store)"
+
+    # -- models and references
+
+    def get_model(self, model_key: str) -> tuple[ZeroFieldReference, dict] | None:
+        """(reference, backend facts) of a model key, or None."""
+        row = self._db.execute("SELECT reference, facts FROM models WHERE model_key = ?",
+                               (model_key,)).fetchone()
+        if row is None:
+            return None
+        return reference_from_bytes(row[0]), json.loads(row[1])
+
+    def get_facts(self, model_key: str) -> dict | None:
+        row = self._db.execute("SELECT facts FROM models WHERE model_key = ?",
+                               (model_key,)).fetchone()
+        return None if row is None else json.loads(row[0])
+
+    def put_model(self, model_key: str, description: dict, facts: dict,
+                  reference: ZeroFieldReference, zero_point: tuple | None = None) -> None:
+        """Store a model's reference (kept if one is there already), and with it,
+        in the same transaction, its zero-field point ``(key, task, record)``."""
+        with self._db:
+            self._db.execute(
+                "INSERT INTO models VALUES (?, ?, ?, ?, ?, ?, ?) ON CONFLICT (model_key) "
+                "DO NOTHING",
+                (model_key, json.dumps(description, sort_keys=True), json.dumps(facts),
+                 reference_to_bytes(reference), _now(), socket.gethostname(), __version__))
+            if zero_point is not None:
+                self._insert_point(*zero_point)
+
+    # -- points
+
+    def put_point(self, task, outcome: PointRecord | PointFailure) -> None:
+        """Store a finished point (one transaction)."""
+        with self._db:
+            self._insert_point(task, outcome)
+
+    def _insert_point(self, task, outcome) -> None:
+        common = (task.key, task.model_key, json.dumps(list(task.point.field_vector_au)),
+                  json.dumps(list(task.molecule.origin_bohr)),
+                  json.dumps(task.quantities.canonical()))
+        if isinstance(outcome, PointFailure):
+            values = common + ("failed",) + (None,) * len(_RECORD_COLUMNS) + (
+                outcome.reason, outcome.kind)
+        else:
+            r = outcome
+            values = common + ("ok", r.energy_au, r.scf_energy_au,
+                               None if r.dipole_au is None else json.dumps(list(r.dipole_au)),
+                               None if r.alpha_au is None else json.dumps(
+                                   [list(row) for row in r.alpha_au]),
+                               r.scf_cycles, json.dumps(list(r.attempts)), r.s2,
+                               r.occupied_overlap, r.gradient_norm, r.dipole_error_au,
+                               r.state_issue, None, None)
+        values += (outcome.wall_time_s, socket.gethostname(), __version__, _now())
+        marks = ", ".join("?" * len(values))
+        # A computed point is never replaced; a failure is, by a later success.
+        self._db.execute(
+            f"INSERT INTO points VALUES ({marks}) ON CONFLICT (point_key) DO UPDATE SET "
+            + ", ".join(f"{c} = excluded.{c}" for c in (
+                "status", *_RECORD_COLUMNS, "failure", "failure_kind", "wall_time_s", "host",
+                "version", "created_at"))
+            + " WHERE points.status = 'failed'", values)
+
+    def get_points(self, keys) -> dict[str, StoredPoint]:
+        """The stored rows among ``keys`` (absent keys are simply missing)."""
+        keys = list(dict.fromkeys(keys))
+        out: dict[str, StoredPoint] = {}
+        for start in range(0, len(keys), 500):
+            chunk = keys[start:start + 500]
+            rows = self._db.execute(
+                "SELECT point_key, model_key, status, " + ", ".join(_RECORD_COLUMNS)
+                + ", failure, failure_kind, wall_time_s, host, version, created_at FROM points "
+                f"WHERE point_key IN ({', '.join('?' * len(chunk))})", chunk).fetchall()
+            for row in rows:
+                out[row[0]] = _stored_point(row)
+        return out
+
+    def iter_points(self) -> Iterator[tuple[StoredPoint, list, dict]]:
+        """Every stored point with its field vector and its model's description."""
+        descriptions = {k: json.loads(d) for k, d in
+                        self._db.execute("SELECT model_key, description FROM models")}
+        for row in self._db.execute(
+                "SELECT point_key, model_key, status, " + ", ".join(_RECORD_COLUMNS)
+                + ", failure, failure_kind, wall_time_s, host, version, created_at, "
+                "field_vector_au, origin_bohr, quantities FROM points ORDER BY model_key, "
+                "created_at, point_key"):
+            extra = {"field_vector_au": json.loads(row[-3]), "origin_bohr": json.loads(row[-2]),
+                     "quantities": json.loads(row[-1])}
+            yield _stored_point(row[:-3]), extra, descriptions.get(row[1], {})
+
+    def summary(self) -> list[dict]:
+        """Per model: its description, points computed and failed, first and last time."""
+        out = []
+        for key, description, created in self._db.execute(
+                "SELECT model_key, description, created_at FROM models ORDER BY created_at"):
+            counts = dict(self._db.execute(
+                "SELECT status, COUNT(*) FROM points WHERE model_key = ? GROUP BY status",
+                (key,)).fetchall())
+            last = self._db.execute("SELECT MAX(created_at), SUM(wall_time_s) FROM points "
+                                    "WHERE model_key = ?", (key,)).fetchone()
+            out.append({"model_key": key, **json.loads(description),
+                        "points_ok": counts.get("ok", 0), "points_failed": counts.get("failed", 0),
+                        "created_at": created, "last_point_at": last[0],
+                        "compute_time_s": last[1] or 0.0})
+        return out
+
+    def integrity_ok(self) -> bool:
+        return self._db.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+
+
+def _stored_point(row) -> StoredPoint:
+    key, model_key, status = row[:3]
+    values = dict(zip(_RECORD_COLUMNS, row[3:3 + len(_RECORD_COLUMNS)]))
+    failure, kind, wall, host, version, created = row[3 + len(_RECORD_COLUMNS):]
+    if status == "ok":
+        fields = {
+            "energy_au": values["energy_au"], "scf_energy_au": values["scf_energy_au"],
+            "dipole_au": (None if values["dipole_au"] is None
+                          else tuple(json.loads(values["dipole_au"]))),
+            "alpha_au": (None if values["alpha_au"] is None
+                         else tuple(tuple(r) for r in json.loads(values["alpha_au"]))),
+            "scf_cycles": int(values["scf_cycles"]),
+            "attempts": tuple(json.loads(values["attempts"])),
+            "s2": values["s2"], "occupied_overlap": values["occupied_overlap"],
+            "gradient_norm": values["gradient_norm"],
+            "dipole_error_au": values["dipole_error_au"], "state_issue": values["state_issue"],
+        }
+    else:
+        fields = {"reason": failure, "kind": kind}
+    return StoredPoint(key, model_key, status, fields, wall or 0.0, host, version, created)
+
+
+def _initialise(db: sqlite3.Connection) -> None:
+    with db:
+        db.executescript(_SCHEMA)
+        db.executemany("INSERT INTO meta VALUES (?, ?)", [
+            ("format", FORMAT), ("schema", str(SCHEMA_VERSION)), ("created_at", _now()),
+            ("created_by", f"fieldprop {__version__}")])
+
+
+def _validate_file(path: Path, shown: str) -> None:
+    """Refuse anything at ``path`` that is not a readable fieldprop store of a
+    schema this version reads; never writes to it."""
+    try:
+        with open(path, "rb") as fh:
+            header = fh.read(len(_SQLITE_HEADER))
+    except OSError as exc:
+        raise InputError(f"{shown}: cannot be read ({exc.strerror})") from None
+    if header != _SQLITE_HEADER:
+        what = "an empty file" if not header else "not an SQLite database"
+        raise InputError(f"{shown}: is {what}, not a fieldprop store; give --store another "
+                         "path (the file is left as it is)")
+    try:
+        db = sqlite3.connect(f"file:{path}?mode=ro", uri=True)
+    except sqlite3.Error as exc:
+        raise InputError(f"{shown}: cannot be opened ({exc})") from None
+    try:
+        try:
+            tables = {r[0] for r in db.execute("SELECT name FROM sqlite_master "
+                                               "WHERE type = 'table'")}
+            meta = (dict(db.execute("SELECT name, value FROM meta").fetchall())
+                    if "meta" in tables else {})
+        except sqlite3.DatabaseError as exc:
+            raise InputError(f"{shown}: corrupt SQLite database ({exc}); move it away and "
+                             "rerun to start a new store") from None
+        if meta.get("format") != FORMAT:
+            raise InputError(f"{shown}: an SQLite database but not a fieldprop store (no "
+                             f"'{FORMAT}' mark); give --store another path")
+        try:
+            schema = int(meta.get("schema", ""))
+        except ValueError:
+            raise InputError(f"{shown}: fieldprop store with an unreadable schema "
+                             f"{meta.get('schema')!r}") from None
+        if schema > SCHEMA_VERSION:
+            raise InputError(f"{shown}: written by a newer fieldprop (store schema {schema}, "
+                             f"this version reads {SCHEMA_VERSION}); upgrade fieldprop or give "
+                             "--store another path")
+        if schema < SCHEMA_VERSION:
+            raise InputError(f"{shown}: store schema {schema} is older than this version's "
+                             f"{SCHEMA_VERSION} and has no migration; give --store a new path")
+        try:
+            check = db.execute("PRAGMA quick_check").fetchone()[0]
+        except sqlite3.DatabaseError as exc:
+            check = str(exc)
+        if check != "ok":
+            raise InputError(f"{shown}: corrupt SQLite database ({check}); move it away and "
+                             "rerun to start a new store")
+    finally:
+        db.close()
