@@ -314,8 +314,32 @@ def cmd_inspect(args) -> int:
     return 0
 
 
+class Terminated(KeyboardInterrupt):
+    """SIGTERM (a batch system's wall-time limit, ``kill``): handled as Ctrl-C is,
+    so the points finished so far stay stored and the workers are stopped."""
+
+
+def _on_sigterm(signum, frame):
+    raise Terminated()
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``fieldprop`` command; returns the exit code."""
+    import signal
+    import threading
+
+    if threading.current_thread() is threading.main_thread():
+        previous = signal.signal(signal.SIGTERM, _on_sigterm)
+    else:
+        previous = None
+    try:
+        return _main(argv)
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
+
+
+def _main(argv: Sequence[str] | None) -> int:
     try:
         args = build_parser().parse_args(argv)
         _configure_logging(getattr(args, "quiet", False))
@@ -323,6 +347,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except FieldpropError as exc:
         print(f"fieldprop: error: {exc}", file=sys.stderr)
         return exc.exit_code
+    except Terminated:
+        print("fieldprop: error: terminated (SIGTERM)", file=sys.stderr)
+        return 143
     except KeyboardInterrupt:
         print("fieldprop: error: interrupted", file=sys.stderr)
         return 130

@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import logging
 import os
+import signal
 import time
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from dataclasses import dataclass
@@ -50,6 +51,10 @@ class PointsOutcome:
 
 
 def _init_worker() -> None:
+    # Ctrl-C reaches the whole process group: only the parent acts on it (it
+    # stops the workers); SIGTERM from the parent ends a worker at once.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
     # One BLAS/OpenMP thread per worker process: N workers share N cores.
     os.environ["OMP_NUM_THREADS"] = "1"
     from pyscf import lib
@@ -135,6 +140,13 @@ def compute_points(tasks: list[PointTask], store: PointStore, facts: dict, descr
                        len(missing) - done)
         raise
     bar.close()
+    # The result is what the store holds: where another process stored a point
+    # first (two runs sharing a store), its record wins over the one made here.
+    final = store.get_points(t.key for t in tasks)
+    for i, task in enumerate(tasks):
+        row = final.get(task.key)
+        if row is not None and row.ok:
+            outcomes[i] = row.record(task.point)
     records = tuple(o for _, o in sorted(outcomes.items()) if isinstance(o, PointRecord))
     failures = tuple(o for _, o in sorted(outcomes.items()) if isinstance(o, PointFailure))
     return PointsOutcome(records, failures, computed + len(missing), reused, stored_failures)
@@ -150,6 +162,12 @@ def _pool(tasks, missing, reference, workers, finish) -> None:
             for future in done:
                 finish(pending.pop(future), future.result())
     except BaseException:
+        # Interrupted (Ctrl-C, SIGTERM) or failed: drop the queued points and end
+        # the running ones now rather than after their SCF. The executor has no
+        # public way to end running workers before Python 3.14, hence the
+        # guarded use of its process table.
         pool.shutdown(wait=False, cancel_futures=True)
+        for process in list((getattr(pool, "_processes", None) or {}).values()):
+            process.terminate()
         raise
     pool.shutdown()
