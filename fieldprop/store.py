@@ -226,11 +226,10 @@ class PointStore:
                 db = sqlite3.connect(f"file:{path}?mode=ro", uri=True,
                                      timeout=BUSY_TIMEOUT_MS / 1000)
             else:
+                if not exists and not _create(path):
+                    _validate_file(path, shown)  # another process made it first
                 db = sqlite3.connect(path, timeout=BUSY_TIMEOUT_MS / 1000)
                 db.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
-                if not exists:
-                    db.execute("PRAGMA journal_mode = WAL")
-                    _initialise(db)
                 db.execute("PRAGMA synchronous = NORMAL")
         except sqlite3.Error as exc:
             raise InputError(f"{shown}: cannot be opened ({exc})") from None
@@ -377,6 +376,40 @@ def _stored_point(row) -> StoredPoint:
     else:
         fields = {"reason": failure, "kind": kind}
     return StoredPoint(key, model_key, status, fields, wall or 0.0, host, version, created)
+
+
+def _create(path: Path) -> bool:
+    """Make a new, initialised store at ``path`` atomically: built under a
+    temporary name beside it, then linked into place, so another process never
+    sees a half-made file. False if a file appeared at ``path`` meanwhile."""
+    import tempfile
+
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".new")
+    os.close(fd)
+    try:
+        os.unlink(tmp)  # SQLite makes the file itself
+        db = sqlite3.connect(tmp)
+        try:
+            db.execute("PRAGMA journal_mode = WAL")  # persistent: kept in the file
+            _initialise(db)
+        finally:
+            db.close()
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)
+        try:
+            os.link(tmp, path)
+        except FileExistsError:
+            return False
+        except OSError:  # a file system without hard links: a plain rename
+            if path.exists():
+                return False
+            os.replace(tmp, path)
+        return True
+    finally:
+        for leftover in (tmp, tmp + "-wal", tmp + "-shm"):
+            if os.path.exists(leftover):
+                os.unlink(leftover)
 
 
 def _initialise(db: sqlite3.Connection) -> None:

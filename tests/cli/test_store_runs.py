@@ -1,0 +1,147 @@
+"""The point store across processes: a run killed with SIGKILL resumes where it
+stopped, two runs share one store safely, and a process that cannot import PySCF
+assembles the same result from the stored points.
+
+Each command runs as a real ``python -m fieldprop`` process.
+"""
+
+import json
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import textwrap
+import time
+
+import pytest
+
+pytest.importorskip("pyscf")
+
+#: Water in 6-31+G* (our geometry, as in the physics tests), mu/alpha/beta on the
+#: dipole route: 37 points of ~0.1-0.3 s each, long enough to kill in the middle.
+WATER = textwrap.dedent("""
+    [molecule]
+    geometry = \"\"\"
+    O   0.000000  0.000000  0.117300
+    H   0.000000  0.757200 -0.469200
+    H   0.000000 -0.757200 -0.469200
+    \"\"\"
+    [model]
+    method = "hf"
+    basis = "6-31+g*"
+    [response]
+    properties = ["dipole", "alpha", "beta"]
+    field_au = 0.002
+    """)
+
+
+def _env():
+    env = {k: v for k, v in os.environ.items() if not k.startswith("PYTHONWARNINGS")}
+    env["OMP_NUM_THREADS"] = "1"
+    return env
+
+
+def fieldprop(*args, cwd, **kwargs):
+    return subprocess.run([sys.executable, "-m", "fieldprop", *args], capture_output=True,
+                          text=True, cwd=cwd, env=_env(), timeout=600, **kwargs)
+
+
+def stored_points(path) -> int:
+    """Committed rows, read as any other process would (WAL: readers never block)."""
+    if not path.exists():
+        return 0
+    db = sqlite3.connect(f"file:{path}?mode=ro", uri=True, timeout=30)
+    try:
+        return db.execute("SELECT COUNT(*) FROM points").fetchone()[0]
+    except sqlite3.OperationalError:  # the schema is not committed yet
+        return 0
+    finally:
+        db.close()
+
+
+def numbers(doc):
+    """The numbers of a result: tensors and invariants (values and error bars)."""
+    return {"tensors": doc["tensors"], "invariants": doc["invariants"],
+            "energy_au": doc["energy_au"]}
+
+
+def test_a_killed_run_resumes_without_recomputing_and_gives_the_same_numbers(tmp_path):
+    (tmp_path / "water.toml").write_text(WATER)
+    store = tmp_path / "fieldprop-points.sqlite"
+    proc = subprocess.Popen([sys.executable, "-m", "fieldprop", "run", "water.toml", "--quiet"],
+                            cwd=tmp_path, env=_env(), stdout=subprocess.DEVNULL,
+                            stderr=subprocess.DEVNULL)
+    deadline = time.monotonic() + 300
+    while stored_points(store) < 6 and proc.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.02)
+    proc.send_signal(signal.SIGKILL)
+    proc.wait()
+    assert proc.returncode == -signal.SIGKILL, "the run ended before it could be killed"
+    kept = stored_points(store)
+    assert kept >= 6
+    assert not (tmp_path / "water.result.json").exists()
+
+    done = fieldprop("run", "water.toml", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    doc = json.loads((tmp_path / "water.result.json").read_text())
+    points = doc["points"]
+    assert points["reused"] == kept and points["computed"] == points["planned"] - kept
+    assert f"{kept} reused" in done.stderr
+
+    fresh = fieldprop("run", "water.toml", "--no-store", "--json", "fresh.json", "--quiet",
+                      cwd=tmp_path)
+    assert fresh.returncode == 0, fresh.stderr
+    # Every point is the same deterministic SCF from the same zero-field
+    # reference (stored bit for bit), so the numbers agree exactly.
+    assert numbers(doc) == numbers(json.loads((tmp_path / "fresh.json").read_text()))
+
+
+def test_two_runs_sharing_one_store_write_every_point_once(tmp_path):
+    (tmp_path / "water.toml").write_text(WATER)
+    (tmp_path / "twin.toml").write_text(WATER)
+    procs = [subprocess.Popen([sys.executable, "-m", "fieldprop", "run", name, "--quiet"],
+                              cwd=tmp_path, env=_env(), stdout=subprocess.DEVNULL,
+                              stderr=subprocess.PIPE, text=True)
+             for name in ("water.toml", "twin.toml")]
+    errors = [p.communicate(timeout=600)[1] for p in procs]
+    assert [p.returncode for p in procs] == [0, 0], errors
+    db = sqlite3.connect(tmp_path / "fieldprop-points.sqlite")
+    total, distinct = db.execute("SELECT COUNT(*), COUNT(DISTINCT point_key) FROM points"
+                                 ).fetchone()
+    assert db.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    assert db.execute("SELECT COUNT(*) FROM models").fetchone()[0] == 1
+    db.close()
+    docs = [json.loads((tmp_path / f"{n}.result.json").read_text()) for n in ("water", "twin")]
+    assert total == distinct == docs[0]["points"]["planned"]
+    serial = fieldprop("run", "water.toml", "--no-store", "--json", "serial.json", "--quiet",
+                       cwd=tmp_path)
+    assert serial.returncode == 0, serial.stderr
+    reference = numbers(json.loads((tmp_path / "serial.json").read_text()))
+    assert numbers(docs[0]) == reference and numbers(docs[1]) == reference
+
+
+#: Runs ``fieldprop collect`` with PySCF made unimportable.
+NO_PYSCF = ("import sys; sys.modules['pyscf'] = None; from fieldprop.cli import main; "
+            "code = main(sys.argv[1:]); assert 'pyscf' not in [m.split('.')[0] for m in "
+            "sys.modules if sys.modules[m] is not None]; sys.exit(code)")
+
+
+def test_the_analysis_of_stored_points_needs_no_pyscf_and_gives_the_same_json(tmp_path):
+    (tmp_path / "water.toml").write_text(WATER)
+    done = fieldprop("run", "water.toml", "--quiet", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    collected = subprocess.run([sys.executable, "-c", NO_PYSCF, "collect", "water.toml",
+                                "--json", "collected.json"], cwd=tmp_path, env=_env(),
+                               capture_output=True, text=True, timeout=300)
+    assert collected.returncode == 0, collected.stderr
+    ran = json.loads((tmp_path / "water.result.json").read_text())
+    got = json.loads((tmp_path / "collected.json").read_text())
+    for doc in (ran, got):
+        doc.pop("wall_time_s")
+    planned = ran["points"]["planned"]
+    assert got["points"] == {**ran["points"], "computed": 0, "reused": planned}
+    ran.pop("points"), got.pop("points")
+    assert got == ran
+    # The tables too, but for the header's note that every point came from the store.
+    assert collected.stdout.replace(f" ({planned} reused from the store)", "") == done.stdout
