@@ -13,6 +13,8 @@ PySCF objects are built inside the worker from the plain data of a
 from __future__ import annotations
 
 import contextlib
+import copy
+import dataclasses
 import functools
 import logging
 import time
@@ -165,16 +167,78 @@ def _mean_field(mol, model, scf_spec):
     return mf
 
 
-def _apply_field(mf, mol, molecule, field_vector_au):
-    """Add -mu_op.F to the Hamiltonian of ``mf``, measured from the job's origin."""
+def _apply_field(mf, context, field_vector_au) -> None:
+    """Add -mu_op.F to the Hamiltonian of ``mf``, measured from the job's origin
+    (the dipole integrals and the field-free core Hamiltonian come from the
+    context, computed once)."""
     f = np.asarray(field_vector_au, dtype=float)
-    with mol.with_common_orig(molecule.origin_bohr):
-        r = mol.intor_symmetric("int1e_r", comp=3)
-    h = mf.get_hcore() + np.einsum("x,xij->ij", f, r)
-    e_nuc = mol.energy_nuc() - float(f @ molecule.nuclear_dipole_au())
+    h = context.hcore + np.einsum("x,xij->ij", f, context.r)
+    e_nuc = context.energy_nuc - float(f @ context.molecule.nuclear_dipole_au())
     mf.get_hcore = lambda *args, **kwargs: h
     mf.energy_nuc = lambda *args, **kwargs: e_nuc
-    return r
+
+
+class ModelContext:
+    """What the field does not change, computed once per molecule, model and
+    process and shared by every point computed there.
+
+    The molecule (PySCF ``Mole``), the field-free core Hamiltonian, overlap and
+    dipole integrals (about the job's origin), and a template mean-field object
+    holding the two-electron integrals in memory when they fit (PySCF's own
+    rule, ``_is_mem_enough``) and, for DFT, the built integration grid; each
+    point's mean-field object is a shallow copy of it with the field applied, so
+    it shares them. With a zero-field ``reference`` (attached once computed),
+    also its density-response function (J, K and, for DFT, the
+    exchange-correlation kernel at the zero-field density), used by the Newton
+    steps of every point.
+    """
+
+    def __init__(self, molecule, model, scf_spec, reference: ZeroFieldReference | None = None):
+        from pyscf import lib
+
+        lib.logger.QUIET = 0
+        self.molecule, self.model, self.scf = molecule, model, scf_spec
+        self.mol = build_mole(molecule, model.basis)
+        self.template = _mean_field(self.mol, model, scf_spec)
+        self.hcore = self.template.get_hcore()
+        self.overlap = self.template.get_ovlp()
+        self.energy_nuc = self.mol.energy_nuc()
+        with self.mol.with_common_orig(molecule.origin_bohr):
+            self.r = self.mol.intor_symmetric("int1e_r", comp=3)
+        template = self.template
+        template.get_ovlp = lambda *args, **kwargs: self.overlap
+        if self.mol.nelectron > 1 and (template._is_mem_enough() or self.mol.incore_anyway):
+            template._eri = self.mol.intor("int2e", aosym="s8")
+        if model.method == "dft":
+            template.grids.build()
+        self.reference: ZeroFieldReference | None = None
+        if reference is not None:
+            self.attach(reference)
+
+    def attach(self, reference: ZeroFieldReference) -> None:
+        """Use ``reference`` as every later point's start and state reference."""
+        self.reference = reference
+        self.__dict__.pop("response", None)
+        if reference.mo_coeff is not None:
+            self.template.mo_coeff = reference.mo_coeff
+            self.template.mo_occ = reference.mo_occ
+
+    @functools.cached_property
+    def response(self):
+        """The zero-field density-response function (None without one)."""
+        if self.reference is None or self.reference.mo_coeff is None or not _has_hessian(
+                self.template):
+            return None
+        return response_function(self.template)
+
+    def mean_field(self, field_vector_au):
+        """A mean-field object for one field point, sharing the context's integrals."""
+        mf = copy.copy(self.template)
+        for key in ("mo_coeff", "mo_occ", "mo_energy"):
+            setattr(mf, key, None)
+        mf.converged, mf.e_tot = False, 0.0
+        _apply_field(mf, self, field_vector_au)
+        return mf
 
 
 def _scf_dipole(mf, r, molecule) -> np.ndarray:
@@ -318,36 +382,217 @@ def _s2(mf) -> float:
     return s * (s + 1.0)
 
 
-def _converge(mf, dm0, label: str) -> tuple[list[str], int]:
-    """Run the SCF, retrying along a ladder of strategies; returns attempts, cycles."""
-    attempts, cycles = [], 0
-    strategies = [
-        ("diis", {}),
-        ("diis+damping+level_shift", {"damp": 0.3, "level_shift": 0.2, "diis_start_cycle": 4}),
-        ("second_order", None),
-    ]
+def _has_hessian(mf) -> bool:
+    """RHF, UHF, RKS and UKS have the real orbital Hessian of _OrbitalHessian."""
+    from pyscf.scf import hf, rohf, uhf
+
+    return isinstance(mf, uhf.UHF) or (isinstance(mf, hf.RHF) and not isinstance(mf, rohf.ROHF))
+
+
+def _gradient_norm(mf, fock=None) -> float:
+    if fock is None:
+        fock = mf.get_fock()
+    return float(np.linalg.norm(mf.get_grad(mf.mo_coeff, mf.mo_occ, fock)))
+
+
+def _semicanonical(c, occ, fock):
+    """Orbitals that diagonalise the Fock matrix within the occupied and within
+    the virtual space (the density is unchanged), and those diagonal values."""
+    if np.asarray(occ).ndim == 2:
+        pairs = [_semicanonical(c[k], occ[k], fock[k]) for k in range(2)]
+        return np.array([p[0] for p in pairs]), np.array([p[1] for p in pairs])
+    c = np.array(c, copy=True)
+    energies = np.zeros(c.shape[1])
+    for mask in (occ > 0, occ == 0):
+        block = c[:, mask]
+        values, vectors = np.linalg.eigh(block.T @ fock @ block)
+        c[:, mask] = block @ vectors
+        energies[mask] = values
+    return c, energies
+
+
+def _rotate(c, occ, x):
+    """c exp(K) with K_vo = x, K_ov = -x^T per orbital set (x: the sets' virtual x
+    occupied blocks, concatenated): the rotation whose density change
+    _OrbitalHessian's matvec assumes."""
+    from scipy.linalg import expm
+
+    sets = [c] if np.asarray(occ).ndim == 1 else list(c)
+    occs = [occ] if np.asarray(occ).ndim == 1 else list(occ)
+    out, start = [], 0
+    for cs, os_ in zip(sets, occs):
+        o, v = np.where(os_ > 0)[0], np.where(os_ == 0)[0]
+        block = np.asarray(x[start:start + v.size * o.size]).reshape(v.size, o.size)
+        start += block.size
+        k = np.zeros((cs.shape[1], cs.shape[1]))
+        k[np.ix_(v, o)] = block
+        k[np.ix_(o, v)] = -block.T
+        out.append(cs @ expm(k))
+    return out[0] if len(out) == 1 else np.array(out)
+
+
+#: Newton steps at most per point, and the drop of the gradient per step below
+#: which a step counts as stalled (two stalled steps in a row end the Newton
+#: finish: the gradient has reached the floor double precision allows).
+MAX_NEWTON_STEPS = 12
+STALL_RATIO = 0.5
+#: Gradient to which DIIS takes a cold (zero-field) SCF before Newton steps
+#: finish it: where DIIS still converges fast.
+DIIS_HANDOVER = 1e-6
+
+
+def _newton(mf, context, c, occ, target: float) -> tuple[int, float]:
+    """Newton steps with the orbital Hessian from orbitals ``c`` towards gradient
+    ``target``; leaves the best state reached in ``mf`` (semi-canonical
+    orbitals, energies, e_tot). Returns (Fock builds and Hessian products, the
+    gradient reached).
+
+    Each step builds the Fock matrix (one build), semi-canonicalises, and solves
+    (A + B) x = -F_vo by preconditioned conjugate gradients (one build-like
+    product per iteration) to a relative residual that the quadratic convergence
+    makes sufficient (tighter as the target nears); the response function is the
+    context's zero-field one (exact for HF, whose J and K do not depend on the
+    density; the DFT kernel changes by O(F), which slows but does not stop the
+    convergence).
+    """
+    h1e, s1e = mf.get_hcore(), context.overlap
+    work, best, stalled, steps = 0, None, 0, 0
+    last = np.inf
+    while True:
+        dm = mf.make_rdm1(c, occ)
+        vhf = mf.get_veff(mf.mol, dm)
+        work += 1
+        fock = mf.get_fock(h1e, s1e, vhf, dm)
+        c, energies = _semicanonical(c, occ, fock)
+        g = float(np.linalg.norm(mf.get_grad(c, occ, fock)))
+        if best is None or g < best[0]:
+            best = (g, c, energies, float(mf.energy_tot(dm, h1e, vhf)))
+        stalled = stalled + 1 if g > STALL_RATIO * last else 0
+        last = g
+        if g <= target or stalled >= 2 or steps >= MAX_NEWTON_STEPS or not np.isfinite(g):
+            break
+        mf.mo_coeff, mf.mo_occ, mf.mo_energy = c, occ, energies
+        hessian = _OrbitalHessian(mf, response=context.response)
+        rtol = float(np.clip(0.1 * target / g, 1e-8, 0.1))
+        try:
+            x = hessian.solve(-hessian.vo(fock), rtol, "Newton step")
+        except ScfNotConvergedError:
+            work += hessian.products
+            break  # an indefinite Hessian (another state nearby): leave it to the ladder
+        work += hessian.products
+        c = _rotate(c, occ, x)
+        steps += 1
+    g, c, energies, e_tot = best
+    mf.mo_coeff, mf.mo_occ, mf.mo_energy, mf.e_tot = c, occ, energies, e_tot
+    return work, g
+
+
+def _start_orbitals(context, field_vector_au):
+    """The zero-field orbitals rotated by their linear response to the field."""
+    ref = context.reference
+    if ref.field_rotations is None or not np.size(ref.field_rotations):
+        return ref.mo_coeff
+    kappa = np.einsum("j,jn->n", np.asarray(field_vector_au, dtype=float), ref.field_rotations)
+    return _rotate(ref.mo_coeff, ref.mo_occ, kappa)
+
+
+def _ladder(mf, dm0, target: float, attempts: list[str]) -> int:
+    """PySCF's own SCF along a ladder of strategies, from ``dm0``, until one
+    converges to ``target``: DIIS; a level shift (with damping, except for
+    restricted open shells, where PySCF's damping fails); second-order SCF.
+    Leaves the best state reached in ``mf``; returns the cycles."""
+    from pyscf.scf import rohf
+
+    restricted_open = isinstance(mf, rohf.ROHF)
+    shift = {"level_shift": 0.2, "diis_start_cycle": 4}
+    if not restricted_open:
+        shift["damp"] = 0.3
+    strategies = [("diis", {}), ("diis+level_shift" if restricted_open else
+                                 "diis+damping+level_shift", shift), ("second_order", None)]
+    cycles, best = 0, None
+    mf.conv_tol_grad = target
     for name, settings in strategies:
         attempts.append(name)
         if settings is None:
             solver = mf.newton()
+            solver.verbose = 0
             solver.kernel(mf.make_rdm1() if mf.mo_coeff is not None else dm0)
             cycles += int(getattr(solver, "cycles", 0) or 0)
-            if solver.converged:
-                for key in ("mo_coeff", "mo_occ", "mo_energy", "e_tot", "converged"):
+            if solver.mo_coeff is not None:
+                for key in ("mo_coeff", "mo_occ", "mo_energy", "e_tot"):
                     setattr(mf, key, getattr(solver, key))
-                return attempts, cycles
-            continue
-        for key, value in settings.items():
-            setattr(mf, key, value)
-        mf.kernel(dm0)
-        cycles += int(getattr(mf, "cycles", 1) or 1)
-        if mf.converged:
-            return attempts, cycles
+        else:
+            for key, value in settings.items():
+                setattr(mf, key, value)
+            mf.kernel(dm0)
+            cycles += int(getattr(mf, "cycles", 1) or 1)
+        g = _gradient_norm(mf)
+        if best is None or g < best[0]:
+            best = (g, mf.mo_coeff, mf.mo_occ, mf.mo_energy, mf.e_tot)
+        if g <= target:
+            break
         dm0 = mf.make_rdm1()
+    for key, value in zip(("mo_coeff", "mo_occ", "mo_energy", "e_tot"), best[1:]):
+        setattr(mf, key, value)
+    mf.level_shift, mf.damp = 0.0, 0.0
+    return cycles
+
+
+def _converge(mf, context, point) -> tuple[list[str], int]:
+    """Converge the SCF of one field point; returns the strategies tried and the
+    cycles (Fock builds and Hessian products).
+
+    With ``[scf] solver = "newton"`` (and a real orbital Hessian: RHF, UHF, RKS,
+    UKS): a field point starts from the zero-field orbitals rotated by their
+    linear response to the field ("response start", exact to first order) and
+    takes Newton steps to the target; zero field itself takes DIIS to
+    DIIS_HANDOVER from PySCF's initial guess, then Newton steps. Anything that
+    does not reach the target goes down PySCF's ladder (_ladder). A point that
+    ends at a gradient at most ScfSpec.gradient_accepted (it stalled at the
+    floor double precision allows, where its derivatives need no more) is
+    accepted: the noise model uses the gradient reached. Otherwise it fails.
+    """
+    scf = context.scf
+    target, accepted = scf.gradient_conv_tol, scf.gradient_accepted
+    reference = context.reference
+    if mf.mol.nelectron == 1:
+        # No electron-electron terms (PySCF's HF1e): one diagonalisation of the
+        # core Hamiltonian is the exact solution.
+        mf.kernel()
+        mf.converged = True
+        return ["one_electron"], 1
+    attempts, cycles, g = [], 0, np.inf
+    newton_ok = scf.solver == "newton" and _has_hessian(mf)
+    if newton_ok and reference is None:
+        attempts.append("diis")
+        mf.conv_tol_grad = max(target, DIIS_HANDOVER)
+        mf.conv_tol = max(scf.energy_conv_tol_au, DIIS_HANDOVER ** 2)
+        mf.kernel()
+        cycles += int(getattr(mf, "cycles", 1) or 1)
+        mf.conv_tol, mf.conv_tol_grad = scf.energy_conv_tol_au, target
+        start = mf.mo_coeff
+        occ = mf.mo_occ
+        newton_ok = start is not None
+    elif newton_ok:
+        attempts.append("response_start")
+        occ = reference.mo_occ
+        start = _start_orbitals(context, point.field_vector_au)
+    if newton_ok:
+        attempts.append("newton")
+        work, g = _newton(mf, context, start, occ, target)
+        cycles += work
+    if g > target:
+        dm0 = (mf.make_rdm1() if mf.mo_coeff is not None else
+               reference.density if reference is not None else None)
+        cycles += _ladder(mf, dm0, target, attempts)
+        g = _gradient_norm(mf)
+    if g <= accepted:
+        mf.converged = True
+        return attempts, cycles
     raise ScfNotConvergedError(
-        f"SCF did not converge at field point {label} after {', '.join(attempts)} "
-        f"(energy tolerance {mf.conv_tol:g} Eh, {mf.max_cycle} cycles each); no number is "
-        "formed from it")
+        f"SCF did not converge at field point {point.label}: orbital gradient {g:.1e} reached after "
+        f"{', '.join(attempts)} ({cycles} cycles); the derivatives need at most "
+        f"{accepted:.1e} (target {target:.1e}); no number is formed from it")
 
 
 def _correlated_energy(mf, model, scf_spec, label: str) -> float:
@@ -387,7 +632,7 @@ class _OrbitalHessian:
     the polarizability of H).
     """
 
-    def __init__(self, mf):
+    def __init__(self, mf, response=None):
         from pyscf.scf import hf, rohf, uhf
 
         if isinstance(mf, uhf.UHF):
@@ -404,16 +649,15 @@ class _OrbitalHessian:
         self.sizes = [b[2].size for b in self.blocks]
         self.diagonal = np.concatenate([de.ravel() for (co, cv, de) in self.blocks])
         self._mf = mf
+        self.products = 0  # Hessian-vector products so far (each ~ one Fock build)
+        if response is not None:
+            self.__dict__["response"] = response  # shared: see ModelContext.response
 
     @functools.cached_property
     def response(self):
         """PySCF's response function (built on first use: for DFT it holds the
         exchange-correlation kernel on the grid); None for one electron."""
-        mf = self._mf
-        if mf.mol.nelectron == 1:
-            return None
-        return (mf.gen_response(hermi=1) if len(self.blocks) == 2
-                else mf.gen_response(singlet=None, hermi=1))
+        return response_function(self._mf)
 
     def _split(self, x):
         parts, start = [], 0
@@ -423,6 +667,7 @@ class _OrbitalHessian:
         return parts
 
     def matvec(self, x):
+        self.products += 1
         parts = self._split(np.asarray(x).ravel())
         out = [de * xs for (co, cv, de), xs in zip(self.blocks, parts)]
         if self.response is not None:
@@ -461,6 +706,16 @@ class _OrbitalHessian:
     def density_trace(self, rmo, x) -> float:
         """-tr(r dD) for the rotation x: the dipole change it causes (one component)."""
         return float(-2.0 * self.weight * (rmo @ x))
+
+
+def response_function(mf):
+    """PySCF's density-response function of a converged RHF, UHF, RKS or UKS
+    object (J, K and the exchange-correlation kernel at its density); None for
+    one electron, which has no electron-electron terms."""
+    if mf.mol.nelectron == 1:
+        return None
+    return (mf.gen_response(hermi=1) if np.asarray(mf.mo_occ).ndim == 2
+            else mf.gen_response(singlet=None, hermi=1))
 
 
 def analytic_polarizability(mf, r) -> np.ndarray:
@@ -521,10 +776,17 @@ def newton_dipole_step(mf, r, fock=None) -> np.ndarray:
     return np.array([hessian.density_trace(hessian.vo(r[i]), x) for i in range(3)])
 
 
-def evaluate_reference(task: PointTask) -> tuple[PointRecord, ZeroFieldReference]:
-    """Compute the zero-field point from scratch and the reference it gives every
-    other point: its density (the warm start), occupied orbitals, <S^2> and the
-    symmetry operations its state has (the state checks).
+#: Relative residual of the zero-field response rotations: they only start the
+#: points (an error of 1e-6 of a first-order term is far below what Newton removes).
+START_RTOL = 1e-6
+
+
+def compute_reference(context: ModelContext,
+                      task: PointTask) -> tuple[PointRecord, ZeroFieldReference]:
+    """Compute the zero-field point from scratch, and the reference it gives every
+    other point: density, orbitals, <S^2>, the symmetry operations its state has
+    (the state checks) and the orbitals' linear response to a field (the start
+    of every point). Attaches the reference to ``context``.
 
     Raises
     ------
@@ -532,12 +794,25 @@ def evaluate_reference(task: PointTask) -> tuple[PointRecord, ZeroFieldReference
     """
     if not task.is_zero_field:
         raise ValueError(f"the reference is computed at zero field, not at {task.point.label}")
-    return _evaluate(task, None)
+    record, mf = _evaluate(context, task)
+    rotations, work = None, 0
+    if _has_hessian(mf):
+        hessian = _OrbitalHessian(mf)
+        rotations = np.array([hessian.solve(-hessian.vo(context.r[j]), START_RTOL,
+                                            "zero-field response") for j in range(3)])
+        work = hessian.products
+    reference = ZeroFieldReference(np.asarray(mf.make_rdm1()), _orbital_sets(mf), record.s2,
+                                   symmetry_operations(context.mol, mf),
+                                   np.asarray(mf.mo_coeff), np.asarray(mf.mo_occ), rotations)
+    context.attach(reference)
+    record = dataclasses.replace(record, scf_cycles=record.scf_cycles + work)
+    return record, reference
 
 
-def evaluate_point(task: PointTask, reference: ZeroFieldReference) -> PointRecord:
-    """Compute one field point from the zero-field ``reference``: SCF started
-    from its density (retried if needed), state checks against it, post-HF.
+def compute_point(context: ModelContext, task: PointTask) -> PointRecord:
+    """Compute one field point from the context's zero-field reference: SCF
+    (response start and Newton finish, or the ladder), state checks against the
+    reference, post-HF.
 
     A point on another state than zero field's (occupied overlap, <S^2>,
     occupation by symmetry) is returned with ``state_issue`` set; the analysis
@@ -547,30 +822,37 @@ def evaluate_point(task: PointTask, reference: ZeroFieldReference) -> PointRecor
     ------
     ScfNotConvergedError : the SCF (or CC) never converged.
     """
-    return _evaluate(task, reference)[0]
+    if context.reference is None:
+        raise ValueError("compute the zero-field reference first (compute_reference)")
+    return _evaluate(context, task)[0]
 
 
-def _evaluate(task: PointTask, reference: ZeroFieldReference | None):
-    from pyscf import lib
+def evaluate_reference(task: PointTask) -> tuple[PointRecord, ZeroFieldReference]:
+    """compute_reference in a context of its own."""
+    return compute_reference(ModelContext(task.molecule, task.model, task.scf), task)
 
+
+def evaluate_point(task: PointTask, reference: ZeroFieldReference) -> PointRecord:
+    """compute_point in a context of its own."""
+    return compute_point(ModelContext(task.molecule, task.model, task.scf, reference), task)
+
+
+def _evaluate(context: ModelContext, task: PointTask):
     start = time.perf_counter()
-    lib.logger.QUIET = 0
     molecule, model, point = task.molecule, task.model, task.point
-    mol = build_mole(molecule, model.basis)
-    mf = _mean_field(mol, model, task.scf)
-    r = _apply_field(mf, mol, molecule, point.field_vector_au)
-    dm0 = reference.density if reference is not None else None
-    attempts, cycles = _converge(mf, dm0, point.label)
+    reference = context.reference
+    mf = context.mean_field(point.field_vector_au)
+    r, mol = context.r, context.mol
+    attempts, cycles = _converge(mf, context, point)
     occupied, s2 = _orbital_sets(mf), _s2(mf)
     overlap, issues = 1.0, []
     if reference is not None:
-        s_ao = mol.intor_symmetric("int1e_ovlp")
         for c_ref, c in zip(reference.occupied, occupied):
             if c.shape[1] != c_ref.shape[1]:
                 overlap = 0.0
                 break
             if c.shape[1]:
-                overlap = min(overlap, float(np.linalg.svd(c_ref.T @ s_ao @ c,
+                overlap = min(overlap, float(np.linalg.svd(c_ref.T @ context.overlap @ c,
                                                            compute_uv=False).min()))
         issues = state_issues(reference, point.field_vector_au, occupied, s2, overlap)
         if issues:
@@ -596,11 +878,7 @@ def _evaluate(task: PointTask, reference: ZeroFieldReference | None):
     alpha = None
     if want.alpha:
         alpha = tuple(tuple(float(v) for v in row) for row in analytic_polarizability(mf, r))
-    new_reference = None
-    if reference is None:
-        new_reference = ZeroFieldReference(np.asarray(mf.make_rdm1()), occupied, s2,
-                                           symmetry_operations(mol, mf))
     record = PointRecord(point, energy, float(mf.e_tot), dipole, cycles, tuple(attempts), s2,
                          overlap, gradient, alpha, dipole_error, "; ".join(issues),
                          time.perf_counter() - start)
-    return record, new_reference
+    return record, mf

@@ -25,7 +25,7 @@ from dataclasses import dataclass
 
 from tqdm import tqdm
 
-from fieldprop.backend_pyscf import evaluate_point, evaluate_reference
+from fieldprop.backend_pyscf import ModelContext, compute_point, compute_reference
 from fieldprop.errors import FieldpropError
 from fieldprop.records import PointFailure, PointRecord, PointTask, ZeroFieldReference
 from fieldprop.store import PointStore
@@ -50,7 +50,14 @@ class PointsOutcome:
     stored_failures: int = 0
 
 
-def _init_worker() -> None:
+#: The worker process's model context (integrals, grid, zero-field reference),
+#: set once by the pool's initializer and used by every point sent to that
+#: process: the only state a worker keeps, and the reason it pays to send one
+#: job's points to the same processes.
+_WORKER_CONTEXT: ModelContext | None = None
+
+
+def _init_worker(task: PointTask, reference: ZeroFieldReference) -> None:
     # Ctrl-C reaches the whole process group: only the parent acts on it (it
     # stops the workers); SIGTERM from the parent ends a worker at once.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
@@ -60,32 +67,41 @@ def _init_worker() -> None:
     from pyscf import lib
 
     lib.num_threads(1)
+    global _WORKER_CONTEXT
+    _WORKER_CONTEXT = ModelContext(task.molecule, task.model, task.scf, reference)
 
 
-def run_task(task: PointTask, reference: ZeroFieldReference) -> PointRecord | PointFailure:
+def _worker_task(task: PointTask) -> PointRecord | PointFailure:
+    return run_task(_WORKER_CONTEXT, task)
+
+
+def run_task(context: ModelContext, task: PointTask) -> PointRecord | PointFailure:
     """Compute one point; a FieldpropError becomes a PointFailure (picklable, named)."""
     start = time.perf_counter()
     try:
-        return evaluate_point(task, reference)
+        return compute_point(context, task)
     except FieldpropError as exc:
         return PointFailure(task.point, str(exc), type(exc).__name__,
                             time.perf_counter() - start)
 
 
 def _reference(tasks: list[PointTask], store: PointStore, facts: dict,
-               description: dict) -> tuple[ZeroFieldReference, int]:
-    """The model's zero-field reference from the store, or computed and stored
-    (with the zero-field point of these tasks). Returns it and the number of
-    points computed for it (0 or 1)."""
+               description: dict) -> tuple[ModelContext, int]:
+    """A context holding the model's zero-field reference from the store, or
+    computed and stored (with the zero-field point of these tasks). Returns it
+    and the number of points computed for it (0 or 1)."""
     zero = tasks[0]
     found = store.get_model(zero.model_key)
     if found is not None:
-        return found[0], 0
+        return ModelContext(zero.molecule, zero.model, zero.scf, found[0]), 0
     logger.debug("no stored reference for model %s: computing zero field", zero.model_key[:12])
-    record, reference = evaluate_reference(zero)
+    context = ModelContext(zero.molecule, zero.model, zero.scf)
+    record, reference = compute_reference(context, zero)
     store.put_model(zero.model_key, description, facts, reference, (zero, record))
     stored = store.get_model(zero.model_key)  # another process may have stored one first
-    return (stored[0] if stored is not None else reference), 1
+    if stored is not None:
+        context.attach(stored[0])
+    return context, 1
 
 
 def compute_points(tasks: list[PointTask], store: PointStore, facts: dict, description: dict,
@@ -101,7 +117,7 @@ def compute_points(tasks: list[PointTask], store: PointStore, facts: dict, descr
     if not tasks or not tasks[0].is_zero_field:
         raise ValueError("the first task must be the zero-field point")
     stored = store.get_points(t.key for t in tasks)
-    reference, computed = _reference(tasks, store, facts, description)
+    context, computed = _reference(tasks, store, facts, description)
     if computed:
         stored = store.get_points(t.key for t in tasks)
     outcomes: dict[int, PointRecord | PointFailure] = {}
@@ -129,9 +145,9 @@ def compute_points(tasks: list[PointTask], store: PointStore, facts: dict, descr
     try:
         if workers <= 1 or len(missing) <= 1:
             for i in missing:
-                finish(i, run_task(tasks[i], reference))
+                finish(i, run_task(context, tasks[i]))
         else:
-            _pool(tasks, missing, reference, workers, finish)
+            _pool(tasks, missing, context.reference, workers, finish)
     except KeyboardInterrupt:
         bar.close()
         done = sum(1 for i in missing if i in outcomes)
@@ -154,9 +170,10 @@ def compute_points(tasks: list[PointTask], store: PointStore, facts: dict, descr
 
 def _pool(tasks, missing, reference, workers, finish) -> None:
     """The missing points in a process pool, each committed as it completes."""
-    pool = ProcessPoolExecutor(max_workers=min(workers, len(missing)), initializer=_init_worker)
+    pool = ProcessPoolExecutor(max_workers=min(workers, len(missing)), initializer=_init_worker,
+                               initargs=(tasks[0], reference))
     try:
-        pending = {pool.submit(run_task, tasks[i], reference): i for i in missing}
+        pending = {pool.submit(_worker_task, tasks[i]): i for i in missing}
         while pending:
             done, _ = wait(pending, return_when=FIRST_COMPLETED)
             for future in done:

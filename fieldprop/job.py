@@ -80,7 +80,8 @@ _SECTIONS = {
     "model": {"method", "functional", "basis", "reference"},
     "response": {"properties", "field_au", "ratio", "levels", "origin", "route",
                  "nuclear_relaxation"},
-    "scf": {"energy_conv_tol_au", "max_cycle", "grid_level"},
+    "scf": {"energy_conv_tol_au", "max_cycle", "grid_level", "gradient_target",
+            "gradient_needed", "solver"},
 }
 
 
@@ -146,12 +147,28 @@ class ResponseSpec:
 
 @dataclass(frozen=True)
 class ScfSpec:
-    """SCF settings; tolerances derived from the requested order unless given."""
+    """SCF settings; tolerances derived from the requested order unless given.
+
+    ``gradient_conv_tol`` is the orbital-gradient norm each point aims at;
+    ``gradient_needed`` the largest one at which a point is still accepted when
+    it stalls (at the floor double precision allows for the molecule): there
+    its noise alone would put the round-off floor of the highest-order component
+    at the smallest field at the check's absolute floor (see
+    :func:`needed_gradient`). ``solver``: "newton" (a start from the zero-field
+    orbitals rotated by their linear response to the field, then Newton steps
+    with the orbital Hessian) or "diis" (DIIS from the zero-field density).
+    """
 
     energy_conv_tol_au: float
     gradient_conv_tol: float
     max_cycle: int
     grid_level: int | None  # dft only
+    gradient_needed: float = 0.0  # 0: the same as gradient_conv_tol
+    solver: str = "newton"
+
+    @property
+    def gradient_accepted(self) -> float:
+        return max(self.gradient_conv_tol, self.gradient_needed)
 
 
 @dataclass(frozen=True)
@@ -499,7 +516,7 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
 
 
 def _parse_scf(path: str, table: dict[str, Any], method: str, max_order: int,
-               route: str, open_shell: bool) -> ScfSpec:
+               route: str, open_shell: bool, field_au: float) -> ScfSpec:
     r = _Reader(path, "scf", table)
     tol = r.number("energy_conv_tol_au", None)
     if tol is None:
@@ -537,7 +554,49 @@ def _parse_scf(path: str, table: dict[str, Any], method: str, max_order: int,
         gradient_tol = 1e-8
     else:
         gradient_tol = 1e-10 if open_shell else 1e-11
-    return ScfSpec(tol, gradient_tol, max_cycle, grid_level)
+    target = r.number("gradient_target", None)
+    if target is not None:
+        if not 1e-14 <= target <= 1e-4:
+            raise r.fail("gradient_target", f"must lie in [1e-14, 1e-4], got {target}")
+        gradient_tol = target
+    needed = r.number("gradient_needed", None)
+    if needed is None:
+        needed = needed_gradient(method, route, max_order, field_au)
+    elif not 1e-14 <= needed <= 1e-3:
+        raise r.fail("gradient_needed", f"must lie in [1e-14, 1e-3], got {needed}")
+    solver = r.string("solver", "newton", SOLVERS)
+    return ScfSpec(tol, gradient_tol, max_cycle, grid_level, max(needed, gradient_tol), solver)
+
+
+#: SCF solvers of [scf] solver (see ScfSpec).
+SOLVERS = ("newton", "diis")
+
+
+def needed_gradient(method: str, route: str, max_order: int, field_au: float) -> float:
+    """The largest orbital gradient a point may stall at and still be used.
+
+    A point's noise enters the order-n derivative at step h as sum|w| noise /
+    h^k (k = n on the energy route, n - 1 on the dipole route; sum|w| of the
+    central stencil of that order). It is set equal to the check's absolute
+    floor for order n (tensors.NEGLIGIBLE_ERROR_AU / 10: 1e-6, 1e-5, 1e-3, 0.1
+    au) at the smallest field, with noise ~g^2 for an SCF energy and ~g for a
+    dipole or post-HF energy (engine.NoiseModel). The error bars always use the
+    gradient actually reached.
+
+    >>> f"{needed_gradient('hf', 'dipole', 3, 0.0005):.1e}"
+    '6.3e-11'
+    >>> f"{needed_gradient('hf', 'energy', 2, 0.00025):.1e}"
+    '4.0e-07'
+    """
+    from fieldprop.plan import central_weights
+    from fieldprop.tensors import NEGLIGIBLE_ERROR_AU
+
+    k = max_order - 1 if route == "dipole" else max_order
+    weight = sum(abs(w) for _, w in central_weights(k)) if k > 0 else 1.0
+    allowed = NEGLIGIBLE_ERROR_AU[max_order] / 10.0 * field_au ** k / weight
+    if route != "dipole" and METHOD_TRAITS[method].mean_field:
+        return math.sqrt(allowed)
+    return allowed
 
 
 def load_job(path: str | os.PathLike[str]) -> Job:
@@ -578,5 +637,5 @@ def load_job(path: str | os.PathLike[str]) -> Job:
     scale = ANGSTROM_TO_BOHR if molecule.units == "angstrom" else 1.0
     response = _parse_response(shown, data["response"], model.method, scale)
     scf = _parse_scf(shown, data.get("scf", {}), model.method, response.max_order,
-                     response.route, molecule.multiplicity > 1)
+                     response.route, molecule.multiplicity > 1, response.field_au)
     return Job(shown, molecule, model, response, scf)

@@ -24,6 +24,12 @@ from fieldprop.plan import FieldPoint
 #: by the backend's solver and by the noise model of the analysis.
 CPHF_RTOL = 1e-11
 
+#: The SCF strategies a point takes when nothing goes wrong: a field point's
+#: response start and Newton steps, zero field's DIIS and Newton steps, or DIIS
+#: alone ([scf] solver = "diis", restricted open shells); one electron: exact.
+PRIMARY_PATHS = (("response_start", "newton"), ("diis", "newton"), ("diis",),
+                 ("one_electron",))
+
 
 @dataclass(frozen=True, eq=False)
 class SymmetryOperation:
@@ -51,12 +57,22 @@ class ZeroFieldReference:
     orbital coefficients per spin (the state reference); ``s2`` is <S^2>;
     ``symmetry`` the operations (of the largest abelian subgroup) whose
     characters the zero-field state has, for the occupation-by-symmetry check.
+    ``mo_coeff`` (nao, nmo), or (2, nao, nmo) unrestricted, and ``mo_occ`` are
+    the converged zero-field orbitals (semi-canonical) and occupations;
+    ``field_rotations`` (3, n) their linear response to a field along x, y, z:
+    the occupied-virtual rotations kappa = -(A + B)^-1 r_vo (CPHF/CPKS), in the
+    block order of the backend's orbital Hessian; empty where there is none
+    (restricted open shells, one electron). A point at field F starts from the
+    zero-field orbitals rotated by sum_j F_j kappa_j: exact to first order in F.
     """
 
     density: np.ndarray
     occupied: tuple[np.ndarray, ...]
     s2: float
     symmetry: tuple[SymmetryOperation, ...] = ()
+    mo_coeff: np.ndarray | None = None
+    mo_occ: np.ndarray | None = None
+    field_rotations: np.ndarray | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -115,6 +131,11 @@ class PointRecord:
     dipole_error_au: float = 0.0  # first-order estimate of the dipole's convergence error
     state_issue: str = ""
     wall_time_s: float = 0.0
+
+    @property
+    def retried(self) -> bool:
+        """The SCF needed PySCF's ladder beyond the solver's own path."""
+        return self.attempts not in PRIMARY_PATHS
 
 
 @dataclass(frozen=True)

@@ -211,7 +211,7 @@ def result_document(result: RunResult) -> dict[str, Any]:
                        * FIELD_AU_TO_V_PER_M},
         "noise_model": {"largest_" + k: v for k, v in result.noise.largest().items()},
         "scf_retries": [{"point": r.point.label, "attempts": list(r.attempts)}
-                        for r in result.records if len(r.attempts) > 1],
+                        for r in result.records if r.retried],
         "state_checks": state_checks_document(result),
         "backend": result.backend_facts,
         "unit_factors": {p: {label: f for label, f in DISPLAY_UNITS[p]}

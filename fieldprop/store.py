@@ -36,6 +36,7 @@ import json
 import logging
 import os
 import socket
+import zipfile
 import sqlite3
 from dataclasses import dataclass
 from datetime import datetime, timezone
@@ -150,6 +151,10 @@ def reference_to_bytes(reference: ZeroFieldReference) -> bytes:
         arrays["op_matrices"] = np.array([op.matrix for op in ops])
         arrays["op_representations"] = np.array([op.representation for op in ops])
         arrays["op_characters"] = np.array([op.characters for op in ops], dtype=float)
+    for name in ("mo_coeff", "mo_occ", "field_rotations"):
+        value = getattr(reference, name)
+        if value is not None:
+            arrays[name] = np.asarray(value)
     buffer = io.BytesIO()
     np.savez(buffer, **arrays)
     return buffer.getvalue()
@@ -163,7 +168,9 @@ def reference_from_bytes(blob: bytes) -> ZeroFieldReference:
                                       data["op_representations"][i],
                                       tuple(float(c) for c in data["op_characters"][i]))
                     for i, name in enumerate(names))
-        return ZeroFieldReference(data["density"], occupied, float(data["s2"]), ops)
+        extra = {name: data[name] for name in ("mo_coeff", "mo_occ", "field_rotations")
+                 if name in data.files}
+        return ZeroFieldReference(data["density"], occupied, float(data["s2"]), ops, **extra)
 
 
 # ----------------------------------------------------------------------- the store
@@ -223,8 +230,7 @@ class PointStore:
                                  "or --no-store")
         try:
             if read_only:
-                db = sqlite3.connect(f"file:{path}?mode=ro", uri=True,
-                                     timeout=BUSY_TIMEOUT_MS / 1000)
+                db = _read_only_connection(path, BUSY_TIMEOUT_MS / 1000)
             else:
                 if not exists and not _create(path):
                     _validate_file(path, shown)  # another process made it first
@@ -256,7 +262,12 @@ class PointStore:
                                (model_key,)).fetchone()
         if row is None:
             return None
-        return reference_from_bytes(row[0]), json.loads(row[1])
+        try:
+            return reference_from_bytes(row[0]), json.loads(row[1])
+        except (ValueError, KeyError, OSError, EOFError, zipfile.BadZipFile) as exc:
+            raise InputError(f"store {self.label}: the zero-field reference of model "
+                             f"{model_key[:12]} is damaged ({type(exc).__name__}); move the "
+                             "store away, or give --store another path") from None
 
     def get_facts(self, model_key: str) -> dict | None:
         row = self._db.execute("SELECT facts FROM models WHERE model_key = ?",
@@ -412,6 +423,19 @@ def _create(path: Path) -> bool:
                 os.unlink(leftover)
 
 
+def _read_only_connection(path: Path, timeout_s: float = 5.0) -> sqlite3.Connection:
+    """A connection that never writes, nor creates files beside the store.
+
+    A store no writer has open has no ``-wal`` file: it is read as immutable, so
+    SQLite makes no journal files (a read-only folder, a refused store and
+    ``plan`` leave no trace). With a ``-wal`` file there (a writer at work, or
+    one that was killed), the journal must be read: a plain read-only connection.
+    """
+    if Path(str(path) + "-wal").exists():
+        return sqlite3.connect(f"file:{path}?mode=ro", uri=True, timeout=timeout_s)
+    return sqlite3.connect(f"file:{path}?mode=ro&immutable=1", uri=True, timeout=timeout_s)
+
+
 def _initialise(db: sqlite3.Connection) -> None:
     with db:
         db.executescript(_SCHEMA)
@@ -433,7 +457,7 @@ def _validate_file(path: Path, shown: str) -> None:
         raise InputError(f"{shown}: is {what}, not a fieldprop store; give --store another "
                          "path (the file is left as it is)")
     try:
-        db = sqlite3.connect(f"file:{path}?mode=ro", uri=True)
+        db = _read_only_connection(path)
     except sqlite3.Error as exc:
         raise InputError(f"{shown}: cannot be opened ({exc})") from None
     try:
@@ -465,7 +489,8 @@ def _validate_file(path: Path, shown: str) -> None:
         except sqlite3.DatabaseError as exc:
             check = str(exc)
         if check != "ok":
-            raise InputError(f"{shown}: corrupt SQLite database ({check}); move it away and "
-                             "rerun to start a new store")
+            first = " ".join(str(check).replace("*** in database main ***", "").split())
+            raise InputError(f"{shown}: corrupt SQLite database ({first[:160]}); move it away "
+                             "and rerun to start a new store")
     finally:
         db.close()

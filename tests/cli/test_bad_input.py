@@ -351,11 +351,10 @@ def _no_scf(monkeypatch):
     """Bad input must be refused before any field point is computed."""
     import fieldprop.execute
 
-    def tripwire(task, *reference):
-        raise AssertionError(f"an SCF was started for field point {task.point.label}")
+    def tripwire(*args):
+        raise AssertionError("a model context was built for an SCF")
 
-    monkeypatch.setattr(fieldprop.execute, "evaluate_point", tripwire)
-    monkeypatch.setattr(fieldprop.execute, "evaluate_reference", tripwire)
+    monkeypatch.setattr(fieldprop.execute, "ModelContext", tripwire)
 
 
 # --------------------------------------------------------------------------- tests

@@ -18,8 +18,8 @@ import pytest
 
 pytest.importorskip("pyscf")
 
-#: Water in 6-31+G* (our geometry, as in the physics tests), mu/alpha/beta on the
-#: dipole route: 37 points of ~0.1-0.3 s each, long enough to kill in the middle.
+#: Water in 6-31+G* (our geometry, as in the physics tests), mu to gamma on the
+#: dipole route: 61 points of ~0.05 s each, long enough to kill in the middle.
 WATER = textwrap.dedent("""
     [molecule]
     geometry = \"\"\"
@@ -31,7 +31,7 @@ WATER = textwrap.dedent("""
     method = "hf"
     basis = "6-31+g*"
     [response]
-    properties = ["dipole", "alpha", "beta"]
+    properties = ["dipole", "alpha", "beta", "gamma"]
     field_au = 0.002
     """)
 

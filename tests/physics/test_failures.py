@@ -33,7 +33,8 @@ def test_scf_retries_are_recorded(tmp_path, capsys):
     # Eight DIIS cycles cannot reach 1e-11 Eh from the zero-field density, so the
     # ladder (more damping and a level shift, then second-order SCF) must act.
     job = tmp_path / "water.toml"
-    job.write_text(WATER.format(extra="[scf]\nmax_cycle = 10\nenergy_conv_tol_au = 1e-11"))
+    job.write_text(WATER.format(extra="[scf]\nmax_cycle = 10\nenergy_conv_tol_au = 1e-11\n"
+                                      "solver = \"diis\""))
     assert main(["run", str(job), "--quiet"]) == 0
     doc = json.loads((tmp_path / "water.result.json").read_text())
     retries = doc["scf_retries"]
@@ -46,11 +47,11 @@ def test_a_point_that_never_converges_fails_the_job(tmp_path, capsys, monkeypatc
     target = "L1(+1,0,0)"
     real = backend_pyscf._converge
 
-    def stubborn(mf, dm0, label):
-        if label == target:  # every strategy of the ladder fails at this point
-            raise ScfNotConvergedError(f"SCF did not converge at field point {label} after "
-                                       "diis, diis+damping+level_shift, second_order")
-        return real(mf, dm0, label)
+    def stubborn(mf, context, point):
+        if point.label == target:  # every strategy of the ladder fails at this point
+            raise ScfNotConvergedError(f"SCF did not converge at field point {point.label} "
+                                       "after diis, diis+damping+level_shift, second_order")
+        return real(mf, context, point)
 
     monkeypatch.setattr(backend_pyscf, "_converge", stubborn)
     job = tmp_path / "water.toml"
@@ -61,19 +62,26 @@ def test_a_point_that_never_converges_fails_the_job(tmp_path, capsys, monkeypatc
     assert not (tmp_path / "water.result.json").exists()  # no number formed
 
 
+#: The jobs whose SCF is steered onto another state use PySCF's own SCF.
+STEERED = "[scf]\nsolver = \"diis\""
+
+
 def _steer_to_excited_state(monkeypatch, at_field):
     """At the field vector ``at_field``, steer the SCF onto another electronic state:
     the determinant with the zero-field ground state's highest occupied orbital
     replaced by its lowest virtual one (1b1^2 -> 4a1^2 in water), held by the
     maximum-overlap method (occupy the orbitals most like that determinant's). An
     excited SCF solution is a stationary point too, as a strong field or a poor
-    start can reach (common practice); fieldprop must not difference across it."""
+    start can reach (common practice); fieldprop must not difference across it.
+    The occupation is steered through PySCF's own SCF: the jobs take [scf]
+    solver = "diis" (STEERED)."""
     from pyscf import scf
 
     real = backend_pyscf._apply_field
 
-    def steer(mf, mol, molecule, field_vector_au):
-        r = real(mf, mol, molecule, field_vector_au)
+    def steer(mf, context, field_vector_au):
+        real(mf, context, field_vector_au)
+        mol = context.mol
         if tuple(field_vector_au) == at_field:
             ground = scf.RHF(mol).run()
             nocc = mol.nelectron // 2
@@ -87,7 +95,6 @@ def _steer_to_excited_state(monkeypatch, at_field):
                 return occ
 
             mf.get_occ = get_occ
-        return r
 
     monkeypatch.setattr(backend_pyscf, "_apply_field", steer)
 
@@ -95,7 +102,7 @@ def _steer_to_excited_state(monkeypatch, at_field):
 def test_a_state_switch_at_the_smallest_field_leaves_no_number(tmp_path, capsys, monkeypatch):
     _steer_to_excited_state(monkeypatch, (0.0, 0.0, 0.002))
     job = tmp_path / "water.toml"
-    job.write_text(WATER.format(extra=""))
+    job.write_text(WATER.format(extra=STEERED))
     assert main(["run", str(job), "--quiet"]) == 1
     err = capsys.readouterr().err
     assert "field point L0(0,0,+1), field_vector_au=[0.0, 0.0, 0.002]" in err
@@ -114,7 +121,7 @@ def test_a_state_switch_at_the_smallest_field_leaves_no_number(tmp_path, capsys,
 def test_a_state_switch_at_a_larger_field_shortens_the_ladder(tmp_path, capsys, monkeypatch):
     _steer_to_excited_state(monkeypatch, (0.0, 0.0, 0.008))
     job = tmp_path / "water.toml"
-    job.write_text(WATER.format(extra="levels = 4"))
+    job.write_text(WATER.format(extra="levels = 4\n" + STEERED))
     assert main(["run", str(job), "--quiet"]) == 0
     err = capsys.readouterr().err
     assert "field point L2(0,0,+1), field_vector_au=[0.0, 0.0, 0.008]" in err
@@ -136,7 +143,7 @@ def test_the_occupation_by_symmetry_alone_catches_the_switch(tmp_path, capsys, m
     monkeypatch.setattr(backend_pyscf, "MAX_S2_CHANGE", np.inf)
     _steer_to_excited_state(monkeypatch, (0.0, 0.0, 0.002))
     job = tmp_path / "water.toml"
-    job.write_text(WATER.format(extra=""))
+    job.write_text(WATER.format(extra=STEERED))
     assert main(["run", str(job), "--quiet"]) == 1
     err = capsys.readouterr().err
     assert "occupation by symmetry changed" in err and "C2 rotation about (0.000, 0.000, " \
@@ -150,10 +157,10 @@ def test_failures_are_reported_from_worker_processes(tmp_path, capsys, monkeypat
     targets = {"L0(0,+1,0)", "L2(0,0,-1)"}
     real = backend_pyscf._converge
 
-    def stubborn(mf, dm0, label):
-        if label in targets:
-            raise ScfNotConvergedError(f"SCF did not converge at field point {label}")
-        return real(mf, dm0, label)
+    def stubborn(mf, context, point):
+        if point.label in targets:
+            raise ScfNotConvergedError(f"SCF did not converge at field point {point.label}")
+        return real(mf, context, point)
 
     monkeypatch.setattr(backend_pyscf, "_converge", stubborn)
     job = tmp_path / "water.toml"

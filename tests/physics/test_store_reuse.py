@@ -137,10 +137,10 @@ def test_a_stored_failure_is_not_retried_unless_asked(tmp_path, capsys, monkeypa
     target = "L1(0,0,+1)"
     real = backend_pyscf._converge
 
-    def stubborn(mf, dm0, label):
-        if label == target:
-            raise ScfNotConvergedError(f"SCF did not converge at field point {label}")
-        return real(mf, dm0, label)
+    def stubborn(mf, context, point):
+        if point.label == target:
+            raise ScfNotConvergedError(f"SCF did not converge at field point {point.label}")
+        return real(mf, context, point)
 
     write_job(tmp_path, "lih.toml", properties='["alpha"]')
     monkeypatch.setattr(backend_pyscf, "_converge", stubborn)
