@@ -234,6 +234,10 @@ class ModelContext:
     def mean_field(self, field_vector_au):
         """A mean-field object for one field point, sharing the context's integrals."""
         mf = copy.copy(self.template)
+        # PySCF's copy leaves out the integrals and the screening data (its
+        # __getstate__); the point shares the template's instead.
+        mf._eri = self.template._eri
+        mf._opt = self.template._opt
         for key in ("mo_coeff", "mo_occ", "mo_energy"):
             setattr(mf, key, None)
         mf.converged, mf.e_tot = False, 0.0
@@ -431,11 +435,12 @@ def _rotate(c, occ, x):
     return out[0] if len(out) == 1 else np.array(out)
 
 
-#: Newton steps at most per point, and the drop of the gradient per step below
-#: which a step counts as stalled (two stalled steps in a row end the Newton
-#: finish: the gradient has reached the floor double precision allows).
+#: Newton steps at most per point; a step that does not lower the gradient
+#: below STALL_RATIO times the previous one is stalled, and MAX_STALLED_STEPS
+#: in a row end the Newton finish.
 MAX_NEWTON_STEPS = 12
 STALL_RATIO = 0.5
+MAX_STALLED_STEPS = 3
 #: Gradient to which DIIS takes a cold (zero-field) SCF before Newton steps
 #: finish it: where DIIS still converges fast.
 DIIS_HANDOVER = 1e-6
@@ -448,16 +453,19 @@ def _newton(mf, context, c, occ, target: float) -> tuple[int, float]:
     gradient reached).
 
     Each step builds the Fock matrix (one build), semi-canonicalises, and solves
-    (A + B) x = -F_vo by preconditioned conjugate gradients (one build-like
-    product per iteration) to a relative residual that the quadratic convergence
-    makes sufficient (tighter as the target nears); the response function is the
-    context's zero-field one (exact for HF, whose J and K do not depend on the
-    density; the DFT kernel changes by O(F), which slows but does not stop the
-    convergence).
+    (A + B) x = -F_vo by preconditioned conjugate gradients (one
+    build-like product per iteration) to a relative residual that the quadratic
+    convergence makes sufficient (tighter as the target nears). The response
+    function is the context's zero-field one (exact for HF, whose J and K do not
+    depend on the density; the DFT kernel changes by O(F), which slows but does
+    not stop the convergence). A step may raise the gradient (a soft mode, such
+    as the rotation of a degenerate open shell's orbitals about a linear
+    molecule's axis, takes several); the best state reached is kept, and
+    MAX_STALLED_STEPS steps in a row that do not halve the gradient end the
+    finish: the gradient has reached the floor double precision allows.
     """
     h1e, s1e = mf.get_hcore(), context.overlap
-    work, best, stalled, steps = 0, None, 0, 0
-    last = np.inf
+    work, best, stalled, steps, last = 0, None, 0, 0, np.inf
     while True:
         dm = mf.make_rdm1(c, occ)
         vhf = mf.get_veff(mf.mol, dm)
@@ -465,11 +473,13 @@ def _newton(mf, context, c, occ, target: float) -> tuple[int, float]:
         fock = mf.get_fock(h1e, s1e, vhf, dm)
         c, energies = _semicanonical(c, occ, fock)
         g = float(np.linalg.norm(mf.get_grad(c, occ, fock)))
+        if not np.isfinite(g):
+            break
         if best is None or g < best[0]:
             best = (g, c, energies, float(mf.energy_tot(dm, h1e, vhf)))
         stalled = stalled + 1 if g > STALL_RATIO * last else 0
         last = g
-        if g <= target or stalled >= 2 or steps >= MAX_NEWTON_STEPS or not np.isfinite(g):
+        if g <= target or stalled >= MAX_STALLED_STEPS or steps >= MAX_NEWTON_STEPS:
             break
         mf.mo_coeff, mf.mo_occ, mf.mo_energy = c, occ, energies
         hessian = _OrbitalHessian(mf, response=context.response)
@@ -478,7 +488,7 @@ def _newton(mf, context, c, occ, target: float) -> tuple[int, float]:
             x = hessian.solve(-hessian.vo(fock), rtol, "Newton step")
         except ScfNotConvergedError:
             work += hessian.products
-            break  # an indefinite Hessian (another state nearby): leave it to the ladder
+            break  # leave it to the ladder
         work += hessian.products
         c = _rotate(c, occ, x)
         steps += 1
@@ -581,7 +591,7 @@ def _converge(mf, context, point) -> tuple[list[str], int]:
         attempts.append("newton")
         work, g = _newton(mf, context, start, occ, target)
         cycles += work
-    if g > target:
+    if g > accepted:  # a stall where the derivatives need no more is accepted as is
         dm0 = (mf.make_rdm1() if mf.mo_coeff is not None else
                reference.density if reference is not None else None)
         cycles += _ladder(mf, dm0, target, attempts)
@@ -618,6 +628,12 @@ def _correlated_energy(mf, model, scf_spec, label: str) -> float:
     if model.method == "ccsd(t)":
         e += float(solver.ccsd_t())
     return e
+
+
+#: Conjugate-gradient iterations at most per solve, and the level shift (Eh) that
+#: removes a (near-)zero mode of the orbital Hessian when they do not suffice.
+CG_MAX_ITERATIONS = 150
+SINGULAR_SHIFT = 1e-4
 
 
 class _OrbitalHessian:
@@ -685,23 +701,37 @@ class _OrbitalHessian:
         return np.concatenate([(cv.T @ m @ co).ravel()
                                for m, (co, cv, de) in zip(matrices, self.blocks)])
 
-    def solve(self, rhs, rtol: float, what: str) -> np.ndarray:
-        """x with (A + B) x = rhs, to relative residual ``rtol``."""
+    def solve(self, rhs, rtol: float, what: str, shift: float = 0.0) -> np.ndarray:
+        """x with (A + B) x = rhs, to relative residual ``rtol``.
+
+        Preconditioned conjugate gradients (the Hessian of a stable SCF is
+        positive definite). A Hessian with a (near-)zero mode, such as the
+        rotation of a degenerate open shell's unpaired orbital about the axis
+        of a linear molecule (OH, 2Pi), stalls them; then the system is solved
+        again with the Hessian shifted by SINGULAR_SHIFT, which leaves the
+        other modes' share of x changed by a relative SINGULAR_SHIFT / their
+        eigenvalue (~1e-4 for eigenvalues ~ the orbital-energy gaps).
+        """
         from scipy.sparse.linalg import LinearOperator, cg
 
         norm = np.linalg.norm(rhs)
         if norm == 0.0:
             return np.zeros_like(rhs)
         n = sum(self.sizes)
-        operator = LinearOperator((n, n), matvec=self.matvec, dtype=float)
-        precondition = LinearOperator((n, n), matvec=lambda x: np.asarray(x).ravel()
-                                      / self.diagonal, dtype=float)
-        x, info = cg(operator, rhs / norm, rtol=rtol, atol=0.0, M=precondition, maxiter=500)
-        residual = np.linalg.norm(self.matvec(x) - rhs / norm)
-        if info != 0 or residual > 10 * rtol:
-            raise ScfNotConvergedError(f"{what} did not converge (residual {residual:.1e}); "
-                                       "the SCF may be unstable")
-        return x * norm
+        b = rhs / norm
+        residual = np.inf
+        for sigma in dict.fromkeys((shift, max(shift, SINGULAR_SHIFT))):
+            operator = LinearOperator((n, n), matvec=lambda v, s=sigma: self.matvec(v) + s * v,
+                                      dtype=float)
+            precondition = LinearOperator((n, n), matvec=lambda v, s=sigma: np.asarray(v).ravel()
+                                          / (self.diagonal + s), dtype=float)
+            x, info = cg(operator, b, rtol=rtol, atol=0.0, M=precondition,
+                         maxiter=CG_MAX_ITERATIONS)
+            residual = np.linalg.norm(operator.matvec(x) - b)
+            if info == 0 and residual <= 10 * rtol:
+                return x * norm
+        raise ScfNotConvergedError(f"{what} did not converge (residual {residual:.1e}); "
+                                   "the SCF may be unstable")
 
     def density_trace(self, rmo, x) -> float:
         """-tr(r dD) for the rotation x: the dipole change it causes (one component)."""

@@ -8,8 +8,9 @@ share one stored point, whatever their ladders, levels or property lists.
   reference of every point): nuclei (symbols, bohr at 1e-10), charge,
   multiplicity, the basis as given (name, or per element name or text), method,
   functional, reference (restricted/unrestricted), the SCF settings that change
-  results (energy and orbital-gradient tolerances, DFT grid level; not
-  ``max_cycle``, which only decides whether a point converges), and
+  results (energy and orbital-gradient tolerances, DFT grid level, solver; not
+  ``max_cycle`` or the gradient a stalled point may end at, which only decide
+  whether a point is accepted), and
   :data:`NUMERICS_VERSION`.
 - :func:`point_key` adds the quantities computed at the point (:class:`Quantities`),
   the origin of the dipole operator (bohr at 1e-10) and the field vector exactly
@@ -37,7 +38,7 @@ from dataclasses import dataclass
 #: Bumped whenever the backend's numbers change for the same inputs (a new field
 #: term, another SCF finish, another state check): stored points of an older
 #: numerics version are then not reused.
-NUMERICS_VERSION = 1
+NUMERICS_VERSION = 2
 
 #: Coordinates and origins enter keys rounded to this many decimals of a bohr:
 #: far below any geometric difference that matters (1e-10 bohr moves an energy
@@ -101,7 +102,7 @@ def model_document(molecule, model, scf) -> dict:
         "reference": model.reference,
         "scf": {"energy_conv_tol_au": _exact(scf.energy_conv_tol_au),
                 "gradient_conv_tol": _exact(scf.gradient_conv_tol),
-                "grid_level": scf.grid_level},
+                "grid_level": scf.grid_level, "solver": getattr(scf, "solver", "newton")},
     }
 
 

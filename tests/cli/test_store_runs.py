@@ -19,7 +19,7 @@ import pytest
 pytest.importorskip("pyscf")
 
 #: Water in 6-31+G* (our geometry, as in the physics tests), mu to gamma on the
-#: dipole route: 61 points of ~0.05 s each, long enough to kill in the middle.
+#: dipole route: 67 points of ~0.05 s each, long enough to kill in the middle.
 WATER = textwrap.dedent("""
     [molecule]
     geometry = \"\"\"
