@@ -178,6 +178,11 @@ def _apply_field(mf, context, field_vector_au) -> None:
     mf.energy_nuc = lambda *args, **kwargs: e_nuc
 
 
+#: DFT integration grid (PySCF level) of the exchange-correlation kernel in the
+#: Newton steps' orbital Hessian (see ModelContext.response).
+NEWTON_GRID_LEVEL = 2
+
+
 class ModelContext:
     """What the field does not change, computed once per molecule, model and
     process and shared by every point computed there.
@@ -225,11 +230,26 @@ class ModelContext:
 
     @functools.cached_property
     def response(self):
-        """The zero-field density-response function (None without one)."""
+        """The zero-field density-response function used by the Newton steps
+        (None without one). For DFT its exchange-correlation kernel is
+        integrated on a coarse grid (NEWTON_GRID_LEVEL): each Hessian product
+        then costs a fraction of a Fock build, and the step it gives is exact
+        to the grid's accuracy, far better than the steps need (the gradient
+        that decides convergence is always that of the job's own grid)."""
         if self.reference is None or self.reference.mo_coeff is None or not _has_hessian(
                 self.template):
             return None
-        return response_function(self.template)
+        solver = self.template
+        if self.model.method == "dft" and (self.scf.grid_level or 0) > NEWTON_GRID_LEVEL:
+            from pyscf import dft
+
+            solver = copy.copy(self.template)
+            solver._eri, solver._opt = self.template._eri, self.template._opt
+            solver.grids = dft.gen_grid.Grids(self.mol)
+            solver.grids.level = NEWTON_GRID_LEVEL
+            solver.grids.verbose = 0
+            solver.grids.build()
+        return response_function(solver)
 
     def mean_field(self, field_vector_au):
         """A mean-field object for one field point, sharing the context's integrals."""
@@ -825,16 +845,20 @@ def compute_reference(context: ModelContext,
     if not task.is_zero_field:
         raise ValueError(f"the reference is computed at zero field, not at {task.point.label}")
     record, mf = _evaluate(context, task)
-    rotations, work = None, 0
+    reference = ZeroFieldReference(np.asarray(mf.make_rdm1()), _orbital_sets(mf), record.s2,
+                                   symmetry_operations(context.mol, mf),
+                                   np.asarray(mf.mo_coeff), np.asarray(mf.mo_occ))
+    context.attach(reference)
+    work = 0
     if _has_hessian(mf):
-        hessian = _OrbitalHessian(mf)
+        # The start needs the rotations to a small fraction of a first-order
+        # term only: the Newton steps' (coarse-grid) response serves.
+        hessian = _OrbitalHessian(mf, response=context.response)
         rotations = np.array([hessian.solve(-hessian.vo(context.r[j]), START_RTOL,
                                             "zero-field response") for j in range(3)])
         work = hessian.products
-    reference = ZeroFieldReference(np.asarray(mf.make_rdm1()), _orbital_sets(mf), record.s2,
-                                   symmetry_operations(context.mol, mf),
-                                   np.asarray(mf.mo_coeff), np.asarray(mf.mo_occ), rotations)
-    context.attach(reference)
+        reference = dataclasses.replace(reference, field_rotations=rotations)
+        context.reference = reference  # the same orbitals: the response stays valid
     record = dataclasses.replace(record, scf_cycles=record.scf_cycles + work)
     return record, reference
 

@@ -288,10 +288,13 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
     own_store = store is None
     store = PointStore.in_memory() if own_store else store
     logger.info("%s: %s/%s%s, %d field points on %d levels (h0 = %g au, ratio %g), route %s, "
-                "SCF energy tolerance %g Eh; store %s", job.path, job.model.method,
-                job.model.basis, f"/{job.model.functional}" if job.model.functional else "",
-                len(plan.points), plan.levels, plan.field_au, plan.ratio, plan.route,
-                job.scf.energy_conv_tol_au, store.label)
+                "SCF energy tolerance %g Eh, orbital gradient %g (accepted up to %g), solver %s; "
+                "store %s; %d worker process%s, one BLAS thread each", job.path,
+                job.model.method, job.model.basis,
+                f"/{job.model.functional}" if job.model.functional else "", len(plan.points),
+                plan.levels, plan.field_au, plan.ratio, plan.route, job.scf.energy_conv_tol_au,
+                job.scf.gradient_conv_tol, job.scf.gradient_accepted, job.scf.solver,
+                store.label, workers, "" if workers == 1 else "es")
     if progress is None:
         progress = sys.stderr.isatty()
     try:
