@@ -86,22 +86,23 @@ def run_task(context: ModelContext, task: PointTask) -> PointRecord | PointFailu
 
 
 def _reference(tasks: list[PointTask], store: PointStore, facts: dict,
-               description: dict) -> tuple[ModelContext, int]:
-    """A context holding the model's zero-field reference from the store, or
-    computed and stored (with the zero-field point of these tasks). Returns it
-    and the number of points computed for it (0 or 1)."""
+               description: dict) -> tuple[ZeroFieldReference, ModelContext | None]:
+    """The model's zero-field reference from the store, or computed here and
+    stored (with the zero-field point of these tasks, in one transaction).
+    Returns it, and the context it was computed in (None when it was stored)."""
     zero = tasks[0]
     found = store.get_model(zero.model_key)
     if found is not None:
-        return ModelContext(zero.molecule, zero.model, zero.scf, found[0]), 0
+        return found[0], None
     logger.debug("no stored reference for model %s: computing zero field", zero.model_key[:12])
     context = ModelContext(zero.molecule, zero.model, zero.scf)
     record, reference = compute_reference(context, zero)
     store.put_model(zero.model_key, description, facts, reference, (zero, record))
     stored = store.get_model(zero.model_key)  # another process may have stored one first
-    if stored is not None:
+    if stored is not None and stored[0] is not reference:
         context.attach(stored[0])
-    return context, 1
+        reference = stored[0]
+    return reference, context
 
 
 def compute_points(tasks: list[PointTask], store: PointStore, facts: dict, description: dict,
@@ -117,21 +118,28 @@ def compute_points(tasks: list[PointTask], store: PointStore, facts: dict, descr
     if not tasks or not tasks[0].is_zero_field:
         raise ValueError("the first task must be the zero-field point")
     stored = store.get_points(t.key for t in tasks)
-    context, computed = _reference(tasks, store, facts, description)
-    if computed:
-        stored = store.get_points(t.key for t in tasks)
     outcomes: dict[int, PointRecord | PointFailure] = {}
     missing: list[int] = []
-    reused = stored_failures = 0
+    reused = stored_failures = computed = 0
     for i, task in enumerate(tasks):
         row = stored.get(task.key)
         if row is not None and (row.ok or not retry_failed):
             outcomes[i] = row.record(task.point) if row.ok else row.failure(task.point)
-            if not (computed and i == 0):
-                reused += 1
-                stored_failures += not row.ok
+            reused += 1
+            stored_failures += not row.ok
         else:
             missing.append(i)
+    context = reference = None
+    if missing:  # nothing to compute, nothing to build
+        reference, context = _reference(tasks, store, facts, description)
+        if context is not None:  # zero field was computed (and stored) just now
+            computed = 1
+            if missing[0] == 0:
+                missing.pop(0)
+                row = store.get_points([tasks[0].key]).get(tasks[0].key)
+                outcomes[0] = row.record(tasks[0].point)
+            else:  # a zero-field record was stored, only its reference was not
+                computed = 0
     if reused:
         logger.info("%d of %d field points found in %s", reused, len(tasks), store.label)
     bar = tqdm(total=len(tasks), initial=len(tasks) - len(missing), desc="field points",
@@ -144,10 +152,13 @@ def compute_points(tasks: list[PointTask], store: PointStore, facts: dict, descr
 
     try:
         if workers <= 1 or len(missing) <= 1:
+            if missing and context is None:
+                zero = tasks[0]
+                context = ModelContext(zero.molecule, zero.model, zero.scf, reference)
             for i in missing:
                 finish(i, run_task(context, tasks[i]))
-        else:
-            _pool(tasks, missing, context.reference, workers, finish)
+        elif missing:
+            _pool(tasks, missing, reference, workers, finish)
     except KeyboardInterrupt:
         bar.close()
         done = sum(1 for i in missing if i in outcomes)
