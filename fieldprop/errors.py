@@ -34,3 +34,8 @@ class StateSwitchError(FieldpropError):
 
 class UnstableResultError(FieldpropError):
     """Some tensor component's Richardson table never stabilised."""
+
+
+class BackendError(FieldpropError):
+    """An exception inside the backend (PySCF) at one field point; the point is
+    recorded as failed, the others go on."""

@@ -76,13 +76,22 @@ def _worker_task(task: PointTask) -> PointRecord | PointFailure:
 
 
 def run_task(context: ModelContext, task: PointTask) -> PointRecord | PointFailure:
-    """Compute one point; a FieldpropError becomes a PointFailure (picklable, named)."""
+    """Compute one point. Any exception inside it becomes a PointFailure
+    (picklable, named): the other points finish and are kept. A FieldpropError
+    keeps its message; anything else (an exception inside PySCF) is named with
+    its type and message, its traceback logged at debug level."""
     start = time.perf_counter()
     try:
         return compute_point(context, task)
     except FieldpropError as exc:
         return PointFailure(task.point, str(exc), type(exc).__name__,
                             time.perf_counter() - start)
+    except Exception as exc:  # noqa: BLE001 - one point's failure must not end the run
+        logger.debug("field point %s", task.point.label, exc_info=True)
+        text = " ".join(str(exc).split())[:300] or "no message"
+        return PointFailure(task.point, f"field point {task.point.label} failed inside the "
+                            f"backend ({type(exc).__name__}: {text}); no number is formed "
+                            "from it", "BackendError", time.perf_counter() - start)
 
 
 def _reference(tasks: list[PointTask], store: PointStore, facts: dict,

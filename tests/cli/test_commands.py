@@ -102,3 +102,24 @@ def test_run_plot_into_a_missing_folder_is_refused_before_work(tmp_path):
     done = fieldprop("run", "lih.toml", "--plot", "nowhere", cwd=tmp_path)
     assert done.returncode == 2 and "--plot" in done.stderr
     assert not (tmp_path / "lih.result.json").exists()
+
+
+def test_check_refuses_a_restricted_open_shell_before_any_work(tmp_path):
+    # ROHF has no analytic polarizability in fieldprop: refused with one line
+    # (exit 2) before any SCF, rather than failing after the whole run.
+    (tmp_path / "triplet.toml").write_text(textwrap.dedent("""
+        [molecule]
+        geometry = "H 0 0 0\\nH 0 0 0.74"
+        multiplicity = 3
+        [model]
+        method = "hf"
+        basis = "sto-3g"
+        reference = "restricted"
+        [response]
+        properties = ["alpha"]
+        """))
+    done = fieldprop("check", "triplet.toml", "--no-store", cwd=tmp_path)
+    assert done.returncode == 2, done.stderr
+    lines = done.stderr.strip().splitlines()
+    assert len(lines) == 1 and "restricted open shell" in lines[0] and "Traceback" not in lines[0]
+    assert not list(tmp_path.glob("*.sqlite"))

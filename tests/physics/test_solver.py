@@ -180,3 +180,25 @@ def test_a_push_pull_aromatic_converges_on_the_dipole_route(tmp_path):
     assert all(r.gradient_norm <= job.scf.gradient_accepted for r in result.records)
     assert result.tensors["alpha"].stable.all()
     assert result.tensors["alpha"].value_au[0, 0] > 100.0  # the push-pull axis
+
+
+def test_an_exception_inside_pyscf_fails_that_point_by_name_without_a_traceback(
+        tmp_path, capsys, monkeypatch):
+    real = backend_pyscf._converge
+
+    def broken(mf, context, point):
+        if point.label == "L0(+1,0,0)":
+            raise np.linalg.LinAlgError("Eigenvalues did not converge")
+        return real(mf, context, point)
+
+    monkeypatch.setattr(backend_pyscf, "_converge", broken)
+    job = _job(tmp_path, WATER, 'method = "hf"\n        basis = "6-31g"', name="water.toml")
+    assert main(["run", job.path, "--quiet", "--workers", "1"]) == 1
+    err = capsys.readouterr().err
+    assert "Traceback" not in err
+    line = next(x for x in err.splitlines() if x.startswith("fieldprop: error:"))
+    assert "L0(+1,0,0)" in line and "LinAlgError: Eigenvalues did not converge" in line
+    monkeypatch.undo()
+    assert main(["plan", job.path, "--json-lines"]) == 0
+    stored = [json.loads(x)["stored"] for x in capsys.readouterr().out.splitlines()]
+    assert stored.count("failed") == 1 and stored.count("stored") == len(stored) - 1
