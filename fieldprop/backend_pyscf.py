@@ -164,6 +164,9 @@ def _mean_field(mol, model, scf_spec):
     mf.conv_tol_grad = scf_spec.gradient_conv_tol
     mf.max_cycle = scf_spec.max_cycle
     mf.verbose = 0
+    # No checkpoint file: the store keeps what is needed, and PySCF's temporary
+    # file, inherited by forked workers, would be deleted twice.
+    mf.chkfile, mf._chkfile = None, None
     return mf
 
 
