@@ -14,7 +14,7 @@ Targets (the solver's contract): <= 0.3 cold-SCF cycles per field point;
 finite-field alpha (2 levels) <= 2x the analytic alpha; the push-pull beta
 (3 levels) within 10 minutes on 2 cores.
 
-    python tests/benchmarks/bench_points.py [--quick] [--workers N]
+    python tests/benchmarks/bench_points.py [--quick] [--case N] [--solver S] [--workers N]
 """
 
 from __future__ import annotations
@@ -111,14 +111,19 @@ def _molecule(job):
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="the first two cases only")
+    parser.add_argument("--case", type=int, action="append", help="run case N only (0, 1, 2; "
+                        "repeatable)")
+    parser.add_argument("--solver", action="append", choices=("newton", "diis"),
+                        help="run this solver only (repeatable; default both)")
     parser.add_argument("--workers", type=int, default=1)
     args = parser.parse_args()
+    cases = [CASES[i] for i in args.case] if args.case else (CASES[:2] if args.quick else CASES)
+    solvers = args.solver or ["newton", "diis"]
     rows = []
     folder = Path(tempfile.mkdtemp())
-    for name, method, functional, basis, geometry, properties, levels in (
-            CASES[:2] if args.quick else CASES):
+    for name, method, functional, basis, geometry, properties, levels in cases:
         analytic = None
-        for solver in ("newton", "diis"):
+        for solver in solvers:
             path = folder / f"{name.split()[0]}-{solver}.toml"
             path.write_text(job_text(method, functional, basis, geometry, properties, levels,
                                      solver))
