@@ -354,11 +354,9 @@ def collect(job: Job, store, route: Route | str | None = None) -> RunResult:
     planned point is not stored, and the points' own error when a stored point
     failed: never an extrapolation from a partial set.
     """
-    from fieldprop.keys import model_key as _model_key
-
     start = time.perf_counter()
     molecule = build_molecule(job.molecule, job.response.origin)
-    facts = store.get_facts(_model_key(molecule, job.model, job.scf))
+    facts = store.get_facts(model_key(molecule, job.model, job.scf))
     if facts is None:
         raise IncompleteError(f"{job.path}: {store.label} holds no point of this molecule and "
                               "model; compute them with fieldprop run")
