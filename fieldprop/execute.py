@@ -4,10 +4,12 @@ Every planned point is first looked up in the store by its key; only the missing
 ones are computed. The zero-field reference (the warm start and the state
 reference of every other point) comes from the store too, or is computed first,
 in this process, and stored. The missing points are independent
-:class:`~fieldprop.records.PointTask` units, computed here or in a process pool,
-each with the reference passed beside it; results are taken as they complete and
-committed at once, by this process alone (the store's only writer in a run), so
-a killed run loses only the points in flight.
+:class:`~fieldprop.records.PointTask` units, computed here (in one
+:class:`~fieldprop.backend_pyscf.ModelContext`) or in a process pool whose
+workers each build one context from the reference, sent once per worker when it
+starts; results are taken as they complete and committed at once, by this
+process alone (the store's only writer in a run), so a killed run loses only the
+points in flight. Nothing is built when every point is stored.
 
 A point that fails is stored as a failure with its reason; the others still
 finish and are kept. A stored failure is not computed again unless asked

@@ -452,3 +452,18 @@ def test_collect_without_a_store_file_is_incomplete(tmp_path, store_option):
     name = store_option[-1] if store_option else "fieldprop-points.sqlite"
     assert name in lines[0], lines[0]
     assert snapshot(tmp_path) == before, "collect created a file"
+
+
+def test_a_damaged_zero_field_reference_is_bad_input(tmp_path, computed_store):
+    """A model row whose reference blob cannot be read (SQLite's own checks see
+    nothing wrong) is refused with one line naming the store, not a traceback."""
+    job = write_job(tmp_path)
+    store = tmp_path / "points.sqlite"
+    store.write_bytes(computed_store)
+    with sqlite3.connect(store) as db:
+        db.execute("UPDATE models SET reference = x'00010203'")
+        db.execute("DELETE FROM points")  # so that the run needs the reference
+    db.close()
+    proc = fieldprop(tmp_path, "run", job.name, "--store", str(store), "--quiet")
+    check_refused(proc, store, ["zero-field reference", "damaged"])
+    assert not (tmp_path / RESULT).exists()
