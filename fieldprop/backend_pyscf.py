@@ -469,11 +469,11 @@ MAX_STALLED_STEPS = 3
 DIIS_HANDOVER = 1e-6
 
 
-def _newton(mf, context, c, occ, target: float) -> tuple[int, float]:
+def _newton(mf, context, c, occ, target: float) -> tuple[int, float, np.ndarray]:
     """Newton steps with the orbital Hessian from orbitals ``c`` towards gradient
     ``target``; leaves the best state reached in ``mf`` (semi-canonical
     orbitals, energies, e_tot). Returns (Fock builds and Hessian products, the
-    gradient reached).
+    gradient reached, the Fock matrix of that state).
 
     Each step builds the Fock matrix (one build), semi-canonicalises, and solves
     (A + B) x = -F_vo by preconditioned conjugate gradients (one
@@ -499,7 +499,7 @@ def _newton(mf, context, c, occ, target: float) -> tuple[int, float]:
         if not np.isfinite(g):
             break
         if best is None or g < best[0]:
-            best = (g, c, energies, float(mf.energy_tot(dm, h1e, vhf)))
+            best = (g, c, energies, float(mf.energy_tot(dm, h1e, vhf)), fock)
         stalled = stalled + 1 if g > STALL_RATIO * last else 0
         last = g
         if g <= target or stalled >= MAX_STALLED_STEPS or steps >= MAX_NEWTON_STEPS:
@@ -515,9 +515,9 @@ def _newton(mf, context, c, occ, target: float) -> tuple[int, float]:
         work += hessian.products
         c = _rotate(c, occ, x)
         steps += 1
-    g, c, energies, e_tot = best
+    g, c, energies, e_tot, fock = best
     mf.mo_coeff, mf.mo_occ, mf.mo_energy, mf.e_tot = c, occ, energies, e_tot
-    return work, g
+    return work, g, fock
 
 
 def _start_orbitals(context, field_vector_au):
@@ -571,9 +571,10 @@ def _ladder(mf, dm0, target: float, attempts: list[str]) -> int:
     return cycles
 
 
-def _converge(mf, context, point) -> tuple[list[str], int]:
-    """Converge the SCF of one field point; returns the strategies tried and the
-    cycles (Fock builds and Hessian products).
+def _converge(mf, context, point) -> tuple[list[str], int, np.ndarray | None]:
+    """Converge the SCF of one field point; returns the strategies tried, the
+    cycles (Fock builds and Hessian products) and the Fock matrix of the final
+    state when the Newton steps built it (None otherwise).
 
     With ``[scf] solver = "newton"`` (and a real orbital Hessian: RHF, UHF, RKS,
     UKS): a field point starts from the zero-field orbitals rotated by their
@@ -593,8 +594,8 @@ def _converge(mf, context, point) -> tuple[list[str], int]:
         # core Hamiltonian is the exact solution.
         mf.kernel()
         mf.converged = True
-        return ["one_electron"], 1
-    attempts, cycles, g = [], 0, np.inf
+        return ["one_electron"], 1, None
+    attempts, cycles, g, fock = [], 0, np.inf, None
     newton_ok = scf.solver == "newton" and _has_hessian(mf)
     if newton_ok and reference is None:
         attempts.append("diis")
@@ -612,16 +613,16 @@ def _converge(mf, context, point) -> tuple[list[str], int]:
         start = _start_orbitals(context, point.field_vector_au)
     if newton_ok:
         attempts.append("newton")
-        work, g = _newton(mf, context, start, occ, target)
+        work, g, fock = _newton(mf, context, start, occ, target)
         cycles += work
     if g > accepted:  # a stall where the derivatives need no more is accepted as is
         dm0 = (mf.make_rdm1() if mf.mo_coeff is not None else
                reference.density if reference is not None else None)
         cycles += _ladder(mf, dm0, target, attempts)
-        g = _gradient_norm(mf)
+        g, fock = _gradient_norm(mf), None
     if g <= accepted:
         mf.converged = True
-        return attempts, cycles
+        return attempts, cycles, fock
     raise ScfNotConvergedError(
         f"SCF did not converge at field point {point.label}: orbital gradient {g:.1e} reached after "
         f"{', '.join(attempts)} ({cycles} cycles); the derivatives need at most "
@@ -672,15 +673,15 @@ class _OrbitalHessian:
     """
 
     def __init__(self, mf, response=None):
-        from pyscf.scf import hf, rohf, uhf
+        from pyscf.scf import uhf
 
+        if not _has_hessian(mf):
+            raise TypeError(f"no orbital Hessian for {type(mf).__name__}")
         if isinstance(mf, uhf.UHF):
             coeffs, energies, occs, self.weight = mf.mo_coeff, mf.mo_energy, mf.mo_occ, 1.0
-        elif isinstance(mf, hf.RHF) and not isinstance(mf, rohf.ROHF):
+        else:
             coeffs, energies, occs, self.weight = ([mf.mo_coeff], [mf.mo_energy], [mf.mo_occ],
                                                    2.0)
-        else:
-            raise TypeError(f"no orbital Hessian for {type(mf).__name__}")
         self.blocks = []
         for c, e, occ in zip(coeffs, energies, occs):
             o, v = occ > 0, occ == 0
@@ -724,7 +725,7 @@ class _OrbitalHessian:
         return np.concatenate([(cv.T @ m @ co).ravel()
                                for m, (co, cv, de) in zip(matrices, self.blocks)])
 
-    def solve(self, rhs, rtol: float, what: str, shift: float = 0.0) -> np.ndarray:
+    def solve(self, rhs, rtol: float, what: str) -> np.ndarray:
         """x with (A + B) x = rhs, to relative residual ``rtol``.
 
         Preconditioned conjugate gradients (the Hessian of a stable SCF is
@@ -743,7 +744,7 @@ class _OrbitalHessian:
         n = sum(self.sizes)
         b = rhs / norm
         residual = np.inf
-        for sigma in dict.fromkeys((shift, max(shift, SINGULAR_SHIFT))):
+        for sigma in (0.0, SINGULAR_SHIFT):
             operator = LinearOperator((n, n), matvec=lambda v, s=sigma: self.matvec(v) + s * v,
                                       dtype=float)
             precondition = LinearOperator((n, n), matvec=lambda v, s=sigma: np.asarray(v).ravel()
@@ -884,23 +885,13 @@ def compute_point(context: ModelContext, task: PointTask) -> PointRecord:
     return _evaluate(context, task)[0]
 
 
-def evaluate_reference(task: PointTask) -> tuple[PointRecord, ZeroFieldReference]:
-    """compute_reference in a context of its own."""
-    return compute_reference(ModelContext(task.molecule, task.model, task.scf), task)
-
-
-def evaluate_point(task: PointTask, reference: ZeroFieldReference) -> PointRecord:
-    """compute_point in a context of its own."""
-    return compute_point(ModelContext(task.molecule, task.model, task.scf, reference), task)
-
-
 def _evaluate(context: ModelContext, task: PointTask):
     start = time.perf_counter()
     molecule, model, point = task.molecule, task.model, task.point
     reference = context.reference
     mf = context.mean_field(point.field_vector_au)
     r, mol = context.r, context.mol
-    attempts, cycles = _converge(mf, context, point)
+    attempts, cycles, fock = _converge(mf, context, point)
     occupied, s2 = _orbital_sets(mf), _s2(mf)
     overlap, issues = 1.0, []
     if reference is not None:
@@ -918,14 +909,15 @@ def _evaluate(context: ModelContext, task: PointTask):
     dipole = tuple(float(v) for v in _scf_dipole(mf, r, molecule)) if want.dipole else None
     energy = (float(mf.e_tot) if METHODS[model.method].mean_field
               else _correlated_energy(mf, model, task.scf, point.label))
-    # One Fock build serves the gradient and the dipole's error estimate. A
-    # one-electron system has no electron-electron terms (PySCF's HF1e): its Fock
-    # matrix is the core Hamiltonian, and the generic build would compute
-    # two-electron integrals for nothing.
+    # One Fock build serves the gradient and the dipole's error estimate: the
+    # Newton steps' own, when they ended the SCF. A one-electron system has no
+    # electron-electron terms (PySCF's HF1e): its Fock matrix is the core
+    # Hamiltonian, and the generic build would compute two-electron integrals
+    # for nothing.
     if mol.nelectron == 1:
         h = mf.get_hcore()
         fock = np.array([h, h]) if np.asarray(mf.mo_occ).ndim == 2 else h
-    else:
+    elif fock is None:
         fock = mf.get_fock()
     grad = mf.get_grad(mf.mo_coeff, mf.mo_occ, fock)
     gradient = float(np.linalg.norm(grad))

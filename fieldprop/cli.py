@@ -56,6 +56,8 @@ def _positive_float(text: str) -> float:
 
 
 def build_parser() -> argparse.ArgumentParser:
+    from fieldprop.store import DEFAULT_NAME as DEFAULT_STORE_NAME
+
     parser = _Parser(prog="fieldprop", description="Static dipole moment, polarizability and "
                      "hyperpolarizabilities by finite fields with Richardson extrapolation.")
     parser.add_argument("--version", action="version", version=f"fieldprop {__version__}")
@@ -121,11 +123,9 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-#: Imported lazily elsewhere; the name is only needed for the help texts here.
-DEFAULT_STORE_NAME = "fieldprop-points.sqlite"
-
-
 def _store_options(parser) -> None:
+    from fieldprop.store import DEFAULT_NAME as DEFAULT_STORE_NAME
+
     group = parser.add_mutually_exclusive_group()
     group.add_argument("--store", type=Path, metavar="PATH", help="point store: computed points "
                        "are kept there and reused by any job that needs them (default "

@@ -108,11 +108,9 @@ def _reference(tasks: list[PointTask], store: PointStore, facts: dict,
     logger.debug("no stored reference for model %s: computing zero field", zero.model_key[:12])
     context = ModelContext(zero.molecule, zero.model, zero.scf)
     record, reference = compute_reference(context, zero)
-    store.put_model(zero.model_key, description, facts, reference, (zero, record))
-    stored = store.get_model(zero.model_key)  # another process may have stored one first
-    if stored is not None and stored[0] is not reference:
-        context.attach(stored[0])
-        reference = stored[0]
+    if not store.put_model(zero.model_key, description, facts, reference, (zero, record)):
+        reference = store.get_model(zero.model_key)[0]  # another process stored one first
+        context.attach(reference)
     return reference, context
 
 

@@ -275,17 +275,19 @@ class PointStore:
         return None if row is None else json.loads(row[0])
 
     def put_model(self, model_key: str, description: dict, facts: dict,
-                  reference: ZeroFieldReference, zero_point: tuple | None = None) -> None:
+                  reference: ZeroFieldReference, zero_point: tuple | None = None) -> bool:
         """Store a model's reference (kept if one is there already), and with it,
-        in the same transaction, its zero-field point ``(key, task, record)``."""
+        in the same transaction, its zero-field point ``(task, record)``. False
+        when another process had stored the model's reference first."""
         with self._db:
-            self._db.execute(
+            cursor = self._db.execute(
                 "INSERT INTO models VALUES (?, ?, ?, ?, ?, ?, ?) ON CONFLICT (model_key) "
                 "DO NOTHING",
                 (model_key, json.dumps(description, sort_keys=True), json.dumps(facts),
                  reference_to_bytes(reference), _now(), socket.gethostname(), __version__))
             if zero_point is not None:
                 self._insert_point(*zero_point)
+        return cursor.rowcount == 1
 
     # -- points
 

@@ -120,7 +120,7 @@ def test_a_stall_above_the_needed_gradient_fails_that_point_by_name(tmp_path, ca
     def newton(mf, context, c, occ, goal):
         if at_target(mf, context):  # no Newton step: the point keeps its start
             mf.mo_coeff, mf.mo_occ = c, occ
-            return 0, backend_pyscf._gradient_norm(mf)
+            return 0, backend_pyscf._gradient_norm(mf), None
         return real_newton(mf, context, c, occ, goal)
 
     def ladder(mf, dm0, goal, attempts):
