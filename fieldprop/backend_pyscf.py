@@ -220,6 +220,9 @@ class ModelContext:
         if model.method == "dft":
             template.grids.build()
         self.reference: ZeroFieldReference | None = None
+        #: The orientation constraints of a reference that breaks a rotational
+        #: symmetry of the molecule (orientation_constraints); empty otherwise.
+        self.constraints: tuple[np.ndarray, ...] = ()
         if reference is not None:
             self.attach(reference)
 
@@ -227,9 +230,13 @@ class ModelContext:
         """Use ``reference`` as every later point's start and state reference."""
         self.reference = reference
         self.__dict__.pop("response", None)
+        self.constraints = ()
         if reference.mo_coeff is not None:
             self.template.mo_coeff = reference.mo_coeff
             self.template.mo_occ = reference.mo_occ
+            if _has_hessian(self.template):
+                self.constraints = orientation_constraints(self, reference.mo_coeff,
+                                                           reference.mo_occ)
 
     @functools.cached_property
     def response(self):
@@ -267,6 +274,136 @@ class ModelContext:
         _apply_field(mf, self, field_vector_au)
         return mf
 
+#: An orbital set whose rotation about a symmetry axis of the molecule changes
+#: it by less than this (norm of the generator's occupied-virtual block) keeps
+#: that symmetry: no orientation constraint.
+ORIENTATION_MIN_NORM = 1e-6
+#: Largest orientation drift (the constrained density coherence, ~ the angle in
+#: radians by which the state turned about the axis) before a point counts as
+#: another state than zero field's.
+MAX_ORIENTATION_DRIFT = 1e-5
+#: Smallest anisotropy of the unpaired density (e bohr^2) that fixes an
+#: orientation to align; below it the state is left as converged.
+ORIENTATION_MIN_ANISOTROPY = 1e-8
+#: A turn (radians) below which a state counts as aligned already.
+ORIENTATION_MIN_TURN = 1e-12
+
+
+def _angular_momentum(mol, centre) -> np.ndarray:
+    """<chi_mu | ((r - centre) x grad)_k | chi_nu>, shape (3, nao, nao): real,
+    antisymmetric; exp(theta S^-1 L_k) turns orbitals by -theta about axis k."""
+    with mol.with_common_orig(centre):
+        return mol.intor("int1e_cg_irxp", comp=3)
+
+
+def _set_blocks(mo_coeff, mo_occ):
+    """(occupied, virtual) coefficients per orbital set and the density weight."""
+    occ = np.asarray(mo_occ)
+    if occ.ndim == 2:
+        return [(c[:, o > 0], c[:, o == 0]) for c, o in zip(mo_coeff, occ)], 1.0
+    return [(mo_coeff[:, occ > 0], mo_coeff[:, occ == 0])], 2.0
+
+
+def orientation_constraints(context, mo_coeff, mo_occ) -> tuple[np.ndarray, ...]:
+    """The orientations a field point must keep, for a zero-field state that
+    breaks a rotational symmetry of its molecule (rotation_axes).
+
+    Turning such a state about the axis costs no energy at zero field (a zero
+    mode of the orbital Hessian), and a field off the axis turns it at second
+    order: the point would leave the zero-field state's orientation (the energy
+    route's mixed points), or crawl along the flat mode (a DFT grid's slight
+    anisotropy), and no derivative would belong to one state. fieldprop keeps
+    each point at the orientation of zero field, which gives the tensors of the
+    zero-field determinant, those an analytic CPHF/CPKS code gives it.
+
+    Each constraint is a symmetric AO matrix W (one per orbital set, stacked for
+    unrestricted orbitals): c(D) = sum_sets tr(W D) vanishes at zero field and
+    changes by the angle (radians) of a small turn about the axis; the Newton
+    steps keep c = 0 and leave the gradient along dc free (its Lagrange
+    multiplier). With c fixed, dE/dF is still -mu: both routes stay consistent.
+    """
+    centre, axes = context.molecule.rotation_axes()
+    if not len(axes):
+        return ()
+    lmat = np.einsum("kx,xij->kij", axes, _angular_momentum(context.mol, centre))
+    blocks, _ = _set_blocks(mo_coeff, mo_occ)
+    s = context.overlap
+    out = []
+    for lk in lmat:
+        n = [cv.T @ lk @ co for co, cv in blocks]
+        norm = float(np.sqrt(sum(np.sum(b * b) for b in n)))
+        if norm <= ORIENTATION_MIN_NORM:
+            continue
+        w = [s @ cv @ (b / norm) @ co.T @ s for (co, cv), b in zip(blocks, n)]
+        w = np.array([0.5 * (m + m.T) for m in w])
+        out.append(w if len(w) == 2 else w[0])
+    return tuple(out)
+
+
+def _constraint_values(constraints, dm) -> np.ndarray:
+    """c_k(D) of each constraint (radians of turn from the zero-field orientation)."""
+    dm = np.asarray(dm)
+    return np.array([float(np.sum(w * np.swapaxes(dm, -1, -2))) for w in constraints])
+
+
+def _orientation(context, mf) -> np.ndarray | None:
+    """The active rotation (3x3) that takes the unpaired density's principal
+    axes to the frame's: for a linear molecule, the in-plane axis of its
+    largest second moment onto the Cartesian axis most perpendicular to the
+    molecule; for an atom, the three axes onto x, y, z (largest moment first).
+    None when the molecule has no rotation axis, the state breaks none, or the
+    density is too isotropic to tell."""
+    from scipy.spatial.transform import Rotation
+
+    centre, axes = context.molecule.rotation_axes()
+    if not len(axes) or not orientation_constraints(context, mf.mo_coeff, mf.mo_occ):
+        return None
+    dm = np.asarray(mf.make_rdm1())
+    unpaired = dm[0] - dm[1] if dm.ndim == 3 else dm
+    with context.mol.with_common_orig(centre):
+        second = np.einsum("xij,ji->x", context.mol.intor_symmetric("int1e_rr", comp=9),
+                           unpaired).reshape(3, 3)
+    if len(axes) == 1:
+        u = axes[0]
+        e1 = np.eye(3)[int(np.argmin(np.abs(u)))]
+        e1 = e1 - (e1 @ u) * u
+        e1 /= np.linalg.norm(e1)
+        e2 = np.cross(u, e1)
+        q11, q22, q12 = e1 @ second @ e1, e2 @ second @ e2, e1 @ second @ e2
+        if np.hypot(q11 - q22, 2 * q12) < ORIENTATION_MIN_ANISOTROPY:
+            return None
+        phi = 0.5 * np.arctan2(2 * q12, q11 - q22)  # principal axis, from e1 towards e2
+        return Rotation.from_rotvec(-phi * u).as_matrix()
+    values, vectors = np.linalg.eigh(second)
+    if np.ptp(values) < ORIENTATION_MIN_ANISOTROPY:
+        return None
+    vectors = vectors[:, ::-1]
+    if np.linalg.det(vectors) < 0:
+        vectors[:, 2] *= -1
+    return vectors.T
+
+
+def _align(mf, context) -> bool:
+    """Turn a zero-field state that breaks a rotational symmetry of its molecule
+    to the orientation of _orientation (the same energy: the Hamiltonian has
+    that symmetry), so that its tensors come out in a reproducible frame.
+    Returns whether it turned."""
+    from scipy.linalg import expm
+    from scipy.spatial.transform import Rotation
+
+    rotation = _orientation(context, mf)
+    if rotation is None:
+        return False
+    centre, _ = context.molecule.rotation_axes()
+    omega = Rotation.from_matrix(rotation).as_rotvec()
+    if np.linalg.norm(omega) < ORIENTATION_MIN_TURN:
+        return False
+    generator = np.einsum("x,xij->ij", omega, _angular_momentum(context.mol, centre))
+    turn = expm(-np.linalg.solve(context.overlap, generator))
+    c = np.asarray(mf.mo_coeff)
+    mf.mo_coeff = np.array([turn @ cs for cs in c]) if c.ndim == 3 else turn @ c
+    return True
+
 
 def _scf_dipole(mf, r, molecule) -> np.ndarray:
     dm = mf.make_rdm1()
@@ -275,7 +412,8 @@ def _scf_dipole(mf, r, molecule) -> np.ndarray:
     return molecule.nuclear_dipole_au() - np.einsum("xij,ji->x", r, dm).real
 
 
-def _dipole_error(mf, r, fock, gradient: float, dipole_route: bool) -> float:
+def _dipole_error(mf, r, fock, gradient: float, dipole_route: bool, constraints=(),
+                  response=None) -> float:
     """|d mu| the remaining orbital gradient leaves in the SCF dipole.
 
     Closed shells: the diagonal estimate (diagonal_dipole_step). Open shells
@@ -283,12 +421,14 @@ def _dipole_error(mf, r, fock, gradient: float, dipole_route: bool) -> float:
     dipole is differentiated, the full-Hessian Newton step (newton_dipole_step,
     0.98-1.01 of the true error measured on NH2 and H2O+, HF and DFT); on the
     energy route the dipole is only reported, and the diagonal estimate will do.
-    ROHF: |g|.
+    ROHF: |g|. ``response`` is the Newton steps' (ModelContext.response: for DFT
+    a coarse-grid kernel, which changes an estimate of ~1e-10 au by far less
+    than it matters and saves two thirds of an open-shell DFT point's time).
     """
     try:
         if dipole_route and np.asarray(mf.mo_occ).ndim == 2:
-            return float(np.linalg.norm(newton_dipole_step(mf, r, fock)))
-        return float(np.linalg.norm(diagonal_dipole_step(mf, r, fock)))
+            return float(np.linalg.norm(newton_dipole_step(mf, r, fock, constraints, response)))
+        return float(np.linalg.norm(diagonal_dipole_step(mf, r, fock, constraints)))
     except TypeError:  # no orbital Hessian here (ROHF)
         return gradient
 
@@ -416,10 +556,30 @@ def _has_hessian(mf) -> bool:
     return isinstance(mf, uhf.UHF) or (isinstance(mf, hf.RHF) and not isinstance(mf, rohf.ROHF))
 
 
-def _gradient_norm(mf, fock=None) -> float:
+def _gradient_norm(mf, fock=None, constraints=(), c=None, occ=None) -> float:
+    """|orbital gradient| of orbitals ``c`` (default mf's), without its part
+    along the orientation ``constraints``' gradients (their multipliers')."""
+    c = mf.mo_coeff if c is None else c
+    occ = mf.mo_occ if occ is None else occ
     if fock is None:
         fock = mf.get_fock()
-    return float(np.linalg.norm(mf.get_grad(mf.mo_coeff, mf.mo_occ, fock)))
+    g = mf.get_grad(c, occ, fock)
+    if constraints:
+        gradients = _constraint_gradients(c, occ, constraints)
+        g = g - gradients @ np.linalg.lstsq(gradients, g, rcond=None)[0]
+    return float(np.linalg.norm(g))
+
+
+def _constraint_gradients(c, occ, constraints) -> np.ndarray:
+    """d c_k / d x for the occupied-virtual rotations x of orbitals ``c`` (columns),
+    in the layout of PySCF's gradient and of _OrbitalHessian."""
+    blocks, weight = _set_blocks(c, occ)
+    columns = []
+    for w in constraints:
+        ws = w if np.ndim(w) == 3 else [w]
+        columns.append(np.concatenate([(2.0 * weight * cv.T @ m @ co).ravel()
+                                       for m, (co, cv) in zip(ws, blocks)]))
+    return np.array(columns).T
 
 
 def _semicanonical(c, occ, fock):
@@ -465,11 +625,16 @@ MAX_NEWTON_STEPS = 12
 STALL_RATIO = 0.5
 MAX_STALLED_STEPS = 3
 #: Gradient to which DIIS takes a cold (zero-field) SCF before Newton steps
-#: finish it: where DIIS still converges fast.
+#: finish it: where DIIS still converges fast; and the DIIS cycles after which
+#: the Newton steps take over wherever DIIS got to (a flat mode, such as the
+#: orientation of a degenerate open shell, keeps DIIS wandering: OH at UKS
+#: took 220 cycles to 1e-6, the Newton steps 10 from 1e-4).
 DIIS_HANDOVER = 1e-6
+DIIS_HANDOVER_CYCLES = 40
 
 
-def _newton(mf, context, c, occ, target: float) -> tuple[int, float, np.ndarray]:
+def _newton(mf, context, c, occ, target: float,
+            constraints=()) -> tuple[int, float, np.ndarray]:
     """Newton steps with the orbital Hessian from orbitals ``c`` towards gradient
     ``target``; leaves the best state reached in ``mf`` (semi-canonical
     orbitals, energies, e_tot). Returns (Fock builds and Hessian products, the
@@ -486,6 +651,10 @@ def _newton(mf, context, c, occ, target: float) -> tuple[int, float, np.ndarray]
     molecule's axis, takes several); the best state reached is kept, and
     MAX_STALLED_STEPS steps in a row that do not halve the gradient end the
     finish: the gradient has reached the floor double precision allows.
+
+    With orientation ``constraints`` (orientation_constraints) each step keeps
+    them (projected solve, plus the least step that restores c = 0), and the
+    gradient that decides is the one orthogonal to their gradients.
     """
     h1e, s1e = mf.get_hcore(), context.overlap
     work, best, stalled, steps, last = 0, None, 0, 0, np.inf
@@ -495,7 +664,7 @@ def _newton(mf, context, c, occ, target: float) -> tuple[int, float, np.ndarray]
         work += 1
         fock = mf.get_fock(h1e, s1e, vhf, dm)
         c, energies = _semicanonical(c, occ, fock)
-        g = float(np.linalg.norm(mf.get_grad(c, occ, fock)))
+        g = _gradient_norm(mf, fock, constraints, c, occ)
         if not np.isfinite(g):
             break
         if best is None or g < best[0]:
@@ -505,7 +674,7 @@ def _newton(mf, context, c, occ, target: float) -> tuple[int, float, np.ndarray]
         if g <= target or stalled >= MAX_STALLED_STEPS or steps >= MAX_NEWTON_STEPS:
             break
         mf.mo_coeff, mf.mo_occ, mf.mo_energy = c, occ, energies
-        hessian = _OrbitalHessian(mf, response=context.response)
+        hessian = _OrbitalHessian(mf, response=context.response, constraints=constraints)
         rtol = float(np.clip(0.1 * target / g, 1e-8, 0.1))
         try:
             x = hessian.solve(-hessian.vo(fock), rtol, "Newton step")
@@ -513,6 +682,9 @@ def _newton(mf, context, c, occ, target: float) -> tuple[int, float, np.ndarray]
             work += hessian.products
             break  # leave it to the ladder
         work += hessian.products
+        if constraints:
+            drift = _constraint_values(constraints, dm)
+            x = x - np.linalg.lstsq(hessian.constraint_gradients.T, drift, rcond=None)[0]
         c = _rotate(c, occ, x)
         steps += 1
     g, c, energies, e_tot, fock = best
@@ -597,29 +769,43 @@ def _converge(mf, context, point) -> tuple[list[str], int, np.ndarray | None]:
         return ["one_electron"], 1, None
     attempts, cycles, g, fock = [], 0, np.inf, None
     newton_ok = scf.solver == "newton" and _has_hessian(mf)
+    constraints = context.constraints
     if newton_ok and reference is None:
         attempts.append("diis")
         mf.conv_tol_grad = max(target, DIIS_HANDOVER)
         mf.conv_tol = max(scf.energy_conv_tol_au, DIIS_HANDOVER ** 2)
+        mf.max_cycle = min(scf.max_cycle, DIIS_HANDOVER_CYCLES)
         mf.kernel()
         cycles += int(getattr(mf, "cycles", 1) or 1)
         mf.conv_tol, mf.conv_tol_grad = scf.energy_conv_tol_au, target
+        mf.max_cycle = scf.max_cycle
         start = mf.mo_coeff
         occ = mf.mo_occ
         newton_ok = start is not None
+        if newton_ok and _align(mf, context):
+            attempts.append("orientation")
+            start = mf.mo_coeff
+        if newton_ok:
+            constraints = context.constraints = orientation_constraints(context, start, occ)
     elif newton_ok:
         attempts.append("response_start")
         occ = reference.mo_occ
         start = _start_orbitals(context, point.field_vector_au)
     if newton_ok:
         attempts.append("newton")
-        work, g, fock = _newton(mf, context, start, occ, target)
+        work, g, fock = _newton(mf, context, start, occ, target, constraints)
         cycles += work
+        if reference is None and constraints and _align(mf, context):
+            # The first turn was judged on DIIS orbitals: turn the converged
+            # state by what is left (~1e-6 rad at DFT) and finish again.
+            constraints = context.constraints = orientation_constraints(context, mf.mo_coeff, occ)
+            work, g, fock = _newton(mf, context, mf.mo_coeff, occ, target, constraints)
+            cycles += work
     if g > accepted:  # a stall where the derivatives need no more is accepted as is
         dm0 = (mf.make_rdm1() if mf.mo_coeff is not None else
                reference.density if reference is not None else None)
         cycles += _ladder(mf, dm0, target, attempts)
-        g, fock = _gradient_norm(mf), None
+        g, fock = _gradient_norm(mf, constraints=constraints), None
     if g <= accepted:
         mf.converged = True
         return attempts, cycles, fock
@@ -672,7 +858,7 @@ class _OrbitalHessian:
     the polarizability of H).
     """
 
-    def __init__(self, mf, response=None):
+    def __init__(self, mf, response=None, constraints=()):
         from pyscf.scf import uhf
 
         if not _has_hessian(mf):
@@ -692,6 +878,18 @@ class _OrbitalHessian:
         self.products = 0  # Hessian-vector products so far (each ~ one Fock build)
         if response is not None:
             self.__dict__["response"] = response  # shared: see ModelContext.response
+        #: The constraints' gradients (columns: d c_k / d x) and an orthonormal
+        #: basis of them; the solver works in the space orthogonal to them.
+        self.constraint_gradients = np.zeros((self.diagonal.size, 0))
+        if constraints:
+            self.constraint_gradients = np.array(
+                [2.0 * self.weight * self.vo(w) for w in constraints]).T
+        self._q = np.linalg.qr(self.constraint_gradients)[0]
+
+    def project(self, x) -> np.ndarray:
+        """x without its part along the constraints' gradients."""
+        x = np.asarray(x).ravel()
+        return x - self._q @ (self._q.T @ x) if self._q.shape[1] else x
 
     @functools.cached_property
     def response(self):
@@ -729,7 +927,8 @@ class _OrbitalHessian:
         """x with (A + B) x = rhs, to relative residual ``rtol``.
 
         Preconditioned conjugate gradients (the Hessian of a stable SCF is
-        positive definite). A Hessian with a (near-)zero mode, such as the
+        positive definite), in the space orthogonal to the constraints'
+        gradients (an orientation constraint: orientation_constraints). A Hessian with a (near-)zero mode, such as the
         rotation of a degenerate open shell's unpaired orbital about the axis
         of a linear molecule (OH, 2Pi), stalls them; then the system is solved
         again with the Hessian shifted by SINGULAR_SHIFT, which leaves the
@@ -738,17 +937,21 @@ class _OrbitalHessian:
         """
         from scipy.sparse.linalg import LinearOperator, cg
 
+        rhs = self.project(rhs)
         norm = np.linalg.norm(rhs)
         if norm == 0.0:
             return np.zeros_like(rhs)
         n = sum(self.sizes)
         b = rhs / norm
         residual = np.inf
+        project = self.project
         for sigma in (0.0, SINGULAR_SHIFT):
-            operator = LinearOperator((n, n), matvec=lambda v, s=sigma: self.matvec(v) + s * v,
-                                      dtype=float)
-            precondition = LinearOperator((n, n), matvec=lambda v, s=sigma: np.asarray(v).ravel()
-                                          / (self.diagonal + s), dtype=float)
+            operator = LinearOperator(
+                (n, n), matvec=lambda v, s=sigma: project(self.matvec(project(v))) + s * v,
+                dtype=float)
+            precondition = LinearOperator(
+                (n, n), matvec=lambda v, s=sigma: project(project(v) / (self.diagonal + s)),
+                dtype=float)
             x, info = cg(operator, b, rtol=rtol, atol=0.0, M=precondition,
                          maxiter=CG_MAX_ITERATIONS)
             residual = np.linalg.norm(operator.matvec(x) - b)
@@ -772,7 +975,7 @@ def response_function(mf):
             else mf.gen_response(singlet=None, hermi=1))
 
 
-def analytic_polarizability(mf, r) -> np.ndarray:
+def analytic_polarizability(mf, r, constraints=()) -> np.ndarray:
     """Static alpha_ij = d mu_i / dF_j (au) from the coupled-perturbed equations.
 
     For a converged RHF, UHF, RKS or UKS object ``mf`` and dipole integrals ``r``
@@ -781,9 +984,10 @@ def analytic_polarizability(mf, r) -> np.ndarray:
     symmetric positive definite system (A + B) x = -r_ai (:class:`_OrbitalHessian`,
     stable real SCF), by preconditioned conjugate gradients to CPHF_RTOL; then
     alpha_ij = -n sum_ai r_i,ai x^(j)_ai with n = 4 for closed shells (two
-    electrons per orbital, dD = 2(x + x^T)) and n = 2 per spin otherwise.
+    electrons per orbital, dD = 2(x + x^T)) and n = 2 per spin otherwise. With
+    orientation ``constraints`` the rotations keep the orientation.
     """
-    hessian = _OrbitalHessian(mf)
+    hessian = _OrbitalHessian(mf, constraints=constraints)
     rmo = np.array([hessian.vo(r[j]) for j in range(3)])
     alpha = np.zeros((3, 3))
     for j in range(3):
@@ -797,19 +1001,19 @@ def analytic_polarizability(mf, r) -> np.ndarray:
 NEWTON_RTOL = 1e-6
 
 
-def diagonal_dipole_step(mf, r, fock) -> np.ndarray:
+def diagonal_dipole_step(mf, r, fock, constraints=()) -> np.ndarray:
     """The dipole change (3,) of the orbital rotation kappa_ai = -F_ai / (e_a - e_i)
     that the remaining gradient asks for, with the Hessian's diagonal alone.
 
     Enough for closed shells (0.5-0.65 of the true error for water, measured);
     small gaps amplify the error well beyond |g|, which this follows.
     """
-    hessian = _OrbitalHessian(mf)
-    x = -hessian.vo(fock) / hessian.diagonal
+    hessian = _OrbitalHessian(mf, constraints=constraints)
+    x = hessian.project(-hessian.project(hessian.vo(fock)) / hessian.diagonal)
     return np.array([hessian.density_trace(hessian.vo(r[i]), x) for i in range(3)])
 
 
-def newton_dipole_step(mf, r, fock=None) -> np.ndarray:
+def newton_dipole_step(mf, r, fock=None, constraints=(), response=None) -> np.ndarray:
     """The dipole change (3,) of the Newton step that removes the remaining orbital
     gradient of a converged SCF: (A + B) x = -F_ai, d mu_i = -tr(r_i dD(x)).
 
@@ -822,7 +1026,7 @@ def newton_dipole_step(mf, r, fock=None) -> np.ndarray:
     error on the dipole route for open shells; it does not add the step (the
     error bars of a corrected dipole could not be made as sharp as it is accurate).
     """
-    hessian = _OrbitalHessian(mf)
+    hessian = _OrbitalHessian(mf, response=response, constraints=constraints)
     if fock is None:
         fock = mf.get_fock()
     f_vo = hessian.vo(fock)
@@ -857,7 +1061,8 @@ def compute_reference(context: ModelContext,
     if _has_hessian(mf):
         # The start needs the rotations to a small fraction of a first-order
         # term only: the Newton steps' (coarse-grid) response serves.
-        hessian = _OrbitalHessian(mf, response=context.response)
+        hessian = _OrbitalHessian(mf, response=context.response,
+                                  constraints=context.constraints)
         rotations = np.array([hessian.solve(-hessian.vo(context.r[j]), START_RTOL,
                                             "zero-field response") for j in range(3)])
         work = hessian.products
@@ -903,6 +1108,12 @@ def _evaluate(context: ModelContext, task: PointTask):
                 overlap = min(overlap, float(np.linalg.svd(c_ref.T @ context.overlap @ c,
                                                            compute_uv=False).min()))
         issues = state_issues(reference, point.field_vector_au, occupied, s2, overlap)
+        if context.constraints:
+            drift = float(np.abs(_constraint_values(context.constraints,
+                                                    np.asarray(mf.make_rdm1()))).max())
+            if drift > MAX_ORIENTATION_DRIFT:
+                issues.append(f"the state turned by {drift:.1e} rad about the molecule's "
+                              f"rotation axis from its zero-field orientation")
         if issues:
             logger.debug("point %s is on another state: %s", point.label, "; ".join(issues))
     want = task.quantities
@@ -919,14 +1130,16 @@ def _evaluate(context: ModelContext, task: PointTask):
         fock = np.array([h, h]) if np.asarray(mf.mo_occ).ndim == 2 else h
     elif fock is None:
         fock = mf.get_fock()
-    grad = mf.get_grad(mf.mo_coeff, mf.mo_occ, fock)
-    gradient = float(np.linalg.norm(grad))
+    constraints = context.constraints
+    gradient = _gradient_norm(mf, fock, constraints)
     dipole_error = 0.0
     if want.dipole:
-        dipole_error = _dipole_error(mf, r, fock, gradient, want.newton_dipole_error)
+        dipole_error = _dipole_error(mf, r, fock, gradient, want.newton_dipole_error,
+                                     constraints, context.response)
     alpha = None
     if want.alpha:
-        alpha = tuple(tuple(float(v) for v in row) for row in analytic_polarizability(mf, r))
+        alpha = tuple(tuple(float(v) for v in row)
+                      for row in analytic_polarizability(mf, r, constraints))
     record = PointRecord(point, energy, float(mf.e_tot), dipole, cycles, tuple(attempts), s2,
                          overlap, gradient, alpha, dipole_error, "; ".join(issues),
                          time.perf_counter() - start)

@@ -24,6 +24,11 @@ import numpy as np
 from fieldprop.job import MoleculeInput
 
 
+#: Largest distance (bohr) of a nucleus from the line through the others for a
+#: molecule to count as linear (geometries given to 1e-6 angstrom pass).
+LINEAR_TOLERANCE_BOHR = 1e-5
+
+
 @dataclass(frozen=True)
 class MoleculeSpec:
     """Everything that fixes the nuclear framework and the electron count.
@@ -70,6 +75,26 @@ class MoleculeSpec:
             z = z - np.asarray(self.core_electrons, dtype=float)
         r = np.asarray(self.coords_bohr) - np.asarray(self.origin_bohr)
         return z @ r
+
+    def rotation_axes(self) -> tuple[np.ndarray, np.ndarray]:
+        """The axes of the rotations that map the nuclear framework onto itself
+        by any angle, and a point they pass through: the three Cartesian axes
+        through an atom's nucleus; a linear molecule's own axis; none (shape
+        (0, 3)) for anything else. A determinant may break such a symmetry (a
+        degenerate open shell: OH's 2Pi, an atom's P state), and every angle
+        of it is then an equally good solution.
+        """
+        coords = np.asarray(self.coords_bohr, dtype=float)
+        centre = coords[0]
+        if len(coords) == 1:
+            return centre, np.eye(3)
+        offsets = coords - centre
+        far = offsets[np.argmax(np.linalg.norm(offsets, axis=1))]
+        axis = far / np.linalg.norm(far)
+        off_axis = offsets - np.outer(offsets @ axis, axis)
+        if np.abs(off_axis).max() > LINEAR_TOLERANCE_BOHR:
+            return centre, np.zeros((0, 3))
+        return centre, axis[None, :]
 
 
 def centre_of_nuclear_charge(charges, coords_bohr) -> tuple[float, float, float]:
