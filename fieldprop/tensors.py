@@ -26,7 +26,18 @@ gamma_ijji).
 
 Error bars of invariants propagate the component error bars linearly,
 sum_c |d inv / d c| err_c (components share field points, so their errors are
-not independent; the linear sum does not assume they are).
+not independent; the linear sum does not assume they are). The invariants that
+are seminorms of their tensor (|mu|, alpha_aniso, beta_vec, beta_hrs: a norm,
+or the square root of a positive semidefinite quadratic form) lose that
+estimate near zero, where their slope says nothing of their spread (beta
+components of 1e-4 +- 1e-2 gave beta_hrs 1e-4 +- 2.6e-4). For them
+f(v + d)^2 = f(v)^2 + 2 <v, d> + f(d)^2 in the form's inner product, with
+|<v, d>| <= f(v) L (L the linear estimate) and f(d) <= T = sum_c err_c
+f(unit_c) (triangle inequality; unit_c has 1 in the entries of component c),
+for every d within the component bars, whatever their correlation (as the
+linear sum). So f(v + d) - f(v) lies between sqrt(max(f^2 - 2 f L, 0)) - f
+and sqrt(f^2 + 2 f L + T^2) - f, and the error bar is the larger magnitude:
+T at f = 0, L + O(T^2 / f) far from zero.
 
 Example
 -------
@@ -191,8 +202,9 @@ def _propagate(fn, tensors: dict[str, TensorResult], names) -> tuple[float, floa
             e = c.estimate.error_au
             if e == 0.0:
                 continue
-            # Central difference of a smooth function at a step of one error bar:
-            # exact for the linear and quadratic invariants used here.
+            # Central difference at a step of one error bar: exact for a linear
+            # invariant, and for a smooth one while the bar is small next to
+            # the value (a seminorm near zero is not: _seminorm_spread).
             shifted = []
             for sign in (1.0, -1.0):
                 vals = [v.copy() for v in values]
@@ -201,6 +213,26 @@ def _propagate(fn, tensors: dict[str, TensorResult], names) -> tuple[float, floa
                 shifted.append(fn(*vals))
             err += abs(shifted[0] - shifted[1]) / 2.0
     return float(base), float(err)
+
+
+def _seminorm_bound(fn, tensors: dict[str, TensorResult], names) -> float:
+    """T = sum_c err_c f(unit_c) >= f(d) for every d within the bars (seminorm f)."""
+    zeros = [np.zeros_like(tensors[n].value_au) for n in names]
+    total = 0.0
+    for slot, n in enumerate(names):
+        for c in tensors[n].components:
+            one = [z.copy() for z in zeros]
+            for idx in c.entries:
+                one[slot][idx] = c.estimate.error_au
+            total += float(fn(*one))
+    return total
+
+
+def _seminorm_error(value: float, linear: float, bound: float) -> float:
+    """The largest |f(v + d) - f(v)| the module docstring's inequalities allow."""
+    up = math.sqrt(value * value + 2.0 * value * linear + bound * bound) - value
+    down = value - math.sqrt(max(value * value - 2.0 * value * linear, 0.0))
+    return max(up, down)
 
 
 def invariants(tensors: dict[str, TensorResult]) -> list[Invariant]:
@@ -217,6 +249,7 @@ def invariants(tensors: dict[str, TensorResult]) -> list[Invariant]:
                   ("beta_hrs", ("beta",), beta_hrs)]
     if "gamma" in tensors:
         specs.append(("gamma_parallel", ("gamma",), gamma_parallel))
+    seminorms = {"dipole_norm", "alpha_aniso", "beta_vec", "beta_hrs"}
     out = []
     for name, needs, fn in specs:
         bad = [c.plan.name for n in needs for c in tensors[n].components if not c.stable]
@@ -232,5 +265,7 @@ def invariants(tensors: dict[str, TensorResult]) -> list[Invariant]:
                 continue
             fn = lambda m, b: 0.6 * float(m @ beta_vector(b)) / float(np.linalg.norm(m))  # noqa: E731
         value, err = _propagate(fn, tensors, needs)
+        if name in seminorms:
+            err = max(err, _seminorm_error(value, err, _seminorm_bound(fn, tensors, needs)))
         out.append(Invariant(name, value, err))
     return out
