@@ -173,7 +173,7 @@ def check_continuity(points, values, noise, flagged=None, relative=RELATIVE_DEPA
             groups.append((size, [m for m in members
                                   if abs(abs(m[0]) - size) <= _SAME * size]))
         node_groups: list[list[tuple[float, int]]] = []
-        departed = False
+        departed, departed_at = False, ""
         for size, group in groups:
             if departed:
                 cause.update((i, departed_at) for _, i in group)

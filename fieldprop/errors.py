@@ -28,10 +28,6 @@ class ScfNotConvergedError(FieldpropError):
     """An SCF (or post-HF) solution did not converge at some field point."""
 
 
-class StateSwitchError(FieldpropError):
-    """A field point landed on a different electronic state than the zero-field one."""
-
-
 class UnstableResultError(FieldpropError):
     """Some tensor component's Richardson table never stabilised."""
 

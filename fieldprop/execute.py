@@ -19,7 +19,6 @@ finish and are kept. A stored failure is not computed again unless asked
 from __future__ import annotations
 
 import logging
-import os
 import signal
 import time
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
@@ -28,7 +27,7 @@ from dataclasses import dataclass
 from tqdm import tqdm
 
 from fieldprop.backend_pyscf import ModelContext, compute_point, compute_reference
-from fieldprop.errors import FieldpropError
+from fieldprop.errors import BackendError, FieldpropError
 from fieldprop.records import PointFailure, PointRecord, PointTask, ZeroFieldReference
 from fieldprop.store import PointStore
 
@@ -64,8 +63,8 @@ def _init_worker(task: PointTask, reference: ZeroFieldReference) -> None:
     # stops the workers); SIGTERM from the parent ends a worker at once.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_DFL)
-    # One BLAS/OpenMP thread per worker process: N workers share N cores.
-    os.environ["OMP_NUM_THREADS"] = "1"
+    # One OpenMP thread per worker process: N workers share N cores (the BLAS
+    # threads the CLI sets before NumPy is imported, and workers inherit).
     from pyscf import lib
 
     lib.num_threads(1)
@@ -93,7 +92,7 @@ def run_task(context: ModelContext, task: PointTask) -> PointRecord | PointFailu
         text = " ".join(str(exc).split())[:300] or "no message"
         return PointFailure(task.point, f"field point {task.point.label} failed inside the "
                             f"backend ({type(exc).__name__}: {text}); no number is formed "
-                            "from it", "BackendError", time.perf_counter() - start)
+                            "from it", BackendError.__name__, time.perf_counter() - start)
 
 
 def _reference(tasks: list[PointTask], store: PointStore, facts: dict,

@@ -365,9 +365,6 @@ class PointStore:
                         "compute_time_s": last[1] or 0.0})
         return out
 
-    def integrity_ok(self) -> bool:
-        return self._db.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
-
 
 def _stored_point(row) -> StoredPoint:
     key, model_key, status = row[:3]

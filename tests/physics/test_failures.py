@@ -7,9 +7,11 @@ import textwrap
 import numpy as np
 import pytest
 
-from fieldprop import backend_pyscf
-from fieldprop.cli import main
-from fieldprop.errors import ScfNotConvergedError
+pytest.importorskip("pyscf")
+
+from fieldprop import backend_pyscf  # noqa: E402
+from fieldprop.cli import main  # noqa: E402
+from fieldprop.errors import ScfNotConvergedError  # noqa: E402
 
 WATER = textwrap.dedent("""
     [molecule]
