@@ -51,7 +51,8 @@ class NoiseModel:
     An SCF energy is variational, its error quadratic in the orbital error: ~g^2.
     The SCF dipole and post-HF energies are not: their errors are linear, ~g
     (orbital rotations ~g/gap times matrix elements ~1 au). Each also has the
-    double-precision floor of its size (ENERGY_ULPS units in the last place), and
+    double-precision floor of its size (ENERGY_ULPS units in the last place; for
+    the dipole, of its nuclear and electronic terms, sum_A Z_A |R_A - O|), and
     coupled-cluster energies their amplitude tolerance. The analytic alpha
     (alpha route) is linear in the orbital error too, with the CPHF residual
     tolerance on top: ~g * |alpha| plus CPHF_RTOL * |alpha|.
@@ -233,10 +234,17 @@ def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel,
     return estimates
 
 
-def noise_model(job: Job, records) -> NoiseModel:
-    """The NoiseModel of a finished set of points (see NoiseModel)."""
+def noise_model(job: Job, records, molecule: MoleculeSpec | None = None) -> NoiseModel:
+    """The NoiseModel of a finished set of points (see NoiseModel); ``molecule``
+    (default: built from the job) sets the scale of the dipole's rounding."""
     traits = METHODS[job.model.method]
     ulp = np.finfo(float).eps
+    if molecule is None:
+        molecule = build_molecule(job.molecule, job.response.origin)
+    # The dipole is a difference of nuclear and electronic terms each as large
+    # as sum_A Z_A |R_A - O|; its rounding follows them, not |mu| (zero for a
+    # symmetric molecule, whose terms may be large).
+    moments = float(molecule.nuclear_moment_sum_au())
     energy, dipole, alpha = [], [], []
     for r in records:
         g = r.gradient_norm
@@ -248,13 +256,13 @@ def noise_model(job: Job, records) -> NoiseModel:
             if traits.amplitude_solver:
                 e += max(job.scf.energy_conv_tol_au, 1e-12)
         energy.append(float(e))
-        mu = 0.0 if r.dipole_au is None else float(np.linalg.norm(r.dipole_au))
         # The dipole's convergence error: ~g for a closed shell (measured 0.9 g for
         # water), more across small gaps. The closed-shell one-step estimate came
         # out at 0.5-0.65 of the true error for water, hence twice it; the open-shell
         # full-Hessian one (dipole route) at 0.98-1.01 of it, doubled alike. Plus
-        # the dipole's rounding, a sum of ~nao^2 products of size |mu|.
-        dipole.append(float(max(g, 2.0 * r.dipole_error_au) + 10.0 * ENERGY_ULPS * ulp * mu))
+        # the dipole's rounding, a sum of ~nao^2 products of the terms' size.
+        dipole.append(float(max(g, 2.0 * r.dipole_error_au)
+                            + 10.0 * ENERGY_ULPS * ulp * moments))
         a = 0.0 if r.alpha_au is None else float(np.abs(r.alpha_au).max())
         # Ten CPHF residual tolerances: the solver stops at or below it, and the
         # residual maps into alpha through an operator of norm ~|alpha|.
@@ -335,7 +343,7 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
     records = tuple(records)
     if len(records) != len(plan.points):
         raise ValueError(f"{len(records)} records for {len(plan.points)} planned points")
-    noise = noise_model(job, records)
+    noise = noise_model(job, records, prepared.molecule)
     smooth = continuity(plan, records, noise)
     estimates = extrapolate_components(plan, records, noise, smooth.cause)
     tensors = assemble(plan.components, estimates)

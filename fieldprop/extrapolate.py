@@ -14,8 +14,8 @@ removes the h^(2m) term at column m (REFERENCES sect. 2). Each entry is a linear
 combination sum_j c_j D(h_j) of the raw estimates; its round-off floor is
 sum_j |c_j| r_j. Its truncation error is judged from its neighbours: the
 "iteration" difference |D(k,m) - D(k,m-1)| and the "field" difference
-|D(k,m) - D(k+1,m)|. An entry's error estimate is the largest of the available
-differences and its round-off floor; the entry with the smallest estimate is
+|D(k,m) - D(k+1,m)|. An entry's error estimate is the larger of the available
+differences plus its round-off floor; the entry with the smallest estimate is
 chosen. The estimate is not a bound.
 
 Example

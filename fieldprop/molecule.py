@@ -76,6 +76,15 @@ class MoleculeSpec:
         r = np.asarray(self.coords_bohr) - np.asarray(self.origin_bohr)
         return z @ r
 
+    def nuclear_moment_sum_au(self) -> float:
+        """sum_A Z_A |R_A - O| (core charges with effective core potentials), in
+        e bohr: the size of the terms whose difference is the dipole."""
+        z = np.asarray(self.nuclear_charges, dtype=float)
+        if self.core_electrons:
+            z = z - np.asarray(self.core_electrons, dtype=float)
+        r = np.asarray(self.coords_bohr) - np.asarray(self.origin_bohr)
+        return float(z @ np.linalg.norm(r, axis=1))
+
     def rotation_axes(self) -> tuple[np.ndarray, np.ndarray]:
         """The axes of the rotations that map the nuclear framework onto itself
         by any angle, and a point they pass through: the three Cartesian axes

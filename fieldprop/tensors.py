@@ -124,7 +124,8 @@ def assemble(plans, estimates) -> dict[str, TensorResult]:
     """Full tensors from component plans and their Richardson estimates.
 
     Components whose error exceeds UNSTABLE_FRACTION of the tensor's largest
-    magnitude and NEGLIGIBLE_ERROR_AU are flagged unstable here.
+    magnitude known (max over components of |value| - error) and
+    NEGLIGIBLE_ERROR_AU are flagged unstable here.
     """
     by_tensor: dict[str, list[ComponentResult]] = {}
     for plan, est in zip(plans, estimates, strict=True):
@@ -135,17 +136,22 @@ def assemble(plans, estimates) -> dict[str, TensorResult]:
             continue
         order = PROPERTY_ORDER[name]
         comps = by_tensor[name]
-        finite = [abs(c.estimate.value_au) for c in comps if math.isfinite(c.estimate.value_au)]
-        scale = max(finite, default=0.0)
+        # The tensor's size is what its components are known to have at least
+        # (|value| - error): a noisy component must not raise the limit that
+        # decides whether the others (or itself) settled.
+        known = [abs(c.estimate.value_au) - c.estimate.error_au for c in comps
+                 if math.isfinite(c.estimate.value_au) and math.isfinite(c.estimate.error_au)]
+        scale = max(max(known, default=0.0), 0.0)
         limit = max(UNSTABLE_FRACTION * scale, NEGLIGIBLE_ERROR_AU[order])
         checked = []
         for c in comps:
             est = c.estimate
             if est.status is not ComponentStatus.UNSTABLE and not est.error_au <= limit:
                 est = mark_unstable(est, f"error bar {est.error_au:.2g} au exceeds "
-                                         f"{UNSTABLE_FRACTION:.0%} of the tensor's largest "
-                                         f"component ({scale:.3g} au): the Richardson table "
-                                         "did not settle")
+                                         f"{UNSTABLE_FRACTION:.0%} of the tensor's size "
+                                         f"({scale:.3g} au, its largest |component| less "
+                                         "that component's error bar): the Richardson "
+                                         "table did not settle")
             checked.append(ComponentResult(c.plan, est, c.entries))
         value = np.zeros((3,) * order)
         error = np.zeros((3,) * order)

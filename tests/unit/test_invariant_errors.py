@@ -133,3 +133,16 @@ def test_far_from_zero_the_linear_estimate_stands():
     inv = _invariants(tensors)["dipole_norm"]
     assert inv.value_au == pytest.approx(2.0)
     assert 1.0005e-3 <= inv.error_au <= 1e-3 + 2.25e-6
+
+
+def test_a_noisy_component_does_not_loosen_the_instability_limit():
+    """alpha with one component 10 +- 9 and another 0.5 +- 0.6: measured by its
+    largest |value| (10), the limit would be 1 au and the second would pass;
+    the tensor is known to be only max(|v| - err) = 1 au large, so the limit is
+    0.1 au and both are flagged, the well-settled 0.9 +- 0.01 is not."""
+    values = np.diag([10.0, 0.5, 0.9])
+    errors = np.diag([9.0, 0.6, 0.01]) + 1e-6
+    alpha = _tensors({"alpha": values}, {"alpha": errors})["alpha"]
+    stable = {c.plan.name: c.stable for c in alpha.components}
+    assert not stable["alpha_xx"] and not stable["alpha_yy"]
+    assert stable["alpha_zz"] and stable["alpha_xy"]
