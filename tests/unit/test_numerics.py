@@ -804,12 +804,10 @@ def test_unit_factor_codata(label, got, expected, rel):
 
 
 # Literature factors from older CODATA sets (REFERENCES sect. 4): they differ in
-# the 4th digit, hence rel 1e-3. 8.641e-33 esu per au of beta as quoted in older
-# papers (REFERENCES: e.g. Kanis, Ratner, Marks, Chem. Rev. 94, 195 (1994), [mem]);
-# 0.148184 A^3 per au of alpha from the CRC Handbook introduction (REFERENCES [src]);
-# 2.5417 D, 5.0367e-40 esu: the commonly quoted values (REFERENCES sect. 4).
+# the 4th digit, hence rel 1e-3. 0.148184 A^3 per au of alpha from the CRC
+# Handbook introduction (REFERENCES [src]); 2.5417 D, 5.0367e-40 esu: the
+# commonly quoted values (REFERENCES sect. 4).
 LITERATURE = [
-    ("beta esu, older", units.esu_factor(3), 8.641e-33),
     ("alpha A^3, CRC", units.ALPHA_AU_TO_ANGSTROM3, 0.148184),
     ("mu D, common", units.DIPOLE_AU_TO_DEBYE, 2.5417),
     ("gamma esu, common", units.esu_factor(4), 5.0367e-40),
@@ -819,6 +817,20 @@ LITERATURE = [
 @pytest.mark.parametrize("label,got,expected", LITERATURE, ids=[c[0] for c in LITERATURE])
 def test_unit_factor_literature(label, got, expected):
     assert got == pytest.approx(expected, rel=1e-3)
+
+
+@pytest.mark.parametrize("order", [1, 2, 3, 4])
+def test_esu_factor_from_the_gaussian_charge_unit_written_out(order):
+    """e^n a0^n / Eh^(n-1) in Gaussian units, with the charge unit from the
+    pre-2019 exact relation 1 C = 10 c statC (c in m/s), lengths in cm and
+    energies in erg, from scipy.constants here: since 2019 mu0 is measured, and
+    this relation differs from e sqrt(1e9 / (4 pi eps0)) (fieldprop's) by
+    ~1e-10 relative, so rel 1e-9 (REFERENCES sect. 4)."""
+    e_statc = 10.0 * sc.c * sc.e
+    a0_cm = 100.0 * sc.value("Bohr radius")
+    eh_erg = 1e7 * sc.value("Hartree energy")
+    assert units.esu_factor(order) == pytest.approx(
+        e_statc**order * a0_cm**order / eh_erg ** (order - 1), rel=1e-9)
 
 
 @pytest.mark.parametrize("order,key", [
