@@ -1,8 +1,13 @@
-"""Coverage and sharpness of the error bars per case, route and tensor (prints a table).
+"""Coverage and sharpness of the error bars per case, route and tensor (prints a table),
+and per size class: the small validation set (up to four heavy atoms, 6-31+G*,
+h0 = 0.002 au) and the larger molecules (3-aminopropenal, 4-nitroaniline at
+HF/6-31G, h0 = 0.001 au).
 
-Run: python tests/benchmarks/bench_calibration.py   (about 15 minutes on one core)
+Run: python tests/benchmarks/bench_calibration.py [--small | --larger] [--workers N]
+(small set about 15 minutes on one core; larger set about 10 minutes on two)
 """
 
+import argparse
 import collections
 import os
 import sys
@@ -15,12 +20,26 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "physics"))
 
 from tabulate import tabulate  # noqa: E402
 
-from calibration import collect, figures  # noqa: E402
+from calibration import LARGER_SET, VALIDATION_SET, collect, figures  # noqa: E402
 
 
 def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    which = parser.add_mutually_exclusive_group()
+    which.add_argument("--small", action="store_true", help="the small validation set only")
+    which.add_argument("--larger", action="store_true", help="the larger molecules only")
+    parser.add_argument("--workers", type=int, default=1)
+    args = parser.parse_args()
+    classes = [("small", VALIDATION_SET), ("larger", LARGER_SET)]
+    if args.small or args.larger:
+        classes = [classes[0] if args.small else classes[1]]
+    rows, by_class = [], {}
     with tempfile.TemporaryDirectory() as tmp:
-        rows = collect(tmp)
+        for label, cases in classes:
+            folder = Path(tmp) / label
+            folder.mkdir()
+            by_class[label] = collect(folder, cases, args.workers)
+            rows += by_class[label]
     groups = collections.defaultdict(list)
     for row in rows:
         groups[(row[0], row[1], row[2].split("_")[0])].append(row)
@@ -32,9 +51,11 @@ def main() -> None:
                       f"{max(r[5] for r in group):.1e}", f"{max(r[4] for r in group):.1e}"])
     print(tabulate(table, headers=["case", "route", "tensor", "components", "coverage",
                                    "median bar/true", "max true error", "max error bar"]))
-    coverage, sharpness, n, n_resolved = figures(rows)
-    print(f"\nall: coverage {coverage:.3f} of {n} components; median bar/true error "
-          f"{sharpness:.1f} over {n_resolved} resolvable components")
+    print()
+    for label, group in list(by_class.items()) + [("all", rows)]:
+        coverage, sharpness, n, n_resolved = figures(group)
+        print(f"{label}: coverage {coverage:.3f} of {n} components; median bar/true error "
+              f"{sharpness:.1f} over {n_resolved} resolvable components")
 
 
 if __name__ == "__main__":

@@ -30,6 +30,14 @@ def _tilted(symbols, local_angstrom):
     return geometry_text(symbols, np.asarray(local_angstrom) @ rotation().T)
 
 
+def _xyz(name: str):
+    """Symbols and coordinates (angstrom) of one of configs/molecules/*.xyz (ours)."""
+    lines = (Path(__file__).resolve().parents[2] / "configs" / "molecules" /
+             f"{name}.xyz").read_text().splitlines()[2:]
+    rows = [line.split() for line in lines if line.strip()]
+    return [r[0] for r in rows], [[float(v) for v in r[1:4]] for r in rows]
+
+
 #: Our own geometries (angstrom), near the usual equilibrium ones, tilted off the axes.
 MOLECULES = {
     "water": ("OHH", bent_triatomic(0.958, 104.5), 0, 1),
@@ -40,6 +48,9 @@ MOLECULES = {
                      0, 1),
     "amidogen radical": ("NHH", NH2_ANGSTROM, 0, 2),
     "water cation": ("OHH", bent_triatomic(0.99, np.degrees(1.9)), 1, 2),
+    # Larger, strongly polarisable: a push-pull aromatic and a push-pull chain.
+    "4-nitroaniline": (*_xyz("nitroaniline"), 0, 1),
+    "3-aminopropenal": (*_xyz("aminopropenal"), 0, 1),
 }
 
 #: (molecule, model lines): HF and DFT, closed and open shell.
@@ -54,8 +65,16 @@ VALIDATION_SET = [
     ("amidogen radical", 'method = "dft"\nfunctional = "pbe"'),
 ]
 
+#: The larger molecules (10 and 16 atoms), at HF/6-31G and h0 = 0.001 au (the
+#: setting of a screening run): (molecule, model lines, basis, field_au).
+LARGER_SET = [
+    ("3-aminopropenal", 'method = "hf"', "6-31g", 0.001),
+    ("4-nitroaniline", 'method = "hf"', "6-31g", 0.001),
+]
 
-def job_text(name: str, model: str, route: str, props) -> str:
+
+def job_text(name: str, model: str, route: str, props, basis: str = "6-31+g*",
+             field_au: float = 0.002) -> str:
     symbols, local, charge, multiplicity = MOLECULES[name]
     dft = "dft" in model
     return textwrap.dedent("""
@@ -67,29 +86,30 @@ def job_text(name: str, model: str, route: str, props) -> str:
         multiplicity = {multiplicity}
         [model]
         {model}
-        basis = "6-31+g*"
+        basis = "{basis}"
         [response]
         properties = {props}
         route = "{route}"
-        field_au = 0.002
+        field_au = {field_au}
         {scf}
         """).format(geometry=_tilted(symbols, local).replace("\n", "\n        "),
                     charge=charge, multiplicity=multiplicity,
                     model=model.replace("\n", "\n        "),
                     props="[" + ", ".join(f'"{p}"' for p in props) + "]", route=route,
+                    basis=basis, field_au=field_au,
                     scf="[scf]\n        grid_level = 3" if dft else "")
 
 
-def collect(tmp_dir: Path, cases=VALIDATION_SET):
+def collect(tmp_dir: Path, cases=VALIDATION_SET, workers: int = 1):
     """Rows (case, route, component, value, error bar, true error, reference error)."""
     rows = []
-    for n, (name, model) in enumerate(cases):
+    for n, (name, model, *setting) in enumerate(cases):
         for route, props in (("energy", ("dipole", "alpha", "beta")),
                              ("dipole", ("alpha", "beta"))):
             path = Path(tmp_dir) / f"case{n}_{route}.toml"
-            path.write_text(job_text(name, model, route, props))
+            path.write_text(job_text(name, model, route, props, *setting))
             job = load_job(path)
-            result = compute(job, progress=False)
+            result = compute(job, progress=False, workers=workers)
             mf = mean_field(job)
             origin = result.molecule.origin_bohr
             # The references' own uncertainty, from the reference SCF's measured
