@@ -66,7 +66,7 @@ def build_parser() -> argparse.ArgumentParser:
     run = sub.add_parser("run", help="compute a job: tables on stdout, result JSON to a file")
     run.add_argument("job", type=Path, help="job file (TOML)")
     run.add_argument("--json", type=Path, help="result JSON path (default JOB.result.json "
-                     "beside the job file)")
+                     "beside the job file; - writes it to stdout instead of the tables)")
     run.add_argument("--workers", type=_positive_int, default=None,
                      help="processes computing field points in parallel, one BLAS thread "
                      "each (default: every core this process may use)")
@@ -81,7 +81,8 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("job", type=Path, help="job file (TOML)")
     check.add_argument("--against", type=Path, help="reference tensors: result-style JSON, "
                        ".npy or .npz (default: fieldprop's analytic SCF references)")
-    check.add_argument("--json", type=Path, help="write the comparison as JSON to this path")
+    check.add_argument("--json", type=Path, help="write the comparison as JSON to this path "
+                       "(- writes it to stdout instead of the table)")
     check.add_argument("--sigmas", type=_positive_float, default=None,
                        help="agreement within this many error bars (default 3)")
     check.add_argument("--rel-floor", type=_positive_float, default=None,
@@ -108,7 +109,7 @@ def build_parser() -> argparse.ArgumentParser:
                              "computation; exit 3 naming the missing points if any")
     collect.add_argument("job", type=Path, help="job file (TOML)")
     collect.add_argument("--json", type=Path, help="result JSON path (default JOB.result.json "
-                         "beside the job file)")
+                         "beside the job file; - writes it to stdout instead of the tables)")
     collect.add_argument("--store", type=Path, metavar="PATH", help="the point store (default "
                          f"{DEFAULT_STORE_NAME} beside the job file); never written")
     collect.add_argument("--quiet", action="store_true", help="no log lines on stderr")
@@ -157,6 +158,18 @@ def _configure_logging(quiet: bool) -> None:
     root.propagate = False
 
 
+def _to_stdout(write) -> None:
+    """Call ``write()``; a reader of stdout that went away (``| head``) after the
+    results are safe is not a failure: stdout is then discarded and the
+    command goes on (plots, exit code)."""
+    try:
+        write()
+        sys.stdout.flush()
+    except BrokenPipeError:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+
+
 def default_result_path(job_path: Path) -> Path:
     """JOB.result.json beside the job file (``water.toml`` -> ``water.result.json``)."""
     return job_path.with_name(job_path.stem + ".result.json")
@@ -176,12 +189,12 @@ def default_workers() -> int:
 def cmd_run(args) -> int:
     from fieldprop.engine import prepare, require_stable, run_prepared
     from fieldprop.job import load_job
-    from fieldprop.report import (check_output_path, result_document, write_json_atomic,
-                                  write_tables)
+    from fieldprop.report import (check_output_path, is_stdout, result_document,
+                                  write_json_atomic, write_tables)
 
     job = load_job(args.job)
     out_path = args.json if args.json is not None else default_result_path(args.job)
-    if out_path.resolve() == args.job.resolve():
+    if not is_stdout(out_path) and out_path.resolve() == args.job.resolve():
         raise InputError(f"--json {out_path}: is the job file itself; give another path")
     check_output_path(out_path)
     if args.plot is not None and not args.plot.is_dir():
@@ -193,9 +206,12 @@ def cmd_run(args) -> int:
                               progress=not args.quiet and sys.stderr.isatty(),
                               retry_failed=args.retry_failed)
     # The file first: a closed stdout (``| head``) must not lose the result.
-    write_json_atomic(result_document(result), out_path)
-    logger.info("result written to %s (%.1f s)", out_path, result.wall_time_s)
-    write_tables(result, sys.stdout)
+    if is_stdout(out_path):  # --json -: the JSON is the output, no tables
+        _to_stdout(lambda: write_json_atomic(result_document(result), out_path))
+    else:
+        write_json_atomic(result_document(result), out_path)
+        logger.info("result written to %s (%.1f s)", out_path, result.wall_time_s)
+        _to_stdout(lambda: write_tables(result, sys.stdout))
     if args.plot is not None:
         from fieldprop.plots import write_plots
 
@@ -210,11 +226,12 @@ def cmd_check(args) -> int:
     from fieldprop.engine import prepare, reference_tensors, run_prepared
     from fieldprop.job import load_job
     from fieldprop.methods import METHODS
-    from fieldprop.report import (check_output_path, comparison_document, write_comparison,
-                                  write_json_atomic)
+    from fieldprop.report import (check_output_path, comparison_document, is_stdout,
+                                  write_comparison, write_json_atomic)
 
     job = load_job(args.job)
-    if args.json is not None:
+    json_out = args.json is not None and is_stdout(args.json)
+    if args.json is not None and not json_out:
         if args.json.resolve() == args.job.resolve():
             raise InputError(f"--json {args.json}: is the job file itself; give another path")
         check_output_path(args.json)
@@ -253,7 +270,8 @@ def cmd_check(args) -> int:
         raise InputError(f"{args.against or job.path}: no tensor in common between the job's "
                          f"properties ({', '.join(result.tensors)}) and the reference "
                          f"({', '.join(reference.value) or 'none'})")
-    write_comparison(comparisons, reference, sigmas, sys.stdout)
+    if not json_out:
+        _to_stdout(lambda: write_comparison(comparisons, reference, sigmas, sys.stdout))
     bad = compare.worst(comparisons)
     total = sum(len(rows) for rows in comparisons.values())
     if bad:
@@ -264,9 +282,15 @@ def cmd_check(args) -> int:
     else:
         verdict = (f"AGREE: all {total} tensor entries of {', '.join(comparisons)} within "
                    f"{sigmas:g} error bars")
-    print(f"fieldprop check: {verdict}")
-    if args.json is not None:
-        write_json_atomic(comparison_document(comparisons, reference, sigmas, verdict), args.json)
+    if json_out:
+        _to_stdout(lambda: write_json_atomic(
+            comparison_document(comparisons, reference, sigmas, verdict), args.json))
+        print(f"fieldprop check: {verdict}", file=sys.stderr)
+    else:
+        _to_stdout(lambda: print(f"fieldprop check: {verdict}"))
+        if args.json is not None:
+            write_json_atomic(comparison_document(comparisons, reference, sigmas, verdict),
+                              args.json)
     if bad:
         print(f"fieldprop: error: check failed: {verdict}", file=sys.stderr)
         return 1
@@ -295,12 +319,12 @@ def cmd_plan(args) -> int:
 def cmd_collect(args) -> int:
     from fieldprop.engine import collect, require_stable
     from fieldprop.job import load_job
-    from fieldprop.report import check_output_path, result_document, write_json_atomic, \
-        write_tables
+    from fieldprop.report import (check_output_path, is_stdout, result_document,
+                                  write_json_atomic, write_tables)
 
     job = load_job(args.job)
     out_path = args.json if args.json is not None else default_result_path(args.job)
-    if out_path.resolve() == args.job.resolve():
+    if not is_stdout(out_path) and out_path.resolve() == args.job.resolve():
         raise InputError(f"--json {out_path}: is the job file itself; give another path")
     check_output_path(out_path)
     from fieldprop.store import PointStore, default_store_path
@@ -311,9 +335,13 @@ def cmd_collect(args) -> int:
                               "compute the points with fieldprop run (or --store PATH)")
     with PointStore.open(path, read_only=True) as store:
         result = collect(job, store)
-    write_json_atomic(result_document(result), out_path)
-    logger.info("result written to %s (from %d stored points)", out_path, len(result.records))
-    write_tables(result, sys.stdout)
+    if is_stdout(out_path):
+        _to_stdout(lambda: write_json_atomic(result_document(result), out_path))
+    else:
+        write_json_atomic(result_document(result), out_path)
+        logger.info("result written to %s (from %d stored points)", out_path,
+                    len(result.records))
+        _to_stdout(lambda: write_tables(result, sys.stdout))
     require_stable(result)
     return 0
 

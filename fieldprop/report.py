@@ -10,6 +10,7 @@ from __future__ import annotations
 import json
 import math
 import os
+import sys
 import tempfile
 from pathlib import Path
 from typing import Any, TextIO
@@ -258,8 +259,18 @@ def state_checks_document(result: RunResult) -> dict[str, Any]:
     return out
 
 
+#: The path that means standard output (``--json -``).
+STDOUT = "-"
+
+
+def is_stdout(path) -> bool:
+    return str(path) == STDOUT
+
+
 def check_output_path(path: Path, what: str = "--json") -> None:
     """Refuse, before any work, a result path that cannot be written."""
+    if is_stdout(path):
+        return
     if path.is_dir():
         raise_input(f"{what} {path}: is a directory; give a file name such as result.json")
     parent = path.parent if str(path.parent) else Path(".")
@@ -276,7 +287,13 @@ def raise_input(message: str):
 
 
 def write_json_atomic(document: dict[str, Any], path: Path) -> None:
-    """Write JSON to a temporary file beside ``path``, then rename it into place."""
+    """Write JSON to a temporary file beside ``path``, then rename it into place
+    (``-``: to standard output)."""
+    if is_stdout(path):
+        json.dump(document, sys.stdout, indent=1, allow_nan=False)
+        sys.stdout.write("\n")
+        sys.stdout.flush()
+        return
     fd, tmp = tempfile.mkstemp(dir=path.parent if str(path.parent) else ".",
                                prefix=f".{path.name}.", suffix=".tmp")
     try:

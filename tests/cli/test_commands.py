@@ -123,3 +123,34 @@ def test_check_refuses_a_restricted_open_shell_before_any_work(tmp_path):
     lines = done.stderr.strip().splitlines()
     assert len(lines) == 1 and "restricted open shell" in lines[0] and "Traceback" not in lines[0]
     assert not list(tmp_path.glob("*.sqlite"))
+
+
+def test_json_dash_means_stdout_for_run_collect_and_check(tmp_path):
+    pytest.importorskip("pyscf")
+    (tmp_path / "lih.toml").write_text(JOB)
+    done = fieldprop("run", "lih.toml", "--quiet", "--json", "-", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    doc = json.loads(done.stdout)  # the JSON alone, no tables around it
+    assert doc["schema"] == "fieldprop-result-1"
+    assert not (tmp_path / "-").exists() and not (tmp_path / "lih.result.json").exists()
+    collected = fieldprop("collect", "lih.toml", "--quiet", "--json", "-", cwd=tmp_path)
+    assert collected.returncode == 0, collected.stderr
+    assert json.loads(collected.stdout)["tensors"] == doc["tensors"]
+    checked = fieldprop("check", "lih.toml", "--quiet", "--json", "-", cwd=tmp_path)
+    assert checked.returncode == 0, checked.stderr
+    assert "AGREE" in json.loads(checked.stdout)["verdict"]
+    assert "fieldprop check: AGREE" in checked.stderr
+    assert not (tmp_path / "-").exists()
+
+
+def test_a_reader_that_closes_stdout_early_is_not_a_failure(tmp_path):
+    """`fieldprop run job | true`: the reader is gone before the first table line
+    (as `| head` is after its lines); the result file is written, exit code 0."""
+    pytest.importorskip("pyscf")
+    (tmp_path / "lih.toml").write_text(JOB)
+    done = subprocess.run(f"{sys.executable} -m fieldprop run lih.toml --quiet | true; "
+                          "exit ${PIPESTATUS[0]}", shell=True, executable="/bin/bash",
+                          capture_output=True, text=True, cwd=tmp_path, timeout=600)
+    assert done.returncode == 0, done.stderr
+    assert "Traceback" not in done.stderr
+    assert json.loads((tmp_path / "lih.result.json").read_text())["tensors"]

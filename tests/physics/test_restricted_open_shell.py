@@ -55,7 +55,8 @@ def test_nh2_radical_rohf_alpha_equals_central_differences_of_pyscf_energies(tmp
     origin = result.molecule.origin_bohr
     e0 = _rohf_energy(mol, np.zeros(3), origin)
     # alpha_ii = -d2E/dF_i^2 by central differences at h and 2h, one Richardson
-    # step: truncation O(h^4) ~ gamma h^4 ~ 1e-8 au; SCF noise 1e-13 Eh / h^2 ~ 1e-7.
+    # step: truncation O(h^4) (the sixth field derivative of E, the gamma term
+    # being removed) ~ 1e-8 au; SCF noise 1e-13 Eh / h^2 ~ 3e-8 au.
     diagonal = []
     for i in range(3):
         d2 = []
