@@ -27,6 +27,7 @@ from fieldprop.job import Job
 from fieldprop.methods import METHODS
 from fieldprop.records import (CPHF_RTOL, PointRecord, PointTask, SymmetryOperation,
                                ZeroFieldReference)
+from fieldprop.units import ANGSTROM_TO_BOHR
 
 logger = logging.getLogger(__name__)
 
@@ -121,6 +122,40 @@ def build_mole(molecule, basis, where: str = "[model] basis"):
                          "cc-pvdz, aug-cc-pvdz or def2-svp") from None
 
 
+#: Atoms closer than this fraction of the sum of their covalent radii (PySCF's
+#: table, pyscf.data.radii.COVALENT) are refused as a likely unit mistake: the
+#: shortest real bonds are ~0.75 of it; O-H given in angstrom but read as bohr
+#: comes out at 0.53 of it, C-C at 0.54.
+CLOSE_FRACTION = 0.6
+
+
+def _refuse_close_atoms(job: Job, molecule) -> None:
+    """One line naming the pair, the distance and the other unit, unless the job
+    sets [molecule] allow_close_atoms = true."""
+    from pyscf.data import radii
+    from pyscf.data.elements import charge as atomic_number
+
+    if job.molecule.allow_close_atoms:
+        return
+    coords = np.asarray(molecule.coords_bohr)
+    symbols = molecule.symbols
+    covalent = [float(radii.COVALENT[atomic_number(s)]) for s in symbols]
+    to_unit = 1.0 / ANGSTROM_TO_BOHR if job.molecule.units == "angstrom" else 1.0
+    other = "bohr" if job.molecule.units == "angstrom" else "angstrom"
+    for i in range(len(symbols)):
+        for j in range(i):
+            d = float(np.linalg.norm(coords[i] - coords[j]))
+            bond = covalent[i] + covalent[j]
+            if d < CLOSE_FRACTION * bond:
+                raise InputError(
+                    f"{job.path}: [molecule] units = \"{job.molecule.units}\": atoms {j + 1} "
+                    f"({symbols[j]}) and {i + 1} ({symbols[i]}) are {d * to_unit:.3f} "
+                    f"{job.molecule.units} apart, {d / bond:.2f} of their covalent bond length "
+                    f"({bond * to_unit:.3f} {job.molecule.units}); were the coordinates in "
+                    f"{other}? Set units = \"{other}\", or allow_close_atoms = true if the "
+                    "structure is meant")
+
+
 def validate(job: Job, molecule) -> dict:
     """Check what only PySCF can judge (basis, functional) before any work.
 
@@ -131,6 +166,7 @@ def validate(job: Job, molecule) -> dict:
     import pyscf
     from pyscf.dft import libxc
 
+    _refuse_close_atoms(job, molecule)
     mol = build_mole(molecule, job.model.basis, f"{job.path}: [model] basis")
     facts = {"pyscf_version": pyscf.__version__, "n_basis_functions": int(mol.nao),
              "basis_functions": "cartesian" if mol.cart else "spherical",

@@ -76,7 +76,7 @@ AUTO_LEVELS = 6
 MAX_LEVELS = 6
 
 _SECTIONS = {
-    "molecule": {"geometry", "xyz", "units", "charge", "multiplicity"},
+    "molecule": {"geometry", "xyz", "units", "charge", "multiplicity", "allow_close_atoms"},
     "model": {"method", "functional", "basis", "reference"},
     "response": {"properties", "field_au", "ratio", "levels", "origin", "route",
                  "nuclear_relaxation"},
@@ -107,6 +107,9 @@ class MoleculeInput:
     multiplicity: int
     units: str
     source: str  # "inline" or the xyz path as written in the job
+    #: Atoms closer than backend_pyscf.CLOSE_FRACTION of their covalent bond
+    #: length are refused unless this is set ([molecule] allow_close_atoms).
+    allow_close_atoms: bool = False
 
     @property
     def n_electrons(self) -> int:
@@ -191,6 +194,7 @@ class Job:
                           for a in mol.atoms],
                 "units_in_job": mol.units, "source": mol.source,
                 "charge": mol.charge, "multiplicity": mol.multiplicity,
+                "allow_close_atoms": mol.allow_close_atoms,
             },
             "model": asdict(self.model),
             "response": {**asdict(self.response), "properties": list(self.response.properties),
@@ -386,7 +390,10 @@ def _parse_molecule(path: str, job_path: Path, table: dict[str, Any]) -> Molecul
         raise r.fail("multiplicity", f"= {multiplicity} is impossible with {n_el} electrons; "
                      f"valid: {', '.join(str(m) for m in range(1 + n_el % 2, n_el + 2, 2)[:4])}"
                      f"{', ...' if n_el > 6 else ''}")
-    return MoleculeInput(atoms, charge, multiplicity, units, source)
+    allow_close = table.get("allow_close_atoms", False)
+    if not isinstance(allow_close, bool):
+        raise r.fail("allow_close_atoms", f"must be true or false, got {allow_close!r}")
+    return MoleculeInput(atoms, charge, multiplicity, units, source, allow_close)
 
 
 def _parse_model(path: str, table: dict[str, Any], multiplicity: int) -> ModelSpec:

@@ -22,7 +22,8 @@ from fieldprop import __version__
 from fieldprop.engine import RunResult, entry_window_au
 from fieldprop.keys import short_id
 from fieldprop.plan import FieldPlan
-from fieldprop.units import (DISPLAY_UNITS, FIELD_AU_TO_V_PER_M, PROPERTY_ORDER)
+from fieldprop.units import (ANGSTROM_TO_BOHR, DISPLAY_UNITS, FIELD_AU_TO_V_PER_M,
+                             PROPERTY_ORDER)
 
 SCHEMA = "fieldprop-result-1"
 
@@ -82,6 +83,22 @@ def _ecp_text(result: RunResult) -> str:
                                                        for s, n in seen.items())
 
 
+def _write_geometry(job, out: TextIO) -> None:
+    """The structure used, in the job's units, and its shortest distance."""
+    mol = job.molecule
+    scale = 1.0 / ANGSTROM_TO_BOHR if mol.units == "angstrom" else 1.0
+    coords = np.array([a.coords_bohr for a in mol.atoms]) * scale
+    out.write(f"  geometry ({mol.units}, {mol.source}):\n")
+    for atom, xyz in zip(mol.atoms, coords):
+        out.write(f"    {atom.symbol:<2} {xyz[0]:12.6f} {xyz[1]:12.6f} {xyz[2]:12.6f}\n")
+    if len(coords) > 1:
+        d = np.linalg.norm(coords[:, None] - coords[None], axis=-1)
+        i, j = np.unravel_index(np.argmin(d + np.diag(np.full(len(d), np.inf))), d.shape)
+        i, j = min(i, j), max(i, j)
+        out.write(f"  shortest distance {d[i, j]:.4f} {mol.units}: atoms {i + 1} "
+                  f"({mol.atoms[i].symbol}) and {j + 1} ({mol.atoms[j].symbol})\n")
+
+
 def write_tables(result: RunResult, out: TextIO) -> None:
     """The human-readable report: header, one table per tensor, invariants."""
     job, plan = result.job, result.plan
@@ -95,6 +112,7 @@ def write_tables(result: RunResult, out: TextIO) -> None:
               f"multiplicity {result.molecule.multiplicity}; {model_text} ({model.reference}); "
               f"{result.backend_facts.get('n_basis_functions', '?')} basis functions"
               f"{_ecp_text(result)}\n")
+    _write_geometry(job, out)
     origin = ", ".join(f"{v:.6f}" for v in result.molecule.origin_bohr)
     steps = ", ".join(f"{h:g}" for h in plan.steps_au())
     out.write(f"  route: {plan.route} (derivatives of "

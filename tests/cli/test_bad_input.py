@@ -64,6 +64,8 @@ JOB_IS_DIR = object()  # job text: job.toml is a directory
 PREVIOUS = b'{"schema": "fieldprop-result-1", "note": "an earlier result"}\n'
 
 XYZ_JOB = job(geometry=None, molecule={"xyz": '"mol.xyz"'})
+#: Water (angstrom, our geometry) for the unit-mistake case.
+WATER_ANGSTROM_LINES = "O 0 0 0.1173\nH 0 0.7572 -0.4692\nH 0 -0.7572 -0.4692"
 OH = "O 0 0 0\nH 0 0 0.97"
 DFT = {"method": '"dft"', "functional": '"b3lyp"', "basis": '"sto-3g"'}
 
@@ -114,6 +116,13 @@ CASES = [
     ("xyz_not_utf8", XYZ_JOB, {"mol.xyz": b"2\n\xff\xfe\nH 0 0 0\nH 0 0 0.74\n"},
      ["{job}: [molecule] xyz", "'mol.xyz' is not UTF-8"], []),
     # [molecule] units, charge, multiplicity
+    # (water in angstrom declared as bohr: O-H 0.958 bohr, 0.52 of the O-H bond length)
+    ("angstrom_read_as_bohr",
+     job(WATER_ANGSTROM_LINES, molecule={"units": '"bohr"'}), {},
+     ['{job}: [molecule] units = "bohr"', "atoms 1 (O) and 2 (H)", "0.958 bohr apart",
+      "were the coordinates in angstrom?", "allow_close_atoms"], []),
+    ("allow_close_atoms_not_bool", job(molecule={"allow_close_atoms": '"yes"'}), {},
+     ["{job}: [molecule] allow_close_atoms must be true or false", "'yes'"], []),
     ("units_unknown", job(molecule={"units": '"nm"'}), {},
      ["{job}: [molecule] units", "angstrom, bohr", "'nm'"], []),
     ("multiplicity_impossible", job(molecule={"multiplicity": "2"}), {},
@@ -408,3 +417,16 @@ def test_good_job_passes_the_same_gate(tmp_path, capsys, monkeypatch):
     xyz_path = _prepare(tmp_path, XYZ_JOB, {"mol.xyz": "2\ncomment\nH 0 0 0\nH 0 0 0.74\n"})
     assert main(["plan", str(xyz_path)]) == 0
     capsys.readouterr()
+
+
+def test_close_atoms_pass_when_the_job_allows_them(tmp_path):
+    """The refused unit-mistake geometry passes validation with allow_close_atoms."""
+    pytest.importorskip("pyscf")
+    from fieldprop.engine import prepare
+    from fieldprop.job import load_job
+
+    path = tmp_path / "job.toml"
+    path.write_text(job(WATER_ANGSTROM_LINES, molecule={"units": '"bohr"',
+                                                        "allow_close_atoms": "true"}))
+    prepared = prepare(load_job(path))
+    assert prepared.job.molecule.allow_close_atoms and prepared.facts["n_basis_functions"] == 7

@@ -49,6 +49,10 @@ def test_run_writes_the_contract_json_beside_the_job(tmp_path):
     done = fieldprop("run", "lih.toml", "--quiet", cwd=tmp_path)
     assert done.returncode == 0, done.stderr
     assert "beta_hrs" in done.stdout and "+- error" in done.stdout
+    # The structure used, in the job's units, with its shortest distance
+    # (Li-H: sqrt(0.3^2 + 0.4^2 + 1.5^2) = 1.5811 angstrom).
+    assert "geometry (angstrom, inline):" in done.stdout
+    assert "shortest distance 1.5811 angstrom: atoms 1 (Li) and 2 (H)" in done.stdout
     doc = json.loads((tmp_path / "lih.result.json").read_text())
     assert doc["schema"] == "fieldprop-result-1" and doc["units"] == "au"
     assert doc["convention"] == "taylor"
