@@ -50,7 +50,9 @@ METHODS = tuple(METHOD_TRAITS)
 REFERENCES = ("auto", "restricted", "unrestricted")
 ROUTES = ("auto", "energy", "dipole")
 UNITS = ("angstrom", "bohr")
-ORIGINS = ("nuclear-charge", "zero")
+ORIGINS = ("nuclear-charge", "centre-of-mass", "zero")
+#: Other spellings accepted for an origin.
+ORIGIN_ALIASES = {"center-of-mass": "centre-of-mass"}
 #: Methods whose analytic dipole is available at every field point (the dipole route).
 DIPOLE_ROUTE_METHODS = methods_with(Route.DIPOLE)
 
@@ -139,7 +141,7 @@ class ResponseSpec:
     field_au_source: str  # "job" or "default for order n"
     ratio: float
     levels: int
-    origin: str | tuple[float, float, float]  # "nuclear-charge", "zero" or bohr
+    origin: str | tuple[float, float, float]  # one of ORIGINS, or bohr
     route: Route  # ENERGY or DIPOLE after resolution
     nuclear_relaxation: bool = False
 
@@ -488,10 +490,11 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
                      f"reaches a field of {top_field:.3g} au; lower one of them")
     origin_raw = table.get("origin", "nuclear-charge")
     if isinstance(origin_raw, str):
-        if origin_raw.lower() not in ORIGINS:
+        name = ORIGIN_ALIASES.get(origin_raw.lower(), origin_raw.lower())
+        if name not in ORIGINS:
             raise r.fail("origin", f"must be one of {', '.join(ORIGINS)} or [x, y, z]; "
                          f"got {origin_raw!r}")
-        origin: str | tuple[float, float, float] = origin_raw.lower()
+        origin: str | tuple[float, float, float] = name
     elif isinstance(origin_raw, list):
         if len(origin_raw) != 3:
             raise r.fail("origin", f"must have 3 coordinates [x, y, z], got {len(origin_raw)}")

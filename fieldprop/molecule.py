@@ -113,12 +113,25 @@ def centre_of_nuclear_charge(charges, coords_bohr) -> tuple[float, float, float]
     return tuple(float(v) for v in c)
 
 
+def centre_of_mass(symbols, coords_bohr) -> tuple[float, float, float]:
+    """sum_A m_A R_A / sum_A m_A in bohr, with the standard (isotope-averaged)
+    atomic weights of PySCF's element table (pyscf.data.elements.MASSES)."""
+    from pyscf.data.elements import MASSES, charge
+
+    m = np.array([MASSES[charge(s)] for s in symbols])
+    c = (m @ np.asarray(coords_bohr, dtype=float)) / m.sum()
+    return tuple(float(v) for v in c)
+
+
 def build_molecule(mol: MoleculeInput, origin: str | tuple[float, float, float]) -> MoleculeSpec:
-    """Resolve the origin ("nuclear-charge", "zero" or bohr coordinates) and freeze."""
+    """Resolve the origin ("nuclear-charge", "centre-of-mass", "zero" or bohr
+    coordinates) and freeze."""
     charges = tuple(a.charge for a in mol.atoms)
     coords = tuple(tuple(float(v) for v in a.coords_bohr) for a in mol.atoms)
     if origin == "nuclear-charge":
         origin_bohr = centre_of_nuclear_charge(charges, coords)
+    elif origin == "centre-of-mass":
+        origin_bohr = centre_of_mass([a.symbol for a in mol.atoms], coords)
     elif origin == "zero":
         origin_bohr = (0.0, 0.0, 0.0)
     else:

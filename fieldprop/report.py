@@ -83,6 +83,16 @@ def _ecp_text(result: RunResult) -> str:
                                                        for s, n in seen.items())
 
 
+def _origin_note(result: RunResult) -> str:
+    """For an ion: its dipole depends on the origin; which one is used."""
+    origin = result.job.response.origin
+    name = origin if isinstance(origin, str) else "given"
+    where = ", ".join(f"{v:.6f}" for v in result.molecule.origin_bohr)
+    return (f"charge {result.molecule.charge:+d}: the dipole of an ion depends on the origin "
+            f"(mu(O') = mu(O) - q (O' - O)); this one is about the {name} origin "
+            f"({where}) bohr")
+
+
 def _write_geometry(job, out: TextIO) -> None:
     """The structure used, in the job's units, and its shortest distance."""
     mol = job.molecule
@@ -138,7 +148,10 @@ def write_tables(result: RunResult, out: TextIO) -> None:
         out.write(f"{name} ({'unique components' if plan.route == 'energy' else 'd^n mu_i / dF^n'}"
                   f", au)\n")
         out.write(tabulate(rows, headers=["component", "value", "+- error", "Richardson entry",
-                                          "status"], disable_numparse=True) + "\n\n")
+                                          "status"], disable_numparse=True) + "\n")
+        if name == "dipole" and result.molecule.charge != 0:
+            out.write(f"  {_origin_note(result)}\n")
+        out.write("\n")
     rows = []
     for inv in result.invariants:
         prop = _INVARIANT_PROPERTY[inv.name]
