@@ -90,7 +90,7 @@ def _pyscf_ecp(basis, symbols) -> dict[str, str]:
     return out
 
 
-def build_mole(molecule, basis, where: str = "[model] basis"):
+def build_mole(molecule, basis, where: str = "[model] basis", cartesian: bool = False):
     """A PySCF ``Mole`` in bohr, with the basis' effective core potentials where it
     has them; basis problems become InputError naming ``where``."""
     from pyscf import gto
@@ -105,7 +105,7 @@ def build_mole(molecule, basis, where: str = "[model] basis"):
             mol = gto.M(atom=[(s, c) for s, c in zip(molecule.symbols, molecule.coords_bohr)],
                         unit="Bohr", basis=_pyscf_basis(basis),
                         ecp=_pyscf_ecp(basis, molecule.symbols), charge=molecule.charge,
-                        spin=molecule.spin, verbose=0)
+                        spin=molecule.spin, cart=cartesian, verbose=0)
         missing = sorted({s for s in molecule.symbols} - {mol.atom_symbol(i) for i in
                                                           range(mol.natm) if mol.atom_nshells(i)})
         if missing:
@@ -167,7 +167,8 @@ def validate(job: Job, molecule) -> dict:
     from pyscf.dft import libxc
 
     _refuse_close_atoms(job, molecule)
-    mol = build_mole(molecule, job.model.basis, f"{job.path}: [model] basis")
+    mol = build_mole(molecule, job.model.basis, f"{job.path}: [model] basis",
+                     job.model.cartesian)
     facts = {"pyscf_version": pyscf.__version__, "n_basis_functions": int(mol.nao),
              "basis_functions": "cartesian" if mol.cart else "spherical",
              "core_electrons": [int(mol.atom_nelec_core(i)) for i in range(mol.natm)]}
@@ -180,7 +181,19 @@ def validate(job: Job, molecule) -> dict:
                              "pbe, cam-b3lyp") from None
         facts["functional_is_hybrid"] = bool(libxc.is_hybrid_xc(job.model.functional))
         facts["grid_level"] = job.scf.grid_level
+    if not METHODS[job.model.method].mean_field:
+        frozen = frozen_orbitals(mol, job.model)
+        facts["frozen_core_orbitals"] = frozen
+        facts["correlated_electrons"] = int(mol.nelectron) - 2 * frozen
     return facts
+
+
+def frozen_orbitals(mol, model) -> int:
+    """Core orbitals a correlated method leaves out (PySCF's chemcore, which
+    counts an effective core potential's electrons as gone), or 0."""
+    from pyscf.data.elements import chemcore
+
+    return int(chemcore(mol)) if model.frozen_core else 0
 
 
 def _mean_field(mol, model, scf_spec):
@@ -239,7 +252,7 @@ class ModelContext:
 
     def __init__(self, molecule, model, scf_spec, reference: ZeroFieldReference | None = None):
         self.molecule, self.model, self.scf = molecule, model, scf_spec
-        self.mol = build_mole(molecule, model.basis)
+        self.mol = build_mole(molecule, model.basis, cartesian=model.cartesian)
         self.template = _mean_field(self.mol, model, scf_spec)
         self.hcore = self.template.get_hcore()
         self.overlap = self.template.get_ovlp()
@@ -856,12 +869,13 @@ def _converge(mf, context, point) -> tuple[list[str], int, np.ndarray | None]:
 def _correlated_energy(mf, model, scf_spec, label: str) -> float:
     from pyscf import cc, mp
 
+    frozen = frozen_orbitals(mf.mol, model) or None
     if model.method == "mp2":
-        solver = mp.MP2(mf)
+        solver = mp.MP2(mf, frozen=frozen)
         solver.verbose = 0
         e_corr = solver.kernel()[0]
         return float(mf.e_tot + e_corr)
-    solver = cc.CCSD(mf)
+    solver = cc.CCSD(mf, frozen=frozen)
     solver.verbose = 0
     # CC energies are not variational in the amplitudes: converge them to about
     # the SCF energy tolerance so both noises stay comparable.

@@ -79,7 +79,7 @@ MAX_LEVELS = 6
 
 _SECTIONS = {
     "molecule": {"geometry", "xyz", "units", "charge", "multiplicity", "allow_close_atoms"},
-    "model": {"method", "functional", "basis", "reference"},
+    "model": {"method", "functional", "basis", "reference", "frozen_core", "cartesian"},
     "response": {"properties", "field_au", "ratio", "levels", "origin", "route",
                  "nuclear_relaxation"},
     "scf": {"energy_conv_tol_au", "max_cycle", "grid_level", "gradient_target",
@@ -130,6 +130,12 @@ class ModelSpec:
     basis: str | tuple[tuple[str, str], ...]
     reference: str  # resolved: "restricted" or "unrestricted"
     functional: str | None = None
+    #: Correlated methods: the core orbitals (PySCF's chemcore: 1s for B-Ne,
+    #: and so on) left uncorrelated; the trade's usual default for valence
+    #: correlation. Always False for HF and DFT.
+    frozen_core: bool = False
+    #: Cartesian instead of spherical d and f functions (6d/10f).
+    cartesian: bool = False
 
 
 @dataclass(frozen=True)
@@ -432,7 +438,18 @@ def _parse_model(path: str, table: dict[str, Any], multiplicity: int) -> ModelSp
         raise r.fail("reference", f"= \"restricted\" with multiplicity {multiplicity} is "
                      f"restricted open shell, available for {allowed} only; use "
                      f"\"unrestricted\" for {method}")
-    return ModelSpec(method=method, basis=basis, reference=reference, functional=functional)
+    correlated = not METHOD_TRAITS[method].mean_field
+    frozen_core = table.get("frozen_core", correlated)
+    if not isinstance(frozen_core, bool):
+        raise r.fail("frozen_core", f"must be true or false, got {frozen_core!r}")
+    if frozen_core and not correlated:
+        raise r.fail("frozen_core", f"applies to correlated methods (mp2, ccsd, ccsd(t)), not "
+                     f"to {method}; remove it")
+    cartesian = table.get("cartesian", False)
+    if not isinstance(cartesian, bool):
+        raise r.fail("cartesian", f"must be true or false, got {cartesian!r}")
+    return ModelSpec(method=method, basis=basis, reference=reference, functional=functional,
+                     frozen_core=frozen_core, cartesian=cartesian)
 
 
 def route_hint_is_dipole(table: dict[str, Any], method: str) -> bool:

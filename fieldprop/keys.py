@@ -100,6 +100,8 @@ def model_document(molecule, model, scf) -> dict:
         "functional": model.functional,
         "basis": basis.lower() if isinstance(basis, str) else basis,
         "reference": model.reference,
+        "frozen_core": bool(getattr(model, "frozen_core", False)),
+        "cartesian": bool(getattr(model, "cartesian", False)),
         "scf": {"energy_conv_tol_au": _exact(scf.energy_conv_tol_au),
                 "gradient_conv_tol": _exact(scf.gradient_conv_tol),
                 "grid_level": scf.grid_level, "solver": getattr(scf, "solver", "newton")},

@@ -120,8 +120,15 @@ def write_tables(result: RunResult, out: TextIO) -> None:
     out.write(f"fieldprop {__version__}: {job.path}\n")
     out.write(f"  molecule {result.molecule.formula}, charge {result.molecule.charge}, "
               f"multiplicity {result.molecule.multiplicity}; {model_text} ({model.reference}); "
-              f"{result.backend_facts.get('n_basis_functions', '?')} basis functions"
+              f"{result.backend_facts.get('n_basis_functions', '?')} "
+              f"{'cartesian ' if model.cartesian else ''}basis functions"
               f"{_ecp_text(result)}\n")
+    facts = result.backend_facts
+    if "correlated_electrons" in facts:
+        frozen = facts.get("frozen_core_orbitals", 0)
+        out.write(f"  correlated: {facts['correlated_electrons']} electrons "
+                  + (f"(frozen core: {frozen} orbital{'s' if frozen != 1 else ''} "
+                     f"uncorrelated)\n" if frozen else "(all electrons)\n"))
     _write_geometry(job, out)
     origin = ", ".join(f"{v:.6f}" for v in result.molecule.origin_bohr)
     steps = ", ".join(f"{h:g}" for h in plan.steps_au())

@@ -161,6 +161,41 @@ def test_ccsd_equals_fci_for_two_electrons(tmp_path):
                        atol=1e-7)
 
 
+def test_frozen_core_changes_the_mp2_energy_as_pyscf_frozen_core_mp2_does(tmp_path):
+    """All-electron against frozen-core MP2 of water: the energy difference
+    fieldprop gives is the one PySCF's own MP2 gives (frozen=1, O 1s)."""
+    from pyscf import gto, mp, scf
+
+    results = {}
+    for frozen in ("true", "false"):
+        job, results[frozen] = run_job(tmp_path, f"""
+            [molecule]
+            geometry = \"\"\"
+            O  0.0000  0.0000  0.1173
+            H  0.0000  0.7572 -0.4692
+            H  0.0000 -0.7572 -0.4692
+            \"\"\"
+            [model]
+            method = "mp2"
+            basis = "6-31g"
+            frozen_core = {frozen}
+            [response]
+            properties = ["dipole"]
+            route = "energy"
+            field_au = 0.002
+            levels = 2
+            """, f"fc-{frozen}.toml")
+    mol = gto.M(atom=[(a.symbol, a.coords_bohr) for a in job.molecule.atoms], unit="Bohr",
+                basis="6-31g", verbose=0)
+    mf = scf.RHF(mol).run(conv_tol=1e-12)
+    change = mp.MP2(mf, frozen=1).run().e_corr - mp.MP2(mf).run().e_corr
+    assert change > 1e-4  # the core's correlation is not negligible: a real test
+    ours = results["true"].energy_au - results["false"].energy_au
+    assert ours == pytest.approx(change, abs=1e-9)
+    assert results["true"].backend_facts["correlated_electrons"] == 8
+    assert results["false"].backend_facts["correlated_electrons"] == 10
+
+
 def test_mp2_runs_through_the_same_path(tmp_path):
     job, result = run_job(tmp_path, """
         [molecule]
@@ -180,8 +215,11 @@ def test_mp2_runs_through_the_same_path(tmp_path):
     mol = gto.M(atom=[(a.symbol, a.coords_bohr) for a in job.molecule.atoms], unit="Bohr",
                 basis="6-31g", verbose=0)
     mf = scf.RHF(mol).run(conv_tol=1e-12)
-    e_mp2 = mf.e_tot + mp.MP2(mf).run().e_corr
+    # Frozen core by default (the F 1s orbital): PySCF's own frozen-core MP2.
+    assert job.model.frozen_core
+    e_mp2 = mf.e_tot + mp.MP2(mf, frozen=1).run().e_corr
     assert result.energy_au == pytest.approx(e_mp2, abs=1e-9)
+    assert result.backend_facts["correlated_electrons"] == 8
     # Correlation lowers the HF dipole of HF (common practice: MP2 |mu| is ~5%
     # below HF for hydrogen fluoride); both within a few percent of 0.7-0.8 au.
     mu_hf = np.linalg.norm(mf.dip_moment(unit="AU", verbose=0))

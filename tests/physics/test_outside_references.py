@@ -134,6 +134,7 @@ geometry = \"\"\"
 [model]
 method = "{method}"
 basis = "sto-3g"
+frozen_core = false
 [response]
 properties = ["alpha"]
 """)
@@ -173,6 +174,7 @@ def test_mp2_alpha_equals_central_differences_of_pyscf_mp2_energies(tmp_path):
         [model]
         method = "mp2"
         basis = "6-31g"
+        frozen_core = false
         [response]
         properties = ["alpha"]
         field_au = 0.002

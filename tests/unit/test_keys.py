@@ -290,7 +290,14 @@ MODEL_CHANGES = [
      dataclasses.replace(SCF, energy_conv_tol_au=math.nextafter(1e-11, 1.0))),
     ("gradient_tolerance", MOLECULE, MODEL, dataclasses.replace(SCF, gradient_conv_tol=1e-10)),
     ("grid_level", MOLECULE, MODEL, dataclasses.replace(SCF, grid_level=3)),
+    ("cartesian", MOLECULE, dataclasses.replace(MODEL, cartesian=True), SCF),
 ]
+
+
+def test_frozen_core_counts_in_the_model_key():
+    mp2 = dataclasses.replace(MODEL, method="mp2")
+    frozen = dataclasses.replace(mp2, frozen_core=True)
+    assert model_key(MOLECULE, frozen, SCF) != model_key(MOLECULE, mp2, SCF)
 
 
 @pytest.mark.parametrize("name, molecule, model, scf", MODEL_CHANGES,
