@@ -1194,5 +1194,15 @@ def _evaluate(context: ModelContext, task: PointTask):
                       for row in analytic_polarizability(mf, r, constraints))
     record = PointRecord(point, energy, float(mf.e_tot), dipole, cycles, tuple(attempts), s2,
                          overlap, gradient, alpha, dipole_error, "; ".join(issues),
-                         time.perf_counter() - start)
+                         time.perf_counter() - start, _energy_scale(mf))
     return record, mf
+
+
+def _energy_scale(mf) -> float:
+    """|E_1| + |E_2| + |E_nuc| of the converged SCF (E_2 = E - E_1 - E_nuc):
+    the energy is their difference, and its rounding follows their size."""
+    dm = np.asarray(mf.make_rdm1())
+    h = mf.get_hcore()
+    e1 = float(np.einsum("ij,...ji->", h, dm))
+    e_nuc = float(mf.energy_nuc())
+    return abs(e1) + abs(float(mf.e_tot) - e1 - e_nuc) + abs(e_nuc)

@@ -35,8 +35,13 @@ from fieldprop.tensors import Invariant, TensorResult, assemble, invariants
 
 logger = logging.getLogger(__name__)
 
-#: Double-precision floor of a total energy: a few units in the last place of |E|
-#: (REFERENCES sect. 2 observed ~4e-14 Eh of noise on |E| = 76 Eh, ~2 ulp).
+#: Double-precision floor of a total energy, in units in the last place of the
+#: terms it is the difference of (|E_1| + |E_2| + |E_nuc|, PointRecord.
+#: energy_scale_au; |E| where that is unknown). Measured: the range of three SCF
+#: energies at one field (orbital gradients 1e-8 to 1e-12, HF/6-31G) was
+#: 1.2e-13 Eh for water (terms 170 Eh), 0.6-1.3e-12 for 3-aminopropenal (1035 Eh),
+#: 1.3-3.2e-12 for 4-nitroaniline (2812 Eh): 3.2-3.9 ulp of the terms, while
+#: against |E| it grew from 7 to 20 ulp with the molecule.
 ENERGY_ULPS = 4.0
 #: Coupled-cluster energy noise in units of the amplitude solver's energy
 #: tolerance (see noise_model).
@@ -252,7 +257,7 @@ def noise_model(job: Job, records, molecule: MoleculeSpec | None = None) -> Nois
     energy, dipole, alpha = [], [], []
     for r in records:
         g = r.gradient_norm
-        e = ENERGY_ULPS * ulp * abs(r.energy_au)
+        e = ENERGY_ULPS * ulp * max(r.energy_scale_au, abs(r.energy_au))
         if traits.mean_field:
             e += g * g
         else:

@@ -131,6 +131,9 @@ class PointRecord:
     dipole_error_au: float = 0.0  # first-order estimate of the dipole's convergence error
     state_issue: str = ""
     wall_time_s: float = 0.0
+    #: |E_one-electron| + |E_two-electron| + |E_nuclear| of the SCF energy (Eh):
+    #: the terms whose cancellation sets the energy's rounding noise (0: unknown).
+    energy_scale_au: float = 0.0
 
     @property
     def retried(self) -> bool:

@@ -9,7 +9,8 @@ functions, core electrons, PySCF version): any process can compute any point
 later without redoing zero field, and the analysis of stored points needs no
 PySCF at all.
 
-File format (``SCHEMA_VERSION`` 1), SQLite from the standard library, WAL
+File format (``SCHEMA_VERSION`` 2; a schema-1 store is migrated when opened
+for writing, and read as it is otherwise), SQLite from the standard library, WAL
 journal, a busy timeout so several processes can share one file, one
 transaction per finished point:
 
@@ -19,8 +20,9 @@ transaction per finished point:
   ``description`` and ``facts`` JSON text, ``reference`` an ``.npz`` blob;
 - ``points(point_key, model_key, field_vector_au, origin_bohr, quantities,
   status, energy_au, scf_energy_au, dipole_au, alpha_au, scf_cycles, attempts,
-  s2, occupied_overlap, gradient_norm, dipole_error_au, state_issue, failure,
-  failure_kind, wall_time_s, host, version, created_at)``: ``status`` is ``ok``
+  s2, occupied_overlap, gradient_norm, dipole_error_au, state_issue,
+  energy_scale_au, failure, failure_kind, wall_time_s, host, version,
+  created_at)``: ``status`` is ``ok``
   or ``failed``; vectors, matrices and lists are JSON text (floats round-trip
   exactly).
 
@@ -52,7 +54,14 @@ from fieldprop.records import PointFailure, PointRecord, SymmetryOperation, Zero
 logger = logging.getLogger(__name__)
 
 FORMAT = "fieldprop-store"
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
+#: Migrations of older schemas, applied when a store is opened for writing:
+#: schema 1 -> 2 adds points.energy_scale_au (the energy's rounding scale).
+#: A schema-1 store opened read-only reads that column as missing (NULL).
+_MIGRATIONS = {
+    1: ["ALTER TABLE points ADD COLUMN energy_scale_au REAL",
+        "UPDATE meta SET value = '2' WHERE name = 'schema'"],
+}
 #: Default store file name, in the job file's folder: jobs in one folder share it.
 DEFAULT_NAME = "fieldprop-points.sqlite"
 #: How long a writer waits for another process's transaction (ms).
@@ -88,6 +97,7 @@ CREATE TABLE points (
     gradient_norm REAL,
     dipole_error_au REAL,
     state_issue TEXT,
+    energy_scale_au REAL,
     failure TEXT,
     failure_kind TEXT,
     wall_time_s REAL,
@@ -100,7 +110,10 @@ CREATE INDEX points_by_model ON points (model_key);
 
 _RECORD_COLUMNS = ("energy_au", "scf_energy_au", "dipole_au", "alpha_au", "scf_cycles",
                    "attempts", "s2", "occupied_overlap", "gradient_norm", "dipole_error_au",
-                   "state_issue")
+                   "state_issue", "energy_scale_au")
+_POINT_COLUMNS = ("point_key", "model_key", "field_vector_au", "origin_bohr", "quantities",
+                  "status", *_RECORD_COLUMNS, "failure", "failure_kind", "wall_time_s", "host",
+                  "version", "created_at")
 
 
 def _now() -> str:
@@ -187,6 +200,10 @@ class PointStore:
     def __init__(self, connection: sqlite3.Connection, path: Path | None):
         self._db = connection
         self.path = path
+        present = {row[1] for row in connection.execute("PRAGMA table_info(points)")}
+        # Columns an older schema lacks (read-only opens are not migrated) read as NULL.
+        self._record_select = ", ".join(c if c in present else f"NULL AS {c}"
+                                        for c in _RECORD_COLUMNS)
 
     # -- opening
 
@@ -237,6 +254,7 @@ class PointStore:
                 db = sqlite3.connect(path, timeout=BUSY_TIMEOUT_MS / 1000)
                 db.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
                 db.execute("PRAGMA synchronous = NORMAL")
+                _migrate(db)
         except sqlite3.Error as exc:
             raise InputError(f"{shown}: cannot be opened ({exc})") from None
         return cls(db, path)
@@ -311,12 +329,13 @@ class PointStore:
                                    [list(row) for row in r.alpha_au]),
                                r.scf_cycles, json.dumps(list(r.attempts)), r.s2,
                                r.occupied_overlap, r.gradient_norm, r.dipole_error_au,
-                               r.state_issue, None, None)
+                               r.state_issue, r.energy_scale_au, None, None)
         values += (outcome.wall_time_s, socket.gethostname(), __version__, _now())
         marks = ", ".join("?" * len(values))
         # A computed point is never replaced; a failure is, by a later success.
         self._db.execute(
-            f"INSERT INTO points VALUES ({marks}) ON CONFLICT (point_key) DO UPDATE SET "
+            f"INSERT INTO points ({', '.join(_POINT_COLUMNS)}) VALUES ({marks}) "
+            "ON CONFLICT (point_key) DO UPDATE SET "
             + ", ".join(f"{c} = excluded.{c}" for c in (
                 "status", *_RECORD_COLUMNS, "failure", "failure_kind", "wall_time_s", "host",
                 "version", "created_at"))
@@ -329,7 +348,7 @@ class PointStore:
         for start in range(0, len(keys), 500):
             chunk = keys[start:start + 500]
             rows = self._db.execute(
-                "SELECT point_key, model_key, status, " + ", ".join(_RECORD_COLUMNS)
+                "SELECT point_key, model_key, status, " + self._record_select
                 + ", failure, failure_kind, wall_time_s, host, version, created_at FROM points "
                 f"WHERE point_key IN ({', '.join('?' * len(chunk))})", chunk).fetchall()
             for row in rows:
@@ -341,7 +360,7 @@ class PointStore:
         descriptions = {k: json.loads(d) for k, d in
                         self._db.execute("SELECT model_key, description FROM models")}
         for row in self._db.execute(
-                "SELECT point_key, model_key, status, " + ", ".join(_RECORD_COLUMNS)
+                "SELECT point_key, model_key, status, " + self._record_select
                 + ", failure, failure_kind, wall_time_s, host, version, created_at, "
                 "field_vector_au, origin_bohr, quantities FROM points ORDER BY model_key, "
                 "created_at, point_key"):
@@ -382,6 +401,7 @@ def _stored_point(row) -> StoredPoint:
             "s2": values["s2"], "occupied_overlap": values["occupied_overlap"],
             "gradient_norm": values["gradient_norm"],
             "dipole_error_au": values["dipole_error_au"], "state_issue": values["state_issue"],
+            "energy_scale_au": values["energy_scale_au"] or 0.0,
         }
     else:
         fields = {"reason": failure, "kind": kind}
@@ -443,6 +463,20 @@ def _initialise(db: sqlite3.Connection) -> None:
             ("created_by", f"fieldprop {__version__}")])
 
 
+def _migrate(db: sqlite3.Connection) -> None:
+    """Bring a validated store of an older schema up to SCHEMA_VERSION (one
+    transaction per step; a store another process migrated first is left)."""
+    while True:
+        with db:
+            db.execute("BEGIN IMMEDIATE")
+            schema = int(db.execute("SELECT value FROM meta WHERE name = 'schema'")
+                         .fetchone()[0])
+            if schema >= SCHEMA_VERSION:
+                return
+            for statement in _MIGRATIONS[schema]:
+                db.execute(statement)
+
+
 def _validate_file(path: Path, shown: str) -> None:
     """Refuse anything at ``path`` that is not a readable fieldprop store of a
     schema this version reads; never writes to it."""
@@ -480,7 +514,7 @@ def _validate_file(path: Path, shown: str) -> None:
             raise InputError(f"{shown}: written by a newer fieldprop (store schema {schema}, "
                              f"this version reads {SCHEMA_VERSION}); upgrade fieldprop or give "
                              "--store another path")
-        if schema < SCHEMA_VERSION:
+        if schema < SCHEMA_VERSION and schema not in _MIGRATIONS:
             raise InputError(f"{shown}: store schema {schema} is older than this version's "
                              f"{SCHEMA_VERSION} and has no migration; give --store a new path")
         try:

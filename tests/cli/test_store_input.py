@@ -467,3 +467,40 @@ def test_a_damaged_zero_field_reference_is_bad_input(tmp_path, computed_store):
     proc = fieldprop(tmp_path, "run", job.name, "--store", str(store), "--quiet")
     check_refused(proc, store, ["zero-field reference", "damaged"])
     assert not (tmp_path / RESULT).exists()
+
+
+def test_a_schema_1_store_is_read_as_it_is_and_migrated_when_written(tmp_path):
+    """Schema 1 (before points.energy_scale_au) stays readable without being
+    written (plan, inspect, collect), and a run's writable open migrates it in
+    place: the column is added, the schema mark becomes 2, old rows keep their
+    values (the new column reads as 0: unknown)."""
+    from fieldprop import store as store_module
+    from fieldprop.store import PointStore
+
+    path = tmp_path / "points.sqlite"
+    old_schema = store_module._SCHEMA.replace("    energy_scale_au REAL,\n", "")
+    assert old_schema != store_module._SCHEMA
+    with sqlite3.connect(path) as db:
+        db.executescript(old_schema)
+        db.executemany("INSERT INTO meta VALUES (?, ?)", [
+            ("format", store_module.FORMAT), ("schema", "1"), ("created_at", "then")])
+        db.execute("INSERT INTO points (point_key, model_key, field_vector_au, origin_bohr, "
+                   "quantities, status, energy_au, scf_energy_au, scf_cycles, attempts, s2, "
+                   "occupied_overlap, gradient_norm, dipole_error_au, state_issue, wall_time_s, "
+                   "host, version, created_at) VALUES ('k1', 'm1', '[0,0,0]', '[0,0,0]', '{}', "
+                   "'ok', -1.5, -1.5, 7, '[\"newton\"]', 0.0, 1.0, 1e-12, 0.0, '', 0.1, 'h', "
+                   "'0.1.0', 'then')")
+    db.close()
+    before = path.read_bytes()
+    with PointStore.open(path, read_only=True) as store:
+        row = store.get_points(["k1"])["k1"]
+    assert row.fields["energy_au"] == -1.5 and row.fields["energy_scale_au"] == 0.0
+    assert path.read_bytes() == before and not journal_files(path)
+    with PointStore.open(path) as store:
+        row = store.get_points(["k1"])["k1"]
+        assert row.fields["scf_cycles"] == 7 and row.fields["energy_scale_au"] == 0.0
+    with sqlite3.connect(path) as db:
+        schema = db.execute("SELECT value FROM meta WHERE name = 'schema'").fetchone()[0]
+        columns = {r[1] for r in db.execute("PRAGMA table_info(points)")}
+    db.close()
+    assert schema == "2" and "energy_scale_au" in columns

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 from types import SimpleNamespace
 
 import numpy as np
@@ -36,3 +37,40 @@ def test_dipole_rounding_follows_the_nuclear_terms_not_a_zero_dipole(half_length
     expected = 10.0 * ENERGY_ULPS * np.finfo(float).eps * 16.0 * half_length
     assert noise == pytest.approx(expected, rel=1e-12)
     assert molecule.nuclear_moment_sum_au() == pytest.approx(16.0 * half_length)
+
+
+def test_energy_rounding_follows_the_energy_terms():
+    """A record with its terms' scale (|E_1| + |E_2| + |E_nuc| = 1035 Eh, as for
+    3-aminopropenal at HF/6-31G) gets ENERGY_ULPS ulp of it, not of |E| = 246."""
+    job = SimpleNamespace(model=SimpleNamespace(method="hf"),
+                          scf=SimpleNamespace(energy_conv_tol_au=1e-12))
+    record = dataclasses.replace(_record((0.0, 0.0, 0.0)), energy_au=-245.7,
+                                 energy_scale_au=1035.5)
+    noise = noise_model(job, [record], _symmetric_triatomic(2.2)).energy_au[0]
+    assert noise == pytest.approx(ENERGY_ULPS * np.finfo(float).eps * 1035.5, rel=1e-12)
+    unknown = dataclasses.replace(record, energy_scale_au=0.0)  # a record from before
+    assert noise_model(job, [unknown], _symmetric_triatomic(2.2)).energy_au[0] == pytest.approx(
+        ENERGY_ULPS * np.finfo(float).eps * 245.7, rel=1e-12)
+
+
+def test_the_backend_records_the_energy_terms_scale(tmp_path):
+    """energy_scale_au = |tr(h D)| + |E - tr(h D) - E_nuc| + |E_nuc| of PySCF's own
+    SCF of the same molecule (water, HF/6-31G: 170 Eh)."""
+    pytest.importorskip("pyscf")
+    from pyscf import gto, scf
+
+    from fieldprop.engine import compute
+    from fieldprop.job import load_job
+
+    path = tmp_path / "water.toml"
+    path.write_text('[molecule]\ngeometry = """\nO 0 0 0.1173\nH 0 0.7572 -0.4692\n'
+                    'H 0 -0.7572 -0.4692\n"""\n[model]\nmethod = "hf"\nbasis = "6-31g"\n'
+                    '[response]\nproperties = ["dipole"]\n')
+    result = compute(load_job(path), progress=False)
+    mol = gto.M(atom="O 0 0 0.1173; H 0 0.7572 -0.4692; H 0 -0.7572 -0.4692", basis="6-31g",
+                verbose=0)
+    mf = scf.RHF(mol).run(conv_tol=1e-12)
+    e1 = float(np.einsum("ij,ji->", mf.get_hcore(), mf.make_rdm1()))
+    scale = abs(e1) + abs(mf.e_tot - e1 - mol.energy_nuc()) + abs(mol.energy_nuc())
+    assert result.records[0].energy_scale_au == pytest.approx(scale, rel=1e-9)
+    assert 160 < scale < 180
