@@ -25,6 +25,7 @@ Example
 
 from __future__ import annotations
 
+import logging
 import math
 import os
 import tomllib
@@ -36,6 +37,8 @@ from fieldprop.errors import InputError
 from fieldprop.methods import METHODS as METHOD_TRAITS
 from fieldprop.methods import Route, methods_with
 from fieldprop.units import ANGSTROM_TO_BOHR, PROPERTY_ORDER
+
+logger = logging.getLogger(__name__)
 
 #: Element symbols by atomic number (index 0 is a placeholder); the periodic table.
 ELEMENTS = (
@@ -80,7 +83,7 @@ MAX_LEVELS = 6
 _SECTIONS = {
     "molecule": {"geometry", "xyz", "units", "charge", "multiplicity", "allow_close_atoms"},
     "model": {"method", "functional", "basis", "reference", "frozen_core", "cartesian"},
-    "response": {"properties", "field_au", "ratio", "levels", "origin", "route",
+    "response": {"properties", "field_au", "ratio", "levels", "origin", "differentiate", "route",
                  "nuclear_relaxation"},
     "scf": {"energy_conv_tol_au", "max_cycle", "grid_level", "gradient_target",
             "gradient_needed", "solver"},
@@ -452,9 +455,19 @@ def _parse_model(path: str, table: dict[str, Any], multiplicity: int) -> ModelSp
                      frozen_core=frozen_core, cartesian=cartesian)
 
 
+#: [response] differentiate was called ``route`` before; the old name still works
+#: and draws a warning.
+DIFFERENTIATE_OLD_NAME = "route"
+
+
+def _differentiate_key(table: dict[str, Any]) -> str:
+    return DIFFERENTIATE_OLD_NAME if (DIFFERENTIATE_OLD_NAME in table
+                                      and "differentiate" not in table) else "differentiate"
+
+
 def route_hint_is_dipole(table: dict[str, Any], method: str) -> bool:
     """True when the route (given or automatic) will be the dipole route."""
-    route = str(table.get("route", "auto")).lower()
+    route = str(table.get(_differentiate_key(table), "auto")).lower()
     return route == "dipole" or (route == "auto" and method in DIPOLE_ROUTE_METHODS)
 
 
@@ -523,13 +536,21 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
             raise r.fail("origin", f"coordinates must lie within {MAX_COORDINATE_BOHR:g} bohr "
                          f"of zero, got {origin_raw!r}")
     else:
-        raise r.fail("origin", f"must be \"nuclear-charge\", \"zero\" or [x, y, z]; "
+        raise r.fail("origin", f"must be one of {', '.join(ORIGINS)} or [x, y, z]; "
                      f"got {origin_raw!r}")
-    route = r.string("route", "auto", ROUTES)
+    if DIFFERENTIATE_OLD_NAME in table and "differentiate" in table:
+        raise r.fail("route", "and differentiate are both given; route is the old name of "
+                     "differentiate: keep differentiate only")
+    key = _differentiate_key(table)
+    if key == DIFFERENTIATE_OLD_NAME:
+        logger.warning("%s: [response] route is the old name of differentiate (what is "
+                       "differentiated: \"energy\" or \"dipole\"); it still works, but "
+                       "rename it", path)
+    route = r.string(key, "auto", ROUTES)
     if route == "dipole" and method not in DIPOLE_ROUTE_METHODS:
-        raise r.fail("route", f"= \"dipole\" needs an analytic dipole at each field, which "
+        raise r.fail(key, f"= \"dipole\" needs an analytic dipole at each field, which "
                      f"fieldprop has for {', '.join(DIPOLE_ROUTE_METHODS)}; {method} "
-                     "takes route = \"energy\"")
+                     f"takes {key} = \"energy\"")
     if route == "auto":
         route = "dipole" if method in DIPOLE_ROUTE_METHODS else "energy"
     route = Route(route)

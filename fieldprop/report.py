@@ -32,17 +32,24 @@ CAUTION = ("Results depend on method and basis set (beta and gamma strongly: dif
            "figures guide, and do not replace, measurement.")
 
 _INVARIANT_PROPERTY = {"dipole_norm": "dipole", "alpha_iso": "alpha", "alpha_aniso": "alpha",
-                       "beta_parallel": "beta", "beta_vec": "beta", "beta_hrs": "beta",
+                       "beta_parallel": "beta", "beta_vector_norm": "beta", "beta_hrs": "beta",
                        "gamma_parallel": "gamma"}
 _INVARIANT_TEXT = {
     "dipole_norm": "|mu|",
     "alpha_iso": "tr(alpha)/3",
-    "alpha_aniso": "anisotropy, alpha_par - alpha_perp for a linear molecule",
-    "beta_parallel": "3/5 mu.beta_vec/|mu| (EFISH projection)",
-    "beta_vec": "|beta_i|, beta_i = 1/3 sum_j (b_ijj + b_jij + b_jji)",
+    "alpha_aniso": "sqrt(((a_xx-a_yy)^2 + (a_yy-a_zz)^2 + (a_zz-a_xx)^2)/2 + 3(a_xy^2 + a_xz^2 "
+                   "+ a_yz^2)); |a_par - a_perp| for a linear molecule",
+    "beta_parallel": "3/5 sum_i mu_i beta_i / |mu|, beta_i = 1/3 sum_j (b_ijj + b_jij + b_jji) "
+                     "(EFISH projection on the dipole)",
+    "beta_vector_norm": "|beta_i|, beta_i = 1/3 sum_j (b_ijj + b_jij + b_jji) (the norm, not "
+                        "the projection on the dipole)",
     "beta_hrs": "sqrt(<b_ZZZ^2> + <b_XZZ^2>) (hyper-Rayleigh)",
     "gamma_parallel": "1/15 sum_ij (g_iijj + g_ijij + g_ijji)",
 }
+
+
+#: Old invariant names still written to the result JSON (old name -> new name).
+DEPRECATED_INVARIANTS = {"beta_vec": "beta_vector_norm"}
 
 
 def format_pair(value: float | None, error: float | None) -> tuple[str, str]:
@@ -231,6 +238,10 @@ def result_document(result: RunResult) -> dict[str, Any]:
                                   for label, f in DISPLAY_UNITS[prop]}
         entry["definition"] = _INVARIANT_TEXT[inv.name]
         invariants[inv.name] = entry
+        if inv.name in DEPRECATED_INVARIANTS.values():
+            old = next(k for k, v in DEPRECATED_INVARIANTS.items() if v == inv.name)
+            invariants[old] = {**entry, "deprecated": f"renamed {inv.name}; this key goes in a "
+                                                      "later version"}
     plan = result.plan
     return {
         "schema": SCHEMA,

@@ -17,7 +17,8 @@ index symmetry is a measure of numerical quality.
 Invariants (REFERENCES sect. 3; the contract's names): ``dipole_norm`` = |mu|;
 ``alpha_iso`` = tr(alpha)/3; ``alpha_aniso`` = sqrt{1/2[(axx-ayy)^2 + (ayy-azz)^2 +
 (azz-axx)^2 + 6(axy^2+axz^2+ayz^2)]} (symmetrised alpha); beta_i = 1/3 sum_j
-(beta_ijj + beta_jij + beta_jji), ``beta_vec`` = |beta_i|, ``beta_parallel`` =
+(beta_ijj + beta_jij + beta_jji), ``beta_vector_norm`` = |beta_i| (``beta_vec`` in
+the JSON until it goes), ``beta_parallel`` =
 3/5 sum_i mu_i beta_i / |mu|; ``beta_hrs`` = sqrt(<beta_ZZZ^2> + <beta_XZZ^2>) with
 <beta_ZZZ^2> = 2/35 B2 + 3/35 V, <beta_XZZ^2> = 4/105 B2 - 1/105 V, B2 = sum beta_ijk^2,
 V = sum_i (sum_j beta_ijj)^2 of the symmetrised beta (Bersohn, Pao, Frisch, J. Chem.
@@ -27,7 +28,7 @@ gamma_ijji).
 Error bars of invariants propagate the component error bars linearly,
 sum_c |d inv / d c| err_c (components share field points, so their errors are
 not independent; the linear sum does not assume they are). The invariants that
-are seminorms of their tensor (|mu|, alpha_aniso, beta_vec, beta_hrs: a norm,
+are seminorms of their tensor (|mu|, alpha_aniso, beta_vector_norm, beta_hrs: a norm,
 or the square root of a positive semidefinite quadratic form) lose that
 estimate near zero, where their slope says nothing of their spread (beta
 components of 1e-4 +- 1e-2 gave beta_hrs 1e-4 +- 2.6e-4). For them
@@ -251,11 +252,11 @@ def invariants(tensors: dict[str, TensorResult]) -> list[Invariant]:
     if "beta" in tensors:
         if "dipole" in tensors:
             specs.append(("beta_parallel", ("dipole", "beta"), None))
-        specs += [("beta_vec", ("beta",), lambda b: float(np.linalg.norm(beta_vector(b)))),
+        specs += [("beta_vector_norm", ("beta",), lambda b: float(np.linalg.norm(beta_vector(b)))),
                   ("beta_hrs", ("beta",), beta_hrs)]
     if "gamma" in tensors:
         specs.append(("gamma_parallel", ("gamma",), gamma_parallel))
-    seminorms = {"dipole_norm", "alpha_aniso", "beta_vec", "beta_hrs"}
+    seminorms = {"dipole_norm", "alpha_aniso", "beta_vector_norm", "beta_hrs"}
     out = []
     for name, needs, fn in specs:
         bad = [c.plan.name for n in needs for c in tensors[n].components if not c.stable]

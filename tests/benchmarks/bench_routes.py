@@ -31,7 +31,7 @@ JOB = textwrap.dedent("""
     [response]
     properties = ["dipole", "alpha", "beta"]
     field_au = 0.001
-    route = "{route}"
+    differentiate = "{route}"
     """)
 
 

@@ -60,9 +60,13 @@ def test_run_writes_the_contract_json_beside_the_job(tmp_path):
     assert len(doc["tensors"]["alpha"]["value"]) == 3
     assert len(doc["tensors"]["beta"]["error"][2][1]) == 3
     assert set(doc["invariants"]) == {"dipole_norm", "alpha_iso", "alpha_aniso",
-                                      "beta_parallel", "beta_vec", "beta_hrs"}
+                                      "beta_parallel", "beta_vector_norm", "beta_vec",
+                                      "beta_hrs"}
     for inv in doc["invariants"].values():
         assert inv["value"] is not None and inv["error"] > 0
+    # The old name of beta_vector_norm still works for a while, marked deprecated.
+    old, new = doc["invariants"]["beta_vec"], doc["invariants"]["beta_vector_norm"]
+    assert old["value"] == new["value"] and "renamed beta_vector_norm" in old["deprecated"]
     assert doc["points"]["planned"] == doc["points"]["computed"] > 1
     assert doc["job"]["model"]["reference"] == "restricted"
     assert doc["job"]["scf"]["energy_conv_tol_au"] > 0

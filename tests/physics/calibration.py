@@ -89,7 +89,7 @@ def job_text(name: str, model: str, route: str, props, basis: str = "6-31+g*",
         basis = "{basis}"
         [response]
         properties = {props}
-        route = "{route}"
+        differentiate = "{route}"
         field_au = {field_au}
         {scf}
         """).format(geometry=_tilted(symbols, local).replace("\n", "\n        "),

@@ -73,7 +73,7 @@ def test_check_agrees_with_analytic_references(tmp_path, capsys, geometry, model
                                                multiplicity, extra, props):
     # Energy route: the dipole, alpha and beta are then all finite-field numbers.
     text = job_text(geometry, model.replace("\n", "\n        "), multiplicity,
-                    'route = "energy"\n' + extra, props=props)
+                    'differentiate = "energy"\n' + extra, props=props)
     code, out, doc = run_check(tmp_path, capsys, text)
     assert code == 0, out.out[-2000:] + out.err
     assert "fieldprop check: AGREE" in out.out
@@ -98,7 +98,7 @@ def test_check_agrees_with_analytic_references(tmp_path, capsys, geometry, model
 def test_check_names_a_component_off_by_one_percent_and_accepts_a_rotated_file(tmp_path,
                                                                               capsys):
     text = job_text(rotated_water(), 'method = "hf"', props='["dipole", "alpha"]',
-                    extra='route = "energy"')
+                    extra='differentiate = "energy"')
     (tmp_path / "job.toml").write_text(text)
     from fieldprop.job import load_job
 
@@ -153,7 +153,7 @@ def test_dipole_route_agrees_with_energy_route_and_is_tenfold_sharper(tmp_path):
         [response]
         properties = ["alpha", "beta"]
         field_au = 0.001
-        route = "{route}"
+        differentiate = "{route}"
         """
     _, energy = run_job(tmp_path, text.format(geometry=rotated_water(), route="energy"), "e.toml")
     _, dipole = run_job(tmp_path, text.format(geometry=rotated_water(), route="dipole"), "d.toml")
@@ -183,7 +183,7 @@ def test_origin_shift_of_a_cation_dipole(tmp_path):
         basis = "6-31g"
         [response]
         properties = ["dipole", "alpha"]
-        route = "energy"
+        differentiate = "energy"
         field_au = 0.002
         origin = {origin}
         """

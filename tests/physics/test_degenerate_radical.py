@@ -60,7 +60,7 @@ basis = "6-31g"
 properties = ["dipole", "alpha"]
 field_au = 0.001
 levels = 2
-route = "{route}"
+differentiate = "{route}"
 """)
     return load_job(path)
 

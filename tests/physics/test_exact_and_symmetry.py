@@ -30,7 +30,7 @@ def test_hydrogen_atom_stark_series(tmp_path):
 \"\"\" }}
         [response]
         properties = ["dipole", "alpha", "beta", "gamma"]
-        route = "energy"
+        differentiate = "energy"
         field_au = 0.002
         levels = 4
         """)
@@ -68,7 +68,7 @@ def test_dipole_route_beta_gamma_are_index_symmetric(tmp_path):
         basis = "6-31g"
         [response]
         properties = ["beta", "gamma"]
-        route = "dipole"
+        differentiate = "dipole"
         field_au = 0.002
         """)
     for name in ("beta", "gamma"):
@@ -100,7 +100,7 @@ def test_beta_vanishes_for_centrosymmetric_molecule(tmp_path):
         basis = "6-31g"
         [response]
         properties = ["alpha", "beta"]
-        route = "energy"
+        differentiate = "energy"
         field_au = 0.002
         """)
     alpha, beta = result.tensors["alpha"], result.tensors["beta"]
@@ -181,7 +181,7 @@ def test_frozen_core_changes_the_mp2_energy_as_pyscf_frozen_core_mp2_does(tmp_pa
             frozen_core = {frozen}
             [response]
             properties = ["dipole"]
-            route = "energy"
+            differentiate = "energy"
             field_au = 0.002
             levels = 2
             """, f"fc-{frozen}.toml")

@@ -25,7 +25,7 @@ WATER = textwrap.dedent("""
     basis = "6-31g"
     [response]
     properties = ["dipole", "alpha"]
-    route = "energy"
+    differentiate = "energy"
     field_au = 0.002
     {extra}
     """)
@@ -196,7 +196,7 @@ def test_a_strong_field_that_moves_the_electron_pair_of_stretched_lih_is_caught(
         basis = "6-31g"
         [response]
         properties = ["alpha"]
-        route = "dipole"
+        differentiate = "dipole"
         field_au = 0.004
         levels = 5
         """)

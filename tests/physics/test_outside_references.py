@@ -94,7 +94,7 @@ def water_beta_reference(tmp_path_factory):
             properties = ["beta"]
             field_au = 0.002
             levels = 3
-            route = "{route}"
+            differentiate = "{route}"
             """, f"{route}.toml")
     job, result = jobs["dipole"]
     mol = _pyscf_mol(job, "6-31g")

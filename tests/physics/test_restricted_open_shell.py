@@ -44,7 +44,7 @@ def test_nh2_radical_rohf_alpha_equals_central_differences_of_pyscf_energies(tmp
         reference = "restricted"
         [response]
         properties = ["alpha"]
-        route = "energy"
+        differentiate = "energy"
         field_au = 0.002
         """)
     alpha = result.tensors["alpha"]

@@ -24,7 +24,7 @@ def water_job(method_lines: str, props: str, route: str, field_au: float = 0.002
         basis = "6-31g*"
         [response]
         properties = {props}
-        route = "{route}"
+        differentiate = "{route}"
         field_au = {field_au}
         [scf]
         {'grid_level = 3' if 'dft' in method_lines else ''}
@@ -158,7 +158,7 @@ def test_effective_core_potentials_enter_the_hamiltonian_and_the_dipole(tmp_path
         basis = "def2-svp"
         [response]
         properties = ["dipole", "alpha"]
-        route = "energy"
+        differentiate = "energy"
         field_au = 0.002
         """)
     assert result.molecule.core_electrons == (0, 28)

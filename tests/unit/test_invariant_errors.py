@@ -1,6 +1,6 @@
 """Error bars of the tensor invariants (fieldprop.tensors.invariants), without PySCF.
 
-The seminorm invariants (|mu|, alpha_aniso, beta_vec, beta_hrs) satisfy
+The seminorm invariants (|mu|, alpha_aniso, beta_vector_norm, beta_hrs) satisfy
 |f(v + d) - f(v)| <= f(d) (triangle inequality); near zero their slope says
 nothing of their spread, so their bars must not collapse there. Checked on
 tensors built from component values and bars (the planner's components, either
@@ -18,7 +18,7 @@ from fieldprop import tensors as ft
 from fieldprop.extrapolate import ComponentEstimate, ComponentStatus
 from fieldprop.plan import plan_fields
 
-SEMINORMS = {"dipole_norm": "dipole", "alpha_aniso": "alpha", "beta_vec": "beta",
+SEMINORMS = {"dipole_norm": "dipole", "alpha_aniso": "alpha", "beta_vector_norm": "beta",
              "beta_hrs": "beta"}
 
 
@@ -69,7 +69,7 @@ def test_zero_within_error_gives_bars_at_least_the_invariant_of_the_error_tensor
     inv = _invariants(tensors)
     for name, tensor in SEMINORMS.items():
         fn = {"dipole_norm": np.linalg.norm, "alpha_aniso": ft.alpha_aniso,
-              "beta_vec": lambda b: np.linalg.norm(ft.beta_vector(b)),
+              "beta_vector_norm": lambda b: np.linalg.norm(ft.beta_vector(b)),
               "beta_hrs": ft.beta_hrs}[name]
         floor = fn(_error_tensor(tensors[tensor]))
         assert inv[name].error_au >= floor > 0, (name, inv[name], floor)
@@ -117,7 +117,7 @@ def test_sampled_spread_is_covered(scale):
     inv = _invariants(tensors)
     checks = {"dipole_norm": ("dipole", np.linalg.norm),
               "alpha_aniso": ("alpha", ft.alpha_aniso),
-              "beta_vec": ("beta", lambda b: np.linalg.norm(ft.beta_vector(b))),
+              "beta_vector_norm": ("beta", lambda b: np.linalg.norm(ft.beta_vector(b))),
               "beta_hrs": ("beta", ft.beta_hrs),
               "alpha_iso": ("alpha", ft.alpha_iso)}
     for name, (tensor, fn) in checks.items():

@@ -567,3 +567,25 @@ def test_plan_taylor_check_detects_a_wrong_weight():
         assert taylor_residual([weights[0] + 1e-6, *weights[1:]], offsets,
                                comp.derivative)[1] > 1e-9
         assert taylor_residual(weights, offsets[1:] + offsets[:1], comp.derivative)[1] > 1e-9
+
+
+def test_the_old_name_of_differentiate_still_works_with_a_warning(tmp_path, caplog):
+    """[response] route = "energy" (the old name) reads as differentiate =
+    "energy", and says it was renamed."""
+    import logging
+
+    from fieldprop.job import load_job
+    from fieldprop.methods import Route
+
+    text = ('[molecule]\ngeometry = """\nH 0 0 0\nH 0 0 0.74\n"""\n[model]\nmethod = "hf"\n'
+            'basis = "sto-3g"\n[response]\nproperties = ["alpha"]\n{key} = "energy"\n')
+    (tmp_path / "old.toml").write_text(text.format(key="route"))
+    (tmp_path / "new.toml").write_text(text.format(key="differentiate"))
+    with caplog.at_level(logging.WARNING, logger="fieldprop"):
+        old = load_job(tmp_path / "old.toml")
+    assert old.response.route is Route.ENERGY
+    assert any("route is the old name of differentiate" in r.message for r in caplog.records)
+    caplog.clear()
+    with caplog.at_level(logging.WARNING, logger="fieldprop"):
+        new = load_job(tmp_path / "new.toml")
+    assert new.response.route is Route.ENERGY and not caplog.records

@@ -630,7 +630,7 @@ def _beta_from(entries):
 def test_beta_one_dimensional():
     """Only beta_zzz = b: <ZZZ^2> = b^2/7, <XZZ^2> = b^2/35 (both forms), so
     DR = 5 and beta_HRS = sqrt(6/35) b (REFERENCES sect. 3). With mu along +z,
-    beta_parallel = (3/5) b; along -z it flips sign; beta_vec = b. All are a few
+    beta_parallel = (3/5) b; along -z it flips sign; beta_vector_norm = b. All are a few
     roundings from exact: rel 1e-12."""
     bz = 3.7
     b = _beta_from({(2, 2, 2): bz})
@@ -641,7 +641,7 @@ def test_beta_one_dimensional():
     assert ft.beta_hrs(b) == pytest.approx(math.sqrt(6 / 35) * bz, rel=1e-12)
     inv = _invariants(dipole=[0.0, 0.0, 0.8], beta=b)
     assert inv["beta_parallel"] == pytest.approx(0.6 * bz, rel=1e-12)
-    assert inv["beta_vec"] == pytest.approx(bz, rel=1e-12)
+    assert inv["beta_vector_norm"] == pytest.approx(bz, rel=1e-12)
     assert inv["beta_hrs"] == pytest.approx(math.sqrt(6 / 35) * bz, rel=1e-12)
     assert _invariants(dipole=[0.0, 0.0, -0.8], beta=b)["beta_parallel"] == pytest.approx(
         -0.6 * bz, rel=1e-12)
@@ -650,7 +650,7 @@ def test_beta_one_dimensional():
 def test_beta_octupolar_d3h():
     """beta_xxx = -beta_xyy = -beta_yxy = -beta_yyx = b: B2 = 4 b^2, V = 0, so
     <ZZZ^2> = 8/35 b^2, <XZZ^2> = 16/105 b^2, DR = 3/2 (REFERENCES sect. 3) and
-    beta_vec = 0 (no vector part)."""
+    beta_vector_norm = 0 (no vector part)."""
     bo = 2.0
     b = _beta_from({(0, 0, 0): bo, (0, 1, 1): -bo})
     assert b[1, 0, 1] == b[1, 1, 0] == -bo
