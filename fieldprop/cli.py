@@ -27,6 +27,9 @@ from fieldprop.errors import FieldpropError, IncompleteError, InputError  # noqa
 
 logger = logging.getLogger("fieldprop")
 
+#: The first words of check's error line when references and results disagree.
+CHECK_DISAGREES = "check disagrees"
+
 
 class _Parser(argparse.ArgumentParser):
     """argparse that reports a usage error as one line and exit code 2."""
@@ -292,7 +295,7 @@ def cmd_check(args) -> int:
             write_json_atomic(comparison_document(comparisons, reference, sigmas, verdict),
                               args.json)
     if bad:
-        print(f"fieldprop: error: check failed: {verdict}", file=sys.stderr)
+        print(f"fieldprop: error: {CHECK_DISAGREES}: {verdict}", file=sys.stderr)
         return 1
     return 0
 
@@ -389,13 +392,13 @@ def _main(argv: Sequence[str] | None) -> int:
         _configure_logging(getattr(args, "quiet", False))
         return args.handler(args)
     except FieldpropError as exc:
-        print(f"fieldprop: error: {exc}", file=sys.stderr)
+        print(f"fieldprop: error: {exc.kind}: {exc}", file=sys.stderr)
         return exc.exit_code
     except Terminated:
-        print("fieldprop: error: terminated (SIGTERM)", file=sys.stderr)
+        print("fieldprop: error: terminated: SIGTERM", file=sys.stderr)
         return 143
     except KeyboardInterrupt:
-        print("fieldprop: error: interrupted", file=sys.stderr)
+        print("fieldprop: error: interrupted: Ctrl-C", file=sys.stderr)
         return 130
     except BrokenPipeError:
         # The reader of stdout went away (e.g. `| head`): stop quietly, and keep

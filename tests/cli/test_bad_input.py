@@ -355,7 +355,7 @@ def _check(rc: int, out: str, err: str, expected: list[str], job_path: Path,
     assert rc == 2, f"exit code {rc}, stderr: {err!r}"
     assert len(lines) == 1, f"stderr must be one line, got {len(lines)}: {err!r}"
     line = lines[0]
-    assert line.startswith("fieldprop: error: "), line
+    assert line.startswith("fieldprop: error: bad input: "), line
     for piece in expected:
         piece = piece.format(job=job_path, dir=job_path.parent)
         assert piece in line, f"{piece!r} not in {line!r}"

@@ -162,3 +162,18 @@ def test_a_reader_that_closes_stdout_early_is_not_a_failure(tmp_path):
     assert done.returncode == 0, done.stderr
     assert "Traceback" not in done.stderr
     assert json.loads((tmp_path / "lih.result.json").read_text())["tensors"]
+
+
+def test_error_vocabulary_is_the_documented_one():
+    """The first words after 'fieldprop: error: ' come from a fixed vocabulary,
+    each documented in the README's exit codes (one word list, no drift)."""
+    from pathlib import Path
+
+    from fieldprop import errors
+    from fieldprop.cli import CHECK_DISAGREES
+
+    readme = (Path(__file__).resolve().parents[2] / "README.md").read_text()
+    kinds = {cls.kind for cls in vars(errors).values()
+             if isinstance(cls, type) and issubclass(cls, errors.FieldpropError)}
+    for word in kinds | {CHECK_DISAGREES, "interrupted", "terminated"}:
+        assert f"`{word}`" in readme, word

@@ -302,7 +302,7 @@ def check_refused(proc: subprocess.CompletedProcess, store: Path, words: list[st
     assert proc.returncode == 2, f"exit code {proc.returncode}, stderr: {err!r}"
     lines = err.splitlines()
     assert len(lines) == 1, f"stderr must be one line, got {len(lines)}: {err!r}"
-    assert lines[0].startswith("fieldprop: error: "), lines[0]
+    assert lines[0].startswith("fieldprop: error: bad input: "), lines[0]
     assert str(store) in lines[0], f"the store path {store} is not named: {lines[0]!r}"
     for word in words:
         assert word in lines[0], f"{word!r} not in {lines[0]!r}"
@@ -431,7 +431,7 @@ def test_collect_names_the_points_the_store_lacks(tmp_path, computed_store):
     assert "Traceback" not in proc.stderr, proc.stderr
     assert proc.returncode == 3, proc.stderr
     lines = proc.stderr.splitlines()
-    assert len(lines) == 1 and lines[0].startswith("fieldprop: error: "), proc.stderr
+    assert len(lines) == 1 and lines[0].startswith("fieldprop: error: incomplete: "), proc.stderr
     assert set(_ID.findall(lines[0])) == missing, lines[0]
     assert f"{len(missing)} of {len(tasks)}" in lines[0]
     assert not (tmp_path / RESULT).exists()
@@ -448,7 +448,7 @@ def test_collect_without_a_store_file_is_incomplete(tmp_path, store_option):
     assert "Traceback" not in proc.stderr, proc.stderr
     assert proc.returncode == 3, proc.stderr
     lines = proc.stderr.splitlines()
-    assert len(lines) == 1 and lines[0].startswith("fieldprop: error: "), proc.stderr
+    assert len(lines) == 1 and lines[0].startswith("fieldprop: error: incomplete: "), proc.stderr
     name = store_option[-1] if store_option else "fieldprop-points.sqlite"
     assert name in lines[0], lines[0]
     assert snapshot(tmp_path) == before, "collect created a file"

@@ -61,6 +61,7 @@ def test_a_point_that_never_converges_fails_the_job(tmp_path, capsys, monkeypatc
     assert main(["run", str(job), "--quiet"]) == 1
     err = capsys.readouterr().err
     assert target in err and "did not converge" in err
+    assert err.splitlines()[-1].startswith("fieldprop: error: SCF not converged: ")
     assert not (tmp_path / "water.result.json").exists()  # no number formed
 
 
@@ -112,6 +113,7 @@ def test_a_state_switch_at_the_smallest_field_leaves_no_number(tmp_path, capsys,
     # Every field strength on the z axis is beyond the switch: dipole_z and
     # alpha_zz have no number, the other components do.
     assert "unstable" in err and "alpha_zz" in err and "dipole_z" in err
+    assert err.splitlines()[-1].startswith("fieldprop: error: unstable: ")
     doc = json.loads((tmp_path / "water.result.json").read_text())
     assert doc["tensors"]["alpha"]["value"][2][2] is None
     assert doc["tensors"]["alpha"]["value"][0][0] > 1.0
