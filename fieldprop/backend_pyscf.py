@@ -1203,6 +1203,6 @@ def _energy_scale(mf) -> float:
     the energy is their difference, and its rounding follows their size."""
     dm = np.asarray(mf.make_rdm1())
     h = mf.get_hcore()
-    e1 = float(np.einsum("ij,...ji->", h, dm))
+    e1 = float(np.sum(h * np.swapaxes(dm, -1, -2)))
     e_nuc = float(mf.energy_nuc())
     return abs(e1) + abs(float(mf.e_tot) - e1 - e_nuc) + abs(e_nuc)

@@ -48,6 +48,30 @@ def _positive_int(text: str) -> int:
     return value
 
 
+#: Seconds between progress lines in a batch log (stderr not a terminal).
+DEFAULT_LOG_EVERY_S = 60.0
+
+
+def _non_negative_float(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a number, got {text!r}") from None
+    if not value >= 0 or value == float("inf"):
+        raise argparse.ArgumentTypeError(f"must be a finite number >= 0, got {text}")
+    return value
+
+
+def _progress(args) -> tuple[bool, float | None]:
+    """(progress bar, log-line interval): a bar on a terminal, lines in a batch
+    log, nothing with --quiet."""
+    if args.quiet:
+        return False, None
+    if sys.stderr.isatty():
+        return True, None
+    return False, args.log_every
+
+
 def _positive_float(text: str) -> float:
     try:
         value = float(text)
@@ -74,6 +98,11 @@ def build_parser() -> argparse.ArgumentParser:
                      help="processes computing field points in parallel, one BLAS thread "
                      "each (default: every core this process may use)")
     run.add_argument("--quiet", action="store_true", help="no progress or log lines on stderr")
+    run.add_argument("--log-every", type=_non_negative_float, default=DEFAULT_LOG_EVERY_S,
+                     metavar="SECONDS", help="when stderr is not a terminal (a batch log), "
+                     "a progress line at most this often: points done, SCF cycles, elapsed "
+                     f"and remaining time (default {DEFAULT_LOG_EVERY_S:g}); a terminal gets "
+                     "a progress bar")
     run.add_argument("--plot", type=Path, metavar="DIR", help="write a PNG per property into "
                      "DIR: each component's Richardson table against field strength")
     _store_options(run)
@@ -97,6 +126,9 @@ def build_parser() -> argparse.ArgumentParser:
                      help="processes computing field points in parallel, one BLAS thread "
                      "each (default: every core this process may use)")
     check.add_argument("--quiet", action="store_true", help="no progress or log lines on stderr")
+    check.add_argument("--log-every", type=_non_negative_float, default=DEFAULT_LOG_EVERY_S,
+                       metavar="SECONDS", help="progress line interval when stderr is not a "
+                       f"terminal (default {DEFAULT_LOG_EVERY_S:g})")
     _store_options(check)
     check.set_defaults(handler=cmd_check)
 
@@ -204,10 +236,10 @@ def cmd_run(args) -> int:
         raise InputError(f"--plot {args.plot}: is not an existing folder; create it first")
     prepared = prepare(job)
     workers = args.workers or default_workers()
+    bar, log_every = _progress(args)
     with _open_store(args, args.job) as store:
-        result = run_prepared(prepared, store, workers=workers,
-                              progress=not args.quiet and sys.stderr.isatty(),
-                              retry_failed=args.retry_failed)
+        result = run_prepared(prepared, store, workers=workers, progress=bar,
+                              retry_failed=args.retry_failed, log_every_s=log_every)
     # The file first: a closed stdout (``| head``) must not lose the result.
     if is_stdout(out_path):  # --json -: the JSON is the output, no tables
         _to_stdout(lambda: write_json_atomic(result_document(result), out_path))
@@ -252,12 +284,12 @@ def cmd_check(args) -> int:
                              f"multiplicity {job.molecule.multiplicity} (restricted open shell) "
                              "has no analytic polarizability in fieldprop; set reference = "
                              "\"unrestricted\", or give --against FILE")
-    progress = not args.quiet and sys.stderr.isatty()
+    progress, log_every = _progress(args)
     prepared = prepare(job)
     workers = args.workers or default_workers()
     with _open_store(args, args.job) as store:
         result = run_prepared(prepared, store, workers=workers, progress=progress,
-                              retry_failed=args.retry_failed)
+                              retry_failed=args.retry_failed, log_every_s=log_every)
         if reference_file is not None:
             m = result.molecule
             reference = compare.align_reference(str(args.against), reference_file, m.symbols,

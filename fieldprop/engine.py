@@ -299,9 +299,11 @@ def compute(job: Job, workers: int = 1, progress: bool | None = None,
 
 
 def run_prepared(prepared: Prepared, store=None, workers: int = 1,
-                 progress: bool | None = None, retry_failed: bool = False) -> RunResult:
+                 progress: bool | None = None, retry_failed: bool = False,
+                 log_every_s: float | None = None) -> RunResult:
     """:func:`compute` for a job already prepared (the CLI opens its store only
-    once the job has passed every check)."""
+    once the job has passed every check). ``progress``: a bar; ``log_every_s``:
+    progress log lines at most that often instead (batch logs)."""
     from fieldprop.execute import compute_points
     from fieldprop.store import PointStore
 
@@ -322,7 +324,7 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
     try:
         outcome = compute_points(list(prepared.tasks), store, prepared.facts,
                                  prepared.description(), workers=workers, progress=progress,
-                                 retry_failed=retry_failed)
+                                 retry_failed=retry_failed, log_every_s=log_every_s)
     finally:
         if own_store:
             store.close()

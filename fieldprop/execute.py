@@ -106,22 +106,61 @@ def _reference(tasks: list[PointTask], store: PointStore, facts: dict,
         return found[0], None
     logger.debug("no stored reference for model %s: computing zero field", zero.model_key[:12])
     context = ModelContext(zero.molecule, zero.model, zero.scf)
-    record, reference = compute_reference(context, zero)
+    try:
+        record, reference = compute_reference(context, zero)
+    except FieldpropError:
+        raise
+    except Exception as exc:  # noqa: BLE001 - named, never a traceback
+        logger.debug("zero field", exc_info=True)
+        text = " ".join(str(exc).split())[:300] or "no message"
+        raise BackendError(f"the zero-field point failed inside the backend "
+                           f"({type(exc).__name__}: {text}); no field point can start "
+                           "without it") from exc
     if not store.put_model(zero.model_key, description, facts, reference, (zero, record)):
         reference = store.get_model(zero.model_key)[0]  # another process stored one first
         context.attach(reference)
     return reference, context
 
 
+class _ProgressLines:
+    """Progress as log lines for batch logs (stderr not a terminal): points
+    done of all, SCF cycles, elapsed and estimated remaining time, at most one
+    line every ``every_s`` seconds and one at the end."""
+
+    def __init__(self, total: int, done: int, every_s: float):
+        self.total, self.done, self.every_s = total, done, every_s
+        self.new, self.cycles = 0, 0
+        self.start = self.last = time.monotonic()
+
+    def update(self, outcome) -> None:
+        self.done += 1
+        self.new += 1
+        self.cycles += getattr(outcome, "scf_cycles", 0)
+        now = time.monotonic()
+        if now - self.last >= self.every_s or self.done == self.total:
+            self.last = now
+            elapsed = now - self.start
+            left = elapsed / self.new * (self.total - self.done)
+            logger.info("%d/%d field points, %d SCF cycles, %s elapsed, ~%s left", self.done,
+                        self.total, self.cycles, _clock(elapsed), _clock(left))
+
+
+def _clock(seconds: float) -> str:
+    seconds = int(round(seconds))
+    return f"{seconds // 3600}:{seconds % 3600 // 60:02d}:{seconds % 60:02d}"
+
+
 def compute_points(tasks: list[PointTask], store: PointStore, facts: dict, description: dict,
-                   workers: int = 1, progress: bool = True,
-                   retry_failed: bool = False) -> PointsOutcome:
+                   workers: int = 1, progress: bool = True, retry_failed: bool = False,
+                   log_every_s: float | None = None) -> PointsOutcome:
     """Find or compute every task; ``tasks[0]`` must be the zero-field point.
 
     ``facts`` and ``description`` are stored with a newly computed reference
     (backend facts; the model's canonical description). A failure of the
     zero-field point raises at once (nothing else can be computed). With
     ``workers > 1`` the missing points run in a process pool of that size.
+    ``progress``: a progress bar (a terminal); ``log_every_s``: instead, a log
+    line at most that often (batch logs); neither: silent.
     """
     if not tasks or not tasks[0].is_zero_field:
         raise ValueError("the first task must be the zero-field point")
@@ -152,11 +191,15 @@ def compute_points(tasks: list[PointTask], store: PointStore, facts: dict, descr
         logger.info("%d of %d field points found in %s", reused, len(tasks), store.label)
     bar = tqdm(total=len(tasks), initial=len(tasks) - len(missing), desc="field points",
                unit="pt", disable=not progress, leave=False)
+    lines = (_ProgressLines(len(tasks), len(tasks) - len(missing), log_every_s)
+             if log_every_s is not None and not progress and missing else None)
 
     def finish(i: int, outcome) -> None:
         store.put_point(tasks[i], outcome)
         outcomes[i] = outcome
         bar.update()
+        if lines is not None:
+            lines.update(outcome)
 
     try:
         if workers <= 1 or len(missing) <= 1:

@@ -177,3 +177,36 @@ def test_error_vocabulary_is_the_documented_one():
              if isinstance(cls, type) and issubclass(cls, errors.FieldpropError)}
     for word in kinds | {CHECK_DISAGREES, "interrupted", "terminated"}:
         assert f"`{word}`" in readme, word
+
+
+def test_batch_logs_get_progress_lines_and_quiet_silences_them(tmp_path):
+    """stderr not a terminal (a batch log): progress lines, not a bar."""
+    pytest.importorskip("pyscf")
+    (tmp_path / "lih.toml").write_text(JOB)
+    done = fieldprop("run", "lih.toml", "--no-store", "--log-every", "0", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    lines = [ln for ln in done.stderr.splitlines() if "SCF cycles," in ln]
+    total = int(lines[-1].split("/")[1].split()[0])
+    assert lines[-1].startswith(f"fieldprop: {total}/{total} field points, ")
+    assert "elapsed, ~0:00:00 left" in lines[-1] and len(lines) == total - 1
+    assert "\r" not in done.stderr  # no bar redrawn into the log
+    quiet = fieldprop("run", "lih.toml", "--no-store", "--quiet", "--log-every", "0",
+                      cwd=tmp_path)
+    assert quiet.returncode == 0 and quiet.stderr == ""
+
+
+def test_a_zero_field_failure_inside_the_backend_is_named_not_a_traceback(tmp_path, capsys,
+                                                                          monkeypatch):
+    pytest.importorskip("pyscf")
+    import fieldprop.execute
+    from fieldprop.cli import main
+
+    def broken(context, task):
+        raise RuntimeError("injected inside PySCF")
+
+    monkeypatch.setattr(fieldprop.execute, "compute_reference", broken)
+    (tmp_path / "lih.toml").write_text(JOB)
+    assert main(["run", str(tmp_path / "lih.toml"), "--quiet", "--no-store"]) == 1
+    err = capsys.readouterr().err
+    assert err.startswith("fieldprop: error: backend failure: the zero-field point failed "
+                          "inside the backend (RuntimeError: injected inside PySCF)"), err
