@@ -48,6 +48,22 @@ def _positive_int(text: str) -> int:
     return value
 
 
+#: How to read a component row (also in the README, "Reading the tables").
+READING_THE_TABLES = """\
+reading the tables:
+  status        ok                  trust it; the error bar is the Richardson table's
+                                    spread (the truncation error, resolved)
+                ok-at-noise-floor   trust it; the error bar is the SCF noise carried
+                                    through the stencil (a tighter SCF or a larger field
+                                    would shrink it)
+                ok-zero-field       trust it; a value at zero field, no derivative:
+                                    the error bar is its noise
+                unstable            no number: the table did not settle (exit code 1)
+  Richardson    h<k>, <m> steps     the extrapolated entry that starts at the k-th field
+  entry                             strength h_k = h0 ratio^k and took m steps (it uses
+                                    h_k .. h_k+m); F = 0: no derivative taken
+"""
+
 #: Seconds between progress lines in a batch log (stderr not a terminal).
 DEFAULT_LOG_EVERY_S = 60.0
 
@@ -90,7 +106,9 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"fieldprop {__version__}")
     sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
-    run = sub.add_parser("run", help="compute a job: tables on stdout, result JSON to a file")
+    run = sub.add_parser("run", help="compute a job: tables on stdout, result JSON to a file",
+                         epilog=READING_THE_TABLES,
+                         formatter_class=argparse.RawDescriptionHelpFormatter)
     run.add_argument("job", type=Path, help="job file (TOML)")
     run.add_argument("--json", type=Path, help="result JSON path (default JOB.result.json "
                      "beside the job file; - writes it to stdout instead of the tables)")
@@ -109,7 +127,9 @@ def build_parser() -> argparse.ArgumentParser:
     run.set_defaults(handler=cmd_run)
 
     check = sub.add_parser("check", help="finite-field tensors versus analytic ones (PySCF's, "
-                           "or a tensor file of another code); exit 0 agree, 1 disagree")
+                           "or a tensor file of another code); exit 0 agree, 1 disagree",
+                           epilog=READING_THE_TABLES,
+                           formatter_class=argparse.RawDescriptionHelpFormatter)
     check.add_argument("job", type=Path, help="job file (TOML)")
     check.add_argument("--against", type=Path, help="reference tensors: result-style JSON, "
                        ".npy or .npz (default: fieldprop's analytic SCF references)")

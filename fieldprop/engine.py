@@ -311,12 +311,15 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
     job, plan = prepared.job, prepared.plan
     own_store = store is None
     store = PointStore.in_memory() if own_store else store
-    logger.info("%s: %s/%s%s, %d field points on %d levels (h0 = %g au, ratio %g), route %s, "
-                "SCF energy tolerance %g Eh, orbital gradient %g (accepted up to %g), solver %s; "
-                "store %s; %d worker process%s, one BLAS thread each", job.path,
-                job.model.method, job.model.basis,
-                f"/{job.model.functional}" if job.model.functional else "", len(plan.points),
-                plan.levels, plan.field_au, plan.ratio, plan.route, job.scf.energy_conv_tol_au,
+    ladder = ("1 point, zero field only (no derivative)" if len(plan.points) == 1 else
+              f"{len(plan.points)} field points on {plan.levels} levels (h0 = {plan.field_au:g} "
+              f"au, ratio {plan.ratio:g}), differentiating "
+              f"{'E(F)' if plan.route == 'energy' else 'the SCF dipole'}")
+    logger.info("%s: %s/%s%s, %s, SCF energy tolerance %g Eh, orbital "
+                "gradient %g (accepted up to %g), solver %s; store %s; %d worker process%s, one "
+                "BLAS thread each", job.path, job.model.method, job.model.basis,
+                f"/{job.model.functional}" if job.model.functional else "", ladder,
+                job.scf.energy_conv_tol_au,
                 job.scf.gradient_conv_tol, job.scf.gradient_accepted, job.scf.solver,
                 store.label, workers, "" if workers == 1 else "es")
     if progress is None:
@@ -329,8 +332,8 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
         if own_store:
             store.close()
     counts = PointCounts(len(plan.points), outcome.computed, outcome.reused)
-    logger.info("%d field points: %d computed, %d reused from %s", counts.planned,
-                counts.computed, counts.reused, store.label)
+    logger.info("%d field point%s: %d computed, %d reused from %s", counts.planned,
+                "" if counts.planned == 1 else "s", counts.computed, counts.reused, store.label)
     if outcome.failures:
         raise failed_points_error(prepared, outcome.failures, retry_failed)
     return analyse(prepared, outcome.records, counts, store.label,
@@ -452,7 +455,7 @@ def window_warnings(job: Job, plan: FieldPlan, tensors) -> tuple[str, ...]:
     """Warn when the field ladder lies outside a component's stable window.
 
     Below: a significant component (|value| > 10 error) whose best entry does not
-    use the smallest field was noise-limited there (job's field_au only).
+    use the smallest field was at its noise floor there (job's field_au only).
     Above: a component whose best entry starts at the smallest field and whose
     error bar is set by the truncation error (table spread > TRUNCATION_DOMINANCE
     round-off floors) and matters (> MATERIAL_ERROR of its tensor's largest

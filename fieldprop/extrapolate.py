@@ -34,11 +34,18 @@ from dataclasses import dataclass
 
 
 class ComponentStatus(enum.Enum):
-    """What the chosen entry's error bar rests on."""
+    """Whether to trust the number, and what its error bar rests on (the words
+    users read: README, "Reading the tables")."""
 
-    OK = "ok"                      # table differences dominate: truncation well resolved
-    NOISE_LIMITED = "noise-limited"  # the round-off floor sets the error bar
-    UNSTABLE = "unstable"          # no entry is trustworthy; no number is reported
+    #: Trusted; the bar is the Richardson table's spread (truncation resolved).
+    OK = "ok"
+    #: Trusted; the bar is the SCF's noise carried through the stencil, larger
+    #: than the table's spread (a tighter SCF, or a larger field, shrinks it).
+    NOISE_LIMITED = "ok-at-noise-floor"
+    #: Trusted; a zero-field quantity, no derivative taken: the bar is its noise.
+    ZERO_FIELD = "ok-zero-field"
+    #: No entry is trustworthy: no number is reported.
+    UNSTABLE = "unstable"
 
 
 @dataclass(frozen=True)
@@ -98,7 +105,7 @@ def richardson(values, ratio: float, noise_au) -> ComponentEstimate:
     table, coeffs = _table(values, ratio)
     frozen = tuple(tuple(col) for col in table)
     if len(values) == 1:
-        return ComponentEstimate(values[0], noise[0], (0, 0), ComponentStatus.NOISE_LIMITED,
+        return ComponentEstimate(values[0], noise[0], (0, 0), ComponentStatus.ZERO_FIELD,
                                  noise[0], frozen)
     best = None
     for m, col in enumerate(table):

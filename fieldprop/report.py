@@ -20,6 +20,7 @@ from tabulate import tabulate
 
 from fieldprop import __version__
 from fieldprop.engine import RunResult, entry_window_au
+from fieldprop.extrapolate import ComponentStatus
 from fieldprop.keys import short_id
 from fieldprop.plan import FieldPlan
 from fieldprop.units import (ANGSTROM_TO_BOHR, DISPLAY_UNITS, FIELD_AU_TO_V_PER_M,
@@ -73,6 +74,11 @@ def format_pair(value: float | None, error: float | None) -> tuple[str, str]:
 
 
 def _entry_text(est) -> str:
+    """The Richardson entry used: ``h<k>, <m> steps`` = the entry that starts at
+    the k-th field strength h_k = h0 r^k and took m extrapolation steps (it
+    uses the strengths h_k .. h_k+m); ``F = 0`` for a zero-field value."""
+    if est.status is ComponentStatus.ZERO_FIELD:
+        return "F = 0 (no derivative)"
     k, m = est.chosen_entry
     return f"h{k}, {m} step{'s' if m != 1 else ''}"
 
@@ -138,13 +144,18 @@ def write_tables(result: RunResult, out: TextIO) -> None:
                      f"uncorrelated)\n" if frozen else "(all electrons)\n"))
     _write_geometry(job, out)
     origin = ", ".join(f"{v:.6f}" for v in result.molecule.origin_bohr)
-    steps = ", ".join(f"{h:g}" for h in plan.steps_au())
-    out.write(f"  route: {plan.route} (derivatives of "
-              f"{'E(F)' if plan.route == 'energy' else 'the SCF dipole mu(F)'}); fields {steps} au "
-              f"(h0: {job.response.field_au_source}); origin ({origin}) bohr\n")
+    if len(plan.points) == 1:
+        out.write(f"  no field applied: the values at zero field; origin ({origin}) bohr\n")
+    else:
+        steps = ", ".join(f"{h:g}" for h in plan.steps_au())
+        out.write(f"  differentiated: "
+                  f"{'E(F)' if plan.route == 'energy' else 'the SCF dipole mu(F)'}; field "
+                  f"strengths {steps} au (h0: {job.response.field_au_source}); origin ({origin}) "
+                  "bohr\n")
     counts = result.counts
     reused = f" ({counts.reused} reused from the store)" if counts and counts.reused else ""
-    out.write(f"  {len(result.records)} field points{reused}, "
+    n = len(result.records)
+    out.write(f"  {n} field point{'s' if n != 1 else ''}{reused}, "
               f"{sum(r.scf_cycles for r in result.records)} SCF cycles; SCF energy tolerance "
               f"{job.scf.energy_conv_tol_au:g} Eh; E(0) = {result.energy_au:.10f} Eh\n")
     out.write("  atomic units, Taylor convention E = E0 - mu F - alpha F^2/2 - beta F^3/6 - "

@@ -210,3 +210,21 @@ def test_a_zero_field_failure_inside_the_backend_is_named_not_a_traceback(tmp_pa
     err = capsys.readouterr().err
     assert err.startswith("fieldprop: error: backend failure: the zero-field point failed "
                           "inside the backend (RuntimeError: injected inside PySCF)"), err
+
+
+def test_status_words_agree_with_the_readme_and_help(tmp_path):
+    """Every component status fieldprop can print is explained in the README
+    table and in `run --help`, and nothing else is."""
+    import re
+    from pathlib import Path
+
+    from fieldprop.extrapolate import ComponentStatus
+
+    words = {s.value for s in ComponentStatus}
+    readme = (Path(__file__).resolve().parents[2] / "README.md").read_text()
+    section = readme.split("## Reading the tables")[1].split("\n## ")[0]
+    assert set(re.findall(r"^\| `([a-z-]+)` \|", section, re.M)) == words
+    help_text = fieldprop("run", "--help", cwd=tmp_path).stdout
+    for word in words:
+        assert f" {word} " in help_text, word
+    assert "h<k>, <m> steps" in help_text and "h<k>, <m> steps" in section
