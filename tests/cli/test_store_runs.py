@@ -97,6 +97,41 @@ def test_a_killed_run_resumes_without_recomputing_and_gives_the_same_numbers(tmp
     assert numbers(doc) == numbers(json.loads((tmp_path / "fresh.json").read_text()))
 
 
+@pytest.mark.parametrize("sig, code, word", [(signal.SIGINT, 130, "interrupted"),
+                                             (signal.SIGTERM, 143, "terminated")],
+                         ids=["sigint", "sigterm"])
+def test_an_interrupted_two_worker_run_stops_promptly_and_keeps_its_points(tmp_path, sig,
+                                                                          code, word):
+    """Ctrl-C (SIGINT) or a batch system's SIGTERM during a 2-worker run: the
+    workers stop within a few seconds (not after every queued point), the
+    finished points stay stored, the message says how to resume, and the rerun
+    computes only the rest."""
+    (tmp_path / "water.toml").write_text(WATER)
+    store = tmp_path / "fieldprop-points.sqlite"
+    proc = subprocess.Popen([sys.executable, "-m", "fieldprop", "run", "water.toml",
+                             "--workers", "2"], cwd=tmp_path, env=_env(),
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 300
+    while stored_points(store) < 8 and proc.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.02)
+    assert proc.poll() is None, "the run ended before it could be interrupted"
+    sent = time.monotonic()
+    proc.send_signal(sig)
+    _, err = proc.communicate(timeout=60)
+    stopped_after = time.monotonic() - sent
+    assert proc.returncode == code, err
+    assert stopped_after < 5.0, stopped_after
+    assert err.splitlines()[-1] == f"fieldprop: error: {word}: " + (
+        "Ctrl-C" if sig == signal.SIGINT else "SIGTERM"), err
+    assert "Run the same command again to resume" in err and "Traceback" not in err
+    kept = stored_points(store)
+    assert kept >= 8
+    done = fieldprop("run", "water.toml", "--quiet", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    points = json.loads((tmp_path / "water.result.json").read_text())["points"]
+    assert points["reused"] == kept and points["computed"] == points["planned"] - kept
+
+
 def test_two_runs_sharing_one_store_write_every_point_once(tmp_path):
     (tmp_path / "water.toml").write_text(WATER)
     (tmp_path / "twin.toml").write_text(WATER)
