@@ -537,7 +537,7 @@ def reference_tensors(job: Job, result: RunResult, workers: int = 1, progress: b
     if result.plan.route is Route.DIPOLE and "dipole" in values:
         del values["dipole"], errors["dipole"]
         note += "; dipole not compared: the dipole route uses the analytic dipole itself " \
-                "(set route = \"energy\" to check it)"
+                "(set differentiate = \"energy\" to check it)"
     bad = analytic.unstable_components
     if bad:
         raise UnstableResultError(f"{job.path}: analytic reference unstable for "

@@ -446,7 +446,9 @@ def write_comparison(comparisons, reference, sigmas: float, out: TextIO) -> None
     """
     out.write(f"reference: {reference.source}" + (f" ({reference.note})" if reference.note
                                                  else "") + "\n")
-    out.write(f"agreement: |ff - ref| <= {sigmas:g} x (ff error + ref error) + floor\n\n")
+    out.write(f"agreement: |ff - ref| <= allowed = {sigmas:g} x (ff error + ref error) + floor "
+              "(the floor: the larger of a relative and an absolute one); ok where "
+              "diff/allowed <= 1\n\n")
     for name, rows in comparisons.items():
         table = []
         for c in rows:
@@ -456,13 +458,15 @@ def write_comparison(comparisons, reference, sigmas: float, out: TextIO) -> None
             rv, re = format_pair(c.ref_value, c.ref_error) if c.ref_error > 0 else (
                 f"{c.ref_value:.10g}", "0")
             diff = "-" if c.difference is None else f"{c.difference:+.3g}"
-            ratio = "-" if c.ratio is None else (f"{c.ratio:.2g}" if math.isfinite(c.ratio)
-                                                 else "inf")
-            table.append([c.name, v, e, rv, re, diff, ratio, "ok" if c.agrees else "DISAGREE"])
+            allowed = "-" if c.allowed is None else f"{c.allowed:.2g}"
+            share = ("-" if c.allowed is None or c.difference is None else
+                     f"{abs(c.difference) / c.allowed:.2g}" if c.allowed > 0 else "inf")
+            table.append([c.name, v, e, rv, re, diff, allowed, share,
+                          "ok" if c.agrees else "DISAGREE"])
         out.write(f"{name} (au)\n")
         out.write(tabulate(table, headers=["component", "finite field", "+- error", "reference",
-                                           "+- error", "difference", "diff/error", "verdict"],
-                           disable_numparse=True) + "\n\n")
+                                           "+- error", "difference", "allowed", "diff/allowed",
+                                           "verdict"], disable_numparse=True) + "\n\n")
 
 
 def comparison_document(comparisons, reference, sigmas: float, verdict: str) -> dict[str, Any]:
