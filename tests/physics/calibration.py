@@ -147,4 +147,5 @@ def figures(rows):
     covered = [abs_err <= err + ref_err for _, _, _, _, err, abs_err, ref_err in rows]
     ratios = [err / abs_err for _, _, _, _, err, abs_err, ref_err in rows
               if abs_err > 3 * ref_err and abs_err > 0]
-    return float(np.mean(covered)), float(np.median(ratios)), len(rows), len(ratios)
+    sharpness = float(np.median(ratios)) if ratios else float("nan")
+    return float(np.mean(covered)), sharpness, len(rows), len(ratios)
