@@ -121,6 +121,10 @@ def build_parser() -> argparse.ArgumentParser:
                      "a progress line at most this often: points done, SCF cycles, elapsed "
                      f"and remaining time (default {DEFAULT_LOG_EVERY_S:g}); a terminal gets "
                      "a progress bar")
+    run.add_argument("--units", choices=("au", "esu", "si"), default="au",
+                     help="units of the tables' tensor components (au; esu: dipole in "
+                     "debye, alpha in angstrom^3, beta and gamma in esu; si); the JSON "
+                     "stays in au")
     run.add_argument("--plot", type=Path, metavar="DIR", help="write a PNG per property into "
                      "DIR: each component's Richardson table against field strength")
     _store_options(run)
@@ -168,6 +172,8 @@ def build_parser() -> argparse.ArgumentParser:
     collect.add_argument("--store", type=Path, metavar="PATH", help="the point store (default "
                          f"{DEFAULT_STORE_NAME} beside the job file); never written")
     collect.add_argument("--quiet", action="store_true", help="no log lines on stderr")
+    collect.add_argument("--units", choices=("au", "esu", "si"), default="au",
+                         help="units of the tables' tensor components (the JSON stays in au)")
     collect.set_defaults(handler=cmd_collect)
 
     inspect = sub.add_parser("inspect", help="what a point store holds: molecules and models, "
@@ -266,7 +272,7 @@ def cmd_run(args) -> int:
     else:
         write_json_atomic(result_document(result), out_path)
         logger.info("result written to %s (%.1f s)", out_path, result.wall_time_s)
-        _to_stdout(lambda: write_tables(result, sys.stdout))
+        _to_stdout(lambda: write_tables(result, sys.stdout, args.units))
     if args.plot is not None:
         from fieldprop.plots import write_plots
 
@@ -396,7 +402,7 @@ def cmd_collect(args) -> int:
         write_json_atomic(result_document(result), out_path)
         logger.info("result written to %s (from %d stored points)", out_path,
                     len(result.records))
-        _to_stdout(lambda: write_tables(result, sys.stdout))
+        _to_stdout(lambda: write_tables(result, sys.stdout, args.units))
     require_stable(result)
     return 0
 

@@ -24,7 +24,7 @@ from fieldprop.extrapolate import ComponentStatus
 from fieldprop.keys import short_id
 from fieldprop.plan import FieldPlan
 from fieldprop.units import (ANGSTROM_TO_BOHR, DISPLAY_UNITS, FIELD_AU_TO_V_PER_M,
-                             PROPERTY_ORDER)
+                             PROPERTY_ORDER, TABLE_UNITS)
 
 SCHEMA = "fieldprop-result-1"
 
@@ -122,8 +122,9 @@ def _write_geometry(job, out: TextIO) -> None:
                   f"({mol.atoms[i].symbol}) and {j + 1} ({mol.atoms[j].symbol})\n")
 
 
-def write_tables(result: RunResult, out: TextIO) -> None:
-    """The human-readable report: header, one table per tensor, invariants."""
+def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
+    """The human-readable report: header, one table per tensor (in ``units``:
+    au, esu or si, units.TABLE_UNITS), invariants."""
     job, plan = result.job, result.plan
     model = job.model
     basis = (model.basis if isinstance(model.basis, str)
@@ -158,20 +159,24 @@ def write_tables(result: RunResult, out: TextIO) -> None:
     out.write(f"  {n} field point{'s' if n != 1 else ''}{reused}, "
               f"{sum(r.scf_cycles for r in result.records)} SCF cycles; SCF energy tolerance "
               f"{job.scf.energy_conv_tol_au:g} Eh; E(0) = {result.energy_au:.10f} Eh\n")
-    out.write("  atomic units, Taylor convention E = E0 - mu F - alpha F^2/2 - beta F^3/6 - "
+    system = {"au": "atomic units", "esu": "tensors in esu (dipole in debye, alpha in "
+              "angstrom^3)", "si": "tensors in SI units"}[units]
+    out.write(f"  {system}, Taylor convention E = E0 - mu F - alpha F^2/2 - beta F^3/6 - "
               "gamma F^4/24; error bars are estimates (Richardson table spread plus round-off "
               "floor), not bounds\n\n")
     for name, tensor in result.tensors.items():
+        label, factor = TABLE_UNITS[units][name]
         rows = []
         for c in tensor.components:
             est = c.estimate
-            value, err = ((est.value_au, est.error_au) if c.stable else (None, None))
+            value, err = ((est.value_au * factor, est.error_au * factor) if c.stable
+                          else (None, None))
             v, e = format_pair(value, err)
             rows.append([c.plan.name, v, e, _entry_text(est),
                          est.status.value + (f": {est.reason}" if est.reason and not c.stable
                                              else "")])
         out.write(f"{name} ({'unique components' if plan.route == 'energy' else 'd^n mu_i / dF^n'}"
-                  f", au)\n")
+                  f", {label})\n")
         out.write(tabulate(rows, headers=["component", "value", "+- error", "Richardson entry",
                                           "status"], disable_numparse=True) + "\n")
         if name == "dipole" and result.molecule.charge != 0:

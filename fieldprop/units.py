@@ -52,6 +52,19 @@ DIPOLE_AU_TO_DEBYE = esu_factor(1) / 1e-18
 #: alpha / (4 pi eps0) as a volume: one atomic unit is a0^3.
 ALPHA_AU_TO_ANGSTROM3 = BOHR_TO_ANGSTROM**3
 
+#: The unit systems of the tables (``--units``): per property (label, factor
+#: from au). esu: the Gaussian units of the NLO literature, with the dipole in
+#: debye and alpha as a volume (angstrom^3, = 1e-24 cm^3 esu); si: SI.
+TABLE_UNITS = {
+    "au": {p: ("au", 1.0) for p in PROPERTY_ORDER},
+    "esu": {"dipole": ("debye", DIPOLE_AU_TO_DEBYE),
+            "alpha": ("angstrom^3", ALPHA_AU_TO_ANGSTROM3),
+            "beta": ("esu", esu_factor(3)), "gamma": ("esu", esu_factor(4))},
+    "si": {p: (label, si_factor(n)) for p, n, label in (
+        ("dipole", 1, "C m"), ("alpha", 2, "C m^2 V^-1"), ("beta", 3, "C m^3 V^-2"),
+        ("gamma", 4, "C m^4 V^-3"))},
+}
+
 #: For each property, the extra units reported beside atomic units:
 #: ``{property: [(unit label, factor from au), ...]}``.
 DISPLAY_UNITS = {

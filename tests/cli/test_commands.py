@@ -228,3 +228,22 @@ def test_status_words_agree_with_the_readme_and_help(tmp_path):
     for word in words:
         assert f" {word} " in help_text, word
     assert "h<k>, <m> steps" in help_text and "h<k>, <m> steps" in section
+
+
+@pytest.mark.parametrize("system, label, factor", [
+    ("esu", "esu", "esu_factor"), ("si", "C m^3 V^-2", "si_factor")])
+def test_tables_in_esu_or_si_convert_every_component(tmp_path, system, label, factor):
+    """--units: the tables' components are the JSON's atomic units times the
+    CODATA factor (the JSON stays in au)."""
+    pytest.importorskip("pyscf")
+    from fieldprop import units
+
+    (tmp_path / "lih.toml").write_text(JOB)
+    done = fieldprop("run", "lih.toml", "--quiet", "--units", system, cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    doc = json.loads((tmp_path / "lih.result.json").read_text())
+    section = done.stdout.split(f"beta (d^n mu_i / dF^n, {label})")[1].split("\n\n")[0]
+    row = next(line for line in section.splitlines() if line.startswith("beta_zzz "))
+    shown = float(row.split()[1])
+    au = doc["tensors"]["beta"]["value"][2][2][2]
+    assert shown == pytest.approx(au * getattr(units, factor)(3), rel=1e-6)
