@@ -260,6 +260,8 @@ def cmd_run(args) -> int:
     check_output_path(out_path)
     if args.plot is not None and not args.plot.is_dir():
         raise InputError(f"--plot {args.plot}: is not an existing folder; create it first")
+    if args.plot is not None and not os.access(args.plot, os.W_OK | os.X_OK):
+        raise InputError(f"--plot {args.plot}: folder is not writable; give another folder")
     prepared = prepare(job)
     workers = args.workers or default_workers()
     bar, log_every = _progress(args)

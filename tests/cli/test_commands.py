@@ -1,6 +1,7 @@
 """The commands as users' scripts call them: exit codes, stdout, the result JSON."""
 
 import json
+import os
 import subprocess
 import sys
 import textwrap
@@ -109,6 +110,24 @@ def test_run_plot_into_a_missing_folder_is_refused_before_work(tmp_path):
     (tmp_path / "lih.toml").write_text(JOB)
     done = fieldprop("run", "lih.toml", "--plot", "nowhere", cwd=tmp_path)
     assert done.returncode == 2 and "--plot" in done.stderr
+    assert not (tmp_path / "lih.result.json").exists()
+
+
+def test_run_plot_into_an_unwritable_folder_is_refused_before_work(tmp_path, capsys,
+                                                                  monkeypatch):
+    """A folder the process may not write (simulated: this may run as root, who
+    may write anywhere) is refused before any work, not after it."""
+    import fieldprop.cli
+    from fieldprop.cli import main
+
+    (tmp_path / "lih.toml").write_text(JOB)
+    (tmp_path / "locked").mkdir()
+    real_access = os.access
+    monkeypatch.setattr(fieldprop.cli.os, "access", lambda path, mode: (
+        False if str(path).endswith("locked") else real_access(path, mode)))
+    monkeypatch.chdir(tmp_path)
+    assert main(["run", "lih.toml", "--plot", "locked"]) == 2
+    assert "--plot locked: folder is not writable" in capsys.readouterr().err
     assert not (tmp_path / "lih.result.json").exists()
 
 

@@ -55,3 +55,21 @@ def test_an_exported_block_per_element_gives_the_named_basis_energy(tmp_path):
     _, given = run_job(tmp_path, _job(f'[model.basis]\n        H = """{block}"""\n'
                                       f'        O = """{block}"""'), "given.toml")
     assert given.energy_au == pytest.approx(named.energy_au, abs=1e-8)
+
+
+def test_cartesian_d_functions_as_6_31g_star_was_defined(tmp_path):
+    """[model] cartesian = true: six d functions per shell (water 6-31G*: 25
+    functions against 23 spherical), and the energy of PySCF's own cart=True SCF."""
+    from pyscf import gto, scf
+
+    job_lines = 'basis = "6-31g*"\n        cartesian = {flag}'
+    _, spherical = run_job(tmp_path, _job(job_lines.format(flag="false")), "sph.toml")
+    _, cartesian = run_job(tmp_path, _job(job_lines.format(flag="true")), "cart.toml")
+    assert spherical.backend_facts["n_basis_functions"] == 23
+    assert cartesian.backend_facts["n_basis_functions"] == 25
+    assert cartesian.backend_facts["basis_functions"] == "cartesian"
+    mol = gto.M(atom="O 0 0 0.1173; H 0 0.7572 -0.4692; H 0 -0.7572 -0.4692",
+                basis="6-31g*", cart=True, verbose=0)
+    reference = scf.RHF(mol).run(conv_tol=1e-12).e_tot
+    assert cartesian.energy_au == pytest.approx(reference, abs=1e-8)
+    assert abs(cartesian.energy_au - spherical.energy_au) > 1e-4
