@@ -58,15 +58,15 @@ def test_an_exported_block_per_element_gives_the_named_basis_energy(tmp_path):
 
 
 def test_cartesian_d_functions_as_6_31g_star_was_defined(tmp_path):
-    """[model] cartesian = true: six d functions per shell (water 6-31G*: 25
-    functions against 23 spherical), and the energy of PySCF's own cart=True SCF."""
+    """[model] cartesian = true: six d functions per shell (water 6-31G*: 19
+    functions against 18 spherical), and the energy of PySCF's own cart=True SCF."""
     from pyscf import gto, scf
 
     job_lines = 'basis = "6-31g*"\n        cartesian = {flag}'
     _, spherical = run_job(tmp_path, _job(job_lines.format(flag="false")), "sph.toml")
     _, cartesian = run_job(tmp_path, _job(job_lines.format(flag="true")), "cart.toml")
-    assert spherical.backend_facts["n_basis_functions"] == 23
-    assert cartesian.backend_facts["n_basis_functions"] == 25
+    assert spherical.backend_facts["n_basis_functions"] == 18
+    assert cartesian.backend_facts["n_basis_functions"] == 19
     assert cartesian.backend_facts["basis_functions"] == "cartesian"
     mol = gto.M(atom="O 0 0 0.1173; H 0 0.7572 -0.4692; H 0 -0.7572 -0.4692",
                 basis="6-31g*", cart=True, verbose=0)
