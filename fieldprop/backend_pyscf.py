@@ -266,6 +266,10 @@ class ModelContext:
         if model.method == "dft":
             template.grids.build()
         self.reference: ZeroFieldReference | None = None
+        #: Converged rotations (from the zero-field orbitals) of the points
+        #: solved in this process or handed in, by field vector: starts for
+        #: the points at the opposite field and further along the same line.
+        self.solved: dict[tuple[float, float, float], np.ndarray] = {}
         #: The orientation constraints of a reference that breaks a rotational
         #: symmetry of the molecule (orientation_constraints); empty otherwise.
         self.constraints: tuple[np.ndarray, ...] = ()
@@ -275,6 +279,7 @@ class ModelContext:
     def attach(self, reference: ZeroFieldReference) -> None:
         """Use ``reference`` as every later point's start and state reference."""
         self.reference = reference
+        self.solved = {}
         self.__dict__.pop("response", None)
         self.constraints = ()
         if reference.mo_coeff is not None:
@@ -743,13 +748,74 @@ def _newton(mf, context, c, occ, target: float,
     return work, g, fock
 
 
-def _start_orbitals(context, field_vector_au):
-    """The zero-field orbitals rotated by their linear response to the field."""
+def _start_orbitals(context, field_vector_au) -> tuple[np.ndarray, str]:
+    """The start of a point at field F, and its name: the zero-field orbitals
+    rotated by
+
+    - ``mirror_start``: kappa(-F) + 2 kappa_1 F, when the point at -F was solved
+      in this process (kappa(F) = kappa_1 F + kappa_2 F^2 + O(F^3): exact to
+      second order);
+    - ``line_start``: kappa_1 F + (kappa(a) + kappa(-a)) / (2 t^2), when the
+      points at a = t F and -a were (the quadratic term from the pair; exact to
+      second order);
+    - ``response_start``: kappa_1 F, the linear response (first order).
+
+    kappa are the occupied-virtual rotations of _rotate; a solved point's comes
+    from its converged orbitals (_rotation_from_reference).
+    """
     ref = context.reference
     if ref.field_rotations is None or not np.size(ref.field_rotations):
-        return ref.mo_coeff
-    kappa = np.einsum("j,jn->n", np.asarray(field_vector_au, dtype=float), ref.field_rotations)
-    return _rotate(ref.mo_coeff, ref.mo_occ, kappa)
+        return ref.mo_coeff, "reference_start"
+    f = np.asarray(field_vector_au, dtype=float)
+    linear = np.einsum("j,jn->n", f, ref.field_rotations)
+    solved = context.solved
+    mirror = solved.get(field_key(-f))
+    if mirror is not None:
+        return _rotate(ref.mo_coeff, ref.mo_occ, mirror + 2.0 * linear), "mirror_start"
+    best = None
+    for key, x in solved.items():
+        a = np.asarray(key)
+        t = float(a @ f) / float(f @ f)
+        partner = solved.get(field_key(-a))
+        if (0.0 < t < 1.0 and partner is not None and np.allclose(a, t * f, rtol=0.0,
+                                                                  atol=1e-12)
+                and (best is None or t > best[0])):
+            best = (t, x, partner)
+    if best is not None:
+        t, x, partner = best
+        return (_rotate(ref.mo_coeff, ref.mo_occ, linear + (x + partner) / (2.0 * t * t)),
+                "line_start")
+    return _rotate(ref.mo_coeff, ref.mo_occ, linear), "response_start"
+
+
+def field_key(field) -> tuple[float, float, float]:
+    """A field vector as a dictionary key (exact floats; -0.0 is 0.0)."""
+    return tuple(float(v) + 0.0 for v in field)
+
+
+def _rotation_from_reference(ref_c, ref_occ, c, overlap) -> np.ndarray:
+    """The occupied-virtual rotation x (_rotate's layout) that takes the
+    reference orbitals to the occupied space of ``c``, exactly: per set
+    M = X Y^-1 with X = C0_v^T S C_o, Y = C0_o^T S C_o (independent of rotations
+    within the occupied space) is x Sigma^-1 tan(Sigma), Sigma = (x^T x)^(1/2),
+    so M^T M = tan(Sigma)^2 and x = M f(M^T M), f(T) = arctan(T^1/2) / T^1/2."""
+    sets = [ref_c] if np.asarray(ref_occ).ndim == 1 else list(ref_c)
+    occs = [ref_occ] if np.asarray(ref_occ).ndim == 1 else list(ref_occ)
+    new = [c] if np.asarray(ref_occ).ndim == 1 else list(c)
+    parts = []
+    for c0, o, c1 in zip(sets, occs, new):
+        occupied, virtual = c0[:, o > 0], c0[:, o == 0]
+        c1_occ = c1[:, o > 0]
+        x = virtual.T @ overlap @ c1_occ
+        y = occupied.T @ overlap @ c1_occ
+        m = np.linalg.solve(y.T, x.T).T
+        w, v = np.linalg.eigh(m.T @ m)
+        root = np.sqrt(np.clip(w, 0.0, None))
+        f = np.ones_like(root)
+        big = root > 1e-8
+        f[big] = np.arctan(root[big]) / root[big]
+        parts.append((m @ (v * f) @ v.T).ravel())
+    return np.concatenate(parts)
 
 
 def _ladder(mf, dm0, target: float, attempts: list[str]) -> int:
@@ -839,9 +905,9 @@ def _converge(mf, context, point) -> tuple[list[str], int, np.ndarray | None]:
         if newton_ok:
             constraints = context.constraints = orientation_constraints(context, start, occ)
     elif newton_ok:
-        attempts.append("response_start")
         occ = reference.mo_occ
-        start = _start_orbitals(context, point.field_vector_au)
+        start, how = _start_orbitals(context, point.field_vector_au)
+        attempts.append(how)
     if newton_ok:
         attempts.append("newton")
         work, g, fock = _newton(mf, context, start, occ, target, constraints)
@@ -1124,10 +1190,12 @@ def compute_reference(context: ModelContext,
     return record, reference
 
 
-def compute_point(context: ModelContext, task: PointTask) -> PointRecord:
+def compute_point(context: ModelContext, task: PointTask, solved=None) -> PointRecord:
     """Compute one field point from the context's zero-field reference: SCF
-    (response start and Newton finish, or the ladder), state checks against the
-    reference, post-HF.
+    (response, mirror or line start and Newton finish, or the ladder), state
+    checks against the reference, post-HF. ``solved``: {field: rotation} of
+    points converged elsewhere (another worker), for the start; the point's
+    own converged rotation joins ``context.solved``.
 
     A point on another state than zero field's (occupied overlap, <S^2>,
     occupation by symmetry) is returned with ``state_issue`` set; the analysis
@@ -1139,7 +1207,15 @@ def compute_point(context: ModelContext, task: PointTask) -> PointRecord:
     """
     if context.reference is None:
         raise ValueError("compute the zero-field reference first (compute_reference)")
-    return _evaluate(context, task)[0]
+    if solved:
+        context.solved.update(solved)
+    record, mf = _evaluate(context, task)
+    ref = context.reference
+    if (ref.mo_coeff is not None and mf.mo_coeff is not None and not record.state_issue
+            and np.asarray(mf.mo_occ).shape == np.asarray(ref.mo_occ).shape):
+        context.solved[field_key(task.point.field_vector_au)] = _rotation_from_reference(
+            ref.mo_coeff, ref.mo_occ, np.asarray(mf.mo_coeff), context.overlap)
+    return record
 
 
 def _evaluate(context: ModelContext, task: PointTask):

@@ -24,9 +24,10 @@ import time
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from dataclasses import dataclass
 
+import numpy as np
 from tqdm import tqdm
 
-from fieldprop.backend_pyscf import ModelContext, compute_point, compute_reference
+from fieldprop.backend_pyscf import ModelContext, compute_point, compute_reference, field_key
 from fieldprop.errors import BackendError, FieldpropError
 from fieldprop.records import PointFailure, PointRecord, PointTask, ZeroFieldReference
 from fieldprop.store import PointStore
@@ -72,18 +73,25 @@ def _init_worker(task: PointTask, reference: ZeroFieldReference) -> None:
     _WORKER_CONTEXT = ModelContext(task.molecule, task.model, task.scf, reference)
 
 
-def _worker_task(task: PointTask) -> PointRecord | PointFailure:
-    return run_task(_WORKER_CONTEXT, task)
+def _worker_task(task: PointTask, solved: dict):
+    """One point in a worker: its outcome, and its converged rotation (None
+    after a failure) for the points that start from it."""
+    outcome = run_task(_WORKER_CONTEXT, task, solved)
+    key = field_key(task.point.field_vector_au)
+    rotation = (_WORKER_CONTEXT.solved.get(key) if isinstance(outcome, PointRecord) else None)
+    return outcome, rotation
 
 
-def run_task(context: ModelContext, task: PointTask) -> PointRecord | PointFailure:
-    """Compute one point. Any exception inside it becomes a PointFailure
-    (picklable, named): the other points finish and are kept. A FieldpropError
-    keeps its message; anything else (an exception inside PySCF) is named with
-    its type and message, its traceback logged at debug level."""
+def run_task(context: ModelContext, task: PointTask,
+             solved: dict | None = None) -> PointRecord | PointFailure:
+    """Compute one point (``solved``: converged rotations of other points, for
+    its start). Any exception inside it becomes a PointFailure (picklable,
+    named): the other points finish and are kept. A FieldpropError keeps its
+    message; anything else (an exception inside PySCF) is named with its type
+    and message, its traceback logged at debug level."""
     start = time.perf_counter()
     try:
-        return compute_point(context, task)
+        return compute_point(context, task, solved)
     except FieldpropError as exc:
         return PointFailure(task.point, str(exc), type(exc).__name__,
                             time.perf_counter() - start)
@@ -230,16 +238,71 @@ def compute_points(tasks: list[PointTask], store: PointStore, facts: dict, descr
     return PointsOutcome(records, failures, computed + len(missing), reused, stored_failures)
 
 
+def _predecessors(tasks, missing) -> dict[int, tuple[int, ...]]:
+    """The points whose converged orbitals start each missing point best
+    (backend_pyscf._start_orbitals): the opposite field, when it comes first in
+    the plan (mirror start); else the nearest smaller pair on the same line
+    through zero field (line start); else none."""
+    keys = {field_key(tasks[i].point.field_vector_au): i for i in missing}
+    out: dict[int, tuple[int, ...]] = {}
+    for i in missing:
+        f = np.asarray(tasks[i].point.field_vector_au, dtype=float)
+        if not f.any():
+            out[i] = ()
+            continue
+        partner = keys.get(field_key(-f))
+        if partner is not None and partner < i:
+            out[i] = (partner,)
+            continue
+        best = None
+        for key, j in keys.items():
+            a = np.asarray(key)
+            t = float(a @ f) / float(f @ f)
+            opposite = keys.get(field_key(-a))
+            if (0.0 < t < 1.0 and opposite is not None
+                    and np.allclose(a, t * f, rtol=0.0, atol=1e-12)
+                    and (best is None or t > best[0])):
+                best = (t, j, opposite)
+        out[i] = best[1:] if best is not None else ()
+    return out
+
+
 def _pool(tasks, missing, reference, workers, finish) -> None:
-    """The missing points in a process pool, each committed as it completes."""
+    """The missing points in a process pool, each committed as it completes.
+
+    As many points run as there are workers; the next is one whose
+    predecessors (_predecessors) are done, handed their converged rotations,
+    or, when none is ready and a worker would idle, the first waiting one
+    (it then starts from the linear response alone)."""
+    before = _predecessors(tasks, missing)
+    rotations: dict = {}
+    finished: set[int] = set()
+    waiting = list(missing)
+    pending: dict = {}
     pool = ProcessPoolExecutor(max_workers=min(workers, len(missing)), initializer=_init_worker,
                                initargs=(tasks[0], reference))
+
+    def submit() -> None:
+        ready = next((i for i in waiting if finished.issuperset(before[i])), waiting[0])
+        waiting.remove(ready)
+        hints = {k: rotations[k] for k in (field_key(tasks[j].point.field_vector_au)
+                                           for j in before[ready]) if k in rotations}
+        pending[pool.submit(_worker_task, tasks[ready], hints)] = ready
+
     try:
-        pending = {pool.submit(_worker_task, tasks[i]): i for i in missing}
+        while waiting and len(pending) < workers:
+            submit()
         while pending:
             done, _ = wait(pending, return_when=FIRST_COMPLETED)
             for future in done:
-                finish(pending.pop(future), future.result())
+                i = pending.pop(future)
+                outcome, rotation = future.result()
+                finished.add(i)
+                if rotation is not None:
+                    rotations[field_key(tasks[i].point.field_vector_au)] = rotation
+                finish(i, outcome)
+            while waiting and len(pending) < workers:
+                submit()
     except BaseException:
         # Interrupted (Ctrl-C, SIGTERM) or failed: drop the queued points and end
         # the running ones now rather than after their SCF. The executor has no

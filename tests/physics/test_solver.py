@@ -202,3 +202,63 @@ def test_an_exception_inside_pyscf_fails_that_point_by_name_without_a_traceback(
     assert main(["plan", job.path, "--json-lines"]) == 0
     stored = [json.loads(x)["stored"] for x in capsys.readouterr().out.splitlines()]
     assert stored.count("failed") == 1 and stored.count("stored") == len(stored) - 1
+
+
+def test_mirror_and_line_starts_are_second_order(tmp_path):
+    """After the point at -F is solved, the start at +F (mirror) is exact to
+    second order in F, and after +-a the start at F = 2a (line) too: their
+    orbital gradients are far below the response start's, which is exact to
+    first order only (O(F^3) against O(F^2); measured for water HF/6-31G* at
+    h = 0.004 au: mirror and line both 0.022 of the response start's)."""
+    from fieldprop.plan import FieldPoint
+
+    job = _job(tmp_path, WATER, 'method = "hf"\n        basis = "6-31g*"')
+    prepared = prepare(job)
+    zero = next(t for t in prepared.tasks if t.is_zero_field)
+    context = backend_pyscf.ModelContext(zero.molecule, zero.model, zero.scf)
+    backend_pyscf.compute_reference(context, zero)
+    direction = np.array([0.3, -0.5, 0.8]) / np.linalg.norm([0.3, -0.5, 0.8])
+
+    def start_gradient(field):
+        c, how = backend_pyscf._start_orbitals(context, field)
+        mf = context.mean_field(field)
+        occ = context.reference.mo_occ
+        fock = mf.get_fock(dm=mf.make_rdm1(c, occ))
+        return backend_pyscf._gradient_norm(mf, fock, (), c, occ), how
+
+    def solve(field, index):
+        import dataclasses
+
+        task = dataclasses.replace(zero, point=FieldPoint(index, (9, 9, 9), 0, tuple(field)))
+        return backend_pyscf.compute_point(context, task)
+
+    h = 0.004
+    g_response, how = start_gradient(h * direction)
+    assert how == "response_start"
+    solve(-h * direction, 1)
+    g_mirror, how = start_gradient(h * direction)
+    assert how == "mirror_start" and g_mirror < 0.1 * g_response, (g_mirror, g_response)
+    solve(h * direction, 2)
+    g_line, how = start_gradient(2 * h * direction)
+    assert how == "line_start"
+    context.solved.clear()
+    g_line_response, _ = start_gradient(2 * h * direction)
+    assert g_line < 0.1 * g_line_response, (g_line, g_line_response)
+
+
+def test_two_workers_hand_converged_points_on_as_starts(tmp_path):
+    """With two workers, points still start from the converged point at the
+    opposite field or from the pair before them on their line (their
+    rotations go through the parent), and the tensors equal those of one
+    worker within their error bars."""
+    job = _job(tmp_path, WATER, 'method = "hf"\n        basis = "6-31g*"')
+    from fieldprop.engine import compute
+
+    one = compute(job, workers=1, progress=False)
+    two = compute(job, workers=2, progress=False)
+    starts = [r.attempts[0] for r in two.records[1:]]
+    assert starts.count("mirror_start") >= len(starts) // 3, starts
+    assert "line_start" in starts, starts
+    for name in ("alpha", "beta"):
+        a, b = one.tensors[name], two.tensors[name]
+        assert agree(a.value_au, np.hypot(a.error_au, b.error_au), b.value_au, 1e-9).all()
