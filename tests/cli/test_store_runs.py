@@ -60,10 +60,28 @@ def stored_points(path) -> int:
         db.close()
 
 
-def numbers(doc):
-    """The numbers of a result: tensors and invariants (values and error bars)."""
-    return {"tensors": doc["tensors"], "invariants": doc["invariants"],
-            "energy_au": doc["energy_au"]}
+def _flat(x):
+    if isinstance(x, list):
+        return [v for item in x for v in _flat(item)]
+    return [x]
+
+
+def assert_same_numbers(a, b):
+    """Two results of one job agree: each value within the other's error bar,
+    each bar within a factor of 4. A point's start depends on which of its
+    neighbours this process solved before it, so a resumed or shared run
+    converges the same states to within the SCF's noise, not bit for bit, and
+    the noise-limited bars follow the gradients reached (2.2x apart seen for
+    gamma)."""
+    assert a["energy_au"] == b["energy_au"]  # zero field: the stored reference itself
+    for name in a["tensors"]:
+        va, vb = _flat(a["tensors"][name]["value"]), _flat(b["tensors"][name]["value"])
+        ea, eb = _flat(a["tensors"][name]["error"]), _flat(b["tensors"][name]["error"])
+        for x, y, ex, ey in zip(va, vb, ea, eb, strict=True):
+            assert (x is None) == (y is None), name
+            if x is not None:
+                assert abs(x - y) <= max(ex, ey), (name, x, y, ex, ey)
+                assert 0.25 * ey <= ex <= 4.0 * ey, (name, ex, ey)
 
 
 def test_a_killed_run_resumes_without_recomputing_and_gives_the_same_numbers(tmp_path):
@@ -92,9 +110,7 @@ def test_a_killed_run_resumes_without_recomputing_and_gives_the_same_numbers(tmp
     fresh = fieldprop("run", "water.toml", "--no-store", "--json", "fresh.json", "--quiet",
                       cwd=tmp_path)
     assert fresh.returncode == 0, fresh.stderr
-    # Every point is the same deterministic SCF from the same zero-field
-    # reference (stored bit for bit), so the numbers agree exactly.
-    assert numbers(doc) == numbers(json.loads((tmp_path / "fresh.json").read_text()))
+    assert_same_numbers(doc, json.loads((tmp_path / "fresh.json").read_text()))
 
 
 @pytest.mark.parametrize("sig, code, word", [(signal.SIGINT, 130, "interrupted"),
@@ -152,8 +168,9 @@ def test_two_runs_sharing_one_store_write_every_point_once(tmp_path):
     serial = fieldprop("run", "water.toml", "--no-store", "--json", "serial.json", "--quiet",
                        cwd=tmp_path)
     assert serial.returncode == 0, serial.stderr
-    reference = numbers(json.loads((tmp_path / "serial.json").read_text()))
-    assert numbers(docs[0]) == reference and numbers(docs[1]) == reference
+    reference = json.loads((tmp_path / "serial.json").read_text())
+    assert_same_numbers(docs[0], reference)
+    assert_same_numbers(docs[1], reference)
 
 
 #: Runs ``fieldprop collect`` with PySCF made unimportable.

@@ -58,13 +58,15 @@ def test_one_more_level_computes_only_the_new_points(tmp_path):
     # the doubled offsets of the top level are the next level's unit offsets).
     assert longer.counts.reused == len(short.plan.points)
     assert longer.counts.computed == len(longer.plan.points) - len(short.plan.points) > 0
-    # A result from reused points equals one computed from scratch, bit for bit:
-    # each point is the same deterministic SCF from the same stored reference.
+    # A result from reused points equals one computed from scratch to within
+    # the SCF's noise (a point's start depends on the neighbours solved before
+    # it in the same process, so not bit for bit): far inside the error bars.
     fresh = compute(write_job(tmp_path, "c.toml", response="field_au = 0.002\nlevels = 4"),
                     progress=False)
     for name in ("alpha", "beta"):
-        np.testing.assert_array_equal(longer.tensors[name].value_au, fresh.tensors[name].value_au)
-        np.testing.assert_array_equal(longer.tensors[name].error_au, fresh.tensors[name].error_au)
+        a, b = longer.tensors[name], fresh.tensors[name]
+        assert np.all(np.abs(a.value_au - b.value_au) <= 1e-3 * np.maximum(a.error_au,
+                                                                            b.error_au))
 
 
 def test_gamma_after_beta_and_the_automatic_window_after_a_fixed_field_reuse_every_point(
