@@ -54,8 +54,9 @@ def run_job(tmp_path, text: str, name: str = "job.toml", workers: int = 1):
     return job, compute(job, workers=workers, progress=False)
 
 
-def mean_field(job, conv_tol=1e-12):
-    """An independent PySCF SCF of the job's molecule and model (no fieldprop code)."""
+def mean_field(job, conv_tol=1e-12, field=None, origin=(0.0, 0.0, 0.0)):
+    """An independent PySCF SCF of the job's molecule and model (no fieldprop
+    code); with ``field`` (au), +F.(r - origin) added to its core Hamiltonian."""
     from pyscf import dft, gto, scf
 
     m = job.molecule
@@ -68,6 +69,11 @@ def mean_field(job, conv_tol=1e-12):
         mf.grids.level = job.scf.grid_level
     else:
         mf = (scf.UHF if unrestricted else scf.RHF)(mol)
+    if field is not None:
+        with mol.with_common_orig(np.asarray(origin, dtype=float)):
+            r = mol.intor_symmetric("int1e_r", comp=3)
+        h = mf.get_hcore() + np.einsum("x,xij->ij", np.asarray(field, dtype=float), r)
+        mf.get_hcore = lambda *args: h
     mf.conv_tol = conv_tol
     # A reference converged to g = 1e-11: its dipole and CPHF alpha err by ~g.
     mf.conv_tol_grad = 1e-11
