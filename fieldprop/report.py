@@ -399,9 +399,14 @@ def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, json_lines: bool = F
                                   "stored": status(t)}) + "\n")
         return
     counts = {s: sum(1 for t in tasks if status(t) == s) for s in ("stored", "failed", "missing")}
-    out.write(f"route {plan.route}; ladder h_k = {plan.field_au:g} * {plan.ratio:g}**k, "
-              f"k = 0..{plan.levels - 1}; {len(plan.points)} field points for "
-              f"{len(plan.components)} components\n")
+    if len(plan.points) == 1:
+        out.write(f"no field applied: 1 point (zero field) for {len(plan.components)} "
+                  "components\n")
+    else:
+        out.write(f"differentiating {'E(F)' if plan.route == 'energy' else 'the SCF dipole'}; "
+                  f"ladder h_k = {plan.field_au:g} * {plan.ratio:g}**k, "
+                  f"k = 0..{plan.levels - 1}; {len(plan.points)} field points for "
+                  f"{len(plan.components)} components\n")
     out.write(f"store {store_label or '(none yet)'}: {counts['stored']} stored, "
               f"{counts['failed']} failed, {counts['missing']} to compute\n")
     rows = [[short_id(t.key), p.level, p.label, *(f"{v:+.6g}" for v in p.field_vector_au),
