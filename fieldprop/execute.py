@@ -243,27 +243,28 @@ def _predecessors(tasks, missing) -> dict[int, tuple[int, ...]]:
     (backend_pyscf._start_orbitals): the opposite field, when it comes first in
     the plan (mirror start); else the nearest smaller pair on the same line
     through zero field (line start); else none."""
-    keys = {field_key(tasks[i].point.field_vector_au): i for i in missing}
-    out: dict[int, tuple[int, ...]] = {}
+    lines: dict[tuple, dict[float, int]] = {}  # direction -> {signed position: index}
+    where: dict[int, tuple[tuple, float]] = {}
     for i in missing:
         f = np.asarray(tasks[i].point.field_vector_au, dtype=float)
         if not f.any():
-            out[i] = ()
             continue
-        partner = keys.get(field_key(-f))
+        length = float(np.linalg.norm(f))
+        sign = 1.0 if f[np.flatnonzero(f)[0]] > 0 else -1.0
+        direction = tuple(np.round(sign * f / length, 12) + 0.0)
+        lines.setdefault(direction, {})[sign * length] = i
+        where[i] = (direction, sign * length)
+    out: dict[int, tuple[int, ...]] = {i: () for i in missing}
+    for i, (direction, p) in where.items():
+        on_line = lines[direction]
+        partner = on_line.get(-p)
         if partner is not None and partner < i:
             out[i] = (partner,)
             continue
-        best = None
-        for key, j in keys.items():
-            a = np.asarray(key)
-            t = float(a @ f) / float(f @ f)
-            opposite = keys.get(field_key(-a))
-            if (0.0 < t < 1.0 and opposite is not None
-                    and np.allclose(a, t * f, rtol=0.0, atol=1e-12)
-                    and (best is None or t > best[0])):
-                best = (t, j, opposite)
-        out[i] = best[1:] if best is not None else ()
+        inner = [q for q in on_line if q * p > 0 and abs(q) < abs(p) and -q in on_line]
+        if inner:
+            q = max(inner, key=abs)
+            out[i] = (on_line[q], on_line[-q])
     return out
 
 
