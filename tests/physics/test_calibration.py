@@ -14,7 +14,7 @@ from calibration import LARGER_SET, collect, figures
 
 @pytest.mark.slow
 def test_error_bars_cover_95_percent_and_are_within_30x(tmp_path):
-    rows = collect(tmp_path)
+    rows = collect(tmp_path, workers=2)
     coverage, sharpness, n_components, n_resolved = figures(rows)
     print(f"coverage {coverage:.3f} of {n_components} components; median bar/true error "
           f"{sharpness:.1f} over {n_resolved} resolvable ones")
