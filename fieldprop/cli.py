@@ -17,6 +17,7 @@ for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_var, "1")
 
 import argparse  # noqa: E402
+import json  # noqa: E402
 import logging  # noqa: E402
 import sys  # noqa: E402
 from pathlib import Path  # noqa: E402
@@ -59,9 +60,51 @@ reading the tables:
                 ok-zero-field       trust it; a value at zero field, no derivative:
                                     the error bar is its noise
                 unstable            no number: the table did not settle (exit code 1)
+                missing             no number: the points it needs are not computed
+                                    (collect --allow-partial; exit code 3)
   Richardson    h<k>, <m> steps     the extrapolated entry that starts at the k-th field
   entry                             strength h_k = h0 ratio^k and took m steps (it uses
                                     h_k .. h_k+m); F = 0: no derivative taken
+"""
+
+PLAN_EXAMPLES = """\
+examples:
+  fieldprop plan water.toml                      the points, and which are stored
+  fieldprop plan water.toml --format json        one JSON object per point
+  fieldprop plan water.toml --missing --ids      ids of the points still to compute
+  n=$(fieldprop plan water.toml --count)         size of a job array (0..n-1) for
+                                                 fieldprop point water.toml --index I
+"""
+
+POINT_EXAMPLES = """\
+examples:
+  fieldprop point water.toml --zero-field                compute zero field first, once
+  fieldprop point water.toml --id 3f2a9c01b7de           one point into the store
+  fieldprop point water.toml --index "$ARRAY_INDEX"      a job-array element (after
+                                                         fieldprop plan water.toml --count)
+  fieldprop plan water.toml --missing --ids | xargs -n 1 -P 2 fieldprop point water.toml --id
+  fieldprop point water.toml --id 3f2a9c01b7de --stdout >> points.jsonl
+                                                         a point line; the store only read
+exit codes: 0 every point computed or stored already; 1 a point failed (its reason on
+stderr; stored as failed); 2 bad input (an id not in the plan, no to-do list); 130/143
+interrupted.
+"""
+
+COLLECT_EXAMPLES = """\
+examples:
+  fieldprop collect water.toml                        tables; water.result.json beside it
+  cat points/*.jsonl | fieldprop collect water.toml --points - --json -
+  fieldprop collect water.toml --allow-partial        what the stored points determine
+exit codes: 0 complete and stable; 1 a stored point failed, or a component is unstable;
+2 bad input (a corrupt, foreign or out-of-plan point line); 3 points missing (their ids
+on stderr; with --allow-partial the result is written all the same).
+"""
+
+REPORT_EXAMPLES = """\
+examples:
+  fieldprop report water.result.json urea.result.json --units esu
+  fieldprop report results/*.json --format csv > table.csv
+  fieldprop report water.result.json --components --convention perturbation
 """
 
 #: Seconds between progress lines in a batch log (stderr not a terminal).
@@ -86,6 +129,16 @@ def _progress(args) -> tuple[bool, float | None]:
     if sys.stderr.isatty():
         return True, None
     return False, args.log_every
+
+
+def _non_negative_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a whole number, got {text!r}") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"must be >= 0, got {value}")
+    return value
 
 
 def _positive_float(text: str) -> float:
@@ -127,6 +180,9 @@ def build_parser() -> argparse.ArgumentParser:
                      "stays in au")
     run.add_argument("--plot", type=Path, metavar="DIR", help="write a PNG per property into "
                      "DIR: each component's Richardson table against field strength")
+    run.add_argument("--format", choices=("table", "json", "csv"), default="table",
+                     help="what goes to stdout: the tables (default), the result JSON, or a "
+                     "CSV of the tensor components; the result file is written all the same")
     _store_options(run)
     run.set_defaults(handler=cmd_run)
 
@@ -156,25 +212,96 @@ def build_parser() -> argparse.ArgumentParser:
     _store_options(check)
     check.set_defaults(handler=cmd_check)
 
-    plan = sub.add_parser("plan", help="print the field points run would compute, and which "
-                          "of them the store holds already")
+    plan = sub.add_parser("plan", help="the field points run would compute, and which of them "
+                          "the store holds already; ids and counts for job arrays",
+                          epilog=PLAN_EXAMPLES,
+                          formatter_class=argparse.RawDescriptionHelpFormatter)
     plan.add_argument("job", type=Path, help="job file (TOML)")
-    plan.add_argument("--json-lines", action="store_true", help="one JSON object per point")
+    plan.add_argument("--format", choices=("table", "json", "csv"), default="table",
+                      help="table (default); json: one JSON object per point (a stable id "
+                      "from its store key, field vector in au, ladder level, whether it is "
+                      "stored); csv")
+    plan.add_argument("--json-lines", action="store_true", help="the same as --format json")
+    plan.add_argument("--ids", action="store_true", help="just the points' ids, one per line")
+    plan.add_argument("--missing", action="store_true", help="list only the points still to "
+                      "compute (not stored; stored failures too with --retry-failed)")
+    plan.add_argument("--count", action="store_true", help="just the number of points still "
+                      "to compute, for sizing a job array; it also fixes that list in the "
+                      "store, so that point --index N finds the same N-th point however many "
+                      "elements have finished meanwhile")
+    plan.add_argument("--retry-failed", action="store_true", help="count stored failures as "
+                      "still to compute")
+    plan.add_argument("--points", type=Path, metavar="PATH", help="point lines (a file, or - "
+                      "for standard input) whose points count as computed, beside the store's")
     plan.add_argument("--store", type=Path, metavar="PATH", help="the point store to look in "
-                      f"(default {DEFAULT_STORE_NAME} beside the job file); never written")
+                      f"(default {DEFAULT_STORE_NAME} beside the job file); written only by "
+                      "--count")
     plan.set_defaults(handler=cmd_plan)
 
-    collect = sub.add_parser("collect", help="the result from stored points alone, no "
-                             "computation; exit 3 naming the missing points if any")
+    point = sub.add_parser("point", help="compute planned field points into the store (or "
+                           "as point lines on stdout): one job-array element",
+                           epilog=POINT_EXAMPLES,
+                           formatter_class=argparse.RawDescriptionHelpFormatter)
+    point.add_argument("job", type=Path, help="job file (TOML)")
+    which = point.add_mutually_exclusive_group(required=True)
+    which.add_argument("--id", action="append", metavar="ID", dest="ids",
+                       help="a point id from fieldprop plan (repeat for more; - reads ids, "
+                       "or plan's JSON lines, from standard input)")
+    which.add_argument("--index", type=_non_negative_int, metavar="N", help="the N-th point "
+                       "(from 0) of the to-do list fixed by fieldprop plan --count: a job "
+                       "array's element index")
+    which.add_argument("--zero-field", action="store_true", help="the zero-field point, "
+                       "which every other point starts from: compute it first, once")
+    point.add_argument("--stdout", action="store_true", help="write each point as a point "
+                       "line (JSON) on stdout instead of storing it; the store is only read")
+    point.add_argument("--threads", type=_positive_int, default=None, help="BLAS/OpenMP "
+                       "threads of this process (default: OMP_NUM_THREADS, else 1)")
+    point.add_argument("--retry-failed", action="store_true", help="compute again a point "
+                       "stored as failed")
+    point.add_argument("--quiet", action="store_true", help="no log lines on stderr")
+    point.add_argument("--store", type=Path, metavar="PATH", help="the point store "
+                       f"(default {DEFAULT_STORE_NAME} beside the job file)")
+    point.set_defaults(handler=cmd_point)
+
+    collect = sub.add_parser("collect", help="the result from stored points and point lines, "
+                             "no computation; exit 3 naming the missing points if any",
+                             epilog=COLLECT_EXAMPLES,
+                             formatter_class=argparse.RawDescriptionHelpFormatter)
     collect.add_argument("job", type=Path, help="job file (TOML)")
     collect.add_argument("--json", type=Path, help="result JSON path (default JOB.result.json "
                          "beside the job file; - writes it to stdout instead of the tables)")
+    collect.add_argument("--points", type=Path, metavar="PATH", help="point lines (a file, or "
+                         "- for standard input) from fieldprop point --stdout, beside the "
+                         "store's points")
+    collect.add_argument("--allow-partial", action="store_true", help="report what the points "
+                         "found determine; components that need missing points are marked "
+                         "missing (exit code 3 all the same)")
     collect.add_argument("--store", type=Path, metavar="PATH", help="the point store (default "
                          f"{DEFAULT_STORE_NAME} beside the job file); never written")
+    collect.add_argument("--format", choices=("table", "json", "csv"), default="table",
+                         help="what goes to stdout: the tables (default), the result JSON, or "
+                         "a CSV of the tensor components")
     collect.add_argument("--quiet", action="store_true", help="no log lines on stderr")
     collect.add_argument("--units", choices=("au", "esu", "si"), default="au",
                          help="units of the tables' tensor components (the JSON stays in au)")
     collect.set_defaults(handler=cmd_collect)
+
+    report = sub.add_parser("report", help="result JSON files as a table, CSV or JSON in any "
+                            "unit system and convention, without computing",
+                            epilog=REPORT_EXAMPLES,
+                            formatter_class=argparse.RawDescriptionHelpFormatter)
+    report.add_argument("results", type=Path, nargs="+", metavar="RESULT.json",
+                        help="result files of fieldprop run or collect")
+    report.add_argument("--units", choices=("au", "esu", "si"), default="au",
+                        help="au (default); esu: dipole in debye, alpha in angstrom^3, beta "
+                        "and gamma in esu; si")
+    report.add_argument("--convention", choices=("taylor", "perturbation"), default="taylor",
+                        help="taylor (default, fieldprop's) or perturbation (the B "
+                        "convention: beta/2, gamma/6)")
+    report.add_argument("--format", choices=("table", "csv", "json"), default="table")
+    report.add_argument("--components", action="store_true", help="one row per tensor "
+                        "component instead of one row of invariants per result")
+    report.set_defaults(handler=cmd_report)
 
     inspect = sub.add_parser("inspect", help="what a point store holds: molecules and models, "
                              "points computed and failed, size; or every point as JSON lines")
@@ -274,7 +401,7 @@ def cmd_run(args) -> int:
     else:
         write_json_atomic(result_document(result), out_path)
         logger.info("result written to %s (%.1f s)", out_path, result.wall_time_s)
-        _to_stdout(lambda: write_tables(result, sys.stdout, args.units))
+        _to_stdout(lambda: _write_result(result, args.format, args.units, out_path))
     if args.plot is not None:
         from fieldprop.plots import write_plots
 
@@ -360,52 +487,269 @@ def cmd_check(args) -> int:
     return 0
 
 
+def _write_result(result, fmt: str, units: str, label) -> None:
+    """A result on stdout: the tables, the result JSON, or a CSV of components."""
+    from fieldprop.report import result_document, write_tables
+
+    if fmt == "table":
+        write_tables(result, sys.stdout, units)
+    elif fmt == "json":
+        json.dump(result_document(result), sys.stdout, indent=1, allow_nan=False)
+        sys.stdout.write("\n")
+    else:
+        from fieldprop import summary
+
+        summary.write([(str(label), result_document(result))], sys.stdout, units, "taylor",
+                      "csv", components=True)
+
+
+def _read_point_lines(path: Path | None):
+    """(lines, label) of a --points argument (- is standard input), or None."""
+    if path is None:
+        return None
+    if str(path) == "-":
+        return sys.stdin.read().splitlines(), "stdin"
+    try:
+        return path.read_text(encoding="utf-8").splitlines(), str(path)
+    except FileNotFoundError:
+        raise InputError(f"--points {path}: no such file") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(f"--points {path}: cannot be read "
+                         f"({getattr(exc, 'strerror', None) or exc})") from None
+
+
+def _to_do(prepared, rows, retry_failed: bool) -> list:
+    """The planned tasks still to compute: not found, or failed with retry_failed."""
+    return [t for t in prepared.tasks if t.key not in rows
+            or (retry_failed and not rows[t.key].ok)]
+
+
 def cmd_plan(args) -> int:
-    from fieldprop.engine import make_plan, make_tasks
+    from fieldprop.engine import gather, todo_list_key
     from fieldprop.job import load_job
-    from fieldprop.molecule import build_molecule
     from fieldprop.report import write_plan
+    from fieldprop.store import PointStore, default_store_path
 
     job = load_job(args.job)
-    plan = make_plan(job)
-    tasks = make_tasks(job, build_molecule(job.molecule, job.response.origin), plan)
-    store = _open_store(args, args.job, read_only=True)
-    stored = {}
-    if store is not None:
-        with store:
-            stored = store.get_points(t.key for t in tasks)
-    write_plan(plan, tasks, stored, sys.stdout, json_lines=args.json_lines,
-               store_label=store.label if store is not None else None)
+    lines = _read_point_lines(args.points)
+    path = args.store if args.store is not None else default_store_path(args.job)
+    if args.count:
+        store = PointStore.open(path)  # fixes the to-do list: written
+    else:
+        store = PointStore.open(path, read_only=True) if path.exists() else None
+    try:
+        prepared, rows = gather(job, store, lines, facts_needed=False)
+        todo = _to_do(prepared, rows, args.retry_failed)
+        if args.count:
+            when = store.put_todo(todo_list_key(prepared), [t.key for t in todo])
+            logger.info("%d of %d points to compute; the list for point --index fixed in %s "
+                        "at %s", len(todo), len(prepared.tasks), store.label, when)
+            _to_stdout(lambda: print(len(todo)))
+            return 0
+        fmt = "ids" if args.ids else "json" if args.json_lines else args.format
+        only = {t.key for t in todo} if args.missing else None
+        _to_stdout(lambda: write_plan(prepared.plan, prepared.tasks, rows, sys.stdout, fmt,
+                                      store.label if store is not None else None, only))
+    finally:
+        if store is not None:
+            store.close()
     return 0
+
+
+def _requested_ids(args) -> list[str]:
+    """The ids of --id, with - read from standard input (ids, or plan's JSON lines)."""
+    out = []
+    for given in args.ids:
+        if given != "-":
+            out.append(given)
+            continue
+        for number, text in enumerate(sys.stdin.read().splitlines(), start=1):
+            text = text.strip()
+            if text.startswith("{"):
+                try:
+                    out.append(str(json.loads(text)["id"]))
+                except (ValueError, KeyError, TypeError):
+                    raise InputError(f"--id -: stdin line {number} is neither an id nor a "
+                                     "JSON line of fieldprop plan") from None
+            else:
+                out.extend(text.split())
+    if not out:
+        raise InputError("--id: no point id given (stdin was empty)")
+    return out
+
+
+def _targets(args, prepared, store) -> list:
+    """The planned tasks a ``point`` command is asked for, in order, once each."""
+    from fieldprop.engine import todo_list_key
+    from fieldprop.keys import short_id
+
+    tasks = prepared.tasks
+    if args.zero_field:
+        return [tasks[0]]
+    by_key = {t.key: t for t in tasks}
+    if args.index is not None:
+        todo = store.get_todo(todo_list_key(prepared)) if store is not None else None
+        if todo is None:
+            raise InputError(f"{prepared.job.path}: --index {args.index}: no to-do list of this "
+                             f"plan in {store.label if store is not None else 'any store'}; "
+                             f"run fieldprop plan {prepared.job.path} --count first (it fixes "
+                             "the list --index counts in)")
+        keys, when = todo
+        if args.index >= len(keys):
+            raise InputError(f"{prepared.job.path}: --index {args.index}: the to-do list fixed "
+                             f"at {when} has {len(keys)} point(s), indices 0.."
+                             f"{len(keys) - 1}" if keys else
+                             f"{prepared.job.path}: --index {args.index}: the to-do list "
+                             f"fixed at {when} is empty: nothing to compute")
+        return [by_key[keys[args.index]]]
+    out, seen = [], set()
+    for ident in _requested_ids(args):
+        text = ident.strip().lower()
+        found = [t for t in tasks if text and t.key.startswith(text)]
+        if len(found) != 1:
+            why = ("matches several points; give more digits" if found else
+                   "is not in this job's plan (fieldprop plan lists the ids)")
+            raise InputError(f"{prepared.job.path}: --id {ident}: {why}")
+        if found[0].key in seen:
+            logger.info("point %s given more than once: computed once", short_id(found[0].key))
+            continue
+        seen.add(found[0].key)
+        out.append(found[0])
+    return out
+
+
+def cmd_point(args) -> int:
+    from threadpoolctl import threadpool_limits
+
+    from fieldprop.engine import prepare
+    from fieldprop.execute import compute_points
+    from fieldprop.job import load_job
+    from fieldprop.keys import short_id
+    from fieldprop.pointlines import line_document, write_line
+    from fieldprop.store import PointStore, default_store_path
+
+    job = load_job(args.job)
+    prepared = prepare(job)
+    path = args.store if args.store is not None else default_store_path(args.job)
+    if args.stdout:
+        real = PointStore.open(path, read_only=True) if path.exists() else None
+    else:
+        real = PointStore.open(path)
+    try:
+        targets = _targets(args, prepared, real)
+        rows = real.get_points(t.key for t in targets) if real is not None else {}
+        todo = []
+        for t in targets:
+            row = rows.get(t.key)
+            if row is not None and (row.ok or not (args.retry_failed or args.index is not None)):
+                logger.info("point %s (%s) is stored already as %s: not computed again",
+                            short_id(t.key), t.point.label, "computed" if row.ok else "failed")
+            else:
+                todo.append(t)
+        work = real
+        if args.stdout:
+            work = PointStore.in_memory("memory (point --stdout)")
+            found = real.get_model(prepared.model_key) if real is not None else None
+            if found is not None:  # the stored reference: zero field is not recomputed
+                zero = prepared.tasks[0]
+                zero_row = real.get_points([zero.key]).get(zero.key)
+                work.put_model(prepared.model_key, prepared.description(), found[1], found[0],
+                               (zero, zero_row.record(zero.point)) if zero_row is not None
+                               and zero_row.ok else None)
+        if todo:
+            threads = args.threads or _env_threads()
+            from pyscf import lib
+
+            lib.num_threads(threads)
+            with threadpool_limits(threads):
+                compute_points([prepared.tasks[0], *(t for t in todo if not t.is_zero_field)],
+                               work, prepared.facts, prepared.description(), workers=1,
+                               progress=False, retry_failed=True)
+        done = work.get_points(t.key for t in todo) if todo else {}
+        failed = []
+        for t in targets:
+            row = done.get(t.key) or rows.get(t.key)
+            if row is None:  # cannot happen: compute_points stores every outcome
+                raise RuntimeError(f"point {short_id(t.key)} was neither stored nor computed")
+            if t in todo:
+                if row.ok:
+                    logger.info("point %s (%s): %d SCF cycles, %.1f s", short_id(t.key),
+                                t.point.label, row.fields["scf_cycles"], row.wall_time_s)
+                else:
+                    logger.error("point %s (%s) failed: %s", short_id(t.key), t.point.label,
+                                 row.fields["reason"])
+            if not row.ok:
+                failed.append(row.failure(t.point))
+            if args.stdout:
+                doc = line_document(row, t.point.field_vector_au, t.molecule.origin_bohr,
+                                    t.quantities.canonical(), prepared.facts,
+                                    prepared.description())
+                _to_stdout(lambda: write_line(doc, sys.stdout))
+        if work is not real:
+            work.close()
+    finally:
+        if real is not None:
+            real.close()
+    if failed:
+        from fieldprop.engine import failed_points_error
+
+        raise failed_points_error(prepared, failed, args.retry_failed)
+    return 0
+
+
+def _env_threads() -> int:
+    try:
+        return max(1, int(os.environ.get("OMP_NUM_THREADS") or 1))
+    except ValueError:
+        return 1
 
 
 def cmd_collect(args) -> int:
     from fieldprop.engine import collect, require_stable
     from fieldprop.job import load_job
-    from fieldprop.report import (check_output_path, is_stdout, result_document,
-                                  write_json_atomic, write_tables)
+    from fieldprop.report import check_output_path, is_stdout, result_document, write_json_atomic
+    from fieldprop.store import PointStore, default_store_path
 
     job = load_job(args.job)
     out_path = args.json if args.json is not None else default_result_path(args.job)
     if not is_stdout(out_path) and out_path.resolve() == args.job.resolve():
         raise InputError(f"--json {out_path}: is the job file itself; give another path")
     check_output_path(out_path)
-    from fieldprop.store import PointStore, default_store_path
-
+    lines = _read_point_lines(args.points)
     path = args.store if args.store is not None else default_store_path(args.job)
-    if not path.exists():
+    if not path.exists() and lines is None:
         raise IncompleteError(f"{job.path}: no point store at {path}: nothing computed yet; "
-                              "compute the points with fieldprop run (or --store PATH)")
-    with PointStore.open(path, read_only=True) as store:
-        result = collect(job, store)
+                              "compute the points with fieldprop run or point (or give "
+                              "--store PATH, or --points)")
+    store = PointStore.open(path, read_only=True) if path.exists() else None
+    try:
+        result = collect(job, store, lines=lines, allow_partial=args.allow_partial)
+    finally:
+        if store is not None:
+            store.close()
     if is_stdout(out_path):
         _to_stdout(lambda: write_json_atomic(result_document(result), out_path))
     else:
         write_json_atomic(result_document(result), out_path)
-        logger.info("result written to %s (from %d stored points)", out_path,
-                    len(result.records))
-        _to_stdout(lambda: write_tables(result, sys.stdout, args.units))
+        logger.info("result written to %s (from %d points)", out_path,
+                    len(result.computed_records))
+        _to_stdout(lambda: _write_result(result, args.format, args.units, out_path))
+    if result.missing:
+        raise IncompleteError(f"{job.path}: {len(result.missing)} planned point(s) missing "
+                              f"({' '.join(i for _, i in result.missing[:8])}"
+                              f"{' ...' if len(result.missing) > 8 else ''}); "
+                              f"{len(result.missing_components)} component(s) reported as "
+                              "missing; compute the points and collect again")
     require_stable(result)
+    return 0
+
+
+def cmd_report(args) -> int:
+    from fieldprop import summary
+
+    docs = [(str(path), summary.load_result(path)) for path in args.results]
+    _to_stdout(lambda: summary.write(docs, sys.stdout, args.units, args.convention,
+                                     args.format, args.components))
     return 0
 
 

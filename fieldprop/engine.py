@@ -78,8 +78,8 @@ class NoiseModel:
 
     def largest(self) -> dict[str, float]:
         """The largest noise of each quantity over the points (for reports)."""
-        return {k: float(np.max(getattr(self, k))) for k in ("energy_au", "dipole_au",
-                                                               "alpha_au")}
+        return {k: float(np.nanmax(getattr(self, k))) for k in ("energy_au", "dipole_au",
+                                                                  "alpha_au")}
 
 
 @dataclass(frozen=True)
@@ -129,15 +129,31 @@ class RunResult:
     continuity: ContinuityReport | None = None
     counts: PointCounts | None = None
     store: str = ""
+    #: (plan index, id) of the points not computed (``collect --allow-partial``):
+    #: their records are placeholders (NaN, attempts ("missing",)), never
+    #: differentiated.
+    missing: tuple[tuple[int, str], ...] = ()
 
     @property
     def energy_au(self) -> float:
         return self.records[0].energy_au
 
     @property
+    def computed_records(self) -> tuple[PointRecord, ...]:
+        """The records of the points that exist (all but the missing ones)."""
+        gone = {i for i, _ in self.missing}
+        return tuple(r for i, r in enumerate(self.records) if i not in gone)
+
+    @property
     def unstable_components(self) -> list[str]:
         return [c.plan.name + (f" ({c.estimate.reason})" if c.estimate.reason else "")
-                for t in self.tensors.values() for c in t.components if not c.stable]
+                for t in self.tensors.values() for c in t.components
+                if c.estimate.status is ComponentStatus.UNSTABLE]
+
+    @property
+    def missing_components(self) -> list[str]:
+        return [c.plan.name for t in self.tensors.values() for c in t.components
+                if c.estimate.status is ComponentStatus.MISSING]
 
 
 def make_plan(job: Job, route: Route | str | None = None) -> FieldPlan:
@@ -201,14 +217,17 @@ def continuity(plan: FieldPlan, records, noise: NoiseModel) -> ContinuityReport:
 
 
 def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel,
-                           excluded=None) -> list[ComponentEstimate]:
+                           excluded=None, missing=None) -> list[ComponentEstimate]:
     """Richardson estimates of every component.
 
     A component's ladder stops below the first level whose stencil uses an
     ``excluded`` point ({point index: label of the departure that excluded it},
     ContinuityReport.cause): nothing is extrapolated through another state.
+    It stops alike below the first level that uses a ``missing`` point ({point
+    index: its id}); a component left with no level is MISSING.
     """
     excluded = excluded or {}
+    missing = missing or {}
     energies = np.array([r.energy_au for r in records])
     dipoles = (np.array([r.dipole_au for r in records])
                if all(r.dipole_au is not None for r in records) else None)
@@ -217,6 +236,10 @@ def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel,
     for comp in plan.components:
         eps = noise.per_point(comp.quantity, len(records))
         stencils = list(comp.stencils)
+        gone = next((k for k, s in enumerate(stencils)
+                     if any(p in missing for p, _ in s.terms)), None)
+        if gone is not None:
+            stencils = stencils[:gone]
         cut = next((k for k, s in enumerate(stencils)
                     if any(p in excluded for p, _ in s.terms)), None)
         if cut is not None:
@@ -226,6 +249,15 @@ def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel,
             named = sorted({excluded[p] for p, _ in comp.stencils[cut].terms if p in excluded})
             why = (f"level {cut} and above use field points at or beyond a departure from "
                    f"the zero-field state ({', '.join(named[:2])})")
+        elif gone is not None:
+            named = sorted({missing[p] for p, _ in comp.stencils[gone].terms if p in missing})
+            why = (f"level {gone} and above use field points not computed "
+                   f"({', '.join(named[:3])}{' ...' if len(named) > 3 else ''})")
+            if not stencils:
+                estimates.append(ComponentEstimate(math.nan, math.nan, (0, 0),
+                                                   ComponentStatus.MISSING, math.nan, ((),),
+                                                   f"not determined: {why}"))
+                continue
         if not stencils:
             estimates.append(ComponentEstimate(math.nan, math.nan, (0, 0),
                                                ComponentStatus.UNSTABLE, math.nan, ((),),
@@ -354,53 +386,119 @@ def failed_points_error(prepared: Prepared, failures, retried: bool = False):
     return kind(f"{first.reason}{more}{hint}")
 
 
+def _placeholder(task: PointTask) -> PointRecord:
+    """The record of a point not computed: NaN everywhere, never differentiated."""
+    nan = math.nan
+    return PointRecord(task.point, nan, nan, (nan,) * 3 if task.quantities.dipole else None, 0,
+                       ("missing",), nan, nan, nan,
+                       ((nan,) * 3,) * 3 if task.quantities.alpha else None)
+
+
 def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
             store_label: str = "", wall_time_s: float = 0.0) -> RunResult:
     """Tensors, invariants and warnings from the records of every planned point
-    (in plan order). Pure: no PySCF."""
+    (in plan order; None for a point not computed, whose components are then
+    MISSING: ``collect --allow-partial``). Pure: no PySCF."""
     job, plan = prepared.job, prepared.plan
     records = tuple(records)
     if len(records) != len(plan.points):
         raise ValueError(f"{len(records)} records for {len(plan.points)} planned points")
+    missing = {i: short_id(t.key) for i, (t, r) in enumerate(zip(prepared.tasks, records))
+               if r is None}
+    if 0 in missing:
+        raise ValueError("the zero-field point is needed by every analysis")
+    records = tuple(_placeholder(t) if r is None else r
+                    for t, r in zip(prepared.tasks, records))
     noise = noise_model(job, records, prepared.molecule)
     smooth = continuity(plan, records, noise)
-    estimates = extrapolate_components(plan, records, noise, smooth.cause)
+    estimates = extrapolate_components(plan, records, noise, smooth.cause, missing)
     tensors = assemble(plan.components, estimates)
     warnings = departure_warnings(job, plan, smooth) + window_warnings(job, plan, tensors)
+    if missing:
+        warnings = (f"{job.path}: {len(missing)} of {len(plan.points)} planned field points "
+                    f"are not computed ({' '.join(list(missing.values())[:8])}"
+                    f"{' ...' if len(missing) > 8 else ''}); the components that need them "
+                    "are reported as missing, without a number",) + warnings
     for text in warnings:
         logger.warning("%s", text)
     return RunResult(job, prepared.molecule, plan, records, noise, tensors,
                      tuple(invariants(tensors)), prepared.facts, wall_time_s, warnings, smooth,
-                     counts, store_label)
+                     counts, store_label, tuple(sorted(missing.items())))
 
 
-def collect(job: Job, store, route: Route | str | None = None) -> RunResult:
-    """The result of ``job`` from the points ``store`` holds, with no PySCF work.
+def gather(job: Job, store=None, lines=None, route: Route | str | None = None,
+           facts_needed: bool = True) -> tuple[Prepared, dict]:
+    """The job prepared, and its planned points found in ``store`` and in point
+    ``lines`` ((iterable of text, source label)): {point key: StoredPoint}, a
+    computed point winning over a failure. No PySCF when the backend facts are
+    in the store or the lines (else PySCF validates the job, computing nothing).
+    ``facts_needed=False``: never PySCF, the facts may stay empty (planning).
+    Bad lines raise InputError (:mod:`fieldprop.pointlines`)."""
+    from fieldprop import pointlines
+
+    molecule = build_molecule(job.molecule, job.response.origin)
+    mkey = model_key(molecule, job.model, job.scf)
+    facts = store.get_facts(mkey) if store is not None else None
+    # The tasks' keys do not depend on the facts: the lines can be checked first.
+    tasks = make_tasks(job, molecule, make_plan(job, route))
+    found: dict = {}
+    if lines is not None:
+        text, label = lines
+        found, line_facts = pointlines.read_lines(text, label, tasks, mkey)
+        facts = facts or line_facts
+    if facts is None and not facts_needed:
+        facts = {}
+    prepared = prepare(job, route, facts=facts)
+    rows = store.get_points(t.key for t in prepared.tasks) if store is not None else {}
+    for key, row in found.items():
+        if key not in rows or (row.ok and not rows[key].ok):
+            rows[key] = row
+    return prepared, rows
+
+
+def collect(job: Job, store=None, route: Route | str | None = None, lines=None,
+            allow_partial: bool = False) -> RunResult:
+    """The result of ``job`` from the points ``store`` holds and point ``lines``
+    give (see :func:`gather`), with no PySCF work.
 
     Raises IncompleteError (exit 3) naming the missing points' ids when any
-    planned point is not stored, and the points' own error when a stored point
-    failed: never an extrapolation from a partial set.
+    planned point is not found, and the points' own error when a stored point
+    failed: never an extrapolation from a partial set. With ``allow_partial``,
+    missing and failed points (not zero field) are left out instead: the
+    components that need them are MISSING, the others are reported.
     """
     start = time.perf_counter()
-    molecule = build_molecule(job.molecule, job.response.origin)
-    facts = store.get_facts(model_key(molecule, job.model, job.scf))
-    if facts is None:
-        raise IncompleteError(f"{job.path}: {store.label} holds no point of this molecule and "
-                              "model; compute them with fieldprop run")
-    prepared = prepare(job, route, facts=facts)
-    rows = store.get_points(t.key for t in prepared.tasks)
+    where = " and ".join(x for x in (store.label if store is not None else None,
+                                     lines[1] if lines is not None else None) if x)
+    prepared, rows = gather(job, store, lines, route)
+    zero = prepared.tasks[0]
+    if zero.key not in rows:
+        raise IncompleteError(f"{job.path}: {where or 'nothing'} holds no zero-field point "
+                              f"of this molecule and model (id {short_id(zero.key)}); every "
+                              "result needs it: compute it with fieldprop point --zero-field "
+                              "or fieldprop run")
     missing = [t for t in prepared.tasks if t.key not in rows]
-    if missing:
+    if missing and not allow_partial:
         ids = " ".join(short_id(t.key) for t in missing[:8])
         raise IncompleteError(f"{job.path}: {len(missing)} of {len(prepared.tasks)} planned "
-                              f"field points are not in {store.label}: {ids}"
+                              f"field points are not in {where}: {ids}"
                               f"{' ...' if len(missing) > 8 else ''}")
-    failures = [rows[t.key].failure(t.point) for t in prepared.tasks if not rows[t.key].ok]
-    if failures:
+    failures = [rows[t.key].failure(t.point) for t in prepared.tasks
+                if t.key in rows and not rows[t.key].ok]
+    if failures and (not allow_partial or not rows[zero.key].ok):
         raise failed_points_error(prepared, failures)
-    records = [rows[t.key].record(t.point) for t in prepared.tasks]
-    counts = PointCounts(len(records), 0, len(records))
-    return analyse(prepared, records, counts, store.label, time.perf_counter() - start)
+    records = [rows[t.key].record(t.point) if t.key in rows and rows[t.key].ok else None
+               for t in prepared.tasks]
+    found = sum(r is not None for r in records)
+    counts = PointCounts(len(records), 0, found)
+    return analyse(prepared, records, counts, where, time.perf_counter() - start)
+
+
+def todo_list_key(prepared: Prepared) -> str:
+    """The key of a plan's to-do list in a store: its points' keys, in order."""
+    from fieldprop.keys import digest
+
+    return digest({"kind": "fieldprop-todo", "points": [t.key for t in prepared.tasks]})
 
 
 QUANTITY = {"energy": ("energy", "Eh"), "dipole": ("dipole", "au"),

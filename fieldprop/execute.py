@@ -107,26 +107,31 @@ def _reference(tasks: list[PointTask], store: PointStore, facts: dict,
                description: dict) -> tuple[ZeroFieldReference, ModelContext | None]:
     """The model's zero-field reference from the store, or computed here and
     stored (with the zero-field point of these tasks, in one transaction).
-    Returns it, and the context it was computed in (None when it was stored)."""
+    Returns it, and the context it was computed in (None when it was stored).
+
+    Under the store's reference lock: of several processes that need the same
+    missing reference at once (job-array elements, two runs), one computes it
+    and the others wait, then read it."""
     zero = tasks[0]
-    found = store.get_model(zero.model_key)
-    if found is not None:
-        return found[0], None
-    logger.debug("no stored reference for model %s: computing zero field", zero.model_key[:12])
-    context = ModelContext(zero.molecule, zero.model, zero.scf)
-    try:
-        record, reference = compute_reference(context, zero)
-    except FieldpropError:
-        raise
-    except Exception as exc:  # noqa: BLE001 - named, never a traceback
-        logger.debug("zero field", exc_info=True)
-        text = " ".join(str(exc).split())[:300] or "no message"
-        raise BackendError(f"the zero-field point failed inside the backend "
-                           f"({type(exc).__name__}: {text}); no field point can start "
-                           "without it") from exc
-    if not store.put_model(zero.model_key, description, facts, reference, (zero, record)):
-        reference = store.get_model(zero.model_key)[0]  # another process stored one first
-        context.attach(reference)
+    with store.reference_lock():
+        found = store.get_model(zero.model_key)
+        if found is not None:
+            return found[0], None
+        logger.info("computing the zero-field reference (model %s)", zero.model_key[:12])
+        context = ModelContext(zero.molecule, zero.model, zero.scf)
+        try:
+            record, reference = compute_reference(context, zero)
+        except FieldpropError:
+            raise
+        except Exception as exc:  # noqa: BLE001 - named, never a traceback
+            logger.debug("zero field", exc_info=True)
+            text = " ".join(str(exc).split())[:300] or "no message"
+            raise BackendError(f"the zero-field point failed inside the backend "
+                               f"({type(exc).__name__}: {text}); no field point can start "
+                               "without it") from exc
+        if not store.put_model(zero.model_key, description, facts, reference, (zero, record)):
+            reference = store.get_model(zero.model_key)[0]  # stored by a process without the lock
+            context.attach(reference)
     return reference, context
 
 

@@ -46,6 +46,9 @@ class ComponentStatus(enum.Enum):
     ZERO_FIELD = "ok-zero-field"
     #: No entry is trustworthy: no number is reported.
     UNSTABLE = "unstable"
+    #: Not determined: points it needs are not computed (``collect
+    #: --allow-partial``); no number is reported.
+    MISSING = "missing"
 
 
 @dataclass(frozen=True)

@@ -79,6 +79,8 @@ def _entry_text(est) -> str:
     uses the strengths h_k .. h_k+m); ``F = 0`` for a zero-field value."""
     if est.status is ComponentStatus.ZERO_FIELD:
         return "F = 0 (no derivative)"
+    if est.status is ComponentStatus.MISSING:
+        return "-"
     k, m = est.chosen_entry
     return f"h{k}, {m} step{'s' if m != 1 else ''}"
 
@@ -156,7 +158,9 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
     counts = result.counts
     reused = f" ({counts.reused} reused from the store)" if counts and counts.reused else ""
     n = len(result.records)
-    out.write(f"  {n} field point{'s' if n != 1 else ''}{reused}, "
+    gone = (f", {len(result.missing)} of them not computed (their components: missing)"
+            if result.missing else "")
+    out.write(f"  {n} field point{'s' if n != 1 else ''}{reused}{gone}, "
               f"{sum(r.scf_cycles for r in result.records)} SCF cycles; SCF energy tolerance "
               f"{job.scf.energy_conv_tol_au:g} Eh; E(0) = {result.energy_au:.10f} Eh\n")
     system = {"au": "atomic units", "esu": "tensors in esu (dipole in debye, alpha in "
@@ -169,9 +173,8 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
         rows = []
         for c in tensor.components:
             est = c.estimate
-            value, err = ((est.value_au * factor, est.error_au * factor) if c.stable
-                          else (None, None))
-            v, e = format_pair(value, err)
+            v, e = (format_pair(est.value_au * factor, est.error_au * factor) if c.stable
+                    else (est.status.value, "-"))
             rows.append([c.plan.name, v, e, _entry_text(est),
                          est.status.value + (f": {est.reason}" if est.reason and not c.stable
                                              else "")])
@@ -186,6 +189,8 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
     for inv in result.invariants:
         prop = _INVARIANT_PROPERTY[inv.name]
         v, e = format_pair(inv.value_au, inv.error_au)
+        if inv.value_au is None:
+            v = "missing" if inv.reason.startswith("missing") else "unstable"
         label, factor = DISPLAY_UNITS[prop][0]
         if inv.value_au is None:
             cv, ce = "-", "-"
@@ -265,6 +270,7 @@ def result_document(result: RunResult) -> dict[str, Any]:
         "units": "au",
         "convention": "taylor",
         "job": result.job.to_dict(),
+        "formula": result.molecule.formula,
         "origin_bohr": list(result.molecule.origin_bohr),
         "energy_au": result.energy_au,
         "tensors": tensors,
@@ -277,7 +283,7 @@ def result_document(result: RunResult) -> dict[str, Any]:
                        * FIELD_AU_TO_V_PER_M},
         "noise_model": {"largest_" + k: v for k, v in result.noise.largest().items()},
         "scf_retries": [{"point": r.point.label, "attempts": list(r.attempts)}
-                        for r in result.records if r.retried],
+                        for r in result.computed_records if r.retried],
         "state_checks": state_checks_document(result),
         "backend": result.backend_facts,
         "unit_factors": {p: {label: f for label, f in DISPLAY_UNITS[p]}
@@ -293,16 +299,21 @@ def _points_document(result: RunResult) -> dict[str, Any]:
     (when it was computed), and where the store is."""
     counts = result.counts
     planned = len(result.plan.points)
-    return {"planned": planned,
-            "computed": counts.computed if counts else len(result.records),
-            "reused": counts.reused if counts else 0,
-            "scf_cycles": int(sum(r.scf_cycles for r in result.records)),
-            "store": result.store or None}
+    out = {"planned": planned,
+           "computed": counts.computed if counts else len(result.records),
+           "reused": counts.reused if counts else 0,
+           "scf_cycles": int(sum(r.scf_cycles for r in result.computed_records)),
+           "store": result.store or None}
+    if result.missing:
+        out["missing"] = [{"id": ident, "point": result.plan.points[i].label,
+                           "field_vector_au": list(result.plan.points[i].field_vector_au)}
+                          for i, ident in result.missing]
+    return out
 
 
 def state_checks_document(result: RunResult) -> dict[str, Any]:
     """What the state checks measured: the worst point of each, and every departure."""
-    records = result.records[1:]
+    records = result.computed_records[1:]
     out: dict[str, Any] = {
         "smallest_occupied_overlap": min((r.occupied_overlap for r in records), default=1.0),
         "largest_s2_change": max((abs(r.s2 - result.records[0].s2) for r in records),
@@ -376,29 +387,50 @@ def write_json_atomic(document: dict[str, Any], path: Path) -> None:
         raise
 
 
-def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, json_lines: bool = False,
-               store_label: str | None = None) -> None:
+def plan_status(task, stored) -> str:
+    """``stored``, ``failed`` or ``missing``: a planned point in ``stored``
+    ({key: StoredPoint})."""
+    row = stored.get(task.key)
+    return "missing" if row is None else ("stored" if row.ok else "failed")
+
+
+def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
+               store_label: str | None = None, only=None) -> None:
     """The field points ``run`` would compute, which components use them, and
-    which the store holds already (``stored``: {key: StoredPoint})."""
+    which the store holds already (``stored``: {key: StoredPoint}); ``fmt``
+    table, json (a JSON object per line), csv or ids (an id per line);
+    ``only``: the keys to list (default all)."""
+    import csv
+
     uses: dict[int, int] = {}
     for c in plan.components:
         for s in c.stencils:
             for p, _ in s.terms:
                 uses[p] = uses.get(p, 0) + 1
-
-    def status(task) -> str:
-        row = stored.get(task.key)
-        return "missing" if row is None else ("stored" if row.ok else "failed")
-
-    if json_lines:
-        for p, t in zip(plan.points, tasks):
+    listed = [(p, t) for p, t in zip(plan.points, tasks) if only is None or t.key in only]
+    if fmt == "ids":
+        for _, t in listed:
+            out.write(short_id(t.key) + "\n")
+        return
+    if fmt == "json":
+        for p, t in listed:
             out.write(json.dumps({"id": short_id(t.key), "key": t.key, "index": p.index,
-                                  "level": p.level, "offsets": list(p.offsets),
+                                  "level": p.level, "label": p.label, "offsets": list(p.offsets),
                                   "field_vector_au": list(p.field_vector_au),
                                   "stencil_uses": uses.get(p.index, 0),
-                                  "stored": status(t)}) + "\n")
+                                  "stored": plan_status(t, stored)}) + "\n")
         return
-    counts = {s: sum(1 for t in tasks if status(t) == s) for s in ("stored", "failed", "missing")}
+    if fmt == "csv":
+        writer = csv.writer(out, lineterminator="\n")
+        writer.writerow(["id", "index", "level", "label", "F_x_au", "F_y_au", "F_z_au",
+                         "stencil_uses", "stored"])
+        for p, t in listed:
+            writer.writerow([short_id(t.key), p.index, p.level, p.label,
+                             *(repr(float(v)) for v in p.field_vector_au),
+                             uses.get(p.index, 0), plan_status(t, stored)])
+        return
+    counts = {s: sum(1 for t in tasks if plan_status(t, stored) == s)
+              for s in ("stored", "failed", "missing")}
     if len(plan.points) == 1:
         out.write(f"no field applied: 1 point (zero field) for {len(plan.components)} "
                   "components\n")
@@ -407,10 +439,16 @@ def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, json_lines: bool = F
                   f"ladder h_k = {plan.field_au:g} * {plan.ratio:g}**k, "
                   f"k = 0..{plan.levels - 1}; {len(plan.points)} field points for "
                   f"{len(plan.components)} components\n")
+    per_property: dict[str, set] = {}
+    for c in plan.components:
+        for s in c.stencils:
+            per_property.setdefault(c.tensor, set()).update(p for p, _ in s.terms)
+    out.write("points used per property: " + ", ".join(
+        f"{name} {len(points)}" for name, points in per_property.items()) + "\n")
     out.write(f"store {store_label or '(none yet)'}: {counts['stored']} stored, "
               f"{counts['failed']} failed, {counts['missing']} to compute\n")
     rows = [[short_id(t.key), p.level, p.label, *(f"{v:+.6g}" for v in p.field_vector_au),
-             uses.get(p.index, 0), status(t)] for p, t in zip(plan.points, tasks)]
+             uses.get(p.index, 0), plan_status(t, stored)] for p, t in listed]
     out.write(tabulate(rows, headers=["id", "level", "point", "F_x (au)", "F_y (au)",
                                       "F_z (au)", "stencil uses", "store"],
                        disable_numparse=True) + "\n")
@@ -438,14 +476,16 @@ def write_store_summary(store, path: Path, out: TextIO) -> None:
 
 
 def write_store_lines(store, out: TextIO) -> None:
-    """Every stored point as one JSON object per line (computed and failed)."""
+    """Every stored point as a point line (:mod:`fieldprop.pointlines`),
+    computed and failed: ``fieldprop collect --points`` reads them back."""
+    from fieldprop.pointlines import line_document, write_line
+
+    facts: dict = {}
     for row, extra, description in store.iter_points():
-        doc = {"id": short_id(row.key), "key": row.key, "model_key": row.model_key,
-               "formula": description.get("formula"), "method": description.get("method"),
-               "functional": description.get("functional"), "basis": description.get("basis"),
-               **extra, "status": row.status, **row.fields, "wall_time_s": row.wall_time_s,
-               "host": row.host, "version": row.version, "created_at": row.created_at}
-        out.write(json.dumps(doc, allow_nan=False) + "\n")
+        if row.model_key not in facts:
+            facts[row.model_key] = store.get_facts(row.model_key)
+        write_line(line_document(row, extra["field_vector_au"], extra["origin_bohr"],
+                                 extra["quantities"], facts[row.model_key], description), out)
 
 
 def write_comparison(comparisons, reference, sigmas: float, out: TextIO) -> None:

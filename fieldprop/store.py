@@ -9,7 +9,7 @@ functions, core electrons, PySCF version): any process can compute any point
 later without redoing zero field, and the analysis of stored points needs no
 PySCF at all.
 
-File format (``SCHEMA_VERSION`` 2; a schema-1 store is migrated when opened
+File format (``SCHEMA_VERSION`` 3; an older store is migrated when opened
 for writing, and read as it is otherwise), SQLite from the standard library, WAL
 journal, a busy timeout so several processes can share one file, one
 transaction per finished point:
@@ -24,7 +24,15 @@ transaction per finished point:
   energy_scale_au, failure, failure_kind, wall_time_s, host, version,
   created_at)``: ``status`` is ``ok``
   or ``failed``; vectors, matrices and lists are JSON text (floats round-trip
-  exactly).
+  exactly);
+- ``todo_lists(list_key, point_keys, created_at)``: the points of a plan still
+  to compute, as fixed by ``fieldprop plan --count`` (a JSON list of point keys
+  in plan order), so that ``fieldprop point --index N`` maps array element N to
+  the same point however many other elements have finished meanwhile.
+
+Beside a writable store file, ``<store>.lock`` serialises the computation of a
+model's zero-field reference: processes that need it at once (job-array
+elements) wait for the first one instead of all computing it.
 
 Every problem with a store file (a directory, not SQLite, not a fieldprop
 store, a newer schema, corrupt, not writable) is an :class:`InputError` naming
@@ -33,6 +41,7 @@ the path; the file is left untouched.
 
 from __future__ import annotations
 
+import contextlib
 import io
 import json
 import logging
@@ -54,13 +63,17 @@ from fieldprop.records import PointFailure, PointRecord, SymmetryOperation, Zero
 logger = logging.getLogger(__name__)
 
 FORMAT = "fieldprop-store"
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 #: Migrations of older schemas, applied when a store is opened for writing:
-#: schema 1 -> 2 adds points.energy_scale_au (the energy's rounding scale).
-#: A schema-1 store opened read-only reads that column as missing (NULL).
+#: schema 1 -> 2 adds points.energy_scale_au (the energy's rounding scale);
+#: 2 -> 3 adds the todo_lists table. A store of an older schema opened
+#: read-only reads a missing column as NULL, and has no to-do lists.
+_TODO_TABLE = ("CREATE TABLE todo_lists (list_key TEXT PRIMARY KEY, point_keys TEXT NOT NULL, "
+               "created_at TEXT NOT NULL)")
 _MIGRATIONS = {
     1: ["ALTER TABLE points ADD COLUMN energy_scale_au REAL",
         "UPDATE meta SET value = '2' WHERE name = 'schema'"],
+    2: [_TODO_TABLE, "UPDATE meta SET value = '3' WHERE name = 'schema'"],
 }
 #: Default store file name, in the job file's folder: jobs in one folder share it.
 DEFAULT_NAME = "fieldprop-points.sqlite"
@@ -106,7 +119,7 @@ CREATE TABLE points (
     created_at TEXT NOT NULL
 );
 CREATE INDEX points_by_model ON points (model_key);
-"""
+""" + _TODO_TABLE + ";\n"
 
 _RECORD_COLUMNS = ("energy_au", "scf_energy_au", "dipole_au", "alpha_au", "scf_cycles",
                    "attempts", "s2", "occupied_overlap", "gradient_norm", "dipole_error_au",
@@ -197,9 +210,12 @@ class PointStore:
     a stored failure is replaced by a computed point.
     """
 
-    def __init__(self, connection: sqlite3.Connection, path: Path | None):
+    def __init__(self, connection: sqlite3.Connection, path: Path | None,
+                 read_only: bool = False, memory_label: str = "memory (--no-store)"):
         self._db = connection
         self.path = path
+        self.read_only = read_only
+        self._memory_label = memory_label
         present = {row[1] for row in connection.execute("PRAGMA table_info(points)")}
         # Columns an older schema lacks (read-only opens are not migrated) read as NULL.
         self._record_select = ", ".join(c if c in present else f"NULL AS {c}"
@@ -208,10 +224,10 @@ class PointStore:
     # -- opening
 
     @classmethod
-    def in_memory(cls) -> "PointStore":
+    def in_memory(cls, label: str = "memory (--no-store)") -> "PointStore":
         db = sqlite3.connect(":memory:")
         _initialise(db)
-        return cls(db, None)
+        return cls(db, None, memory_label=label)
 
     @classmethod
     def open(cls, path: Path, create: bool = True, read_only: bool = False) -> "PointStore":
@@ -257,7 +273,7 @@ class PointStore:
                 _migrate(db)
         except sqlite3.Error as exc:
             raise InputError(f"{shown}: cannot be opened ({exc})") from None
-        return cls(db, path)
+        return cls(db, path, read_only)
 
     def close(self) -> None:
         self._db.close()
@@ -270,9 +286,59 @@ class PointStore:
 
     @property
     def label(self) -> str:
-        return str(self.path) if self.path is not None else "memory (--no-store)"
+        return str(self.path) if self.path is not None else self._memory_label
 
     # -- models and references
+
+    @contextlib.contextmanager
+    def reference_lock(self):
+        """Held while a model's zero-field reference is looked up and, if
+        missing, computed and stored: an exclusive ``flock`` on ``<store>.lock``
+        beside a writable store file (nothing for a store in memory or opened
+        read-only, whose processes cannot share a reference anyway). Released
+        when the process ends, however it ends."""
+        if self.path is None or self.read_only:
+            yield
+            return
+        import fcntl
+
+        lock_path = Path(str(self.path) + ".lock")
+        try:
+            fd = os.open(lock_path, os.O_RDWR | os.O_CREAT, 0o666)
+        except OSError as exc:
+            raise InputError(f"store {self.label}: cannot create its lock file {lock_path} "
+                             f"({exc.strerror})") from None
+        try:
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            except BlockingIOError:
+                logger.info("waiting for another process computing the zero-field "
+                            "reference in %s", self.label)
+                fcntl.flock(fd, fcntl.LOCK_EX)
+            yield
+        finally:
+            os.close(fd)  # releases the lock
+
+    # -- to-do lists (plan --count, point --index)
+
+    def put_todo(self, list_key: str, point_keys) -> str:
+        """Fix the to-do list of a plan (replacing an older one); returns its time."""
+        created = _now()
+        with self._db:
+            self._db.execute("INSERT INTO todo_lists VALUES (?, ?, ?) ON CONFLICT (list_key) "
+                             "DO UPDATE SET point_keys = excluded.point_keys, "
+                             "created_at = excluded.created_at",
+                             (list_key, json.dumps(list(point_keys)), created))
+        return created
+
+    def get_todo(self, list_key: str) -> tuple[list[str], str] | None:
+        """(point keys, time fixed) of a plan's to-do list, or None."""
+        try:
+            row = self._db.execute("SELECT point_keys, created_at FROM todo_lists WHERE "
+                                   "list_key = ?", (list_key,)).fetchone()
+        except sqlite3.OperationalError:  # an older schema, opened read-only
+            return None
+        return None if row is None else (json.loads(row[0]), row[1])
 
     def get_model(self, model_key: str) -> tuple[ZeroFieldReference, dict] | None:
         """(reference, backend facts) of a model key, or None."""

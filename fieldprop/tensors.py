@@ -80,7 +80,7 @@ class ComponentResult:
 
     @property
     def stable(self) -> bool:
-        return self.estimate.status is not ComponentStatus.UNSTABLE
+        return self.estimate.status not in (ComponentStatus.UNSTABLE, ComponentStatus.MISSING)
 
 
 @dataclass(frozen=True)
@@ -147,7 +147,7 @@ def assemble(plans, estimates) -> dict[str, TensorResult]:
         checked = []
         for c in comps:
             est = c.estimate
-            if est.status is not ComponentStatus.UNSTABLE and not est.error_au <= limit:
+            if c.stable and not est.error_au <= limit:
                 est = mark_unstable(est, f"error bar {est.error_au:.2g} au exceeds "
                                          f"{UNSTABLE_FRACTION:.0%} of the tensor's size "
                                          f"({scale:.3g} au, its largest |component| less "
@@ -259,9 +259,13 @@ def invariants(tensors: dict[str, TensorResult]) -> list[Invariant]:
     seminorms = {"dipole_norm", "alpha_aniso", "beta_vector_norm", "beta_hrs"}
     out = []
     for name, needs, fn in specs:
-        bad = [c.plan.name for n in needs for c in tensors[n].components if not c.stable]
+        bad = [c for n in needs for c in tensors[n].components if not c.stable]
         if bad:
-            out.append(Invariant(name, None, None, "unstable components: " + ", ".join(bad)))
+            missing = [c.plan.name for c in bad if c.estimate.status is ComponentStatus.MISSING]
+            unstable = [c.plan.name for c in bad if c.plan.name not in missing]
+            out.append(Invariant(name, None, None, "; ".join(
+                f"{what} components: {', '.join(names)}" for what, names in
+                (("unstable", unstable), ("missing", missing)) if names)))
             continue
         if name == "beta_parallel":
             mu, mu_err = tensors["dipole"].value_au, tensors["dipole"].error_au

@@ -472,14 +472,16 @@ def test_a_damaged_zero_field_reference_is_bad_input(tmp_path, computed_store):
 def test_a_schema_1_store_is_read_as_it_is_and_migrated_when_written(tmp_path):
     """Schema 1 (before points.energy_scale_au) stays readable without being
     written (plan, inspect, collect), and a run's writable open migrates it in
-    place: the column is added, the schema mark becomes 2, old rows keep their
-    values (the new column reads as 0: unknown)."""
+    place, through every later schema: the column and the to-do lists' table are
+    added, the schema mark becomes the current one, old rows keep their values
+    (the new column reads as 0: unknown)."""
     from fieldprop import store as store_module
     from fieldprop.store import PointStore
 
     path = tmp_path / "points.sqlite"
-    old_schema = store_module._SCHEMA.replace("    energy_scale_au REAL,\n", "")
-    assert old_schema != store_module._SCHEMA
+    old_schema = store_module._SCHEMA.replace("    energy_scale_au REAL,\n", "").replace(
+        store_module._TODO_TABLE + ";", "")
+    assert "energy_scale_au" not in old_schema and "todo_lists" not in old_schema
     with sqlite3.connect(path) as db:
         db.executescript(old_schema)
         db.executemany("INSERT INTO meta VALUES (?, ?)", [
@@ -494,13 +496,17 @@ def test_a_schema_1_store_is_read_as_it_is_and_migrated_when_written(tmp_path):
     before = path.read_bytes()
     with PointStore.open(path, read_only=True) as store:
         row = store.get_points(["k1"])["k1"]
+        assert store.get_todo("any") is None  # no to-do lists in schema 1
     assert row.fields["energy_au"] == -1.5 and row.fields["energy_scale_au"] == 0.0
     assert path.read_bytes() == before and not journal_files(path)
     with PointStore.open(path) as store:
         row = store.get_points(["k1"])["k1"]
         assert row.fields["scf_cycles"] == 7 and row.fields["energy_scale_au"] == 0.0
+        store.put_todo("plan", ["k1", "k2"])
+        assert store.get_todo("plan")[0] == ["k1", "k2"]
     with sqlite3.connect(path) as db:
         schema = db.execute("SELECT value FROM meta WHERE name = 'schema'").fetchone()[0]
         columns = {r[1] for r in db.execute("PRAGMA table_info(points)")}
     db.close()
-    assert schema == "2" and "energy_scale_au" in columns
+    assert schema == str(store_module.SCHEMA_VERSION) == "3"
+    assert "energy_scale_au" in columns

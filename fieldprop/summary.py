@@ -1,0 +1,217 @@
+"""Result JSON files turned into tables, CSV or JSON again, in any unit system
+and convention, without computing anything (``fieldprop report``; also the
+``--format csv`` of ``run`` and ``collect``).
+
+Two layouts:
+
+- **invariants** (default): one row per result, ``file, formula, model,
+  route``, then for each invariant its value and error bar, then ``status``
+  (``ok``, or what has no number and why);
+- **components** (``--components``): one row per unique tensor component:
+  ``file, tensor, component, value, error, unit, status, entry``.
+
+CSV columns name their unit: ``<invariant>_<unit>`` and
+``<invariant>_error_<unit>`` (``alpha_iso_au``, ``beta_parallel_error_esu``,
+``dipole_norm_debye``); unit tags by system and property are in
+:data:`UNIT_TAGS`. Conventions: ``taylor`` (fieldprop's, E = E0 - mu F -
+alpha F^2/2 - beta F^3/6 - gamma F^4/24) and ``perturbation`` (the B
+convention, mu(F) = mu + alpha F + beta F^2 + gamma F^3: beta/2, gamma/6; mu
+and alpha unchanged). Factors come from :mod:`fieldprop.units`.
+
+>>> conversion("beta", "au", "perturbation")
+('au', 0.5)
+>>> round(conversion("alpha", "esu", "taylor")[1], 6)
+0.148185
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import math
+from pathlib import Path
+from typing import Any, TextIO
+
+from tabulate import tabulate
+
+from fieldprop.errors import InputError
+from fieldprop.units import TABLE_UNITS
+
+#: The result documents this module reads.
+RESULT_SCHEMA = "fieldprop-result-1"
+#: Conventions: factor from the Taylor convention, per property.
+CONVENTIONS = {"taylor": {"dipole": 1.0, "alpha": 1.0, "beta": 1.0, "gamma": 1.0},
+               "perturbation": {"dipole": 1.0, "alpha": 1.0, "beta": 0.5, "gamma": 1.0 / 6.0}}
+#: The short unit tag of CSV column names, per unit system and property.
+UNIT_TAGS = {"au": {p: "au" for p in TABLE_UNITS["au"]},
+             "esu": {"dipole": "debye", "alpha": "angstrom3", "beta": "esu", "gamma": "esu"},
+             "si": {p: "si" for p in TABLE_UNITS["si"]}}
+#: Invariants in the order of the columns, with their property.
+INVARIANTS = (("dipole_norm", "dipole"), ("alpha_iso", "alpha"), ("alpha_aniso", "alpha"),
+              ("beta_parallel", "beta"), ("beta_vector_norm", "beta"), ("beta_hrs", "beta"),
+              ("gamma_parallel", "gamma"))
+FORMATS = ("table", "csv", "json")
+
+
+def conversion(prop: str, units: str, convention: str) -> tuple[str, float]:
+    """(unit label, factor from Taylor atomic units) of a property."""
+    label, factor = TABLE_UNITS[units][prop]
+    return label, factor * CONVENTIONS[convention][prop]
+
+
+def load_result(path: Path) -> dict:
+    """A result JSON document, checked for form (InputError naming the file)."""
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise InputError(f"{path}: no such file") from None
+    except IsADirectoryError:
+        raise InputError(f"{path}: is a directory, not a result JSON file") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(f"{path}: cannot be read ({getattr(exc, 'strerror', None) or exc})") \
+            from None
+    try:
+        doc = json.loads(text)
+    except ValueError as exc:
+        raise InputError(f"{path}: not JSON ({exc.msg} at line {exc.lineno}); a result file "
+                         "is written by fieldprop run or collect") from None
+    if not isinstance(doc, dict) or doc.get("schema") != RESULT_SCHEMA:
+        found = doc.get("schema") if isinstance(doc, dict) else None
+        raise InputError(f"{path}: not a fieldprop result (schema {found!r}, expected "
+                         f"{RESULT_SCHEMA!r})")
+    if doc.get("units") != "au" or doc.get("convention") != "taylor":
+        raise InputError(f"{path}: units {doc.get('units')!r} and convention "
+                         f"{doc.get('convention')!r}; fieldprop results are in 'au', 'taylor'")
+    for key in ("tensors", "invariants", "job"):
+        if not isinstance(doc.get(key), dict):
+            raise InputError(f"{path}: key {key!r} is missing or not an object (a damaged "
+                             "result file)")
+    return doc
+
+
+def _formula(doc: dict) -> str:
+    formula = doc.get("formula")
+    if isinstance(formula, str) and formula:
+        return formula
+    atoms = (doc["job"].get("molecule") or {}).get("atoms") or []
+    counts: dict[str, int] = {}
+    for a in atoms:
+        counts[a.get("symbol", "?")] = counts.get(a.get("symbol", "?"), 0) + 1
+    order = sorted(counts, key=lambda s: (s != "C", s != "H", s)) if "C" in counts \
+        else sorted(counts)
+    return "".join(f"{s}{counts[s] if counts[s] > 1 else ''}" for s in order)
+
+
+def _model(doc: dict) -> str:
+    m = doc["job"].get("model") or {}
+    basis = m.get("basis")
+    basis = basis if isinstance(basis, str) else "per-element basis"
+    return "/".join(str(x) for x in (str(m.get("method", "?")).upper(), m.get("functional"),
+                                     basis) if x)
+
+
+def _number(x: Any) -> float | None:
+    return float(x) if isinstance(x, (int, float)) and math.isfinite(x) else None
+
+
+def invariant_table(docs: list[tuple[str, dict]], units: str, convention: str
+                    ) -> tuple[list[str], list[list[Any]], list[str]]:
+    """(CSV header, rows of numbers, display headers): one row per result."""
+    present = [(name, prop) for name, prop in INVARIANTS
+               if any(name in d["invariants"] for _, d in docs)]
+    header = ["file", "formula", "model", "route"]
+    shown = list(header)
+    for name, prop in present:
+        tag = UNIT_TAGS[units][prop]
+        header += [f"{name}_{tag}", f"{name}_error_{tag}"]
+        shown += [f"{name} ({conversion(prop, units, convention)[0]})", "+- error"]
+    header.append("status")
+    shown.append("status")
+    rows = []
+    for label, doc in docs:
+        routes = sorted({t.get("route", "?") for t in doc["tensors"].values()})
+        row: list[Any] = [label, _formula(doc), _model(doc), "+".join(routes)]
+        problems = []
+        for name, prop in present:
+            entry = doc["invariants"].get(name)
+            _, factor = conversion(prop, units, convention)
+            value = _number(entry.get("value")) if isinstance(entry, dict) else None
+            error = _number(entry.get("error")) if isinstance(entry, dict) else None
+            if value is None or error is None:
+                row += [None, None]
+                if isinstance(entry, dict):
+                    problems.append(f"{name}: {entry.get('reason') or 'no number'}")
+                continue
+            row += [value * factor, error * factor]
+        row.append("ok" if not problems else "; ".join(problems))
+        rows.append(row)
+    return header, rows, shown
+
+
+def component_table(docs: list[tuple[str, dict]], units: str, convention: str
+                    ) -> tuple[list[str], list[list[Any]], list[str]]:
+    """(CSV header, rows, display headers): one row per unique tensor component."""
+    header = ["file", "tensor", "component", "value", "error", "unit", "status", "entry"]
+    rows = []
+    for label, doc in docs:
+        for name in ("dipole", "alpha", "beta", "gamma"):
+            tensor = doc["tensors"].get(name)
+            if not isinstance(tensor, dict):
+                continue
+            unit, factor = conversion(name, units, convention)
+            for c in tensor.get("components") or []:
+                value, error = _number(c.get("value")), _number(c.get("error"))
+                entry = c.get("richardson_entry") or {}
+                rows.append([label, name, c.get("name"),
+                             None if value is None else value * factor,
+                             None if error is None else error * factor, unit,
+                             c.get("status") if value is not None else
+                             f"{c.get('status')}: {c.get('reason')}",
+                             f"h{entry.get('level')}, {entry.get('steps')} steps"
+                             if c.get("status") not in ("ok-zero-field", "missing")
+                             else "-"])
+    return header, rows, header
+
+
+def _pair_text(value, error) -> tuple[str, str]:
+    from fieldprop.report import format_pair
+
+    if value is None:
+        return "-", "-"
+    return format_pair(value, error)
+
+
+def write(docs: list[tuple[str, dict]], out: TextIO, units: str = "au",
+          convention: str = "taylor", fmt: str = "table", components: bool = False) -> None:
+    """The results ``docs`` ((label, document) pairs) in one layout and format."""
+    build = component_table if components else invariant_table
+    header, rows, shown = build(docs, units, convention)
+    if fmt == "csv":
+        writer = csv.writer(out, lineterminator="\n")
+        writer.writerow(header)
+        for row in rows:
+            writer.writerow(["" if v is None else repr(v) if isinstance(v, float) else v
+                             for v in row])
+        return
+    if fmt == "json":
+        json.dump({"schema": "fieldprop-report-1", "units": units, "convention": convention,
+                   "columns": header, "rows": rows}, out, indent=1, allow_nan=False)
+        out.write("\n")
+        return
+    text_rows = []
+    for row in rows:
+        if components:
+            v, e = _pair_text(row[3], row[4])
+            text_rows.append([*row[:3], v, e, *row[5:]])
+            continue
+        cells = list(row[:4])
+        for k in range(4, len(row) - 1, 2):
+            cells += list(_pair_text(row[k], row[k + 1]))
+        cells.append(row[-1])
+        text_rows.append(cells)
+    out.write(f"{'tensor components' if components else 'invariants'}; units: {units}; "
+              f"convention: {convention}"
+              + (" (mu(F) = mu + alpha F + beta F^2 + gamma F^3: beta_T/2, gamma_T/6)"
+                 if convention == "perturbation" else
+                 " (E = E0 - mu F - alpha F^2/2 - beta F^3/6 - gamma F^4/24)") + "\n")
+    out.write(tabulate(text_rows, headers=shown, disable_numparse=True) + "\n")
