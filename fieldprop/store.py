@@ -312,8 +312,8 @@ class PointStore:
             try:
                 fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
             except BlockingIOError:
-                logger.info("waiting for another process computing the zero-field "
-                            "reference in %s", self.label)
+                logger.info("waiting for the zero-field reference another process is "
+                            "computing (%s)", self.label)
                 fcntl.flock(fd, fcntl.LOCK_EX)
             yield
         finally:

@@ -1,0 +1,332 @@
+"""Shell pipelines and job arrays: plan, point, collect, report, as scripts call them.
+
+Every point is computed in its own process, as a job-array element or an
+``xargs -P`` child would; the assembled result must be the one ``run`` gives.
+"""
+
+import json
+import random
+import subprocess
+import sys
+import textwrap
+from concurrent.futures import ThreadPoolExecutor
+
+import numpy as np
+import pytest
+from scipy import constants
+
+pytest.importorskip("pyscf")
+
+#: LiH off every axis, dipole route: 1 + 6 x 2 = 13 points for mu and alpha.
+JOB = textwrap.dedent("""
+    [molecule]
+    geometry = \"\"\"
+    Li 0.0 0.0 0.0
+    H  0.3 0.4 1.5
+    \"\"\"
+    [model]
+    method = "hf"
+    basis = "sto-3g"
+    [response]
+    properties = ["dipole", "alpha"]
+    field_au = 0.002
+    levels = 2
+    """)
+
+
+def fieldprop(*args, cwd, stdin=None):
+    return subprocess.run([sys.executable, "-m", "fieldprop", *args], capture_output=True,
+                          text=True, cwd=cwd, timeout=600, input=stdin)
+
+
+def one_error_line(proc, code, *words):
+    """A refusal: exit ``code``, one line on stderr, naming ``words``."""
+    assert proc.returncode == code, (proc.returncode, proc.stderr)
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in proc.stderr, proc.stderr
+    for word in words:
+        assert word in lines[0], (word, lines[0])
+    return lines[0]
+
+
+def plan_lines(cwd, *extra):
+    done = fieldprop("plan", "lih.toml", "--json-lines", *extra, cwd=cwd)
+    assert done.returncode == 0, done.stderr
+    return [json.loads(line) for line in done.stdout.splitlines()]
+
+
+def assert_same_result(a, b):
+    """Two result documents agree: every tensor entry within the sum of both
+    error bars (the points' SCF starts differ between a run and single points,
+    so their last digits do), the zero-field dipole to the last bit."""
+    for name in b["tensors"]:
+        va = np.array(a["tensors"][name]["value"], dtype=float)
+        vb = np.array(b["tensors"][name]["value"], dtype=float)
+        ea = np.array(a["tensors"][name]["error"], dtype=float)
+        eb = np.array(b["tensors"][name]["error"], dtype=float)
+        assert np.all(np.abs(va - vb) <= ea + eb), (name, va - vb, ea + eb)
+    assert a["tensors"]["dipole"]["value"] == b["tensors"]["dipole"]["value"]
+    assert a["energy_au"] == b["energy_au"]
+
+
+@pytest.fixture(scope="module")
+def reference_run(tmp_path_factory):
+    """The same job computed by ``run`` in one process, no store."""
+    folder = tmp_path_factory.mktemp("run")
+    (folder / "lih.toml").write_text(JOB)
+    done = fieldprop("run", "lih.toml", "--no-store", "--quiet", "--json", "-", cwd=folder)
+    assert done.returncode == 0, done.stderr
+    return json.loads(done.stdout)
+
+
+def test_points_in_shuffled_order_two_at_a_time_collect_what_run_gives(tmp_path,
+                                                                        reference_run):
+    """plan --json-lines, then one process per id in shuffled order, two at a
+    time (from the start: both need the zero-field reference at once, and one
+    computes it while the other waits), then collect."""
+    (tmp_path / "lih.toml").write_text(JOB)
+    points = plan_lines(tmp_path)
+    assert len(points) == 13 and {p["stored"] for p in points} == {"missing"}
+    ids = [p["id"] for p in points]
+    random.Random(7).shuffle(ids)
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        runs = list(pool.map(lambda i: fieldprop("point", "lih.toml", "--id", i,
+                                                 cwd=tmp_path), ids))
+    assert all(r.returncode == 0 for r in runs), [r.stderr for r in runs if r.returncode]
+    log = "".join(r.stderr for r in runs)
+    assert log.count("computing the zero-field reference") == 1, log
+    assert {p["stored"] for p in plan_lines(tmp_path)} == {"stored"}
+    done = fieldprop("collect", "lih.toml", "--json", "-", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    doc = json.loads(done.stdout)
+    assert doc["points"]["planned"] == 13 and doc["points"]["reused"] == 13
+    assert_same_result(doc, reference_run)
+    csv = fieldprop("collect", "lih.toml", "--format", "csv", "--quiet", cwd=tmp_path)
+    assert csv.returncode == 0
+    rows = [line.split(",") for line in csv.stdout.splitlines()]
+    assert rows[0] == ["file", "tensor", "component", "value", "error", "unit", "status",
+                       "entry"]
+    by_name = {r[2]: r for r in rows[1:]}
+    alpha_zz = doc["tensors"]["alpha"]["value"][2][2]
+    assert float(by_name["alpha_zz"][3]) == alpha_zz and len(rows) == 1 + 3 + 9
+
+
+def test_point_lines_on_stdout_collect_without_the_store(tmp_path, reference_run):
+    """The multi-node recipe: zero field into the store, the rest as point
+    lines on stdout (the store only read), collected from the lines."""
+    (tmp_path / "lih.toml").write_text(JOB)
+    assert fieldprop("point", "lih.toml", "--zero-field", "--quiet", cwd=tmp_path).returncode == 0
+    store = tmp_path / "fieldprop-points.sqlite"
+    before = store.read_bytes()
+    ids = fieldprop("plan", "lih.toml", "--ids", cwd=tmp_path).stdout.split()
+    done = fieldprop("point", "lih.toml", "--id", "-", "--stdout", "--threads", "1",
+                     cwd=tmp_path, stdin="\n".join(ids) + "\n")
+    assert done.returncode == 0, done.stderr
+    assert "computing the zero-field reference" not in done.stderr  # read from the store
+    assert store.read_bytes() == before  # never written
+    lines = done.stdout.splitlines()
+    assert [json.loads(line)["id"] for line in lines] == ids
+    (tmp_path / "points.jsonl").write_text(done.stdout)
+    # The store alone lacks the points; the lines complete it.
+    incomplete = fieldprop("collect", "lih.toml", "--json", "-", cwd=tmp_path)
+    assert incomplete.returncode == 3
+    done = fieldprop("collect", "lih.toml", "--points", "-", "--json", "-", cwd=tmp_path,
+                     stdin=(tmp_path / "points.jsonl").read_text())
+    assert done.returncode == 0, done.stderr
+    assert_same_result(json.loads(done.stdout), reference_run)
+    # ... and the lines alone (no store at all), the backend facts coming with them.
+    store.unlink()
+    done = fieldprop("collect", "lih.toml", "--points", "points.jsonl", "--json", "-",
+                     cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    assert_same_result(json.loads(done.stdout), reference_run)
+
+
+def test_missing_points_are_named_and_partial_results_marked(tmp_path):
+    """collect: exit 3 naming exactly the missing ids; --allow-partial reports
+    what the points found determine (here alpha_xx, alpha_yx, alpha_zx: the x
+    line; mu at zero field) and marks the rest missing, exit 3 all the same."""
+    (tmp_path / "lih.toml").write_text(JOB)
+    points = plan_lines(tmp_path)
+    on_x = [p["id"] for p in points if p["offsets"][1:] == [0, 0]]  # zero field and the x line
+    assert len(on_x) == 5
+    done = fieldprop("point", "lih.toml", *sum((["--id", i] for i in on_x), []), "--quiet",
+                     cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    missing = {p["id"] for p in points} - set(on_x)
+    listed = fieldprop("plan", "lih.toml", "--missing", "--ids", cwd=tmp_path).stdout.split()
+    assert set(listed) == missing
+    done = fieldprop("collect", "lih.toml", cwd=tmp_path)
+    line = one_error_line(done, 3, "8 of 13 planned field points are not in")
+    assert set(line.split(": ")[-1].split()) == missing
+    assert not (tmp_path / "lih.result.json").exists()
+
+    done = fieldprop("collect", "lih.toml", "--allow-partial", "--json", "-", cwd=tmp_path)
+    assert done.returncode == 3
+    assert done.stderr.strip().splitlines()[-1].startswith("fieldprop: error: incomplete: ")
+    doc = json.loads(done.stdout)
+    assert {m["id"] for m in doc["points"]["missing"]} == missing
+    alpha = {c["name"]: c for c in doc["tensors"]["alpha"]["components"]}
+    determined = {n for n, c in alpha.items() if c["status"] != "missing"}
+    assert determined == {"alpha_xx", "alpha_yx", "alpha_zx"}
+    assert all(alpha[n]["value"] is None and alpha[n]["reason"] for n in alpha
+               if n not in determined)
+    assert all(isinstance(alpha[n]["value"], float) for n in determined)
+    assert doc["tensors"]["alpha"]["value"][0][1] is None  # alpha_xy = alpha_yx: its y line
+    assert doc["tensors"]["dipole"]["components"][0]["status"] == "ok-zero-field"
+    assert doc["invariants"]["alpha_iso"]["value"] is None
+    assert "missing components" in doc["invariants"]["alpha_iso"]["reason"]
+    table = fieldprop("collect", "lih.toml", "--allow-partial", "--json", "p.json",
+                      cwd=tmp_path)
+    assert table.returncode == 3 and "alpha_yy     missing" in table.stdout
+
+
+def test_a_repeated_point_is_not_recomputed(tmp_path):
+    (tmp_path / "lih.toml").write_text(JOB)
+    ident = plan_lines(tmp_path)[3]["id"]
+    done = fieldprop("point", "lih.toml", "--id", ident, "--id", ident, cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    assert "given more than once: computed once" in done.stderr
+    assert done.stderr.count("SCF cycles") == 1  # computed once (zero field before it)
+    assert done.stderr.count("computing the zero-field reference") == 1
+    again = fieldprop("point", "lih.toml", "--id", ident, cwd=tmp_path)
+    assert again.returncode == 0
+    assert f"point {ident} " in again.stderr and "stored already" in again.stderr
+    assert "SCF cycles" not in again.stderr and "computing" not in again.stderr
+
+
+def test_index_covers_every_missing_point_exactly_once(tmp_path):
+    """plan --count fixes the to-do list; point --index N for N = 0..count-1,
+    one process each, computes each missing point once, however many of the
+    others are done when an element starts; N = count is bad input."""
+    (tmp_path / "lih.toml").write_text(JOB)
+    assert fieldprop("point", "lih.toml", "--zero-field", "--quiet", cwd=tmp_path).returncode == 0
+    count = fieldprop("plan", "lih.toml", "--count", cwd=tmp_path)
+    assert count.returncode == 0, count.stderr
+    n = int(count.stdout)
+    assert n == 12
+    missing = set(fieldprop("plan", "lih.toml", "--missing", "--ids", cwd=tmp_path).stdout.split())
+    computed = []
+    for index in range(n):  # one after the other: the missing set shrinks meanwhile
+        done = fieldprop("point", "lih.toml", "--index", str(index), cwd=tmp_path)
+        assert done.returncode == 0, done.stderr
+        computed += [w for line in done.stderr.splitlines() if "SCF cycles" in line
+                     for w in line.split()[2:3]]
+    assert sorted(computed) == sorted(missing) and len(set(computed)) == n
+    assert fieldprop("plan", "lih.toml", "--count", cwd=tmp_path).stdout.strip() == "0"
+    over = fieldprop("point", "lih.toml", "--index", "0", cwd=tmp_path)
+    one_error_line(over, 2, "--index 0", "empty")
+
+
+def test_bad_point_lines_are_refused_with_one_line(tmp_path):
+    """A corrupt line, a line of another model, a line not in the plan, a line
+    whose key does not match its contents, an id not in the plan: exit 2, one
+    line each, and no result written."""
+    (tmp_path / "lih.toml").write_text(JOB)
+    ids = [p["id"] for p in plan_lines(tmp_path)]
+    good = fieldprop("point", "lih.toml", "--id", ids[0], "--id", ids[1], "--stdout",
+                     cwd=tmp_path)
+    assert good.returncode == 0, good.stderr
+    zero_line, point_line = good.stdout.splitlines()
+    other = tmp_path / "other"
+    other.mkdir()
+    (other / "lih.toml").write_text(JOB.replace('"sto-3g"', '"6-31g"'))
+    foreign = fieldprop("point", "lih.toml", "--zero-field", "--stdout", cwd=other).stdout
+    (other / "lih.toml").write_text(JOB.replace("field_au = 0.002", "field_au = 0.003"))
+    off_plan = fieldprop("point", "lih.toml", "--id",
+                         plan_lines(other)[1]["id"], "--stdout", cwd=other).stdout
+    edited = json.loads(point_line)
+    edited["field_vector_au"][0] *= 2
+    cases = {
+        "corrupt": (zero_line + "\n" + point_line[:57] + "\n", ["stdin line 2", "not JSON"]),
+        "foreign": (foreign, ["stdin line 1", "another molecule or model", "6-31g"]),
+        "off_plan": (zero_line + "\n" + off_plan, ["stdin line 2", "not in this job's plan"]),
+        "edited": (json.dumps(edited) + "\n", ["stdin line 1", "does not match its"]),
+        "not_a_point": ('{"schema": "fieldprop-result-1"}\n', ["not a fieldprop point line"]),
+    }
+    for name, (text, words) in cases.items():
+        done = fieldprop("collect", "lih.toml", "--points", "-", cwd=tmp_path, stdin=text)
+        one_error_line(done, 2, "bad input", *words)
+        assert not (tmp_path / "lih.result.json").exists(), name
+    done = fieldprop("point", "lih.toml", "--id", "0123456789ab", cwd=tmp_path)
+    one_error_line(done, 2, "--id 0123456789ab", "not in this job's plan")
+    done = fieldprop("point", "lih.toml", "--index", "0", "--stdout", cwd=tmp_path)
+    one_error_line(done, 2, "no to-do list", "plan lih.toml --count")
+
+
+def test_a_failed_point_gives_exit_1_and_collect_names_it(tmp_path, capsys, monkeypatch):
+    """A point whose SCF never converges: point exits 1 naming it, the failure
+    is stored, and collect exits 1 with the same reason."""
+    from fieldprop import backend_pyscf
+    from fieldprop.cli import main
+    from fieldprop.errors import ScfNotConvergedError
+
+    (tmp_path / "lih.toml").write_text(JOB)
+    job = str(tmp_path / "lih.toml")
+    ids = [p["id"] for p in plan_lines(tmp_path)]
+    real = backend_pyscf._converge
+
+    def stubborn(mf, context, point):
+        if point.label == "L1(0,+1,0)":
+            raise ScfNotConvergedError(f"SCF did not converge at field point {point.label} "
+                                       "(injected)")
+        return real(mf, context, point)
+
+    monkeypatch.setattr(backend_pyscf, "_converge", stubborn)
+    assert main(["point", job, *sum((["--id", i] for i in ids), [])]) == 1
+    err = capsys.readouterr().err
+    assert "L1(0,+1,0)" in err and err.strip().splitlines()[-1].startswith(
+        "fieldprop: error: SCF not converged: ")
+    assert main(["collect", job, "--quiet"]) == 1
+    assert "did not converge at field point L1(0,+1,0)" in capsys.readouterr().err
+
+
+def test_report_converts_units_and_conventions_without_computing(tmp_path):
+    """report: the invariants of result files in esu and the perturbation (B)
+    convention, as CSV with one column per value and error bar; the factors
+    checked against CODATA through scipy.constants, written out here."""
+    job = JOB.replace('["dipole", "alpha"]', '["dipole", "alpha", "beta"]').replace(
+        "levels = 2", "levels = 3")
+    (tmp_path / "lih.toml").write_text(job)
+    done = fieldprop("run", "lih.toml", "--no-store", "--quiet", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    doc = json.loads((tmp_path / "lih.result.json").read_text())
+    done = fieldprop("report", "lih.result.json", "--units", "esu", "--convention",
+                     "perturbation", "--format", "csv", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    header, row = [line.split(",") for line in done.stdout.splitlines()]
+    values = dict(zip(header, row))
+    assert header[:4] == ["file", "formula", "model", "route"] and header[-1] == "status"
+    assert values["formula"] == "HLi" and values["status"] == "ok"
+    # Gaussian units: 1 C = 10 c statC (c in m/s), a0 in cm, Eh in erg; one
+    # atomic unit of beta is e^3 a0^3 / Eh^2 (common practice).
+    e_statc = constants.e * constants.c * 10.0
+    a0_cm = constants.physical_constants["Bohr radius"][0] * 100.0
+    eh_erg = constants.physical_constants["Hartree energy"][0] * 1e7
+    beta_esu = (e_statc * a0_cm) ** 3 / eh_erg ** 2
+    inv = doc["invariants"]
+    assert float(values["beta_hrs_esu"]) == pytest.approx(inv["beta_hrs"]["value"] * beta_esu
+                                                          / 2, rel=1e-9)
+    assert float(values["beta_hrs_error_esu"]) == pytest.approx(
+        inv["beta_hrs"]["error"] * beta_esu / 2, rel=1e-9)
+    angstrom3 = (constants.physical_constants["Bohr radius"][0] / constants.angstrom) ** 3
+    assert float(values["alpha_iso_angstrom3"]) == pytest.approx(
+        inv["alpha_iso"]["value"] * angstrom3, rel=1e-12)  # alpha: the same in both conventions
+    debye = e_statc * a0_cm / 1e-18
+    # (10 c statC per C holds for mu0 = 4 pi 1e-7 exactly; since the 2019 SI it
+    # differs from 1 / sqrt(4 pi eps0), the factor fieldprop uses, by ~1e-10.)
+    assert float(values["dipole_norm_debye"]) == pytest.approx(
+        inv["dipole_norm"]["value"] * debye, rel=1e-9)
+    # One row per component, Taylor, atomic units: the JSON's own numbers.
+    done = fieldprop("report", "lih.result.json", "--components", "--format", "json",
+                     cwd=tmp_path)
+    table = json.loads(done.stdout)
+    rows = {r[2]: r for r in table["rows"]}
+    beta_zzz = next(c for c in doc["tensors"]["beta"]["components"] if c["name"] == "beta_zzz")
+    assert rows["beta_zzz"][3] == beta_zzz["value"] and rows["beta_zzz"][5] == "au"
+    # A table on screen; a file that is not a result: one line, exit 2.
+    shown = fieldprop("report", "lih.result.json", "lih.result.json", cwd=tmp_path)
+    assert shown.returncode == 0 and shown.stdout.count("lih.result.json") == 2
+    one_error_line(fieldprop("report", "lih.toml", cwd=tmp_path), 2, "lih.toml", "not JSON")
+    one_error_line(fieldprop("report", "nothing.json", cwd=tmp_path), 2, "nothing.json",
+                   "no such file")
