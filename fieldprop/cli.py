@@ -82,7 +82,7 @@ examples:
   fieldprop point water.toml --id 3f2a9c01b7de           one point into the store
   fieldprop point water.toml --index "$ARRAY_INDEX"      a job-array element (after
                                                          fieldprop plan water.toml --count)
-  fieldprop plan water.toml --missing --ids | xargs -n 1 -P 2 fieldprop point water.toml --id
+  fieldprop plan water.toml --missing --ids | xargs -n 4 -P 2 fieldprop point water.toml --id
   fieldprop point water.toml --id 3f2a9c01b7de --stdout >> points.jsonl
                                                          a point line; the store only read
 exit codes: 0 every point computed or stored already; 1 a point failed (its reason on
@@ -244,9 +244,9 @@ def build_parser() -> argparse.ArgumentParser:
                            formatter_class=argparse.RawDescriptionHelpFormatter)
     point.add_argument("job", type=Path, help="job file (TOML)")
     which = point.add_mutually_exclusive_group(required=True)
-    which.add_argument("--id", action="append", metavar="ID", dest="ids",
-                       help="a point id from fieldprop plan (repeat for more; - reads ids, "
-                       "or plan's JSON lines, from standard input)")
+    which.add_argument("--id", action="extend", nargs="+", metavar="ID", dest="ids",
+                       help="point ids from fieldprop plan, computed one after the other in "
+                       "this process (- reads ids, or plan's JSON lines, from standard input)")
     which.add_argument("--index", type=_non_negative_int, metavar="N", help="the N-th point "
                        "(from 0) of the to-do list fixed by fieldprop plan --count: a job "
                        "array's element index")
