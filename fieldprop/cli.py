@@ -67,6 +67,36 @@ reading the tables:
                                     h_k .. h_k+m); F = 0: no derivative taken
 """
 
+EXIT_CODES = """\
+exit codes (every command):
+  0    success
+  1    a calculation failed, a component is unstable, or check disagrees (stderr says
+       what and why: fieldprop: error: <what>: <message>)
+  2    bad input: one line naming the file and key; nothing written
+  3    incomplete: points missing (collect names their ids)
+  130  interrupted (Ctrl-C); 143 terminated (SIGTERM): finished points stay stored
+data go to stdout; logs and progress to stderr. Each command's --help has examples.
+"""
+
+RUN_EXAMPLES = """
+examples:
+  fieldprop run water.toml                        tables; water.result.json beside the job
+  fieldprop run water.toml --json - | jq '.invariants.alpha_iso'
+  fieldprop run water.toml --workers 2 --units esu --plot plots/
+"""
+
+CHECK_EXAMPLES = """
+examples:
+  fieldprop check water.toml                      against PySCF's analytic tensors
+  fieldprop check water.toml --against mycode.json --sigmas 3 || echo "disagrees"
+"""
+
+INSPECT_EXAMPLES = """\
+examples:
+  fieldprop inspect fieldprop-points.sqlite
+  fieldprop inspect fieldprop-points.sqlite --json-lines > points.jsonl   (collect --points reads it)
+"""
+
 PLAN_EXAMPLES = """\
 examples:
   fieldprop plan water.toml                      the points, and which are stored
@@ -154,13 +184,15 @@ def _positive_float(text: str) -> float:
 def build_parser() -> argparse.ArgumentParser:
     from fieldprop.store import DEFAULT_NAME as DEFAULT_STORE_NAME
 
-    parser = _Parser(prog="fieldprop", description="Static dipole moment, polarizability and "
+    parser = _Parser(prog="fieldprop", epilog=EXIT_CODES,
+                     formatter_class=argparse.RawDescriptionHelpFormatter,
+                     description="Static dipole moment, polarizability and "
                      "hyperpolarizabilities by finite fields with Richardson extrapolation.")
     parser.add_argument("--version", action="version", version=f"fieldprop {__version__}")
     sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
     run = sub.add_parser("run", help="compute a job: tables on stdout, result JSON to a file",
-                         epilog=READING_THE_TABLES,
+                         epilog=READING_THE_TABLES + RUN_EXAMPLES,
                          formatter_class=argparse.RawDescriptionHelpFormatter)
     run.add_argument("job", type=Path, help="job file (TOML)")
     run.add_argument("--json", type=Path, help="result JSON path (default JOB.result.json "
@@ -188,7 +220,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     check = sub.add_parser("check", help="finite-field tensors versus analytic ones (PySCF's, "
                            "or a tensor file of another code); exit 0 agree, 1 disagree",
-                           epilog=READING_THE_TABLES,
+                           epilog=READING_THE_TABLES + CHECK_EXAMPLES,
                            formatter_class=argparse.RawDescriptionHelpFormatter)
     check.add_argument("job", type=Path, help="job file (TOML)")
     check.add_argument("--against", type=Path, help="reference tensors: result-style JSON, "
@@ -303,7 +335,9 @@ def build_parser() -> argparse.ArgumentParser:
                         "component instead of one row of invariants per result")
     report.set_defaults(handler=cmd_report)
 
-    inspect = sub.add_parser("inspect", help="what a point store holds: molecules and models, "
+    inspect = sub.add_parser("inspect", epilog=INSPECT_EXAMPLES,
+                             formatter_class=argparse.RawDescriptionHelpFormatter,
+                             help="what a point store holds: molecules and models, "
                              "points computed and failed, size; or every point as JSON lines")
     inspect.add_argument("store", type=Path, help="a point store file")
     inspect.add_argument("--json-lines", action="store_true", help="export every stored point "

@@ -266,3 +266,17 @@ def test_tables_in_esu_or_si_convert_every_component(tmp_path, system, label, fa
     shown = float(row.split()[1])
     au = doc["tensors"]["beta"]["value"][2][2][2]
     assert shown == pytest.approx(au * getattr(units, factor)(3), rel=1e-6)
+
+
+def test_every_command_has_worked_examples_and_the_exit_codes_are_listed():
+    import argparse
+
+    from fieldprop.cli import build_parser
+
+    parser = build_parser()
+    for word in ("0    success", "2    bad input", "3    incomplete", "130"):
+        assert word in parser.epilog
+    commands = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    for name, sub in commands.choices.items():
+        assert "examples:" in (sub.epilog or ""), name
+        assert f"fieldprop {name} " in sub.epilog, name

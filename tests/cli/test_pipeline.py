@@ -109,6 +109,15 @@ def test_points_in_shuffled_order_two_at_a_time_collect_what_run_gives(tmp_path,
     by_name = {r[2]: r for r in rows[1:]}
     alpha_zz = doc["tensors"]["alpha"]["value"][2][2]
     assert float(by_name["alpha_zz"][3]) == alpha_zz and len(rows) == 1 + 3 + 9
+    # The store exported as point lines assembles the same result elsewhere.
+    export = fieldprop("inspect", "fieldprop-points.sqlite", "--json-lines", cwd=tmp_path)
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    (elsewhere / "lih.toml").write_text(JOB)
+    again = fieldprop("collect", "lih.toml", "--points", "-", "--json", "-", cwd=elsewhere,
+                      stdin=export.stdout)
+    assert again.returncode == 0, again.stderr
+    assert json.loads(again.stdout)["tensors"] == doc["tensors"]
 
 
 def test_point_lines_on_stdout_collect_without_the_store(tmp_path, reference_run):
