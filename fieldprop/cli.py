@@ -39,14 +39,22 @@ class _Parser(argparse.ArgumentParser):
         raise InputError(f"{self.prog}: {message} (see {self.prog} --help)")
 
 
-def _positive_int(text: str) -> int:
+def _whole_number(text: str, minimum: int = 1) -> int:
     try:
         value = int(text)
     except ValueError:
         raise argparse.ArgumentTypeError(f"must be a whole number, got {text!r}") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"must be >= 1, got {value}")
+    if value < minimum:
+        raise argparse.ArgumentTypeError(f"must be >= {minimum}, got {value}")
     return value
+
+
+def _positive_int(text: str) -> int:
+    return _whole_number(text, 1)
+
+
+def _non_negative_int(text: str) -> int:
+    return _whole_number(text, 0)
 
 
 #: How to read a component row (also in the README, "Reading the tables").
@@ -159,16 +167,6 @@ def _progress(args) -> tuple[bool, float | None]:
     if sys.stderr.isatty():
         return True, None
     return False, args.log_every
-
-
-def _non_negative_int(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"must be a whole number, got {text!r}") from None
-    if value < 0:
-        raise argparse.ArgumentTypeError(f"must be >= 0, got {value}")
-    return value
 
 
 def _positive_float(text: str) -> float:
@@ -412,7 +410,7 @@ def cmd_run(args) -> int:
     from fieldprop.engine import prepare, require_stable, run_prepared
     from fieldprop.job import load_job
     from fieldprop.report import (check_output_path, is_stdout, result_document,
-                                  write_json_atomic, write_tables)
+                                  write_json_atomic)
 
     job = load_job(args.job)
     out_path = args.json if args.json is not None else default_result_path(args.job)
