@@ -552,7 +552,7 @@ def _read_point_lines(path: Path | None):
 
 def _to_do(prepared, rows, retry_failed: bool) -> list:
     """The planned tasks still to compute: not found, or failed with retry_failed."""
-    return [t for t in prepared.tasks if t.key not in rows
+    return [t for t in prepared.computed_tasks if t.key not in rows
             or (retry_failed and not rows[t.key].ok)]
 
 
@@ -581,7 +581,8 @@ def cmd_plan(args) -> int:
         fmt = "ids" if args.ids else "json" if args.json_lines else args.format
         only = {t.key for t in todo} if args.missing else None
         _to_stdout(lambda: write_plan(prepared.plan, prepared.tasks, rows, sys.stdout, fmt,
-                                      store.label if store is not None else None, only))
+                                      store.label if store is not None else None, only,
+                                      prepared.images, prepared.symmetry))
     finally:
         if store is not None:
             store.close()
@@ -638,6 +639,12 @@ def _targets(args, prepared, store) -> list:
     for ident in _requested_ids(args):
         text = ident.strip().lower()
         found = [t for t in tasks if text and t.key.startswith(text)]
+        computed = set(prepared.computed_tasks)
+        if len(found) == 1 and found[0] not in computed:
+            rep = tasks[prepared.images[found[0].point.index][0]]
+            raise InputError(f"{prepared.job.path}: --id {ident}: is the image of point "
+                             f"{short_id(rep.key)} under a symmetry operation of the "
+                             "molecule, never computed itself; compute that point")
         if len(found) != 1:
             why = ("matches several points; give more digits" if found else
                    "is not in this job's plan (fieldprop plan lists the ids)")

@@ -18,6 +18,7 @@ import math
 import sys
 import time
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -32,6 +33,9 @@ from fieldprop.molecule import MoleculeSpec, build_molecule
 from fieldprop.plan import FieldPlan, plan_fields, stencil_estimate
 from fieldprop.records import CPHF_RTOL, PointRecord, PointTask
 from fieldprop.tensors import Invariant, TensorResult, assemble, invariants
+
+if TYPE_CHECKING:
+    from fieldprop.symmetry import Symmetry
 
 logger = logging.getLogger(__name__)
 
@@ -84,11 +88,13 @@ class NoiseModel:
 
 @dataclass(frozen=True)
 class PointCounts:
-    """Points planned, computed in this run, and reused from the store."""
+    """Points planned, computed in this run, reused from the store, and
+    obtained as symmetry images of other points (never computed)."""
 
     planned: int
     computed: int
     reused: int
+    images: int = 0
 
 
 @dataclass(frozen=True)
@@ -96,7 +102,9 @@ class Prepared:
     """A job ready to compute or analyse: molecule, backend facts, plan, tasks.
 
     ``tasks`` follow ``plan.points`` (zero field first); ``model_key`` is the key
-    of the zero-field reference the tasks share.
+    of the zero-field reference the tasks share. ``symmetry`` is the point
+    group used (None: none), ``images`` per planned point (index of the point
+    it is the image of, operation R) or (its own index, None) when computed.
     """
 
     job: Job
@@ -105,6 +113,31 @@ class Prepared:
     plan: FieldPlan
     tasks: tuple[PointTask, ...]
     model_key: str
+    symmetry: "Symmetry | None" = None
+    images: tuple = ()
+
+    @property
+    def computed_tasks(self) -> tuple[PointTask, ...]:
+        """The tasks computed (the others are symmetry images of these)."""
+        if not self.images:
+            return self.tasks
+        return tuple(t for t, (j, op) in zip(self.tasks, self.images) if op is None)
+
+    def expand(self, by_index: dict) -> list:
+        """Records of every planned point from those of the computed ones
+        ({plan index: PointRecord}); None where a computed point is absent."""
+        from fieldprop.symmetry import image_record
+
+        if not self.images:
+            return [by_index.get(i) for i in range(len(self.tasks))]
+        out = []
+        for i, (j, op) in enumerate(self.images):
+            if op is None:
+                out.append(by_index.get(i))
+            else:
+                rep = by_index.get(j)
+                out.append(None if rep is None else image_record(rep, op, self.plan.points[i]))
+        return out
 
     def description(self) -> dict:
         """The model's canonical description (stored beside its reference)."""
@@ -133,6 +166,8 @@ class RunResult:
     #: their records are placeholders (NaN, attempts ("missing",)), never
     #: differentiated.
     missing: tuple[tuple[int, str], ...] = ()
+    #: The point group whose images replaced computed points (None: none).
+    symmetry: "Symmetry | None" = None
 
     @property
     def energy_au(self) -> float:
@@ -156,10 +191,12 @@ class RunResult:
                 if c.estimate.status is ComponentStatus.MISSING]
 
 
-def make_plan(job: Job, route: Route | str | None = None) -> FieldPlan:
-    """The job's field plan, on its own route or on ``route``."""
+def make_plan(job: Job, route: Route | str | None = None, symmetry=None) -> FieldPlan:
+    """The job's field plan, on its own route or on ``route``; with the
+    molecule's ``symmetry``, components it forbids are planned without points."""
     r = job.response
-    return plan_fields(r.properties, r.field_au, r.ratio, r.levels, route or r.route)
+    return plan_fields(r.properties, r.field_au, r.ratio, r.levels, route or r.route,
+                       symmetry.forced_zero if symmetry is not None else None)
 
 
 def quantities(job: Job, route: Route) -> Quantities:
@@ -186,16 +223,56 @@ def prepare(job: Job, route: Route | str | None = None, facts: dict | None = Non
     functional) and reports them; with ``facts`` (from a store) PySCF is not
     imported.
     """
-    molecule = build_molecule(job.molecule, job.response.origin)
+    molecule, sym = symmetric_molecule(job)
     if facts is None:
         from fieldprop.backend_pyscf import validate
 
         facts = validate(job, molecule)
     if any(facts.get("core_electrons", ())):
         molecule = dataclasses.replace(molecule, core_electrons=tuple(facts["core_electrons"]))
-    plan = make_plan(job, route)
+    plan = make_plan(job, route, sym)
     tasks = make_tasks(job, molecule, plan)
-    return Prepared(job, molecule, facts, plan, tuple(tasks), tasks[0].model_key)
+    images = ()
+    if sym is not None:
+        from fieldprop.symmetry import images as find_images
+
+        images = tuple(find_images([p.field_vector_au for p in plan.points], sym))
+    return Prepared(job, molecule, facts, plan, tuple(tasks), tasks[0].model_key, sym, images)
+
+
+#: Why a molecule's symmetry is not used, when it has one (None: it is used).
+def symmetry_refusal(job: Job, molecule: MoleculeSpec) -> str | None:
+    if not job.response.symmetry:
+        return "[response] symmetry = false"
+    if molecule.multiplicity != 1:
+        return ("an open shell: its state may break the molecule's symmetry (a degenerate "
+                "shell), so no point is mapped")
+    return None
+
+
+def symmetric_molecule(job: Job):
+    """The molecule, and the point group its field points may use (None: none).
+
+    The group is that of the nuclear framework about the centre of nuclear
+    charge, for closed shells (a non-degenerate, totally symmetric state); an
+    ion's origin must be fixed by it (its dipole depends on the origin). The
+    framework is symmetrised (moved by at most symmetry.SYMMETRY_TOLERANCE_BOHR)
+    so that the images are exact."""
+    from fieldprop import symmetry
+
+    molecule = build_molecule(job.molecule, job.response.origin)
+    if symmetry_refusal(job, molecule):
+        return molecule, None
+    sym = symmetry.detect(molecule.nuclear_charges, molecule.coords_bohr)
+    if sym is None:
+        return molecule, None
+    origin = np.asarray(molecule.origin_bohr)
+    if molecule.charge != 0 and np.linalg.norm(origin - sym.centre) > 1e-8:
+        return molecule, None
+    if sym.moved_bohr > 0.0:
+        molecule = dataclasses.replace(molecule, coords_bohr=tuple(
+            tuple(float(v) for v in xyz) for xyz in sym.coords_bohr))
+    return molecule, sym
 
 
 def _route_values(plan: FieldPlan, records, noise: NoiseModel):
@@ -357,19 +434,22 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
     if progress is None:
         progress = sys.stderr.isatty()
     try:
-        outcome = compute_points(list(prepared.tasks), store, prepared.facts,
+        outcome = compute_points(list(prepared.computed_tasks), store, prepared.facts,
                                  prepared.description(), workers=workers, progress=progress,
                                  retry_failed=retry_failed, log_every_s=log_every_s)
     finally:
         if own_store:
             store.close()
-    counts = PointCounts(len(plan.points), outcome.computed, outcome.reused)
-    logger.info("%d field point%s: %d computed, %d reused from %s", counts.planned,
-                "" if counts.planned == 1 else "s", counts.computed, counts.reused, store.label)
+    n_images = len(plan.points) - len(prepared.computed_tasks)
+    counts = PointCounts(len(plan.points), outcome.computed, outcome.reused, n_images)
+    logger.info("%d field point%s: %d computed, %d reused from %s%s", counts.planned,
+                "" if counts.planned == 1 else "s", counts.computed, counts.reused, store.label,
+                f", {n_images} images by symmetry ({prepared.symmetry.name})" if n_images
+                else "")
     if outcome.failures:
         raise failed_points_error(prepared, outcome.failures, retry_failed)
-    return analyse(prepared, outcome.records, counts, store.label,
-                   time.perf_counter() - start)
+    records = prepared.expand({r.point.index: r for r in outcome.records})
+    return analyse(prepared, records, counts, store.label, time.perf_counter() - start)
 
 
 def failed_points_error(prepared: Prepared, failures, retried: bool = False):
@@ -403,7 +483,8 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
     records = tuple(records)
     if len(records) != len(plan.points):
         raise ValueError(f"{len(records)} records for {len(plan.points)} planned points")
-    missing = {i: short_id(t.key) for i, (t, r) in enumerate(zip(prepared.tasks, records))
+    source = [j for j, _ in prepared.images] or range(len(records))
+    missing = {i: short_id(prepared.tasks[source[i]].key) for i, r in enumerate(records)
                if r is None}
     if 0 in missing:
         raise ValueError("the zero-field point is needed by every analysis")
@@ -412,18 +493,25 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
     noise = noise_model(job, records, prepared.molecule)
     smooth = continuity(plan, records, noise)
     estimates = extrapolate_components(plan, records, noise, smooth.cause, missing)
+    if prepared.symmetry is not None:
+        estimates = [ComponentEstimate(0.0, 0.0, (0, 0), ComponentStatus.SYMMETRY_ZERO, 0.0,
+                                       ((0.0,),), "forbidden by the molecule's point group ("
+                                       f"{prepared.symmetry.name})")
+                     if prepared.symmetry.forced_zero(comp.indices) else est
+                     for comp, est in zip(plan.components, estimates)]
     tensors = assemble(plan.components, estimates)
     warnings = departure_warnings(job, plan, smooth) + window_warnings(job, plan, tensors)
     if missing:
+        ids = list(dict.fromkeys(missing.values()))
         warnings = (f"{job.path}: {len(missing)} of {len(plan.points)} planned field points "
-                    f"are not computed ({' '.join(list(missing.values())[:8])}"
-                    f"{' ...' if len(missing) > 8 else ''}); the components that need them "
-                    "are reported as missing, without a number",) + warnings
+                    f"are not computed ({' '.join(ids[:8])}{' ...' if len(ids) > 8 else ''}); "
+                    "the components that need them are reported as missing, without a "
+                    "number",) + warnings
     for text in warnings:
         logger.warning("%s", text)
     return RunResult(job, prepared.molecule, plan, records, noise, tensors,
                      tuple(invariants(tensors)), prepared.facts, wall_time_s, warnings, smooth,
-                     counts, store_label, tuple(sorted(missing.items())))
+                     counts, store_label, tuple(sorted(missing.items())), prepared.symmetry)
 
 
 def gather(job: Job, store=None, lines=None, route: Route | str | None = None,
@@ -436,11 +524,11 @@ def gather(job: Job, store=None, lines=None, route: Route | str | None = None,
     Bad lines raise InputError (:mod:`fieldprop.pointlines`)."""
     from fieldprop import pointlines
 
-    molecule = build_molecule(job.molecule, job.response.origin)
+    molecule, sym = symmetric_molecule(job)
     mkey = model_key(molecule, job.model, job.scf)
     facts = store.get_facts(mkey) if store is not None else None
     # The tasks' keys do not depend on the facts: the lines can be checked first.
-    tasks = make_tasks(job, molecule, make_plan(job, route))
+    tasks = make_tasks(job, molecule, make_plan(job, route, sym))
     found: dict = {}
     if lines is not None:
         text, label = lines
@@ -477,28 +565,35 @@ def collect(job: Job, store=None, route: Route | str | None = None, lines=None,
                               f"of this molecule and model (id {short_id(zero.key)}); every "
                               "result needs it: compute it with fieldprop point --zero-field "
                               "or fieldprop run")
-    missing = [t for t in prepared.tasks if t.key not in rows]
+    missing = [t for t in prepared.computed_tasks if t.key not in rows]
     if missing and not allow_partial:
         ids = " ".join(short_id(t.key) for t in missing[:8])
-        raise IncompleteError(f"{job.path}: {len(missing)} of {len(prepared.tasks)} planned "
-                              f"field points are not in {where}: {ids}"
+        raise IncompleteError(f"{job.path}: {len(missing)} of {len(prepared.computed_tasks)} "
+                              "planned "
+                              f"field points{_image_note(prepared)} are not in {where}: {ids}"
                               f"{' ...' if len(missing) > 8 else ''}")
-    failures = [rows[t.key].failure(t.point) for t in prepared.tasks
+    failures = [rows[t.key].failure(t.point) for t in prepared.computed_tasks
                 if t.key in rows and not rows[t.key].ok]
     if failures and (not allow_partial or not rows[zero.key].ok):
         raise failed_points_error(prepared, failures)
-    records = [rows[t.key].record(t.point) if t.key in rows and rows[t.key].ok else None
-               for t in prepared.tasks]
-    found = sum(r is not None for r in records)
-    counts = PointCounts(len(records), 0, found)
+    found = {t.point.index: rows[t.key].record(t.point) for t in prepared.computed_tasks
+             if t.key in rows and rows[t.key].ok}
+    records = prepared.expand(found)
+    counts = PointCounts(len(records), 0, len(found), len(records) - len(prepared.computed_tasks))
     return analyse(prepared, records, counts, where, time.perf_counter() - start)
+
+
+def _image_note(prepared: Prepared) -> str:
+    n = len(prepared.tasks) - len(prepared.computed_tasks)
+    return f" (and {n} symmetry images of them)" if n else ""
 
 
 def todo_list_key(prepared: Prepared) -> str:
     """The key of a plan's to-do list in a store: its points' keys, in order."""
     from fieldprop.keys import digest
 
-    return digest({"kind": "fieldprop-todo", "points": [t.key for t in prepared.tasks]})
+    return digest({"kind": "fieldprop-todo",
+                   "points": [t.key for t in prepared.computed_tasks]})
 
 
 QUANTITY = {"energy": ("energy", "Eh"), "dipole": ("dipole", "au"),

@@ -44,6 +44,8 @@ class ComponentStatus(enum.Enum):
     NOISE_LIMITED = "ok-at-noise-floor"
     #: Trusted; a zero-field quantity, no derivative taken: the bar is its noise.
     ZERO_FIELD = "ok-zero-field"
+    #: Exactly zero: the molecule's point-group symmetry forbids the component.
+    SYMMETRY_ZERO = "zero-by-symmetry"
     #: No entry is trustworthy: no number is reported.
     UNSTABLE = "unstable"
     #: Not determined: points it needs are not computed (``collect

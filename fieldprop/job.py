@@ -84,6 +84,7 @@ _SECTIONS = {
     "molecule": {"geometry", "xyz", "units", "charge", "multiplicity", "allow_close_atoms"},
     "model": {"method", "functional", "basis", "reference", "frozen_core", "cartesian"},
     "response": {"properties", "field_au", "ratio", "levels", "origin", "differentiate", "route",
+                 "symmetry",
                  "nuclear_relaxation"},
     "scf": {"energy_conv_tol_au", "max_cycle", "grid_level", "gradient_target",
             "gradient_needed", "solver"},
@@ -153,6 +154,8 @@ class ResponseSpec:
     origin: str | tuple[float, float, float]  # one of ORIGINS, or bohr
     route: Route  # ENERGY or DIPOLE after resolution
     nuclear_relaxation: bool = False
+    #: Compute only symmetry-unique field points and map the others (closed shells).
+    symmetry: bool = True
 
     @property
     def max_order(self) -> int:
@@ -560,7 +563,11 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
     if relax:
         raise r.fail("nuclear_relaxation", "= true is not available in this version; set it "
                      "to false (electronic response at fixed nuclei)")
-    return ResponseSpec(props_sorted, field_au, source, ratio, levels, origin, route, relax)
+    symmetry = table.get("symmetry", True)
+    if not isinstance(symmetry, bool):
+        raise r.fail("symmetry", f"must be true or false, got {symmetry!r}")
+    return ResponseSpec(props_sorted, field_au, source, ratio, levels, origin, route, relax,
+                        symmetry)
 
 
 def _parse_scf(path: str, table: dict[str, Any], method: str, max_order: int,

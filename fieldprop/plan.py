@@ -328,7 +328,7 @@ def component_recipes(properties, route: Route | str) -> list[
 
 
 def plan_fields(properties, field_au: float, ratio: float, levels: int,
-                route: str = "energy") -> FieldPlan:
+                route: str = "energy", forced_zero=None) -> FieldPlan:
     """Plan the field points and per-component stencils.
 
     Parameters
@@ -338,6 +338,9 @@ def plan_fields(properties, field_au: float, ratio: float, levels: int,
     ratio : ladder ratio a > 1; h_k = h0 * a**k.
     levels : number of field strengths K >= 1.
     route : "energy" (differentiate E) or "dipole" (differentiate mu_i).
+    forced_zero : optional predicate on a component's tensor indices: True for
+        a component the molecule's symmetry makes zero, which is planned with
+        no stencil and needs no point.
 
     Returns
     -------
@@ -359,6 +362,9 @@ def plan_fields(properties, field_au: float, ratio: float, levels: int,
     for r in order:
         recipe = recipes[r]
         counts = recipe[4]
+        if forced_zero is not None and forced_zero(recipe[1]):
+            raw.append((r, recipe, []))
+            continue
         weights = sparse_weights(counts, frozenset(available))
         available.update(weights)
         per_level = []

@@ -160,6 +160,9 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
     n = len(result.records)
     gone = (f", {len(result.missing)} of them not computed (their components: missing)"
             if result.missing else "")
+    if counts and counts.images:
+        gone += (f", {counts.images} of them images of the others under the molecule's "
+                 f"symmetry ({result.symmetry.name})")
     out.write(f"  {n} field point{'s' if n != 1 else ''}{reused}{gone}, "
               f"{sum(r.scf_cycles for r in result.records)} SCF cycles; SCF energy tolerance "
               f"{job.scf.energy_conv_tol_au:g} Eh; E(0) = {result.energy_au:.10f} Eh\n")
@@ -285,6 +288,12 @@ def result_document(result: RunResult) -> dict[str, Any]:
         "scf_retries": [{"point": r.point.label, "attempts": list(r.attempts)}
                         for r in result.computed_records if r.retried],
         "state_checks": state_checks_document(result),
+        "symmetry": None if result.symmetry is None else {
+            "group": result.symmetry.name, "kind": result.symmetry.kind,
+            "operations": [[[float(v) for v in row] for row in op]
+                           for op in result.symmetry.operations]
+            if result.symmetry.kind == "finite" else None,
+            "geometry_moved_bohr": result.symmetry.moved_bohr},
         "backend": result.backend_facts,
         "unit_factors": {p: {label: f for label, f in DISPLAY_UNITS[p]}
                          for p in PROPERTY_ORDER},
@@ -304,6 +313,8 @@ def _points_document(result: RunResult) -> dict[str, Any]:
            "reused": counts.reused if counts else 0,
            "scf_cycles": int(sum(r.scf_cycles for r in result.computed_records)),
            "store": result.store or None}
+    if counts and counts.images:
+        out["images"] = counts.images
     if result.missing:
         out["missing"] = [{"id": ident, "point": result.plan.points[i].label,
                            "field_vector_au": list(result.plan.points[i].field_vector_au)}
@@ -387,7 +398,7 @@ def write_json_atomic(document: dict[str, Any], path: Path) -> None:
         raise
 
 
-def plan_status(task, stored) -> str:
+def _stored_status(task, stored) -> str:
     """``stored``, ``failed`` or ``missing``: a planned point in ``stored``
     ({key: StoredPoint})."""
     row = stored.get(task.key)
@@ -395,12 +406,21 @@ def plan_status(task, stored) -> str:
 
 
 def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
-               store_label: str | None = None, only=None) -> None:
+               store_label: str | None = None, only=None, images=(), symmetry=None) -> None:
     """The field points ``run`` would compute, which components use them, and
     which the store holds already (``stored``: {key: StoredPoint}); ``fmt``
     table, json (a JSON object per line), csv or ids (an id per line);
-    ``only``: the keys to list (default all)."""
+    ``only``: the keys to list (default all); ``images``: per point, the index
+    of the point it is a symmetry image of and the operation (None: computed);
+    the ids listing leaves images out."""
     import csv
+
+    image_of = {i: (j, op) for i, (j, op) in enumerate(images) if op is not None}
+
+    def plan_status(task, stored) -> str:
+        if task.point.index in image_of:
+            return "image of " + short_id(tasks[image_of[task.point.index][0]].key)
+        return _stored_status(task, stored)
 
     uses: dict[int, int] = {}
     for c in plan.components:
@@ -409,16 +429,21 @@ def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
                 uses[p] = uses.get(p, 0) + 1
     listed = [(p, t) for p, t in zip(plan.points, tasks) if only is None or t.key in only]
     if fmt == "ids":
-        for _, t in listed:
-            out.write(short_id(t.key) + "\n")
+        for p, t in listed:
+            if p.index not in image_of:
+                out.write(short_id(t.key) + "\n")
         return
     if fmt == "json":
         for p, t in listed:
-            out.write(json.dumps({"id": short_id(t.key), "key": t.key, "index": p.index,
-                                  "level": p.level, "label": p.label, "offsets": list(p.offsets),
-                                  "field_vector_au": list(p.field_vector_au),
-                                  "stencil_uses": uses.get(p.index, 0),
-                                  "stored": plan_status(t, stored)}) + "\n")
+            doc = {"id": short_id(t.key), "key": t.key, "index": p.index, "level": p.level,
+                   "label": p.label, "offsets": list(p.offsets),
+                   "field_vector_au": list(p.field_vector_au),
+                   "stencil_uses": uses.get(p.index, 0), "stored": _stored_status(t, stored)}
+            if p.index in image_of:
+                j, op = image_of[p.index]
+                doc.update(stored="image", image_of=short_id(tasks[j].key),
+                           operation=[[float(v) for v in row] for row in op])
+            out.write(json.dumps(doc) + "\n")
         return
     if fmt == "csv":
         writer = csv.writer(out, lineterminator="\n")
@@ -431,6 +456,7 @@ def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
         return
     counts = {s: sum(1 for t in tasks if plan_status(t, stored) == s)
               for s in ("stored", "failed", "missing")}
+    counts["images"] = len(image_of)
     if len(plan.points) == 1:
         out.write(f"no field applied: 1 point (zero field) for {len(plan.components)} "
                   "components\n")
@@ -445,6 +471,11 @@ def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
             per_property.setdefault(c.tensor, set()).update(p for p, _ in s.terms)
     out.write("points used per property: " + ", ".join(
         f"{name} {len(points)}" for name, points in per_property.items()) + "\n")
+    if symmetry is not None:
+        out.write(f"symmetry: {symmetry.name}: {len(tasks) - len(image_of)} points computed, "
+                  f"{len(image_of)} images of them (without symmetry: {len(tasks)})"
+                  + (f"; geometry symmetrised, largest move {symmetry.moved_bohr:.1e} bohr"
+                     if symmetry.moved_bohr > 0 else "") + "\n")
     out.write(f"store {store_label or '(none yet)'}: {counts['stored']} stored, "
               f"{counts['failed']} failed, {counts['missing']} to compute\n")
     rows = [[short_id(t.key), p.level, p.label, *(f"{v:+.6g}" for v in p.field_vector_au),

@@ -1,0 +1,306 @@
+"""Point-group symmetry of the nuclear framework, in the input frame: which
+planned field points are images of others, and which tensor components vanish.
+
+Pure numerics: symbols, charges and coordinates in; operations (3x3 orthogonal
+matrices acting on vectors of the input frame) out. No PySCF, and the molecule
+is never reoriented: a molecule placed off its symmetry axes keeps its frame,
+and its operations are simply not the coordinate sign changes.
+
+If R maps the nuclei onto nuclei of the same element (about the origin of the
+multipole operator), the Hamiltonian at field R F is the one at F turned by R,
+so for a state of the molecule's symmetry
+
+    E(R F) = E(F),   mu(R F) = R mu(F),   alpha(R F) = R alpha(F) R^T.
+
+A planned point whose field vector is R F for a point F computed before it is
+therefore not computed: its record is the image of F's (:func:`image_record`).
+Points are identified by representative plus operation, never by integer
+offsets, since a turned molecule's operations do not map lattice offsets onto
+lattice offsets. A tensor component is zero by symmetry when every tensor
+invariant under the group has that component zero (:meth:`Symmetry.forced_zero`).
+
+Three kinds of group:
+
+- ``finite``: the operations are enumerated, mapping two reference atoms and
+  the sense of their cross product onto every candidate pair of the same
+  elements and distances;
+- ``linear``: C-infinity-v or D-infinity-h about the molecular axis; a field
+  relates to another when their components along the axis agree (up to sign
+  with a centre of inversion) and their lengths across it do;
+- ``atom``: O(3) about the nucleus; fields of the same length relate.
+
+The framework is symmetrised before use (each atom moved to the average of its
+images under the group), so that the images are exact: a geometry symmetric to
+SYMMETRY_TOLERANCE_BOHR moves by at most that, and the move is reported.
+
+Only states of the molecule's full symmetry may be mapped: closed shells
+(a non-degenerate, totally symmetric ground state); the engine decides when.
+
+>>> water = detect((8, 1, 1), ((0, 0, 0.2217), (0, 1.4309, -0.8867),
+...                             (0, -1.4309, -0.8867)))
+>>> water.kind, len(water.operations)
+('finite', 4)
+>>> water.forced_zero((0,)), water.forced_zero((2,))
+(True, False)
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+#: Largest distance (bohr) between an atom's image and an atom of the same
+#: element for an operation to count; the geometry is then symmetrised exactly.
+SYMMETRY_TOLERANCE_BOHR = 1e-5
+#: Relative tolerance for two field vectors to be images of each other.
+FIELD_TOLERANCE = 1e-9
+#: Rotations about an axis used to stand for the continuous ones (C_n with n
+#: above the largest tensor rank, 4, has the same invariant tensors).
+_AXIAL_ORDER = 12
+
+
+@dataclass(frozen=True, eq=False)
+class Symmetry:
+    """The symmetry operations of a nuclear framework about ``centre``.
+
+    ``operations`` (m, 3, 3) holds every operation of a finite group (identity
+    first), or generators standing for a continuous one (linear, atom) in
+    :meth:`forced_zero`; ``axis`` is the molecular axis of a linear molecule;
+    ``coords_bohr`` the symmetrised framework and ``moved_bohr`` the largest
+    move that made it exact.
+    """
+
+    kind: str  # "finite", "linear" or "atom"
+    operations: np.ndarray
+    centre: np.ndarray
+    coords_bohr: np.ndarray
+    moved_bohr: float
+    axis: np.ndarray | None = None
+    inversion: bool = False
+
+    @property
+    def name(self) -> str:
+        """A short description: the group's order, or its continuous kind."""
+        if self.kind == "atom":
+            return "atom (O(3))"
+        if self.kind == "linear":
+            return "linear (D-inf-h)" if self.inversion else "linear (C-inf-v)"
+        return f"{len(self.operations)} operations"
+
+    def relate(self, target, source) -> np.ndarray | None:
+        """An operation R of the group with R source = target, or None."""
+        f, g = np.asarray(target, dtype=float), np.asarray(source, dtype=float)
+        size = max(np.linalg.norm(f), np.linalg.norm(g), 1e-300)
+        tol = FIELD_TOLERANCE * size
+        if abs(np.linalg.norm(f) - np.linalg.norm(g)) > tol:
+            return None
+        if self.kind == "finite":
+            for op in self.operations:
+                if np.linalg.norm(op @ g - f) <= tol:
+                    return op
+            return None
+        if self.kind == "atom":
+            return _rotation_taking(g, f)
+        u = self.axis
+        fa, ga = f @ u, g @ u
+        flip = np.eye(3)
+        if abs(fa - ga) > tol:
+            if not (self.inversion and abs(fa + ga) <= tol):
+                return None
+            flip = np.eye(3) - 2.0 * np.outer(u, u)  # the plane across the axis
+            g = flip @ g
+        fp, gp = f - (f @ u) * u, g - (g @ u) * u
+        if abs(np.linalg.norm(fp) - np.linalg.norm(gp)) > tol:
+            return None
+        if np.linalg.norm(fp) <= tol:
+            return flip
+        turn = _rotation_about(u, math.atan2(np.cross(gp, fp) @ u, gp @ fp))
+        return turn @ flip
+
+    def forced_zero(self, indices: tuple[int, ...]) -> bool:
+        """True when the tensor entry ``indices`` is zero for every tensor of
+        that rank the group leaves invariant (so the molecule's is zero)."""
+        return bool(np.all(np.abs(_invariant_basis(self, len(indices))[
+            np.ravel_multi_index(indices, (3,) * len(indices))]) < 1e-8))
+
+
+def _rotation_about(u: np.ndarray, angle: float) -> np.ndarray:
+    """Rodrigues: the rotation by ``angle`` about the unit vector ``u``."""
+    k = np.array([[0.0, -u[2], u[1]], [u[2], 0.0, -u[0]], [-u[1], u[0], 0.0]])
+    return np.eye(3) + math.sin(angle) * k + (1.0 - math.cos(angle)) * (k @ k)
+
+
+def _rotation_taking(g: np.ndarray, f: np.ndarray) -> np.ndarray:
+    """A rotation taking g to f (equal lengths)."""
+    ng, nf = np.linalg.norm(g), np.linalg.norm(f)
+    if ng == 0.0 or nf == 0.0:
+        return np.eye(3)
+    a, b = g / ng, f / nf
+    axis = np.cross(a, b)
+    s, c = np.linalg.norm(axis), float(a @ b)
+    if s < 1e-14:
+        if c > 0:
+            return np.eye(3)
+        other = np.eye(3)[np.argmin(np.abs(a))]
+        axis = np.cross(a, other)
+        return _rotation_about(axis / np.linalg.norm(axis), math.pi)
+    return _rotation_about(axis / s, math.atan2(s, c))
+
+
+def _invariant_basis(sym: Symmetry, rank: int) -> np.ndarray:
+    """An orthonormal basis (3^rank, d) of the rank-``rank`` tensors invariant
+    under every operation (the null space of the stacked R^(x)rank - 1)."""
+    rows = []
+    for op in sym.operations:
+        big = op
+        for _ in range(rank - 1):
+            big = np.kron(big, op)
+        rows.append(big - np.eye(3 ** rank))
+    _, s, vt = np.linalg.svd(np.vstack(rows))
+    return vt[np.sum(s > 1e-8):].T
+
+
+def detect(charges, coords_bohr, centre=None,
+           tolerance: float = SYMMETRY_TOLERANCE_BOHR) -> Symmetry | None:
+    """The symmetry of the framework about ``centre`` (default: the centre of
+    nuclear charge), or None for none but the identity."""
+    z = np.asarray(charges, dtype=float)
+    xyz = np.asarray(coords_bohr, dtype=float)
+    centre = (z @ xyz) / z.sum() if centre is None else np.asarray(centre, dtype=float)
+    x = xyz - centre
+    r = np.linalg.norm(x, axis=1)
+    if np.all(r <= tolerance):
+        if len(x) != 1:
+            return None
+        gens = np.array([_rotation_about(np.eye(3)[2], 2 * math.pi / _AXIAL_ORDER),
+                         _rotation_about(np.eye(3)[0], 2 * math.pi / _AXIAL_ORDER), -np.eye(3)])
+        return Symmetry("atom", gens, centre, np.array([centre]), float(r[0]))
+    far = int(np.argmax(r))
+    u = x[far] / r[far]
+    across = x - np.outer(x @ u, u)
+    if np.all(np.linalg.norm(across, axis=1) <= tolerance):
+        return _linear(z, x, u, centre, tolerance)
+    # Reference atoms: the first from the smallest class of (element, distance
+    # from the centre), farthest out; the second not on a line with it.
+    classes: dict[tuple, list[int]] = {}
+    for i in range(len(x)):
+        match = next((k for k in classes if k[0] == z[i] and abs(k[1] - r[i]) <= tolerance),
+                     None)
+        classes.setdefault(match or (z[i], r[i]), []).append(i)
+    member = {i: k for k, members in classes.items() for i in members}
+    order = sorted(range(len(x)), key=lambda i: (len(classes[member[i]]), -r[i]))
+    a = next(i for i in order if r[i] > tolerance)
+    b = next(i for i in order if np.linalg.norm(np.cross(x[a], x[i])) > tolerance * r[a])
+    source = np.column_stack([x[a], x[b], np.cross(x[a], x[b])])
+    ops, perms = [], []
+    for a2 in classes[member[a]]:
+        for b2 in classes[member[b]]:
+            if abs(np.linalg.norm(x[a2] - x[b2]) - np.linalg.norm(x[a] - x[b])) > 2 * tolerance:
+                continue
+            for sense in (1.0, -1.0):
+                target = np.column_stack([x[a2], x[b2], sense * np.cross(x[a2], x[b2])])
+                m = target @ np.linalg.inv(source)
+                w, _, vt = np.linalg.svd(m)
+                op = w @ vt  # the nearest orthogonal matrix
+                perm = _permutation(op, z, x, tolerance)
+                if perm is not None and not any(np.allclose(op, o, atol=1e-6) for o in ops):
+                    ops.append(op)
+                    perms.append(perm)
+    if len(ops) <= 1:
+        return None
+    first = next(k for k, op in enumerate(ops) if np.allclose(op, np.eye(3), atol=1e-6))
+    ops.insert(0, ops.pop(first))
+    perms.insert(0, perms.pop(first))
+    ops = [_exact(op) for op in ops]
+    # Symmetrise: each atom to the average of the images that land on it.
+    sym = np.zeros_like(x)
+    for op, perm in zip(ops, perms):
+        sym[perm] += x @ op.T
+    sym /= len(ops)
+    moved = float(np.max(np.linalg.norm(sym - x, axis=1)))
+    return Symmetry("finite", np.array(ops), centre, sym + centre, moved)
+
+
+def _exact(op: np.ndarray) -> np.ndarray:
+    """Entries within 1e-12 of 0 or +-1 made exact (axis-aligned operations
+    then map field vectors bit for bit)."""
+    out = op.copy()
+    for target in (0.0, 1.0, -1.0):
+        out[np.abs(out - target) < 1e-12] = target
+    return out
+
+
+def _permutation(op, z, x, tolerance) -> np.ndarray | None:
+    """perm[i] = the atom that atom i's image under ``op`` lands on, or None."""
+    image = x @ op.T
+    perm = np.empty(len(x), dtype=int)
+    for i in range(len(x)):
+        d = np.linalg.norm(x - image[i], axis=1)
+        d[z != z[i]] = np.inf
+        j = int(np.argmin(d))
+        if d[j] > tolerance:
+            return None
+        perm[i] = j
+    return perm if len(set(perm.tolist())) == len(perm) else None
+
+
+def _linear(z, x, u, centre, tolerance) -> Symmetry:
+    """C-inf-v, or D-inf-h when the reflection across the axis maps the
+    framework onto itself; generators for forced zeros."""
+    along = x @ u
+    sym = np.outer(along, u)
+    flip = np.eye(3) - 2.0 * np.outer(u, u)
+    inversion = _permutation(flip, z, sym, tolerance) is not None
+    if inversion:
+        perm = _permutation(flip, z, sym, tolerance)
+        sym = 0.5 * (sym + (sym @ flip.T)[np.argsort(perm)])
+    other = np.eye(3)[np.argmin(np.abs(u))]
+    v = np.cross(u, other)
+    v /= np.linalg.norm(v)
+    gens = [_rotation_about(u, 2 * math.pi / _AXIAL_ORDER), np.eye(3) - 2.0 * np.outer(v, v)]
+    if inversion:
+        gens.append(-np.eye(3))
+    moved = float(np.max(np.linalg.norm(sym - x, axis=1)))
+    return Symmetry("linear", np.array(gens), centre, sym + centre, moved, u, inversion)
+
+
+def images(field_vectors, sym: Symmetry | None) -> list[tuple[int, np.ndarray | None]]:
+    """For each field vector: (index of the earlier vector it is the image of,
+    the operation R with R F_rep = F), or (its own index, None) when it is
+    computed itself."""
+    out: list[tuple[int, np.ndarray | None]] = []
+    reps: list[int] = []
+    vectors = [np.asarray(f, dtype=float) for f in field_vectors]
+    for i, f in enumerate(vectors):
+        found = None
+        if sym is not None:
+            for j in reps:
+                op = sym.relate(f, vectors[j])
+                if op is not None:
+                    found = (j, op)
+                    break
+        if found is None:
+            reps.append(i)
+            out.append((i, None))
+        else:
+            out.append(found)
+    return out
+
+
+def image_record(record, op: np.ndarray, point):
+    """The record of the point ``point`` whose field is ``op`` applied to that
+    of ``record``'s point: the same energy and state checks, the dipole and
+    alpha turned (mu -> R mu, alpha -> R alpha R^T), no SCF cycles of its own."""
+    from dataclasses import replace
+
+    dipole = None if record.dipole_au is None else tuple(
+        float(v) for v in op @ np.asarray(record.dipole_au))
+    alpha = None if record.alpha_au is None else tuple(
+        tuple(float(v) for v in row) for row in op @ np.asarray(record.alpha_au) @ op.T)
+    return replace(record, point=point, dipole_au=dipole, alpha_au=alpha, scf_cycles=0,
+                   wall_time_s=0.0)
+
+
+__all__ = ["SYMMETRY_TOLERANCE_BOHR", "Symmetry", "detect", "image_record", "images"]
