@@ -67,6 +67,7 @@ reading the tables:
                                     would shrink it)
                 ok-zero-field       trust it; a value at zero field, no derivative:
                                     the error bar is its noise
+                zero-by-symmetry    exactly 0: the molecule's point group forbids it
                 unstable            no number: the table did not settle (exit code 1)
                 missing             no number: the points it needs are not computed
                                     (collect --allow-partial; exit code 3)

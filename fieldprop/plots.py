@@ -18,6 +18,7 @@ from __future__ import annotations
 import math
 from pathlib import Path
 
+from fieldprop.extrapolate import ComponentStatus
 from fieldprop.plan import FieldPlan
 
 
@@ -51,7 +52,9 @@ def write_plots(tensors, plan: FieldPlan, directory: Path) -> dict[str, list[str
     steps = plan.steps_au()
     written: dict[str, list[str]] = {}
     for name, tensor in tensors.items():
-        comps = [c for c in tensor.components if c.plan.order > 0]
+        # Components zero by symmetry have no table: nothing to draw.
+        comps = [c for c in tensor.components if c.plan.order > 0
+                 and c.estimate.status is not ComponentStatus.SYMMETRY_ZERO]
         if not comps:
             continue
         ncols = min(5, len(comps))
