@@ -168,6 +168,8 @@ class RunResult:
     missing: tuple[tuple[int, str], ...] = ()
     #: The point group whose images replaced computed points (None: none).
     symmetry: "Symmetry | None" = None
+    #: Per planned point, as ``Prepared.images`` (empty: every point computed).
+    images: tuple = ()
 
     @property
     def energy_au(self) -> float:
@@ -175,8 +177,10 @@ class RunResult:
 
     @property
     def computed_records(self) -> tuple[PointRecord, ...]:
-        """The records of the points that exist (all but the missing ones)."""
+        """The records of the points computed and present: neither missing
+        (``collect --allow-partial``) nor symmetry images of other points."""
         gone = {i for i, _ in self.missing}
+        gone |= {i for i, (_, op) in enumerate(self.images) if op is not None}
         return tuple(r for i, r in enumerate(self.records) if i not in gone)
 
     @property
@@ -511,7 +515,8 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
         logger.warning("%s", text)
     return RunResult(job, prepared.molecule, plan, records, noise, tensors,
                      tuple(invariants(tensors)), prepared.facts, wall_time_s, warnings, smooth,
-                     counts, store_label, tuple(sorted(missing.items())), prepared.symmetry)
+                     counts, store_label, tuple(sorted(missing.items())), prepared.symmetry,
+                     prepared.images)
 
 
 def gather(job: Job, store=None, lines=None, route: Route | str | None = None,

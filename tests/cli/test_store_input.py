@@ -403,10 +403,9 @@ _ID = re.compile(r"\b[0-9a-f]{12}\b")
 def test_collect_names_the_points_the_store_lacks(tmp_path, computed_store):
     """The store holds the 2-level job; the 3-level one of the same model needs
     the 0.004 au points too: exit 3, naming exactly those (short ids)."""
-    from fieldprop.engine import make_plan, make_tasks
+    from fieldprop.engine import prepare
     from fieldprop.job import load_job
     from fieldprop.keys import short_id
-    from fieldprop.molecule import build_molecule
     from fieldprop.store import PointStore
 
     store = tmp_path / "points.sqlite"
@@ -420,7 +419,7 @@ def test_collect_names_the_points_the_store_lacks(tmp_path, computed_store):
 
     job_path = write_job(tmp_path, H2_JOB.format(levels=3))
     job = load_job(job_path)
-    tasks = make_tasks(job, build_molecule(job.molecule, job.response.origin), make_plan(job))
+    tasks = prepare(job).computed_tasks
     with PointStore.open(store, read_only=True) as opened:
         stored = opened.get_points(t.key for t in tasks)
     missing = {short_id(t.key) for t in tasks if t.key not in stored}

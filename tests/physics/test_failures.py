@@ -46,7 +46,7 @@ def test_scf_retries_are_recorded(tmp_path, capsys):
 
 
 def test_a_point_that_never_converges_fails_the_job(tmp_path, capsys, monkeypatch):
-    target = "L1(+1,0,0)"
+    target = "L1(-1,0,0)"  # computed (L1(+1,0,0) is its mirror image by symmetry)
     real = backend_pyscf._converge
 
     def stubborn(mf, context, point):
@@ -158,7 +158,7 @@ def test_the_occupation_by_symmetry_alone_catches_the_switch(tmp_path, capsys, m
 def test_failures_are_reported_from_worker_processes(tmp_path, capsys, monkeypatch):
     # Through a real process pool (Linux forks the workers, so they inherit the
     # stubborn SCF below): two points fail, both are listed, nothing is written.
-    targets = {"L0(0,+1,0)", "L2(0,0,-1)"}
+    targets = {"L0(0,-1,0)", "L2(0,0,-1)"}  # computed points, not symmetry images
     real = backend_pyscf._converge
 
     def stubborn(mf, context, point):
