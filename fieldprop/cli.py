@@ -132,7 +132,8 @@ interrupted.
 COLLECT_EXAMPLES = """\
 examples:
   fieldprop collect water.toml                        tables; water.result.json beside it
-  cat points/*.jsonl | fieldprop collect water.toml --points - --json -
+  fieldprop collect water.toml --points points/ --json -    lines of point --stdout files
+  ... | fieldprop collect water.toml --points -       point lines from a pipe
   fieldprop collect water.toml --allow-partial        what the stored points determine
 exit codes: 0 complete and stable; 1 a stored point failed, or a component is unstable;
 2 bad input (a corrupt, foreign or out-of-plan point line); 3 points missing (their ids
@@ -262,8 +263,9 @@ def build_parser() -> argparse.ArgumentParser:
                       "elements have finished meanwhile")
     plan.add_argument("--retry-failed", action="store_true", help="count stored failures as "
                       "still to compute")
-    plan.add_argument("--points", type=Path, metavar="PATH", help="point lines (a file, or - "
-                      "for standard input) whose points count as computed, beside the store's")
+    plan.add_argument("--points", type=Path, metavar="PATH", nargs="+", help="point lines "
+                      "whose points count as computed, beside the store's: files, "
+                      "directories (their *.jsonl files) or - for standard input")
     plan.add_argument("--store", type=Path, metavar="PATH", help="the point store to look in "
                       f"(default {DEFAULT_STORE_NAME} beside the job file); written only by "
                       "--count")
@@ -301,9 +303,9 @@ def build_parser() -> argparse.ArgumentParser:
     collect.add_argument("job", type=Path, help="job file (TOML)")
     collect.add_argument("--json", type=Path, help="result JSON path (default JOB.result.json "
                          "beside the job file; - writes it to stdout instead of the tables)")
-    collect.add_argument("--points", type=Path, metavar="PATH", help="point lines (a file, or "
-                         "- for standard input) from fieldprop point --stdout, beside the "
-                         "store's points")
+    collect.add_argument("--points", type=Path, metavar="PATH", nargs="+", help="point lines "
+                         "of fieldprop point --stdout, beside the store's points: files, "
+                         "directories (their *.jsonl files) or - for standard input")
     collect.add_argument("--allow-partial", action="store_true", help="report what the points "
                          "found determine; components that need missing points are marked "
                          "missing (exit code 3 all the same)")
@@ -536,19 +538,28 @@ def _write_result(result, fmt: str, units: str, label) -> None:
                       "csv", components=True)
 
 
-def _read_point_lines(path: Path | None):
-    """(lines, label) of a --points argument (- is standard input), or None."""
-    if path is None:
+def _read_point_lines(paths: list[Path] | None):
+    """[(lines, label), ...] of the --points arguments, or None: a file, a
+    directory (its ``*.jsonl`` files, sorted), or - (standard input)."""
+    if not paths:
         return None
-    if str(path) == "-":
-        return sys.stdin.read().splitlines(), "stdin"
-    try:
-        return path.read_text(encoding="utf-8").splitlines(), str(path)
-    except FileNotFoundError:
-        raise InputError(f"--points {path}: no such file") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"--points {path}: cannot be read "
-                         f"({getattr(exc, 'strerror', None) or exc})") from None
+    out = []
+    for path in paths:
+        if str(path) == "-":
+            out.append((sys.stdin.read().splitlines(), "stdin"))
+            continue
+        files = sorted(path.glob("*.jsonl")) if path.is_dir() else [path]
+        if not files:
+            raise InputError(f"--points {path}: a directory without *.jsonl files")
+        for file in files:
+            try:
+                out.append((file.read_text(encoding="utf-8").splitlines(), str(file)))
+            except FileNotFoundError:
+                raise InputError(f"--points {file}: no such file") from None
+            except (OSError, UnicodeDecodeError) as exc:
+                raise InputError(f"--points {file}: cannot be read "
+                                 f"({getattr(exc, 'strerror', None) or exc})") from None
+    return out
 
 
 def _to_do(prepared, rows, retry_failed: bool) -> list:
@@ -558,7 +569,7 @@ def _to_do(prepared, rows, retry_failed: bool) -> list:
 
 
 def cmd_plan(args) -> int:
-    from fieldprop.engine import gather, todo_list_key
+    from fieldprop.engine import gather, to_compute, todo_list_key
     from fieldprop.job import load_job
     from fieldprop.report import write_plan
     from fieldprop.store import PointStore, default_store_path
@@ -567,16 +578,23 @@ def cmd_plan(args) -> int:
     lines = _read_point_lines(args.points)
     path = args.store if args.store is not None else default_store_path(args.job)
     if args.count:
+        if not path.exists():  # bad input must not leave a new store behind
+            from fieldprop.engine import prepare
+
+            prepare(job)
         store = PointStore.open(path)  # fixes the to-do list: written
     else:
         store = PointStore.open(path, read_only=True) if path.exists() else None
     try:
-        prepared, rows = gather(job, store, lines, facts_needed=False)
+        # --count fixes the list an array's elements read: the model is checked
+        # with the backend first (a basis it lacks is bad input now, not in
+        # every element).
+        prepared, rows = gather(job, store, lines, facts_needed=args.count)
         todo = _to_do(prepared, rows, args.retry_failed)
         if args.count:
             when = store.put_todo(todo_list_key(prepared), [t.key for t in todo])
-            logger.info("%d of %d points to compute; the list for point --index fixed in %s "
-                        "at %s", len(todo), len(prepared.tasks), store.label, when)
+            logger.info("%d of the %s still missing; the list for point --index fixed in "
+                        "%s at %s", len(todo), to_compute(prepared), store.label, when)
             _to_stdout(lambda: print(len(todo)))
             return 0
         fmt = "ids" if args.ids else "json" if args.json_lines else args.format
@@ -775,7 +793,7 @@ def cmd_collect(args) -> int:
                     len(result.computed_records))
         _to_stdout(lambda: _write_result(result, args.format, args.units, out_path))
     if result.missing:
-        raise IncompleteError(f"{job.path}: {len(result.missing)} planned point(s) missing "
+        raise IncompleteError(f"{job.path}: {len(result.missing)} point(s) to compute missing "
                               f"({' '.join(i for _, i in result.missing[:8])}"
                               f"{' ...' if len(result.missing) > 8 else ''}); "
                               f"{len(result.missing_components)} component(s) reported as "

@@ -162,9 +162,9 @@ class RunResult:
     continuity: ContinuityReport | None = None
     counts: PointCounts | None = None
     store: str = ""
-    #: (plan index, id) of the points not computed (``collect --allow-partial``):
-    #: their records are placeholders (NaN, attempts ("missing",)), never
-    #: differentiated.
+    #: (plan index, id) of the points to compute that are absent (``collect
+    #: --allow-partial``; their images are absent too): their records are
+    #: placeholders (NaN, attempts ("missing",)), never differentiated.
     missing: tuple[tuple[int, str], ...] = ()
     #: The point group whose images replaced computed points (None: none).
     symmetry: "Symmetry | None" = None
@@ -334,7 +334,7 @@ def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel,
             named = sorted({missing[p] for p, _ in comp.stencils[gone].terms if p in missing})
             why = (f"level {gone} and above use field points not computed "
                    f"({', '.join(named[:3])}{' ...' if len(named) > 3 else ''})")
-            if not stencils:
+            if len(stencils) < (2 if comp.order > 0 else 1):  # no Richardson table left
                 estimates.append(ComponentEstimate(math.nan, math.nan, (0, 0),
                                                    ComponentStatus.MISSING, math.nan, ((),),
                                                    f"not determined: {why}"))
@@ -507,23 +507,24 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
     warnings = departure_warnings(job, plan, smooth) + window_warnings(job, plan, tensors)
     if missing:
         ids = list(dict.fromkeys(missing.values()))
-        warnings = (f"{job.path}: {len(missing)} of {len(plan.points)} planned field points "
-                    f"are not computed ({' '.join(ids[:8])}{' ...' if len(ids) > 8 else ''}); "
-                    "the components that need them are reported as missing, without a "
-                    "number",) + warnings
+        warnings = (f"{job.path}: {len(ids)} of {len(prepared.computed_tasks)} field points "
+                    f"to compute are missing ({' '.join(ids[:8])}"
+                    f"{' ...' if len(ids) > 8 else ''}); the components that need them are "
+                    "reported as missing, without a number",) + warnings
     for text in warnings:
         logger.warning("%s", text)
     return RunResult(job, prepared.molecule, plan, records, noise, tensors,
                      tuple(invariants(tensors)), prepared.facts, wall_time_s, warnings, smooth,
-                     counts, store_label, tuple(sorted(missing.items())), prepared.symmetry,
-                     prepared.images)
+                     counts, store_label,
+                     tuple(sorted((i, k) for i, k in missing.items() if source[i] == i)),
+                     prepared.symmetry, prepared.images)
 
 
 def gather(job: Job, store=None, lines=None, route: Route | str | None = None,
            facts_needed: bool = True) -> tuple[Prepared, dict]:
     """The job prepared, and its planned points found in ``store`` and in point
-    ``lines`` ((iterable of text, source label)): {point key: StoredPoint}, a
-    computed point winning over a failure. No PySCF when the backend facts are
+    ``lines`` (a list of (iterable of text, source label), one per file or
+    stream): {point key: StoredPoint}, a computed point winning over a failure. No PySCF when the backend facts are
     in the store or the lines (else PySCF validates the job, computing nothing).
     ``facts_needed=False``: never PySCF, the facts may stay empty (planning).
     Bad lines raise InputError (:mod:`fieldprop.pointlines`)."""
@@ -535,9 +536,11 @@ def gather(job: Job, store=None, lines=None, route: Route | str | None = None,
     # The tasks' keys do not depend on the facts: the lines can be checked first.
     tasks = make_tasks(job, molecule, make_plan(job, route, sym))
     found: dict = {}
-    if lines is not None:
-        text, label = lines
-        found, line_facts = pointlines.read_lines(text, label, tasks, mkey)
+    for text, label in lines or ():
+        more, line_facts = pointlines.read_lines(text, label, tasks, mkey)
+        for key, row in more.items():
+            if key not in found or (row.ok and not found[key].ok):
+                found[key] = row
         facts = facts or line_facts
     if facts is None and not facts_needed:
         facts = {}
@@ -561,8 +564,11 @@ def collect(job: Job, store=None, route: Route | str | None = None, lines=None,
     components that need them are MISSING, the others are reported.
     """
     start = time.perf_counter()
-    where = " and ".join(x for x in (store.label if store is not None else None,
-                                     lines[1] if lines is not None else None) if x)
+    sources = [label for _, label in lines or ()]
+    if len(sources) > 3:
+        sources = [f"{sources[0]} and {len(sources) - 1} more point-line sources"]
+    where = " and ".join(x for x in (store.label if store is not None else None, *sources)
+                         if x)
     prepared, rows = gather(job, store, lines, route)
     zero = prepared.tasks[0]
     if zero.key not in rows:
@@ -573,10 +579,8 @@ def collect(job: Job, store=None, route: Route | str | None = None, lines=None,
     missing = [t for t in prepared.computed_tasks if t.key not in rows]
     if missing and not allow_partial:
         ids = " ".join(short_id(t.key) for t in missing[:8])
-        raise IncompleteError(f"{job.path}: {len(missing)} of {len(prepared.computed_tasks)} "
-                              "planned "
-                              f"field points{_image_note(prepared)} are not in {where}: {ids}"
-                              f"{' ...' if len(missing) > 8 else ''}")
+        raise IncompleteError(f"{job.path}: {len(missing)} of the {to_compute(prepared)} are "
+                              f"not in {where}: {ids}{' ...' if len(missing) > 8 else ''}")
     failures = [rows[t.key].failure(t.point) for t in prepared.computed_tasks
                 if t.key in rows and not rows[t.key].ok]
     if failures and (not allow_partial or not rows[zero.key].ok):
@@ -588,9 +592,13 @@ def collect(job: Job, store=None, route: Route | str | None = None, lines=None,
     return analyse(prepared, records, counts, where, time.perf_counter() - start)
 
 
-def _image_note(prepared: Prepared) -> str:
-    n = len(prepared.tasks) - len(prepared.computed_tasks)
-    return f" (and {n} symmetry images of them)" if n else ""
+def to_compute(prepared: Prepared) -> str:
+    """For example "32 field points to compute (61 planned, 29 of them symmetry
+    images)"."""
+    n, planned = len(prepared.computed_tasks), len(prepared.tasks)
+    images = (f" ({planned} planned, {planned - n} of them symmetry images)"
+              if planned > n else "")
+    return f"{n} field point{'s' if n != 1 else ''} to compute{images}"
 
 
 def todo_list_key(prepared: Prepared) -> str:

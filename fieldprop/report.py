@@ -158,11 +158,13 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
     counts = result.counts
     reused = f" ({counts.reused} reused from the store)" if counts and counts.reused else ""
     n = len(result.records)
-    gone = (f", {len(result.missing)} of them not computed (their components: missing)"
-            if result.missing else "")
+    gone = ""
     if counts and counts.images:
         gone += (f", {counts.images} of them images of the others under the molecule's "
                  f"symmetry ({result.symmetry.name})")
+    if result.missing:
+        gone += (f", {len(result.missing)} of the {n - (counts.images if counts else 0)} to "
+                 "compute missing (their components: missing)")
     out.write(f"  {n} field point{'s' if n != 1 else ''}{reused}{gone}, "
               f"{sum(r.scf_cycles for r in result.records)} SCF cycles; SCF energy tolerance "
               f"{job.scf.energy_conv_tol_au:g} Eh; E(0) = {result.energy_au:.10f} Eh\n")

@@ -166,7 +166,7 @@ def test_missing_points_are_named_and_partial_results_marked(tmp_path):
     listed = fieldprop("plan", "lih.toml", "--missing", "--ids", cwd=tmp_path).stdout.split()
     assert set(listed) == missing
     done = fieldprop("collect", "lih.toml", cwd=tmp_path)
-    line = one_error_line(done, 3, "8 of 13 planned field points are not in")
+    line = one_error_line(done, 3, "8 of the 13 field points to compute are not in")
     assert set(line.split(": ")[-1].split()) == missing
     assert not (tmp_path / "lih.result.json").exists()
 
@@ -257,8 +257,31 @@ def test_bad_point_lines_are_refused_with_one_line(tmp_path):
         done = fieldprop("collect", "lih.toml", "--points", "-", cwd=tmp_path, stdin=text)
         one_error_line(done, 2, "bad input", *words)
         assert not (tmp_path / "lih.result.json").exists(), name
+    # Lines in files of a directory: the bad one is named by its file.
+    lines = tmp_path / "lines"
+    lines.mkdir()
+    (lines / "1-0.jsonl").write_text(zero_line + "\n")
+    (lines / "1-1.jsonl").write_text(point_line[:57] + "\n")
+    done = fieldprop("collect", "lih.toml", "--points", "lines", cwd=tmp_path)
+    one_error_line(done, 2, "bad input", str(lines.relative_to(tmp_path) / "1-1.jsonl")
+                   + " line 1", "not JSON")
+    (lines / "1-1.jsonl").write_text(point_line + "\n")
+    done = fieldprop("plan", "lih.toml", "--points", "lines", "-", "--ids", "--missing",
+                     cwd=tmp_path, stdin="")
+    assert done.returncode == 0 and ids[0] not in done.stdout and ids[1] not in done.stdout
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    done = fieldprop("collect", "lih.toml", "--points", "empty", cwd=tmp_path)
+    one_error_line(done, 2, "--points empty", "without *.jsonl files")
+    assert not (tmp_path / "lih.result.json").exists()
     done = fieldprop("point", "lih.toml", "--id", "0123456789ab", cwd=tmp_path)
     one_error_line(done, 2, "--id 0123456789ab", "not in this job's plan")
+    # plan --count writes the store: a basis the backend lacks is refused
+    # first, and no store is left behind.
+    (other / "bad.toml").write_text(JOB.replace('"sto-3g"', '"sto-9zz"'))
+    done = fieldprop("plan", "bad.toml", "--count", cwd=other)
+    one_error_line(done, 2, "bad.toml", "[model] basis 'sto-9zz'")
+    assert not (other / "fieldprop-points.sqlite").exists()
     done = fieldprop("point", "lih.toml", "--index", "0", "--stdout", cwd=tmp_path)
     one_error_line(done, 2, "no to-do list", "plan lih.toml --count")
 
