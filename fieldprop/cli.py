@@ -569,7 +569,7 @@ def _to_do(prepared, rows, retry_failed: bool) -> list:
 
 
 def cmd_plan(args) -> int:
-    from fieldprop.engine import gather, to_compute, todo_list_key
+    from fieldprop.engine import gather, make_plan, to_compute, todo_list_key
     from fieldprop.job import load_job
     from fieldprop.report import write_plan
     from fieldprop.store import PointStore, default_store_path
@@ -599,9 +599,11 @@ def cmd_plan(args) -> int:
             return 0
         fmt = "ids" if args.ids else "json" if args.json_lines else args.format
         only = {t.key for t in todo} if args.missing else None
+        full = (len(make_plan(job, prepared.plan.route).points)
+                if prepared.symmetry is not None else None)
         _to_stdout(lambda: write_plan(prepared.plan, prepared.tasks, rows, sys.stdout, fmt,
                                       store.label if store is not None else None, only,
-                                      prepared.images, prepared.symmetry))
+                                      prepared.images, prepared.symmetry, full))
     finally:
         if store is not None:
             store.close()

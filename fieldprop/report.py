@@ -408,13 +408,15 @@ def _stored_status(task, stored) -> str:
 
 
 def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
-               store_label: str | None = None, only=None, images=(), symmetry=None) -> None:
+               store_label: str | None = None, only=None, images=(), symmetry=None,
+               without_symmetry: int | None = None) -> None:
     """The field points ``run`` would compute, which components use them, and
     which the store holds already (``stored``: {key: StoredPoint}); ``fmt``
     table, json (a JSON object per line), csv or ids (an id per line);
     ``only``: the keys to list (default all); ``images``: per point, the index
     of the point it is a symmetry image of and the operation (None: computed);
-    the ids listing leaves images out."""
+    the ids listing leaves images out; ``without_symmetry``: the number of
+    points the plan has when symmetry is not used."""
     import csv
 
     image_of = {i: (j, op) for i, (j, op) in enumerate(images) if op is not None}
@@ -475,7 +477,8 @@ def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
         f"{name} {len(points)}" for name, points in per_property.items()) + "\n")
     if symmetry is not None:
         out.write(f"symmetry: {symmetry.name}: {len(tasks) - len(image_of)} points computed, "
-                  f"{len(image_of)} images of them (without symmetry: {len(tasks)})"
+                  f"{len(image_of)} images of them (without symmetry: "
+                  f"{without_symmetry or len(tasks)} points computed)"
                   + (f"; geometry symmetrised, largest move {symmetry.moved_bohr:.1e} bohr"
                      if symmetry.moved_bohr > 0 else "") + "\n")
     out.write(f"store {store_label or '(none yet)'}: {counts['stored']} stored, "
