@@ -32,7 +32,7 @@ from fieldprop.methods import METHODS, Route
 from fieldprop.molecule import MoleculeSpec, build_molecule
 from fieldprop.plan import FieldPlan, plan_fields, stencil_estimate
 from fieldprop.records import CPHF_RTOL, PointRecord, PointTask
-from fieldprop.tensors import Invariant, TensorResult, assemble, invariants
+from fieldprop.tensors import Invariant, TensorResult, assemble, invariants, turn_tensors
 
 if TYPE_CHECKING:
     from fieldprop.symmetry import Symmetry
@@ -197,10 +197,15 @@ class RunResult:
 
 def make_plan(job: Job, route: Route | str | None = None, symmetry=None) -> FieldPlan:
     """The job's field plan, on its own route or on ``route``; with the
-    molecule's ``symmetry``, components it forbids are planned without points."""
+    molecule's ``symmetry``, in its symmetry frame (see Symmetry.frame), and
+    components it forbids are planned without points."""
     r = job.response
+    frame, forced_zero = None, None
+    if symmetry is not None:
+        frame = symmetry.frame()
+        forced_zero = (symmetry if frame is None else symmetry.in_frame(frame)).forced_zero
     return plan_fields(r.properties, r.field_au, r.ratio, r.levels, route or r.route,
-                       symmetry.forced_zero if symmetry is not None else None)
+                       forced_zero, frame)
 
 
 def quantities(job: Job, route: Route) -> Quantities:
@@ -478,6 +483,20 @@ def _placeholder(task: PointTask) -> PointRecord:
                        ((nan,) * 3,) * 3 if task.quantities.alpha else None)
 
 
+def _in_frame(records, frame) -> tuple[PointRecord, ...]:
+    """The records with dipole and alpha in ``frame`` (rows: its axes):
+    mu -> q mu, alpha -> q alpha q^T."""
+    q = np.asarray(frame, dtype=float)
+    out = []
+    for r in records:
+        dipole = None if r.dipole_au is None else tuple(
+            float(v) for v in q @ np.asarray(r.dipole_au))
+        alpha = None if r.alpha_au is None else tuple(
+            tuple(float(v) for v in row) for row in q @ np.asarray(r.alpha_au) @ q.T)
+        out.append(dataclasses.replace(r, dipole_au=dipole, alpha_au=alpha))
+    return tuple(out)
+
+
 def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
             store_label: str = "", wall_time_s: float = 0.0) -> RunResult:
     """Tensors, invariants and warnings from the records of every planned point
@@ -494,17 +513,24 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
         raise ValueError("the zero-field point is needed by every analysis")
     records = tuple(_placeholder(t) if r is None else r
                     for t, r in zip(prepared.tasks, records))
-    noise = noise_model(job, records, prepared.molecule)
-    smooth = continuity(plan, records, noise)
-    estimates = extrapolate_components(plan, records, noise, smooth.cause, missing)
-    if prepared.symmetry is not None:
+    # In the plan's frame (the molecule's symmetry frame, if it has one) the
+    # dipoles and alphas are differentiated along its axes.
+    framed = records if plan.frame is None else _in_frame(records, plan.frame)
+    noise = noise_model(job, framed, prepared.molecule)
+    smooth = continuity(plan, framed, noise)
+    estimates = extrapolate_components(plan, framed, noise, smooth.cause, missing)
+    sym = prepared.symmetry
+    if sym is not None:
+        group = sym if plan.frame is None else sym.in_frame(plan.frame)
         estimates = [ComponentEstimate(0.0, 0.0, (0, 0), ComponentStatus.SYMMETRY_ZERO, 0.0,
                                        ((0.0,),), "forbidden by the molecule's point group ("
-                                       f"{prepared.symmetry.name})")
-                     if prepared.symmetry.forced_zero(comp.indices) else est
+                                       f"{sym.name})")
+                     if group.forced_zero(comp.indices) else est
                      for comp, est in zip(plan.components, estimates)]
     tensors = assemble(plan.components, estimates)
     warnings = departure_warnings(job, plan, smooth) + window_warnings(job, plan, tensors)
+    if plan.frame is not None:
+        tensors = turn_tensors(tensors, plan.frame, sym.forced_zero)
     if missing:
         ids = list(dict.fromkeys(missing.values()))
         warnings = (f"{job.path}: {len(ids)} of {len(prepared.computed_tasks)} field points "

@@ -146,6 +146,9 @@ class FieldPlan:
     levels: int
     points: tuple[FieldPoint, ...]
     components: tuple[ComponentPlan, ...]
+    #: Rows: the axes (in the input frame) along which the offsets run and the
+    #: components are differentiated; None: the input frame's x, y, z.
+    frame: tuple[tuple[float, float, float], ...] | None = None
 
     def steps_au(self) -> tuple[float, ...]:
         """The ladder h_k = field_au * ratio**k, k = 0..levels-1."""
@@ -158,10 +161,14 @@ def step_au(field_au: float, ratio: float, level: int) -> float:
 
 
 def field_vector(offsets: tuple[int, int, int], field_au: float, ratio: float,
-                 level: int) -> tuple[float, float, float]:
-    """offsets * field_au * ratio**level, in au."""
+                 level: int, frame=None) -> tuple[float, float, float]:
+    """offsets * field_au * ratio**level, in au, along the input axes or
+    those of ``frame`` (rows: its axes in the input frame)."""
     h = step_au(field_au, ratio, level)
-    return tuple(float(o * h) for o in offsets)
+    if frame is None:
+        return tuple(float(o * h) for o in offsets)
+    return tuple(float(sum(o * h * axis[i] for o, axis in zip(offsets, frame) if o))
+                 for i in range(3))
 
 
 @lru_cache(maxsize=None)
@@ -328,7 +335,7 @@ def component_recipes(properties, route: Route | str) -> list[
 
 
 def plan_fields(properties, field_au: float, ratio: float, levels: int,
-                route: str = "energy", forced_zero=None) -> FieldPlan:
+                route: str = "energy", forced_zero=None, frame=None) -> FieldPlan:
     """Plan the field points and per-component stencils.
 
     Parameters
@@ -340,7 +347,11 @@ def plan_fields(properties, field_au: float, ratio: float, levels: int,
     route : "energy" (differentiate E) or "dipole" (differentiate mu_i).
     forced_zero : optional predicate on a component's tensor indices: True for
         a component the molecule's symmetry makes zero, which is planned with
-        no stencil and needs no point.
+        no stencil and needs no point (indices in ``frame``).
+    frame : optional rows of an orthogonal matrix, the axes (in the input
+        frame) along which offsets run and components are differentiated:
+        the plan then gives the tensors in that frame (a molecule's symmetry
+        frame; the engine turns them back).
 
     Returns
     -------
@@ -380,7 +391,9 @@ def plan_fields(properties, field_au: float, ratio: float, levels: int,
     raw.sort()
     ordered = sorted(keys, key=lambda kl: (kl[0] != (0, 0, 0), kl[1], kl[0]))
     index = {key: i for i, key in enumerate(ordered)}
-    points = tuple(FieldPoint(i, off, lvl, field_vector(off, field_au, ratio, lvl))
+    if frame is not None:
+        frame = tuple(tuple(float(v) for v in row) for row in frame)
+    points = tuple(FieldPoint(i, off, lvl, field_vector(off, field_au, ratio, lvl, frame))
                    for i, (off, lvl) in enumerate(ordered))
     components = []
     for _, (tensor, idx, quantity, element, counts, sign), per_level in raw:
@@ -388,7 +401,7 @@ def plan_fields(properties, field_au: float, ratio: float, levels: int,
                                  tuple((index[key], w) for key, w in terms))
                          for k, terms in per_level)
         components.append(ComponentPlan(tensor, idx, quantity, element, counts, sign, stencils))
-    return FieldPlan(route, field_au, ratio, levels, points, tuple(components))
+    return FieldPlan(route, field_au, ratio, levels, points, tuple(components), frame)
 
 
 def stencil_estimate(component: ComponentPlan, stencil: Stencil, energies_au, dipoles_au,

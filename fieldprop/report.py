@@ -85,6 +85,12 @@ def _entry_text(est) -> str:
     return f"h{k}, {m} step{'s' if m != 1 else ''}"
 
 
+def _frame_text(frame) -> str:
+    """'a = (0.123, ...), b = (...), c = (...)': a frame's axes in the input frame."""
+    return ", ".join(f"{n} = ({', '.join(f'{v:.6f}' for v in row)})"
+                     for n, row in zip("abc", frame))
+
+
 def _ecp_text(result: RunResult) -> str:
     """'; effective core potentials: I (28 electrons)' or ''."""
     cores = result.molecule.core_electrons
@@ -162,6 +168,9 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
     if counts and counts.images:
         gone += (f", {counts.images} of them images of the others under the molecule's "
                  f"symmetry ({result.symmetry.name})")
+    if plan.frame is not None:
+        gone += (f", along the axes of its symmetry frame {_frame_text(plan.frame)} (tensors "
+                 "turned back into the input frame)")
     if result.missing:
         gone += (f", {len(result.missing)} of the {n - (counts.images if counts else 0)} to "
                  "compute missing (their components: missing)")
@@ -295,7 +304,8 @@ def result_document(result: RunResult) -> dict[str, Any]:
             "operations": [[[float(v) for v in row] for row in op]
                            for op in result.symmetry.operations]
             if result.symmetry.kind == "finite" else None,
-            "geometry_moved_bohr": result.symmetry.moved_bohr},
+            "geometry_moved_bohr": result.symmetry.moved_bohr,
+            "frame": None if plan.frame is None else [list(row) for row in plan.frame]},
         "backend": result.backend_facts,
         "unit_factors": {p: {label: f for label, f in DISPLAY_UNITS[p]}
                          for p in PROPERTY_ORDER},
@@ -479,6 +489,8 @@ def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
         out.write(f"symmetry: {symmetry.name}: {len(tasks) - len(image_of)} points computed, "
                   f"{len(image_of)} images of them (without symmetry: "
                   f"{without_symmetry or len(tasks)} points computed)"
+                  + (f"; offsets along the symmetry frame's axes {_frame_text(plan.frame)}"
+                     if plan.frame is not None else "")
                   + (f"; geometry symmetrised, largest move {symmetry.moved_bohr:.1e} bohr"
                      if symmetry.moved_bohr > 0 else "") + "\n")
     out.write(f"store {store_label or '(none yet)'}: {counts['stored']} stored, "

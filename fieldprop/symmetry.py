@@ -119,11 +119,113 @@ class Symmetry:
         turn = _rotation_about(u, math.atan2(np.cross(gp, fp) @ u, gp @ fp))
         return turn @ flip
 
+    def in_frame(self, q: np.ndarray) -> "Symmetry":
+        """The same group seen in the frame whose axes are the rows of ``q``
+        (an orthogonal matrix): operations q R q^T, vectors q v."""
+        from dataclasses import replace
+
+        q = np.asarray(q, dtype=float)
+        return replace(self, operations=np.array([q @ op @ q.T for op in self.operations]),
+                       centre=q @ self.centre, coords_bohr=self.coords_bohr @ q.T,
+                       axis=None if self.axis is None else q @ self.axis)
+
+    def frame(self) -> np.ndarray | None:
+        """The frame to plan field points in: rows are its axes in the input
+        frame, chosen so that as many operations as possible map the points
+        of a stencil lattice onto lattice points (are signed permutations
+        there); None when the input frame does as well (the molecule lies in
+        its symmetry axes). Entries are rounded to 1e-12 so that the planned
+        field vectors, and with them the points' keys, do not depend on the
+        last bits of a linear-algebra library."""
+        if self.kind == "atom":
+            return None
+        if self.kind == "linear":
+            u = _canonical_sign(self.axis)
+            if np.max(np.abs(u)) > 1.0 - 1e-12:
+                return None  # along an input axis already
+            k = int(np.argmin(np.abs(u)))  # the input axis most across the molecule
+            a = np.eye(3)[k] - u[k] * u
+            a /= np.linalg.norm(a)
+            return _rounded(np.array([a, np.cross(u, a), u]))
+        best, score = None, _lattice_operations(self.operations, np.eye(3))
+        axes = _symmetry_axes(self.operations)
+        candidates = []
+        for i, a in enumerate(axes):
+            for b in axes[i + 1:]:
+                if abs(a @ b) < 1e-8:
+                    candidates.append(np.array([a, b, np.cross(a, b)]))
+            k = int(np.argmin(np.abs(a)))
+            b = np.eye(3)[k] - a[k] * a
+            b /= np.linalg.norm(b)
+            candidates.append(np.array([a, b, np.cross(a, b)]))
+        for q in candidates:
+            n = _lattice_operations(self.operations, q)
+            if n > score:
+                best, score = q, n
+        return None if best is None else _rounded(_nearest_order(best))
+
     def forced_zero(self, indices: tuple[int, ...]) -> bool:
         """True when the tensor entry ``indices`` is zero for every tensor of
         that rank the group leaves invariant (so the molecule's is zero)."""
         return bool(np.all(np.abs(_invariant_basis(self, len(indices))[
             np.ravel_multi_index(indices, (3,) * len(indices))]) < 1e-8))
+
+
+def _canonical_sign(v: np.ndarray) -> np.ndarray:
+    """v with its first clearly non-zero entry positive (axes have no sense)."""
+    v = np.asarray(v, dtype=float)
+    first = next(x for x in v if abs(x) > 1e-8)
+    return v if first > 0 else -v
+
+
+def _symmetry_axes(operations) -> list[np.ndarray]:
+    """Rotation axes of the operations and of minus the improper ones (mirror
+    normals, rotation-reflection axes), once each, in a fixed sense."""
+    axes: list[np.ndarray] = []
+    for op in operations:
+        rot = op if np.linalg.det(op) > 0 else -op
+        if np.allclose(rot, np.eye(3), atol=1e-8):
+            continue
+        _, s, vt = np.linalg.svd(rot - np.eye(3))
+        a = _canonical_sign(vt[-1] / np.linalg.norm(vt[-1]))
+        if not any(abs(a @ b) > 1.0 - 1e-8 for b in axes):
+            axes.append(a)
+    return axes
+
+
+def _lattice_operations(operations, q: np.ndarray) -> int:
+    """How many operations are signed permutations in the frame of ``q``."""
+    n = 0
+    for op in operations:
+        m = q @ op @ q.T
+        if np.all((np.abs(m) < 1e-8) | (np.abs(np.abs(m) - 1.0) < 1e-8)):
+            n += 1
+    return n
+
+
+def _nearest_order(q: np.ndarray) -> np.ndarray:
+    """The axes of ``q`` reordered and signed so that each lies nearest the
+    input axis of its place (a proper rotation): labels stay familiar."""
+    import itertools
+
+    best, trace = q, -np.inf
+    for perm in itertools.permutations(range(3)):
+        m = q[list(perm)]
+        signs = np.sign(np.diag(m))
+        signs[signs == 0] = 1.0
+        m = m * signs[:, None]
+        if np.linalg.det(m) < 0:  # flip the axis least aligned with its place
+            k = int(np.argmin(np.abs(np.diag(m))))
+            m[k] = -m[k]
+        if np.trace(m) > trace + 1e-12:
+            best, trace = m, np.trace(m)
+    return best
+
+
+def _rounded(q: np.ndarray) -> np.ndarray:
+    out = np.round(q, 12)
+    out[out == 0.0] = 0.0  # no negative zeros
+    return out
 
 
 def _rotation_about(u: np.ndarray, angle: float) -> np.ndarray:

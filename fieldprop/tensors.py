@@ -164,6 +164,93 @@ def assemble(plans, estimates) -> dict[str, TensorResult]:
     return out
 
 
+#: The status of an entry drawn from several frame components: the worst of
+#: theirs, in this order (worst first).
+_WORST_FIRST = (ComponentStatus.MISSING, ComponentStatus.UNSTABLE,
+                ComponentStatus.NOISE_LIMITED, ComponentStatus.OK, ComponentStatus.ZERO_FIELD,
+                ComponentStatus.SYMMETRY_ZERO)
+
+
+def _turn(t: np.ndarray, m: np.ndarray) -> np.ndarray:
+    """sum_ij.. m[a, i] m[b, j] .. t[i, j, ..]: every index of ``t`` turned by ``m``."""
+    for axis in range(t.ndim):
+        t = np.moveaxis(np.tensordot(m, t, axes=([1], [axis])), 0, axis)
+    return t
+
+
+def turn_tensors(tensors: dict[str, TensorResult], frame, forced_zero=None
+                 ) -> dict[str, TensorResult]:
+    """Tensors computed in ``frame`` (rows: its axes in the input frame)
+    turned into the input frame, component by component.
+
+    An input-frame entry is sum_i.. q[i, a] .. T[i, ..] over the frame entries;
+    its error bar sums |q[i, a] ..| err[i, ..] (linear, as for invariants:
+    components share points); its status is the worst of the frame
+    components it draws on (a coefficient above 1e-12), with no number when
+    one of them has none. ``forced_zero(indices)`` (the group in the input
+    frame) makes an entry exactly zero by symmetry. The components keep
+    their names and recipes; their Richardson tables are the frame's, so
+    none is kept (``table`` empty), and ``chosen_entry`` is that of the
+    contributor with the largest error bar.
+    """
+    q = np.asarray(frame, dtype=float)
+    out = {}
+    for name, t in tensors.items():
+        owner = np.empty(t.value_au.shape, dtype=object)
+        for c in t.components:
+            for e in c.entries:
+                owner[e] = c
+        # Entries without a number are left out here (0) and make every entry
+        # that draws on them numberless below.
+        value = _turn(np.where(t.stable, t.value_au, 0.0), q.T)
+        error = _turn(np.where(t.stable, t.error_au, 0.0), np.abs(q.T))
+        roundoff = np.zeros_like(t.value_au)
+        for c in t.components:
+            for e in c.entries:
+                roundoff[e] = c.estimate.roundoff_au if c.stable else 0.0
+        roundoff = _turn(roundoff, np.abs(q.T))
+        comps = []
+        for c in t.components:
+            idx = c.plan.indices
+            if forced_zero is not None and forced_zero(idx):
+                est = ComponentEstimate(0.0, 0.0, (0, 0), ComponentStatus.SYMMETRY_ZERO, 0.0,
+                                        (), c.estimate.reason or "forbidden by the molecule's "
+                                        "point group")
+                comps.append(ComponentResult(c.plan, est, c.entries))
+                continue
+            weight = np.ones((3,) * t.order)
+            for axis, a in enumerate(idx):
+                shape = [1] * t.order
+                shape[axis] = 3
+                weight = weight * np.abs(q[:, a]).reshape(shape)
+            drawn = {id(owner[e]): owner[e] for e in zip(*np.nonzero(weight > 1e-12))
+                     if owner[e] is not None}.values()
+            drawn = [d for d in drawn if d.estimate.status is not ComponentStatus.SYMMETRY_ZERO] \
+                or list(drawn)
+            status = min((d.estimate.status for d in drawn), key=_WORST_FIRST.index)
+            if status is ComponentStatus.SYMMETRY_ZERO:
+                status = ComponentStatus.OK  # zero in the frame, not by the input frame's group
+            worst = max(drawn, key=lambda d: (d.estimate.error_au
+                                              if math.isfinite(d.estimate.error_au) else math.inf))
+            reasons = sorted({f"{d.plan.name}: {d.estimate.reason}" for d in drawn
+                              if d.estimate.status is status and d.estimate.reason})
+            if status in (ComponentStatus.UNSTABLE, ComponentStatus.MISSING):
+                v, e, r = math.nan, math.nan, math.nan
+            else:
+                v, e, r = float(value[idx]), float(error[idx]), float(roundoff[idx])
+            reason = ("from the symmetry frame's " + "; ".join(reasons[:3])) if reasons else ""
+            est = ComponentEstimate(v, e, worst.estimate.chosen_entry, status, r, (), reason)
+            comps.append(ComponentResult(c.plan, est, c.entries))
+        v_arr = np.zeros_like(t.value_au)
+        e_arr = np.zeros_like(t.value_au)
+        stable = np.ones(t.value_au.shape, dtype=bool)
+        for c in comps:
+            for e in c.entries:
+                v_arr[e], e_arr[e], stable[e] = c.estimate.value_au, c.estimate.error_au, c.stable
+        out[name] = TensorResult(name, t.order, v_arr, e_arr, stable, tuple(comps))
+    return out
+
+
 def symmetrize(t: np.ndarray) -> np.ndarray:
     """Average over all index permutations."""
     perms = list(itertools.permutations(range(t.ndim)))

@@ -1,0 +1,201 @@
+"""Point-group symmetry of the nuclear framework (fieldprop.symmetry), pure
+numerics: group orders of textbook molecules wherever they are placed, the
+components the group forces to zero, images of field vectors, and the
+symmetrised geometry.
+
+Group orders are the textbook ones (common practice): C2v 4, C3v 6, D2h 8,
+Td 24, D6h 24, Oh 48. The geometries are our own idealised shapes.
+"""
+
+import math
+
+import numpy as np
+import pytest
+
+from fieldprop.symmetry import SYMMETRY_TOLERANCE_BOHR, detect, image_record, images
+
+
+def _bent(bond, angle_deg):
+    h = math.radians(angle_deg) / 2
+    return [(0, 0, 0), (0, bond * math.sin(h), -bond * math.cos(h)),
+            (0, -bond * math.sin(h), -bond * math.cos(h))]
+
+
+def _pyramid(bond, height):
+    r = math.sqrt(bond ** 2 - height ** 2)
+    return [(0, 0, 0)] + [(r * math.cos(2 * math.pi * k / 3), r * math.sin(2 * math.pi * k / 3),
+                           -height) for k in range(3)]
+
+
+MOLECULES = {
+    # name: (charges, coordinates in bohr, group order)
+    "water (C2v)": ((8, 1, 1), _bent(1.81, 104.5), 4),
+    "ammonia (C3v)": ((7, 1, 1, 1), _pyramid(1.91, 0.72), 6),
+    "ethylene (D2h)": ((6, 6, 1, 1, 1, 1),
+                       [(0, 0, 1.26), (0, 0, -1.26), (0, 1.75, 2.33), (0, -1.75, 2.33),
+                        (0, 1.75, -2.33), (0, -1.75, -2.33)], 8),
+    "methane (Td)": ((6, 1, 1, 1, 1),
+                     [(0, 0, 0), (1.19, 1.19, 1.19), (-1.19, -1.19, 1.19), (-1.19, 1.19, -1.19),
+                      (1.19, -1.19, -1.19)], 24),
+    "benzene (D6h)": ((6,) * 6 + (1,) * 6,
+                      [(2.64 * math.cos(k * math.pi / 3), 2.64 * math.sin(k * math.pi / 3), 0)
+                       for k in range(6)]
+                      + [(4.68 * math.cos(k * math.pi / 3), 4.68 * math.sin(k * math.pi / 3), 0)
+                         for k in range(6)], 24),
+    "SF6 (Oh)": ((16,) + (9,) * 6,
+                 [(0, 0, 0), (2.95, 0, 0), (-2.95, 0, 0), (0, 2.95, 0), (0, -2.95, 0),
+                  (0, 0, 2.95), (0, 0, -2.95)], 48),
+}
+
+
+def _turn(seed):
+    """A random rotation and displacement (an arbitrary placement of the molecule)."""
+    rng = np.random.default_rng(seed)
+    q, r = np.linalg.qr(rng.normal(size=(3, 3)))
+    q = q @ np.diag(np.sign(np.diag(r)))
+    if np.linalg.det(q) < 0:
+        q[:, 0] *= -1
+    return q, rng.normal(size=3) * 3.0
+
+
+def _is_group(ops):
+    """Closed under products, each operation orthogonal."""
+    for a in ops:
+        assert np.allclose(a @ a.T, np.eye(3), atol=1e-10)
+        for b in ops:
+            assert any(np.allclose(a @ b, c, atol=1e-8) for c in ops)
+
+
+@pytest.mark.parametrize("name", MOLECULES)
+@pytest.mark.parametrize("placed", ["aligned", "off-axis"])
+def test_group_orders_wherever_the_molecule_is_placed(name, placed):
+    charges, coords, order = MOLECULES[name]
+    x = np.array(coords, dtype=float)
+    if placed == "off-axis":
+        q, shift = _turn(hash(name) % 1000)
+        x = x @ q.T + shift
+    sym = detect(charges, x)
+    assert sym is not None and sym.kind == "finite"
+    assert len(sym.operations) == order
+    assert np.allclose(sym.operations[0], np.eye(3))
+    _is_group(sym.operations)
+    # Every operation maps the framework onto itself, element onto element.
+    z = np.array(charges)
+    for op in sym.operations:
+        image = (x - sym.centre) @ op.T + sym.centre
+        for i in range(len(x)):
+            d = np.linalg.norm(x - image[i], axis=1)
+            assert d[z == z[i]].min() < 1e-8
+    assert sym.moved_bohr < 1e-9
+
+
+def test_no_symmetry_is_none_and_a_near_miss_is_symmetrised():
+    charges, coords, _ = MOLECULES["water (C2v)"]
+    x = np.array(coords, dtype=float)
+    # A hydrogen made fluorine: only the molecular plane is left (Cs).
+    assert len(detect((8, 1, 9), x).operations) == 2
+    assert detect((8, 1, 9, 6), np.vstack([x, [0.4, 0.3, 0.9]])) is None  # C1
+    skew = x.copy()
+    skew[1, 1] += 1e-3  # one bond longer by 1e-3 bohr: beyond the tolerance
+    sym = detect(charges, skew)
+    assert sym is None or len(sym.operations) == 2  # the molecular plane stays
+    near = x.copy()
+    near[1, 1] += 0.2 * SYMMETRY_TOLERANCE_BOHR
+    sym = detect(charges, near)
+    assert len(sym.operations) == 4
+    assert 0 < sym.moved_bohr <= SYMMETRY_TOLERANCE_BOHR
+    # The symmetrised geometry is exactly symmetric.
+    assert len(detect(charges, sym.coords_bohr, tolerance=1e-12).operations) == 4
+
+
+def test_forced_zeros_of_water_in_its_axes():
+    """C2v with the C2 axis along z and the molecule in the yz plane: mu along z
+    only; alpha diagonal; beta_zzz, beta_zxx, beta_zyy and their permutations
+    only (textbook selection rules, common practice)."""
+    charges, coords, _ = MOLECULES["water (C2v)"]
+    sym = detect(charges, coords)
+    assert [sym.forced_zero((i,)) for i in range(3)] == [True, True, False]
+    for i in range(3):
+        for j in range(3):
+            assert sym.forced_zero((i, j)) == (i != j)
+    allowed = set()
+    for idx in np.ndindex(3, 3, 3):
+        if not sym.forced_zero(idx):
+            allowed.add(tuple(sorted(idx)))
+    assert allowed == {(2, 2, 2), (0, 0, 2), (1, 1, 2)}
+
+
+def test_forced_zeros_of_an_atom_a_linear_molecule_and_a_centrosymmetric_one():
+    atom = detect((2,), [(0.3, -0.1, 0.2)])
+    assert atom.kind == "atom"
+    assert all(atom.forced_zero((i,)) for i in range(3))
+    assert all(atom.forced_zero(idx) for idx in np.ndindex(3, 3, 3))
+    assert not atom.forced_zero((0, 0, 1, 1)) and atom.forced_zero((0, 0, 0, 1))
+    assert atom.forced_zero((0, 1)) and not atom.forced_zero((2, 2))
+    # A linear molecule along z: mu_z, alpha_xx = alpha_yy and alpha_zz only.
+    hcn = detect((1, 6, 7), [(0, 0, -2.0), (0, 0, 0), (0, 0, 2.2)])
+    assert hcn.kind == "linear" and not hcn.inversion
+    assert [hcn.forced_zero((i,)) for i in range(3)] == [True, True, False]
+    assert hcn.forced_zero((0, 1)) and not hcn.forced_zero((0, 0))
+    assert not hcn.forced_zero((2, 2, 2)) and hcn.forced_zero((0, 1, 2))
+    # Inversion forbids every odd-rank component (beta = 0: REFERENCES, common
+    # practice for centrosymmetric molecules).
+    for name in ("ethylene (D2h)", "SF6 (Oh)", "benzene (D6h)"):
+        charges, coords, _ = MOLECULES[name]
+        sym = detect(charges, coords)
+        assert all(sym.forced_zero(idx) for idx in np.ndindex(3, 3, 3)), name
+        assert all(sym.forced_zero((i,)) for i in range(3)), name
+
+
+def test_off_axis_forced_zeros_are_those_of_the_turned_tensor():
+    """The same water turned: the invariant tensors are the aligned ones
+    turned, so a component is forced to zero exactly when it is zero in
+    every turned invariant tensor (here: none of alpha's, in general)."""
+    charges, coords, _ = MOLECULES["water (C2v)"]
+    q, shift = _turn(7)
+    sym = detect(charges, np.array(coords) @ q.T + shift)
+    aligned = np.diag([1.3, 0.7, 2.1])  # any alpha of C2v symmetry in its axes
+    turned = q @ aligned @ q.T
+    for op in sym.operations:  # invariant under every operation found
+        assert np.allclose(op @ turned @ op.T, turned, atol=1e-12)
+    assert not any(sym.forced_zero((i, j)) for i in range(3) for j in range(3))
+
+
+def test_images_map_field_vectors_exactly_and_records_turn_with_them():
+    from fieldprop.plan import FieldPoint
+    from fieldprop.records import PointRecord
+
+    charges, coords, _ = MOLECULES["water (C2v)"]
+    sym = detect(charges, coords)
+    h = 0.002
+    fields = [(0, 0, 0), (h, 0, 0), (-h, 0, 0), (0, h, 0), (0, -h, 0), (0, 0, h), (0, 0, -h),
+              (h, h, 0), (-h, -h, 0), (h, -h, 0)]
+    found = images(fields, sym)
+    computed = [i for i, (j, op) in enumerate(found) if op is None]
+    assert computed == [0, 1, 3, 5, 6, 7]  # -x, -y and the diagonals are mirror images
+    for i, (j, op) in enumerate(found):
+        if op is not None:
+            assert j < i and np.array_equal(op @ np.array(fields[j]), np.array(fields[i]))
+    # A record's dipole and alpha turn with the field: mu -> R mu, alpha -> R alpha R^T.
+    mu, alpha = (0.1, 0.2, 0.3), ((1.0, 0.1, 0.2), (0.1, 2.0, 0.3), (0.2, 0.3, 3.0))
+    rec = PointRecord(FieldPoint(1, (1, 0, 0), 0, fields[1]), -76.0, -76.0, mu, 9, ("diis",),
+                      0.0, 1.0, 1e-12, alpha)
+    op = found[2][1]
+    turned = image_record(rec, op, FieldPoint(2, (-1, 0, 0), 0, fields[2]))
+    assert np.allclose(turned.dipole_au, op @ np.array(mu))
+    assert np.allclose(turned.alpha_au, op @ np.array(alpha) @ op.T)
+    assert turned.energy_au == rec.energy_au and turned.scf_cycles == 0
+
+
+def test_a_linear_molecule_relates_fields_of_equal_axial_and_radial_parts():
+    axis = np.array([1.0, 2.0, 2.0]) / 3.0  # a linear molecule off every axis
+    sym = detect((1, 9), [tuple(-1.0 * axis), tuple(0.8 * axis)])
+    assert sym.kind == "linear" and np.allclose(abs(sym.axis @ axis), 1.0)
+    f = np.array([0.002, -0.001, 0.0005])
+    rotated = sym.relate(f, f)
+    assert rotated is not None
+    other = 0.0015 * np.cross(axis, [0, 0, 1]) / np.linalg.norm(np.cross(axis, [0, 0, 1]))
+    g = (f @ axis) * axis + np.linalg.norm(f - (f @ axis) * axis) / 0.0015 * other
+    op = sym.relate(g, f)
+    assert op is not None and np.allclose(op @ f, g, atol=1e-15)
+    assert sym.relate(-f, f) is None  # no inversion centre in HF
