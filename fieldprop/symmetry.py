@@ -87,7 +87,7 @@ class Symmetry:
             return "atom (O(3))"
         if self.kind == "linear":
             return "linear (D-inf-h)" if self.inversion else "linear (C-inf-v)"
-        return f"{len(self.operations)} operations"
+        return f"{point_group_label(self.operations)}, {len(self.operations)} operations"
 
     def relate(self, target, source) -> np.ndarray | None:
         """An operation R of the group with R source = target, or None."""
@@ -169,6 +169,59 @@ class Symmetry:
         that rank the group leaves invariant (so the molecule's is zero)."""
         return bool(np.all(np.abs(_invariant_basis(self, len(indices))[
             np.ravel_multi_index(indices, (3,) * len(indices))]) < 1e-8))
+
+
+def point_group_label(operations) -> str:
+    """The Schoenflies symbol of a finite group of 3x3 orthogonal operations
+    (C2v, D6h, Td, ...): from its order, inversion, mirrors and the orders and
+    directions of its rotation axes."""
+    ops = [np.asarray(op, dtype=float) for op in operations]
+    h = len(ops)
+    inversion = any(np.allclose(op, -np.eye(3), atol=1e-8) for op in ops)
+    axes: dict[int, list[np.ndarray]] = {}  # rotation order -> axes
+    for op in ops:
+        if np.linalg.det(op) < 0 or np.allclose(op, np.eye(3), atol=1e-8):
+            continue
+        angle = math.acos(max(-1.0, min(1.0, (np.trace(op) - 1.0) / 2.0)))
+        n = int(round(2 * math.pi / angle))
+        _, _, vt = np.linalg.svd(op - np.eye(3))
+        a = vt[-1]
+        for m in axes:  # a rotation by 2 pi / n also belongs to the axis of order m
+            if m % n == 0 and any(abs(a @ b) > 1 - 1e-8 for b in axes[m]):
+                break
+        else:
+            for m in list(axes):
+                if n % m == 0:
+                    axes[m] = [b for b in axes[m] if abs(a @ b) <= 1 - 1e-8]
+            if not any(abs(a @ b) > 1 - 1e-8 for b in axes.setdefault(n, [])):
+                axes[n].append(a)
+    mirrors = []
+    for op in ops:
+        if np.linalg.det(op) < 0 and abs(np.trace(op) - 1.0) < 1e-8:
+            _, _, vt = np.linalg.svd(op + np.eye(3))
+            mirrors.append(vt[-1])
+    if len(axes.get(3, [])) > 1 or len(axes.get(5, [])) > 1:  # cubic and icosahedral
+        if axes.get(5):
+            return "Ih" if inversion else "I"
+        if axes.get(4):
+            return "Oh" if inversion else "O"
+        return "Th" if inversion else ("Td" if mirrors else "T")
+    if not axes:
+        return "Cs" if mirrors else ("Ci" if inversion else "C1")
+    n = max(axes)
+    principal = axes[n][0]
+    across = sum(1 for b in axes.get(2, []) if abs(b @ principal) < 1e-8)
+    horizontal = any(abs(abs(m @ principal) - 1.0) < 1e-8 for m in mirrors)
+    vertical = any(abs(m @ principal) < 1e-8 for m in mirrors)
+    if across >= n and n >= 2 and not (n == 2 and across < 2):
+        return f"D{n}h" if horizontal else (f"D{n}d" if vertical else f"D{n}")
+    if horizontal:
+        return f"C{n}h"
+    if vertical:
+        return f"C{n}v"
+    if h == 2 * n:
+        return f"S{2 * n}"
+    return f"C{n}"
 
 
 def _canonical_sign(v: np.ndarray) -> np.ndarray:

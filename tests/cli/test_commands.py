@@ -39,7 +39,8 @@ def test_plan_json_lines_parse_and_match_the_run(tmp_path):
     # Ids are the first 12 hex digits of the store key, unique within the plan.
     assert all(p["key"].startswith(p["id"]) and len(p["key"]) == 64 for p in points)
     assert len({p["id"] for p in points}) == len(points)
-    assert {p["stored"] for p in points} == {"missing"}
+    # Nothing computed yet; LiH is linear, so some points are images of others.
+    assert {p["stored"] for p in points} == {"missing", "image"}
     table = fieldprop("plan", "lih.toml", cwd=tmp_path)
     assert table.returncode == 0 and f"{len(points)} field points" in table.stdout
 

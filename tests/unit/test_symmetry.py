@@ -3,8 +3,9 @@ numerics: group orders of textbook molecules wherever they are placed, the
 components the group forces to zero, images of field vectors, and the
 symmetrised geometry.
 
-Group orders are the textbook ones (common practice): C2v 4, C3v 6, D2h 8,
-Td 24, D6h 24, Oh 48. The geometries are our own idealised shapes.
+Group orders and Schoenflies symbols are the textbook ones (common practice):
+C2v 4, C3v 6, D2h 8, Td 24, D6h 24, Oh 48; C2, C2h, D2, D3d, D3h for the shapes
+of test_point_group_symbols. The geometries are our own idealised shapes.
 """
 
 import math
@@ -87,6 +88,7 @@ def test_group_orders_wherever_the_molecule_is_placed(name, placed):
             d = np.linalg.norm(x - image[i], axis=1)
             assert d[z == z[i]].min() < 1e-8
     assert sym.moved_bohr < 1e-9
+    assert sym.name == f"{name.split('(')[1][:-1]}, {order} operations"
 
 
 def test_no_symmetry_is_none_and_a_near_miss_is_symmetrised():
@@ -199,3 +201,46 @@ def test_a_linear_molecule_relates_fields_of_equal_axial_and_radial_parts():
     op = sym.relate(g, f)
     assert op is not None and np.allclose(op @ f, g, atol=1e-15)
     assert sym.relate(-f, f) is None  # no inversion centre in HF
+
+
+def test_point_group_symbols_of_lower_and_dihedral_groups():
+    def rz(t):
+        c, s = math.cos(t), math.sin(t)
+        return np.array([[c, -s, 0], [s, c, 0], [0, 0, 1]])
+
+    carbons = [(0, 0, 1.45), (0, 0, -1.45)]
+    top = [tuple(rz(2 * math.pi * k / 3) @ np.array([1.9, 0, 2.2])) for k in range(3)]
+    staggered = [tuple(rz(2 * math.pi * k / 3 + math.pi / 3) @ np.array([1.9, 0, -2.2]))
+                 for k in range(3)]
+    eclipsed = [(x, y, -z) for x, y, z in top]
+    ethane = (6, 6) + (1,) * 6
+    assert detect(ethane, carbons + top + staggered).name == "D3d, 12 operations"
+    assert detect(ethane, carbons + top + eclipsed).name == "D3h, 12 operations"
+    trans = [(0, 1.2, 0), (0, -1.2, 0), (0, 1.8, 1.8), (0, -1.8, -1.8)]
+    assert detect((7, 7, 1, 1), trans).name == "C2h, 4 operations"
+    skew = [(0, 1.4, 0), (0, -1.4, 0), (1.5, 1.8, 0.5), (-1.5, -1.8, 0.5)]
+    assert detect((8, 8, 1, 1), skew).name == "C2, 2 operations"
+    t = 0.5
+    twisted = [(0, 0, 1.26), (0, 0, -1.26), (0, 1.75, 2.33), (0, -1.75, 2.33),
+               (1.75 * math.sin(t), 1.75 * math.cos(t), -2.33),
+               (-1.75 * math.sin(t), -1.75 * math.cos(t), -2.33)]
+    assert detect((6, 6, 1, 1, 1, 1), twisted).name == "D2, 4 operations"
+
+
+@pytest.mark.parametrize("name", MOLECULES)
+def test_the_symmetry_frame_makes_the_operations_lattice_maps(name):
+    """Off its axes, each molecule gets a frame in which as many operations
+    permute the stencil lattice as in its own axes (C3v, D6h: only the
+    subgroup a cubic lattice can carry); aligned, the input frame is kept."""
+    from fieldprop.symmetry import _lattice_operations
+
+    charges, coords, order = MOLECULES[name]
+    aligned = detect(charges, coords)
+    assert aligned.frame() is None
+    in_axes = _lattice_operations(aligned.operations, np.eye(3))
+    q, shift = _turn(11)
+    turned = detect(charges, np.array(coords) @ q.T + shift)
+    frame = turned.frame()
+    assert np.allclose(frame @ frame.T, np.eye(3), atol=1e-11)
+    assert _lattice_operations(turned.operations, frame) == in_axes
+    assert in_axes == {"C3v": 2, "D6h": 8}.get(name.split("(")[1][:-1], order)

@@ -1,0 +1,131 @@
+"""Field points per job: symmetry on and off, energy and dipole routes,
+molecules of several point groups placed on and off their axes, and the
+automatic window against a fixed 3-level ladder (prints tables).
+
+Run: python tests/benchmarks/bench_economy.py [--wall]
+Counting needs no SCF (the plans only). --wall also runs water off its axes
+(HF/6-31G, mu to gamma, dipole route) with and without symmetry, one worker,
+and prints the wall times.
+
+Geometries are our own idealised shapes (angstrom); every one is placed a
+second time turned by a fixed rotation and shifted off the origin.
+"""
+
+import os
+
+for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")
+
+import argparse  # noqa: E402
+import math  # noqa: E402
+import tempfile  # noqa: E402
+import textwrap  # noqa: E402
+import time  # noqa: E402
+from pathlib import Path  # noqa: E402
+
+import numpy as np  # noqa: E402
+from scipy.spatial.transform import Rotation  # noqa: E402
+from tabulate import tabulate  # noqa: E402
+
+from fieldprop.engine import compute, make_plan, prepare  # noqa: E402
+from fieldprop.job import load_job  # noqa: E402
+
+
+def _pyramid(bond, height):
+    r = math.sqrt(bond ** 2 - height ** 2)
+    return [(0, 0, 0)] + [(r * math.cos(2 * math.pi * k / 3), r * math.sin(2 * math.pi * k / 3),
+                           -height) for k in range(3)]
+
+
+MOLECULES = {
+    "bromochlorofluoromethane (C1)": (
+        ["C", "H", "F", "Cl", "Br"], [(0, 0, 0), (0.63, 0.63, 0.63), (-0.78, -0.78, 0.78),
+                                      (-1.02, 1.02, -1.02), (1.11, -1.11, -1.11)]),
+    "water (C2v)": (["O", "H", "H"], [(0, 0, 0.1173), (0, 0.7572, -0.4692), (0, -0.7572, -0.4692)]),
+    "ammonia (C3v)": (["N", "H", "H", "H"], _pyramid(1.012, 0.38)),
+    "ethylene (D2h)": (["C", "C", "H", "H", "H", "H"], [(0, 0, 0.667), (0, 0, -0.667), (0, 0.923, 1.232),
+                                  (0, -0.923, 1.232), (0, 0.923, -1.232), (0, -0.923, -1.232)]),
+    "hydrogen cyanide (C-inf-v)": (["H", "C", "N"], [(0, 0, -1.066), (0, 0, 0), (0, 0, 1.156)]),
+    "helium (atom)": (["He"], [(0, 0, 0)]),
+}
+
+TURN = Rotation.from_euler("zyx", [37.0, 23.0, -61.0], degrees=True).as_matrix()
+
+
+def job_text(symbols, coords, props, route, symmetry, field=True, levels=3):
+    lines = "\n".join(f"{s} {x:.10f} {y:.10f} {z:.10f}" for s, (x, y, z) in zip(symbols, coords))
+    return textwrap.dedent(f"""
+        [molecule]
+        geometry = \"\"\"
+{lines}
+        \"\"\"
+        [model]
+        method = "hf"
+        basis = "6-31g"
+        [response]
+        properties = {props!r}
+        differentiate = "{route}"
+        symmetry = {str(symmetry).lower()}
+        """).replace("'", '"') + (f"field_au = 0.002\nlevels = {levels}\n" if field else "")
+
+
+def computed(folder, text) -> int:
+    path = Path(folder) / "job.toml"
+    path.write_text(text)
+    return len(prepare(load_job(path), facts={}).computed_tasks)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--wall", action="store_true", help="also time water off its axes")
+    args = parser.parse_args()
+    props = ["dipole", "alpha", "beta", "gamma"]
+    rows = []
+    with tempfile.TemporaryDirectory() as folder:
+        for name, (symbols, coords) in MOLECULES.items():
+            for placed in ("in its axes", "off its axes"):
+                x = np.array(coords, dtype=float)
+                if placed == "off its axes":
+                    x = x @ TURN.T + np.array([0.31, -0.17, 0.52])
+                row = [name, placed]
+                for route in ("energy", "dipole"):
+                    row += [computed(folder, job_text(symbols, x, props, route, False)),
+                            computed(folder, job_text(symbols, x, props, route, True))]
+                rows.append(row)
+        print("Points computed for mu, alpha, beta, gamma at 3 levels (h0 = 0.002 au):")
+        print(tabulate(rows, headers=["molecule", "placed", "energy, no symmetry",
+                                      "energy, symmetry", "dipole, no symmetry",
+                                      "dipole, symmetry"]))
+        print()
+        # The automatic window against a fixed 3-level ladder, beta alone.
+        rows = []
+        for name in ("bromochlorofluoromethane (C1)", "water (C2v)"):
+            symbols, coords = MOLECULES[name]
+            x = np.array(coords, dtype=float) @ TURN.T
+            for route in ("energy", "dipole"):
+                fixed = computed(folder, job_text(symbols, x, ["beta"], route, True))
+                auto = computed(folder, job_text(symbols, x, ["beta"], route, True, field=False))
+                rows.append([name, route, fixed, auto, f"{auto / fixed:.2f}"])
+        print("beta alone, symmetry on: fixed 3-level ladder against the automatic window")
+        print(tabulate(rows, headers=["molecule", "route", "3 levels", "automatic window",
+                                      "ratio (target <= 1.3)"]))
+        if args.wall:
+            print()
+            symbols, coords = MOLECULES["water (C2v)"]
+            x = np.array(coords, dtype=float) @ TURN.T + np.array([0.31, -0.17, 0.52])
+            rows = []
+            for symmetry in (False, True):
+                path = Path(folder) / f"wall-{symmetry}.toml"
+                path.write_text(job_text(symbols, x, props, "dipole", symmetry))
+                job = load_job(path)
+                make_plan(job)
+                start = time.perf_counter()
+                result = compute(job, workers=1, progress=False)
+                wall = time.perf_counter() - start
+                rows.append([symmetry, result.counts.computed, f"{wall:.2f}"])
+            print("water off its axes, HF/6-31G, mu to gamma, dipole route, one worker:")
+            print(tabulate(rows, headers=["symmetry", "points computed", "wall time (s)"]))
+
+
+if __name__ == "__main__":
+    main()
