@@ -264,7 +264,9 @@ def symmetric_molecule(job: Job):
 
     The group is that of the nuclear framework about the centre of nuclear
     charge, for closed shells (a non-degenerate, totally symmetric state); an
-    ion's origin must be fixed by it (its dipole depends on the origin). The
+    ion's origin must be fixed by it (its dipole depends on the origin). With
+    an integration grid (DFT) only the operations that map the grid onto
+    itself count (Symmetry.lattice_subgroup), and no frame is turned. The
     framework is symmetrised (moved by at most symmetry.SYMMETRY_TOLERANCE_BOHR)
     so that the images are exact."""
     from fieldprop import symmetry
@@ -273,6 +275,8 @@ def symmetric_molecule(job: Job):
     if symmetry_refusal(job, molecule):
         return molecule, None
     sym = symmetry.detect(molecule.nuclear_charges, molecule.coords_bohr)
+    if sym is not None and METHODS[job.model.method].integration_grid:
+        sym = sym.lattice_subgroup()  # the operations that map the grid onto itself
     if sym is None:
         return molecule, None
     origin = np.asarray(molecule.origin_bohr)

@@ -47,6 +47,10 @@ class MethodTraits:
     real orbital Hessian in fieldprop). ``restricted_open_shell``: whether the
     method runs on a restricted open-shell reference at all. ``amplitude_solver``:
     a coupled-cluster solver, whose amplitude tolerance adds to the energy noise.
+    ``integration_grid``: the energy is integrated on a grid fixed in the input
+    axes (DFT: atom-centred Lebedev grids, invariant only under signed
+    permutations of those axes), so a symmetry operation maps a field point onto
+    another exactly only when it is one of those.
     """
 
     name: str
@@ -54,6 +58,7 @@ class MethodTraits:
     routes: frozenset[Route]
     restricted_open_shell: bool
     amplitude_solver: bool = False
+    integration_grid: bool = False
 
     def has(self, route: Route | str) -> bool:
         return Route(route) in self.routes
@@ -68,7 +73,7 @@ _ENERGY_ONLY = frozenset({Route.ENERGY})
 
 METHODS: dict[str, MethodTraits] = {
     "hf": MethodTraits("hf", True, _SCF_ROUTES, True),
-    "dft": MethodTraits("dft", True, _SCF_ROUTES, True),
+    "dft": MethodTraits("dft", True, _SCF_ROUTES, True, integration_grid=True),
     "mp2": MethodTraits("mp2", False, _ENERGY_ONLY, False),
     "ccsd": MethodTraits("ccsd", False, _ENERGY_ONLY, False, amplitude_solver=True),
     "ccsd(t)": MethodTraits("ccsd(t)", False, _ENERGY_ONLY, False, amplitude_solver=True),

@@ -46,6 +46,7 @@ Only states of the molecule's full symmetry may be mapped: closed shells
 
 from __future__ import annotations
 
+import itertools
 import math
 from dataclasses import dataclass
 
@@ -128,6 +129,28 @@ class Symmetry:
         return replace(self, operations=np.array([q @ op @ q.T for op in self.operations]),
                        centre=q @ self.centre, coords_bohr=self.coords_bohr @ q.T,
                        axis=None if self.axis is None else q @ self.axis)
+
+    def lattice_subgroup(self) -> "Symmetry | None":
+        """The operations that are signed permutations of the input axes (the
+        ones that map an integration grid built in those axes onto itself),
+        or None when that leaves only the identity; an atom or a linear
+        molecule becomes the finite group of those its axis allows."""
+        if self.kind == "finite":
+            ops = [op for op in self.operations
+                   if _lattice_operations([op], np.eye(3)) == 1]
+        else:
+            ops = [np.diag(s) @ np.eye(3)[list(p)] for p in itertools.permutations(range(3))
+                   for s in itertools.product((1.0, -1.0), repeat=3)]
+            if self.kind == "linear":  # the axis onto itself, or reversed with inversion
+                ops = [op for op in ops if np.allclose(op @ self.axis, self.axis, atol=1e-8)
+                       or (self.inversion and np.allclose(op @ self.axis, -self.axis,
+                                                          atol=1e-8))]
+        if len(ops) <= 1:
+            return None
+        from dataclasses import replace
+
+        return replace(self, kind="finite", operations=np.array(ops), axis=None,
+                       inversion=False)
 
     def frame(self) -> np.ndarray | None:
         """The frame to plan field points in: rows are its axes in the input
@@ -259,8 +282,6 @@ def _lattice_operations(operations, q: np.ndarray) -> int:
 def _nearest_order(q: np.ndarray) -> np.ndarray:
     """The axes of ``q`` reordered and signed so that each lies nearest the
     input axis of its place (a proper rotation): labels stay familiar."""
-    import itertools
-
     best, trace = q, -np.inf
     for perm in itertools.permutations(range(3)):
         m = q[list(perm)]

@@ -432,7 +432,7 @@ def test_collect_names_the_points_the_store_lacks(tmp_path, computed_store):
     lines = proc.stderr.splitlines()
     assert len(lines) == 1 and lines[0].startswith("fieldprop: error: incomplete: "), proc.stderr
     assert set(_ID.findall(lines[0])) == missing, lines[0]
-    assert f"{len(missing)} of {len(tasks)}" in lines[0]
+    assert f"{len(missing)} of the {len(tasks)} field points to compute" in lines[0]
     assert not (tmp_path / RESULT).exists()
     assert _without_journal(snapshot(tmp_path), store, tmp_path) == \
         _without_journal(before, store, tmp_path)

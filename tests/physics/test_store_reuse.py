@@ -4,7 +4,9 @@ the analytic-alpha points.
 
 Small LiH/STO-3G jobs (6 basis functions): the counts are the point, not the
 numbers, but the numbers of a job assembled from reused points must equal those
-of the same job computed from scratch.
+of the same job computed from scratch. Symmetry is off, so that every planned
+point is computed and the counts are the plans' (reuse with symmetry:
+tests/cli/test_store_runs.py).
 """
 
 import json
@@ -32,6 +34,7 @@ method = "hf"
 basis = "{basis}"
 [response]
 properties = {properties}
+symmetry = false
 {response}
 """
 

@@ -108,3 +108,28 @@ def test_an_open_shell_keeps_every_point(tmp_path):
                                                    "        multiplicity = 2")
     _, result = run_job(tmp_path, job)
     assert result.symmetry is None and result.counts.images == 0
+
+
+@pytest.mark.parametrize("placed", ["aligned", "off-axis"])
+def test_dft_maps_points_only_by_operations_its_grid_keeps(tmp_path, placed):
+    """DFT integrates on atom-centred Lebedev grids fixed in the input axes,
+    invariant under signed permutations of those axes only: water in its axes
+    keeps all four C2v operations (and the tensors of the full stencil);
+    turned, none of its operations keeps the grid, and every point is
+    computed (images through them would differ by the grid's error, ~1e-5 au
+    in alpha, as measured before this rule)."""
+    def job(symmetry):
+        return _job("water", placed, symmetry).replace(
+            'method = "hf"', 'method = "dft"\n        functional = "b3lyp"')
+
+    _, full = run_job(tmp_path, job(False), name="full.toml")
+    _, sym = run_job(tmp_path, job(True), name="sym.toml")
+    if placed == "off-axis":
+        assert sym.symmetry is None and sym.counts.computed == full.counts.computed
+        return
+    assert sym.symmetry.name == "C2v, 4 operations" and sym.plan.frame is None
+    assert sym.counts.computed < full.counts.computed
+    for tensor in ("dipole", "alpha", "beta"):
+        a, b = sym.tensors[tensor], full.tensors[tensor]
+        bar = np.hypot(a.error_au, b.error_au)
+        assert np.all(np.abs(a.value_au - b.value_au) <= np.maximum(3 * bar, 1e-9)), tensor
