@@ -2,10 +2,15 @@
 molecules of several point groups placed on and off their axes, and the
 automatic window against a fixed 3-level ladder (prints tables).
 
-Run: python tests/benchmarks/bench_economy.py [--wall]
+Run: python tests/benchmarks/bench_economy.py [--wall] [--analytic]
 Counting needs no SCF (the plans only). --wall also runs water off its axes
 (HF/6-31G, mu to gamma, dipole route) with and without symmetry, one worker,
-and prints the wall times.
+and prints the wall times. --analytic times the full beta of 4-nitroaniline
+(HF/6-31G, our geometry in configs/molecules, automatic window) by
+`fieldprop run` against an analytic 2n+1 beta of the same model (SCF, CPHF
+alpha, beta: PySCF's properties extension, pyscf-properties on PyPI, a
+benchmark and test dependency only), each a whole process, in one run, all
+cores to each (fieldprop: a worker per core; analytic: a BLAS thread per core).
 
 Geometries are our own idealised shapes (angstrom); every one is placed a
 second time turned by a fixed rotation and shifted off the origin.
@@ -17,7 +22,10 @@ for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS"):
     os.environ.setdefault(_var, "1")
 
 import argparse  # noqa: E402
+import json  # noqa: E402
 import math  # noqa: E402
+import subprocess  # noqa: E402
+import sys  # noqa: E402
 import tempfile  # noqa: E402
 import textwrap  # noqa: E402
 import time  # noqa: E402
@@ -78,6 +86,8 @@ def computed(folder, text) -> int:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--wall", action="store_true", help="also time water off its axes")
+    parser.add_argument("--analytic", action="store_true", help="also time the full beta of "
+                        "4-nitroaniline against an analytic 2n+1 beta")
     args = parser.parse_args()
     props = ["dipole", "alpha", "beta", "gamma"]
     rows = []
@@ -109,6 +119,9 @@ def main() -> None:
         print("beta alone, symmetry on: fixed 3-level ladder against the automatic window")
         print(tabulate(rows, headers=["molecule", "route", "3 levels", "automatic window",
                                       "ratio (target <= 1.3)"]))
+        if args.analytic:
+            print()
+            analytic_beta(Path(folder))
         if args.wall:
             print()
             symbols, coords = MOLECULES["water (C2v)"]
@@ -125,6 +138,68 @@ def main() -> None:
                 rows.append([symmetry, result.counts.computed, f"{wall:.2f}"])
             print("water off its axes, HF/6-31G, mu to gamma, dipole route, one worker:")
             print(tabulate(rows, headers=["symmetry", "points computed", "wall time (s)"]))
+
+
+#: The analytic reference: SCF, CPHF alpha and the 2n+1 beta of the same model.
+ANALYTIC = """
+import json, sys, warnings
+import numpy as np
+from pyscf import gto, scf
+with warnings.catch_warnings():
+    warnings.simplefilter("ignore")
+    from pyscf.prop.polarizability import rhf
+rows = [line.split() for line in open(sys.argv[1]).read().splitlines()[2:] if line.strip()]
+mol = gto.M(atom=[(r[0], tuple(map(float, r[1:4]))) for r in rows], basis="6-31g", verbose=0)
+mf = scf.RHF(mol).run(conv_tol=1e-10, conv_tol_grad=1e-8)
+prop = rhf.Polarizability(mf)
+alpha, beta = prop.polarizability(), prop.hyper_polarizability()
+json.dump({"alpha": alpha.tolist(), "beta": beta.tolist()}, open(sys.argv[2], "w"))
+"""
+
+
+def analytic_beta(folder: Path) -> None:
+    xyz = Path(__file__).resolve().parents[2] / "configs" / "molecules" / "nitroaniline.xyz"
+    job = folder / "nitroaniline.toml"
+    job.write_text(textwrap.dedent(f"""
+        [molecule]
+        xyz = "{xyz}"
+        [model]
+        method = "hf"
+        basis = "6-31g"
+        [response]
+        properties = ["beta"]
+        origin = "zero"
+        """))
+    cores = str(os.cpu_count() or 1)
+    start = time.perf_counter()
+    done = subprocess.run([sys.executable, "-m", "fieldprop", "run", str(job), "--no-store",
+                           "--quiet", "--json", str(folder / "ff.json")], capture_output=True,
+                          text=True, env={**os.environ, "OMP_NUM_THREADS": "1"})
+    ff_wall = time.perf_counter() - start
+    if done.returncode != 0:
+        raise SystemExit(done.stderr)
+    start = time.perf_counter()
+    done = subprocess.run([sys.executable, "-c", ANALYTIC, str(xyz), str(folder / "an.json")],
+                          capture_output=True, text=True,
+                          env={**os.environ, "OMP_NUM_THREADS": cores,
+                               "OPENBLAS_NUM_THREADS": cores})
+    an_wall = time.perf_counter() - start
+    if done.returncode != 0:
+        raise SystemExit(done.stderr)
+    ff = json.loads((folder / "ff.json").read_text())
+    an = json.loads((folder / "an.json").read_text())
+    value = np.array(ff["tensors"]["beta"]["value"], dtype=float)
+    error = np.array(ff["tensors"]["beta"]["error"], dtype=float)
+    ref = np.array(an["beta"])
+    diff = np.abs(value - ref)
+    print(f"4-nitroaniline, HF/6-31G, full beta, whole processes, {cores} cores each:")
+    print(tabulate([["fieldprop run (automatic window)", ff["points"]["computed"],
+                     f"{ff_wall:.1f}", f"{ff_wall / an_wall:.2f}"],
+                    ["analytic 2n+1 (SCF + CPHF alpha + beta)", "-", f"{an_wall:.1f}", "1.00"]],
+                   headers=["", "points computed", "wall time (s)", "ratio (target <= 4)"]))
+    big = np.max(np.abs(ref))
+    print(f"largest |beta| {big:.1f} au; largest |fieldprop - analytic| {np.max(diff):.2e} au "
+          f"({np.max(diff) / big:.1e} of it); largest fieldprop error bar {np.max(error):.2e}")
 
 
 if __name__ == "__main__":
