@@ -16,6 +16,7 @@ import contextlib
 import copy
 import dataclasses
 import functools
+import io
 import logging
 import time
 import warnings
@@ -181,11 +182,37 @@ def validate(job: Job, molecule) -> dict:
                              "pbe, cam-b3lyp") from None
         facts["functional_is_hybrid"] = bool(libxc.is_hybrid_xc(job.model.functional))
         facts["grid_level"] = job.scf.grid_level
+    if job.model.density_fit is not None:
+        facts.update(auxiliary_basis(job, mol))
     if not METHODS[job.model.method].mean_field:
         frozen = frozen_orbitals(mol, job.model)
         facts["frozen_core_orbitals"] = frozen
         facts["correlated_electrons"] = int(mol.nelectron) - 2 * frozen
     return facts
+
+
+def auxiliary_basis(job: Job, mol) -> dict:
+    """The density-fitting basis of ``job`` checked on ``mol``: its name (PySCF's
+    choice for "auto") and number of functions, for provenance."""
+    from pyscf import df
+
+    name = job.model.density_fit
+    aux = df.make_auxbasis(mol) if name == "auto" else name
+    try:
+        # PySCF explains a missing basis on stdout and in a warning: the one
+        # line below says it.
+        with contextlib.redirect_stdout(io.StringIO()), warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            auxmol = df.addons.make_auxmol(mol, aux)
+    except (KeyError, RuntimeError, ValueError, TypeError, OSError) as exc:
+        why = " ".join(str(exc).split())
+        raise InputError(f"{job.path}: [model] density_fit {name!r} is not an auxiliary basis "
+                         f"PySCF has for every element ({type(exc).__name__}: {why}); use "
+                         "true for PySCF's default, or a name such as def2-universal-jkfit"
+                         ) from None
+    label = aux if isinstance(aux, str) else {k: v if isinstance(v, str) else "generated"
+                                              for k, v in sorted(aux.items())}
+    return {"auxiliary_basis": label, "n_auxiliary_functions": int(auxmol.nao)}
 
 
 def frozen_orbitals(mol, model) -> int:
@@ -209,6 +236,8 @@ def _mean_field(mol, model, scf_spec):
     else:
         cls = scf.UHF if unrestricted else (scf.ROHF if open_shell else scf.RHF)
         mf = cls(mol)
+    if model.density_fit is not None:
+        mf = mf.density_fit(auxbasis=None if model.density_fit == "auto" else model.density_fit)
     mf.conv_tol = scf_spec.energy_conv_tol_au
     mf.conv_tol_grad = scf_spec.gradient_conv_tol
     mf.max_cycle = scf_spec.max_cycle
@@ -261,7 +290,9 @@ class ModelContext:
             self.r = self.mol.intor_symmetric("int1e_r", comp=3)
         template = self.template
         template.get_ovlp = lambda *args, **kwargs: self.overlap
-        if self.mol.nelectron > 1 and (template._is_mem_enough() or self.mol.incore_anyway):
+        if model.density_fit is not None:
+            template.with_df.build()  # the three-index integrals, once per process
+        elif self.mol.nelectron > 1 and (template._is_mem_enough() or self.mol.incore_anyway):
             template._eri = self.mol.intor("int2e", aosym="s8")
         if model.method == "dft":
             template.grids.build()

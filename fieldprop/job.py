@@ -82,7 +82,8 @@ MAX_LEVELS = 6
 
 _SECTIONS = {
     "molecule": {"geometry", "xyz", "units", "charge", "multiplicity", "allow_close_atoms"},
-    "model": {"method", "functional", "basis", "reference", "frozen_core", "cartesian"},
+    "model": {"method", "functional", "basis", "reference", "frozen_core", "cartesian",
+              "density_fit"},
     "response": {"properties", "field_au", "ratio", "levels", "origin", "differentiate", "route",
                  "symmetry",
                  "nuclear_relaxation"},
@@ -140,6 +141,11 @@ class ModelSpec:
     frozen_core: bool = False
     #: Cartesian instead of spherical d and f functions (6d/10f).
     cartesian: bool = False
+    #: Density fitting of the two-electron integrals (HF and DFT): the
+    #: auxiliary basis named (lower case), "auto" for PySCF's default one for
+    #: the orbital basis, or None for exact integrals. A model change, not a
+    #: numerical error: it is part of every point's key.
+    density_fit: str | None = None
 
 
 @dataclass(frozen=True)
@@ -454,8 +460,21 @@ def _parse_model(path: str, table: dict[str, Any], multiplicity: int) -> ModelSp
     cartesian = table.get("cartesian", False)
     if not isinstance(cartesian, bool):
         raise r.fail("cartesian", f"must be true or false, got {cartesian!r}")
+    density_fit = table.get("density_fit", False)
+    if density_fit is True:
+        density_fit = "auto"
+    elif density_fit is False:
+        density_fit = None
+    elif not isinstance(density_fit, str) or not density_fit.strip():
+        raise r.fail("density_fit", f"must be true, false or an auxiliary basis name such as "
+                     f"\"def2-universal-jkfit\", got {density_fit!r}")
+    else:
+        density_fit = density_fit.strip().lower()
+    if density_fit is not None and correlated:
+        raise r.fail("density_fit", f"applies to hf and dft (their Coulomb and exchange "
+                     f"integrals), not to {method}; remove it")
     return ModelSpec(method=method, basis=basis, reference=reference, functional=functional,
-                     frozen_core=frozen_core, cartesian=cartesian)
+                     frozen_core=frozen_core, cartesian=cartesian, density_fit=density_fit)
 
 
 #: [response] differentiate was called ``route`` before; the old name still works

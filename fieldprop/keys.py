@@ -105,7 +105,8 @@ def model_document(molecule, model, scf) -> dict:
         "scf": {"energy_conv_tol_au": _exact(scf.energy_conv_tol_au),
                 "gradient_conv_tol": _exact(scf.gradient_conv_tol),
                 "grid_level": scf.grid_level, "solver": getattr(scf, "solver", "newton")},
-    }
+    } | ({"density_fit": model.density_fit}
+         if getattr(model, "density_fit", None) else {})  # absent: the keys stay as they were
 
 
 def model_key(molecule, model, scf) -> str:

@@ -91,6 +91,19 @@ def _frame_text(frame) -> str:
                      for n, row in zip("abc", frame))
 
 
+def _fit_text(result: RunResult) -> str:
+    """'; density fitting: cc-pvdz-jkfit (116 functions)' or ''."""
+    if result.job.model.density_fit is None:
+        return ""
+    facts = result.backend_facts
+    aux = facts.get("auxiliary_basis", result.job.model.density_fit)
+    if isinstance(aux, dict):
+        names = sorted(set(aux.values()))
+        aux = names[0] if len(names) == 1 else "+".join(f"{k}:{v}" for k, v in aux.items())
+    n = facts.get("n_auxiliary_functions")
+    return f"; density fitting: {aux}" + (f" ({n} functions)" if n else "")
+
+
 def _ecp_text(result: RunResult) -> str:
     """'; effective core potentials: I (28 electrons)' or ''."""
     cores = result.molecule.core_electrons
@@ -144,7 +157,7 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
               f"multiplicity {result.molecule.multiplicity}; {model_text} ({model.reference}); "
               f"{result.backend_facts.get('n_basis_functions', '?')} "
               f"{'cartesian ' if model.cartesian else ''}basis functions"
-              f"{_ecp_text(result)}\n")
+              f"{_ecp_text(result)}{_fit_text(result)}\n")
     facts = result.backend_facts
     if "correlated_electrons" in facts:
         frozen = facts.get("frozen_core_orbitals", 0)

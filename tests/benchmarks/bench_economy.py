@@ -2,7 +2,7 @@
 molecules of several point groups placed on and off their axes, and the
 automatic window against a fixed 3-level ladder (prints tables).
 
-Run: python tests/benchmarks/bench_economy.py [--wall] [--analytic]
+Run: python tests/benchmarks/bench_economy.py [--wall] [--analytic] [--density-fit]
 Counting needs no SCF (the plans only). --wall also runs water off its axes
 (HF/6-31G, mu to gamma, dipole route) with and without symmetry, one worker,
 and prints the wall times. --analytic times the full beta of 4-nitroaniline
@@ -11,6 +11,10 @@ and prints the wall times. --analytic times the full beta of 4-nitroaniline
 alpha, beta: PySCF's properties extension, pyscf-properties on PyPI, a
 benchmark and test dependency only), each a whole process, in one run, all
 cores to each (fieldprop: a worker per core; analytic: a BLAS thread per core).
+--density-fit runs 4-nitroaniline at HF/6-31G* (152 basis functions; mu, alpha,
+beta, 3 levels, h0 = 0.001 au) with exact and with density-fitted integrals
+(PySCF's default auxiliary basis), one worker each, and prints the speed-up
+and how far alpha_iso and beta_parallel move.
 
 Geometries are our own idealised shapes (angstrom); every one is placed a
 second time turned by a fixed rotation and shifted off the origin.
@@ -88,6 +92,8 @@ def main() -> None:
     parser.add_argument("--wall", action="store_true", help="also time water off its axes")
     parser.add_argument("--analytic", action="store_true", help="also time the full beta of "
                         "4-nitroaniline against an analytic 2n+1 beta")
+    parser.add_argument("--density-fit", action="store_true", help="also time 4-nitroaniline "
+                        "with and without density fitting")
     args = parser.parse_args()
     props = ["dipole", "alpha", "beta", "gamma"]
     rows = []
@@ -122,6 +128,9 @@ def main() -> None:
         if args.analytic:
             print()
             analytic_beta(Path(folder))
+        if args.density_fit:
+            print()
+            density_fitting(Path(folder))
         if args.wall:
             print()
             symbols, coords = MOLECULES["water (C2v)"]
@@ -200,6 +209,46 @@ def analytic_beta(folder: Path) -> None:
     big = np.max(np.abs(ref))
     print(f"largest |beta| {big:.1f} au; largest |fieldprop - analytic| {np.max(diff):.2e} au "
           f"({np.max(diff) / big:.1e} of it); largest fieldprop error bar {np.max(error):.2e}")
+
+
+def density_fitting(folder: Path) -> None:
+    xyz = Path(__file__).resolve().parents[2] / "configs" / "molecules" / "nitroaniline.xyz"
+    rows, results = [], {}
+    for fit in ("false", "true"):
+        path = folder / f"fit-{fit}.toml"
+        path.write_text(textwrap.dedent(f"""
+            [molecule]
+            xyz = "{xyz}"
+            [model]
+            method = "hf"
+            basis = "6-31g*"
+            density_fit = {fit}
+            [response]
+            properties = ["dipole", "alpha", "beta"]
+            field_au = 0.001
+            """))
+        start = time.perf_counter()
+        result = compute(load_job(path), workers=1, progress=False)
+        wall = time.perf_counter() - start
+        inv = {i.name: i for i in result.invariants}
+        results[fit] = (wall, inv)
+        rows.append([{"false": "exact integrals", "true": "density fitting"}[fit],
+                     result.backend_facts.get("n_basis_functions"),
+                     result.backend_facts.get("n_auxiliary_functions", "-"),
+                     result.counts.computed, f"{wall:.1f}",
+                     f"{inv['alpha_iso'].value_au:.6f} +- {inv['alpha_iso'].error_au:.1e}",
+                     f"{inv['beta_parallel'].value_au:.4f} +- "
+                     f"{inv['beta_parallel'].error_au:.1e}"])
+    print("4-nitroaniline, HF/6-31G*, mu, alpha, beta (3 levels, h0 = 0.001 au), one worker:")
+    print(tabulate(rows, headers=["", "basis functions", "auxiliary functions",
+                                  "points computed", "wall time (s)", "alpha_iso (au)",
+                                  "beta_parallel (au)"]))
+    (w0, i0), (w1, i1) = results["false"], results["true"]
+    print(f"speed-up {w0 / w1:.2f}; alpha_iso moves by "
+          f"{(i1['alpha_iso'].value_au - i0['alpha_iso'].value_au) / i0['alpha_iso'].value_au:.1e}"
+          ", beta_parallel by "
+          f"{(i1['beta_parallel'].value_au - i0['beta_parallel'].value_au) / i0['beta_parallel'].value_au:.1e}"
+          " (relative)")
 
 
 if __name__ == "__main__":

@@ -138,6 +138,13 @@ CASES = [
     # [model]: PySCF judges basis and functional, still before any SCF
     ("unknown_basis", job(model={"basis": '"no-such-basis"'}), {},
      ["{job}: [model] basis 'no-such-basis'", "not available"], []),
+    ("density_fit_unknown_basis", job(model={"density_fit": '"no-such-fit"'}), {},
+     ["{job}: [model] density_fit 'no-such-fit'", "not an auxiliary basis"], []),
+    ("density_fit_not_a_name", job(model={"density_fit": "3"}), {},
+     ["{job}: [model] density_fit must be true, false or an auxiliary basis name"], []),
+    ("density_fit_for_a_correlated_method", job(model={"method": '"mp2"',
+                                                       "density_fit": "true"}), {},
+     ["{job}: [model] density_fit applies to hf and dft", "not to mp2"], []),
     ("basis_missing_element", job("Au 0 0 0\nH 0 0 1.52", model={"basis": '"6-31g"'}), {},
      ["{job}: [model] basis '6-31g'", "Au"], []),
     ("basis_table_missing_element",
@@ -253,7 +260,8 @@ CASES = [
     # structure of the document
     ("unknown_key_in_section", job(model={"basis_set": '"sto-3g"'}), {},
      ["{job}: [model] unknown key 'basis_set'",
-      "valid keys: basis, cartesian, frozen_core, functional, method, reference"], []),
+      "valid keys: basis, cartesian, density_fit, frozen_core, functional, method, "
+      "reference"], []),
     ("unknown_key_in_response", job(response={"field": "0.001"}), {},
      ["{job}: [response] unknown key 'field'", "valid keys:", "field_au", "ratio"], []),
     ("unknown_section", job(output={"format": '"json"'}), {},
