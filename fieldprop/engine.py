@@ -532,9 +532,9 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
                      if group.forced_zero(comp.indices) else est
                      for comp, est in zip(plan.components, estimates)]
     tensors = assemble(plan.components, estimates)
-    warnings = departure_warnings(job, plan, smooth) + window_warnings(job, plan, tensors)
-    if plan.frame is not None:
+    if plan.frame is not None:  # back into the input frame, where every name points
         tensors = turn_tensors(tensors, plan.frame, sym.forced_zero)
+    warnings = departure_warnings(job, plan, smooth) + window_warnings(job, plan, tensors)
     if missing:
         ids = list(dict.fromkeys(missing.values()))
         warnings = (f"{job.path}: {len(ids)} of {len(prepared.computed_tasks)} field points "
