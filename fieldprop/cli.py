@@ -586,10 +586,9 @@ def cmd_plan(args) -> int:
     else:
         store = PointStore.open(path, read_only=True) if path.exists() else None
     try:
-        # --count fixes the list an array's elements read: the model is checked
-        # with the backend first (a basis it lacks is bad input now, not in
-        # every element).
-        prepared, rows = gather(job, store, lines, facts_needed=args.count)
+        # The model is checked with the backend unless the store knows it (a
+        # basis it lacks is bad input here, not in every point that follows).
+        prepared, rows = gather(job, store, lines)
         todo = _to_do(prepared, rows, args.retry_failed)
         if args.count:
             when = store.put_todo(todo_list_key(prepared), [t.key for t in todo])

@@ -81,6 +81,8 @@ def _entry_text(est) -> str:
         return "F = 0 (no derivative)"
     if est.status is ComponentStatus.MISSING:
         return "-"
+    if est.status is ComponentStatus.SYMMETRY_ZERO:
+        return "none (symmetry)"
     k, m = est.chosen_entry
     return f"h{k}, {m} step{'s' if m != 1 else ''}"
 
@@ -175,12 +177,15 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
                   f"strengths {steps} au (h0: {job.response.field_au_source}); origin ({origin}) "
                   "bohr\n")
     counts = result.counts
-    reused = f" ({counts.reused} reused from the store)" if counts and counts.reused else ""
+    reused = (f" ({counts.reused} reused from {result.store or 'the store'})"
+              if counts and counts.reused else "")
     n = len(result.records)
     gone = ""
     if counts and counts.images:
         gone += (f", {counts.images} of them images of the others under the molecule's "
-                 f"symmetry ({result.symmetry.name})")
+                 f"symmetry ({result.symmetry.name}"
+                 + (f"; geometry symmetrised, moved by at most {result.symmetry.moved_bohr:.1e}"
+                    " bohr" if result.symmetry.moved_bohr > 0 else "") + ")")
     if plan.frame is not None:
         gone += (f", along the axes of its symmetry frame {_frame_text(plan.frame)} (tensors "
                  "turned back into the input frame)")
@@ -188,7 +193,8 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
         gone += (f", {len(result.missing)} of the {n - (counts.images if counts else 0)} to "
                  "compute missing (their components: missing)")
     out.write(f"  {n} field point{'s' if n != 1 else ''}{reused}{gone}, "
-              f"{sum(r.scf_cycles for r in result.records)} SCF cycles; SCF energy tolerance "
+              f"{sum(r.scf_cycles for r in result.records)} SCF cycles (zero field included); "
+              "SCF energy tolerance "
               f"{job.scf.energy_conv_tol_au:g} Eh; E(0) = {result.energy_au:.10f} Eh\n")
     system = {"au": "atomic units", "esu": "tensors in esu (dipole in debye, alpha in "
               "angstrom^3)", "si": "tensors in SI units"}[units]
@@ -269,10 +275,13 @@ def result_document(result: RunResult) -> dict[str, Any]:
                 "status": c.estimate.status.value,
                 "reason": c.estimate.reason,
                 "roundoff_floor": _finite(c.estimate.roundoff_au),
-                "richardson_entry": {"level": c.estimate.chosen_entry[0],
-                                     "steps": c.estimate.chosen_entry[1]},
-                "window_au": list(entry_window_au(result.plan, c.estimate.chosen_entry)),
-                "richardson_table": [[_finite(v) for v in col] for col in c.estimate.table],
+                **({"richardson_entry": None, "window_au": None, "richardson_table": []}
+                   if c.estimate.status is ComponentStatus.SYMMETRY_ZERO else {
+                    "richardson_entry": {"level": c.estimate.chosen_entry[0],
+                                         "steps": c.estimate.chosen_entry[1]},
+                    "window_au": list(entry_window_au(result.plan, c.estimate.chosen_entry)),
+                    "richardson_table": [[_finite(v) for v in col]
+                                         for col in c.estimate.table]}),
             } for c in t.components],
         }
     invariants = {}

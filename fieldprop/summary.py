@@ -168,8 +168,11 @@ def component_table(docs: list[tuple[str, dict]], units: str, convention: str
                              c.get("status") if value is not None else
                              f"{c.get('status')}: {c.get('reason')}",
                              f"h{entry.get('level')}, {entry.get('steps')} steps"
-                             if c.get("status") not in ("ok-zero-field", "missing")
-                             else "-"])
+                             if entry and c.get("status") not in (
+                                 "ok-zero-field", "missing", "zero-by-symmetry")
+                             else {"ok-zero-field": "F = 0 (no derivative)",
+                                   "zero-by-symmetry": "none (symmetry)"}.get(
+                                       c.get("status"), "-")])
     return header, rows, header
 
 

@@ -202,4 +202,5 @@ def test_the_analysis_of_stored_points_needs_no_pyscf_and_gives_the_same_json(tm
     ran.pop("points"), got.pop("points")
     assert got == ran
     # The tables too, but for the header's note that every point came from the store.
-    assert collected.stdout.replace(f" ({planned} reused from the store)", "") == done.stdout
+    assert collected.stdout.replace(f" ({planned} reused from fieldprop-points.sqlite)",
+                                    "") == done.stdout
