@@ -331,7 +331,9 @@ def build_parser() -> argparse.ArgumentParser:
     report.add_argument("--convention", choices=("taylor", "perturbation"), default="taylor",
                         help="taylor (default, fieldprop's) or perturbation (the B "
                         "convention: beta/2, gamma/6)")
-    report.add_argument("--format", choices=("table", "csv", "json"), default="table")
+    report.add_argument("--format", choices=("table", "csv", "json"), default="table",
+                        help="a table for people (default), CSV with one header row, or "
+                        "one JSON document (schema fieldprop-report-1: columns and rows)")
     report.add_argument("--components", action="store_true", help="one row per tensor "
                         "component instead of one row of invariants per result")
     report.set_defaults(handler=cmd_report)

@@ -93,6 +93,18 @@ def _frame_text(frame) -> str:
                      for n, row in zip("abc", frame))
 
 
+#: What each table's components are, by route: the derivative taken.
+_TABLE_SOURCE = {
+    "energy": {"dipole": "-dE/dF_i", "alpha": "-d2E/dF_i dF_j, unique components",
+               "beta": "-d3E/dF_i dF_j dF_k, unique components",
+               "gamma": "-d4E/dF_i dF_j dF_k dF_l, unique components"},
+    "dipole": {"dipole": "the SCF dipole at zero field", "alpha": "d mu_i/dF_j",
+               "beta": "d2 mu_i/dF_j dF_k", "gamma": "d3 mu_i/dF_j dF_k dF_l"},
+    "alpha": {"dipole": "the SCF dipole at zero field", "alpha": "CPHF/CPKS at zero field",
+              "beta": "d alpha_ij/dF_k", "gamma": "d2 alpha_ij/dF_k dF_l"},
+}
+
+
 def _fit_text(result: RunResult) -> str:
     """'; density fitting: cc-pvdz-jkfit (116 functions)' or ''."""
     if result.job.model.density_fit is None:
@@ -211,8 +223,7 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
             rows.append([c.plan.name, v, e, _entry_text(est),
                          est.status.value + (f": {est.reason}" if est.reason and not c.stable
                                              else "")])
-        out.write(f"{name} ({'unique components' if plan.route == 'energy' else 'd^n mu_i / dF^n'}"
-                  f", {label})\n")
+        out.write(f"{name} ({label}; {_TABLE_SOURCE[plan.route][name]})\n")
         out.write(tabulate(rows, headers=["component", "value", "+- error", "Richardson entry",
                                           "status"], disable_numparse=True) + "\n")
         if name == "dipole" and result.molecule.charge != 0:
