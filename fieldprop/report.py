@@ -244,8 +244,10 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
                      else inv.reason, _INVARIANT_TEXT[inv.name]])
     if rows:
         out.write("invariants\n")
+        # Definitions wrapped: the table fits a 160-column terminal.
         out.write(tabulate(rows, headers=["invariant", "value (au)", "+- error", "converted",
-                                          "definition"], disable_numparse=True) + "\n\n")
+                                          "definition"], disable_numparse=True,
+                           maxcolwidths=[None, None, None, 44, 56]) + "\n\n")
     for text in result.warnings:
         out.write(f"warning: {text}\n")
     if any(p in result.tensors for p in ("beta", "gamma")):
