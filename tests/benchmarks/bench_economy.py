@@ -86,6 +86,22 @@ def job_text(symbols, coords, props, route, symmetry, field=True, levels=3):
         """).replace("'", '"') + (f"field_au = 0.002\nlevels = {levels}\n" if field else "")
 
 
+NITROANILINE = Path(__file__).resolve().parents[2] / "configs" / "molecules" / \
+    "nitroaniline.xyz"
+
+
+def nitroaniline_job(path: Path, basis: str, properties, extra: str = "",
+                     model_extra: str = "") -> Path:
+    """A job file for 4-nitroaniline (our geometry in configs/molecules), HF;
+    ``extra`` and ``model_extra``: more lines of [response] and [model]."""
+    lines = "\n".join(["[molecule]", f'xyz = "{NITROANILINE}"', "[model]", 'method = "hf"',
+                       f'basis = "{basis}"', model_extra, "[response]",
+                       "properties = [" + ", ".join(f'"{p}"' for p in properties) + "]",
+                       extra])
+    path.write_text(lines + "\n")
+    return path
+
+
 def computed(folder, text) -> int:
     path = Path(folder) / "job.toml"
     path.write_text(text)
@@ -144,22 +160,11 @@ def main() -> None:
             overhead(Path(folder))
         if args.wall:
             print()
-            xyz = Path(__file__).resolve().parents[2] / "configs" / "molecules" / \
-                "nitroaniline.xyz"
             rows = []
             for symmetry in (False, True):
-                path = Path(folder) / f"wall-{symmetry}.toml"
-                path.write_text(textwrap.dedent(f"""
-                    [molecule]
-                    xyz = "{xyz}"
-                    [model]
-                    method = "hf"
-                    basis = "6-31g"
-                    [response]
-                    properties = ["dipole", "alpha", "beta"]
-                    field_au = 0.001
-                    symmetry = {str(symmetry).lower()}
-                    """))
+                path = nitroaniline_job(Path(folder) / f"wall-{symmetry}.toml", "6-31g",
+                                        ["dipole", "alpha", "beta"],
+                                        f"field_au = 0.001\nsymmetry = {str(symmetry).lower()}")
                 start = time.perf_counter()
                 result = compute(load_job(path), workers=1, progress=False)
                 wall = time.perf_counter() - start
@@ -189,18 +194,8 @@ json.dump({"alpha": alpha.tolist(), "beta": beta.tolist()}, open(sys.argv[2], "w
 
 
 def analytic_beta(folder: Path) -> None:
-    xyz = Path(__file__).resolve().parents[2] / "configs" / "molecules" / "nitroaniline.xyz"
-    job = folder / "nitroaniline.toml"
-    job.write_text(textwrap.dedent(f"""
-        [molecule]
-        xyz = "{xyz}"
-        [model]
-        method = "hf"
-        basis = "6-31g"
-        [response]
-        properties = ["beta"]
-        origin = "zero"
-        """))
+    xyz = NITROANILINE
+    job = nitroaniline_job(folder / "nitroaniline.toml", "6-31g", ["beta"], 'origin = "zero"')
     cores = str(os.cpu_count() or 1)
     start = time.perf_counter()
     done = subprocess.run([sys.executable, "-m", "fieldprop", "run", str(job), "--no-store",
@@ -234,21 +229,10 @@ def analytic_beta(folder: Path) -> None:
 
 
 def density_fitting(folder: Path) -> None:
-    xyz = Path(__file__).resolve().parents[2] / "configs" / "molecules" / "nitroaniline.xyz"
     rows, results = [], {}
     for fit in ("false", "true"):
-        path = folder / f"fit-{fit}.toml"
-        path.write_text(textwrap.dedent(f"""
-            [molecule]
-            xyz = "{xyz}"
-            [model]
-            method = "hf"
-            basis = "6-31g*"
-            density_fit = {fit}
-            [response]
-            properties = ["dipole", "alpha", "beta"]
-            field_au = 0.001
-            """))
+        path = nitroaniline_job(folder / f"fit-{fit}.toml", "6-31g*", ["dipole", "alpha", "beta"],
+                                "field_au = 0.001", f"density_fit = {fit}")
         start = time.perf_counter()
         result = compute(load_job(path), workers=1, progress=False)
         wall = time.perf_counter() - start
@@ -281,18 +265,8 @@ def overhead(folder: Path) -> None:
     process start and imports."""
     import pstats
 
-    xyz = Path(__file__).resolve().parents[2] / "configs" / "molecules" / "nitroaniline.xyz"
-    job = folder / "overhead.toml"
-    job.write_text(textwrap.dedent(f"""
-        [molecule]
-        xyz = "{xyz}"
-        [model]
-        method = "hf"
-        basis = "6-31g"
-        [response]
-        properties = ["dipole", "alpha", "beta"]
-        field_au = 0.001
-        """))
+    job = nitroaniline_job(folder / "overhead.toml", "6-31g", ["dipole", "alpha", "beta"],
+                           "field_au = 0.001")
     env = {**os.environ, "OMP_NUM_THREADS": "1"}
     start = time.perf_counter()
     subprocess.run([sys.executable, "-c", "import fieldprop.cli, pyscf.scf, pyscf.dft"],
