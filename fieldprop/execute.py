@@ -19,7 +19,9 @@ finish and are kept. A stored failure is not computed again unless asked
 from __future__ import annotations
 
 import logging
+import os
 import signal
+import sys
 import time
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from dataclasses import dataclass
@@ -59,11 +61,31 @@ class PointsOutcome:
 _WORKER_CONTEXT: ModelContext | None = None
 
 
-def _init_worker(task: PointTask, reference: ZeroFieldReference) -> None:
+def _end_with_parent(parent: int) -> None:
+    """Have the kernel end this worker when its parent dies (Linux): a parent
+    killed with SIGKILL (a lost batch job, the out-of-memory killer) cannot
+    stop its workers, and forked workers keep each other's pipes open, so
+    they would otherwise wait for work forever."""
+    if not sys.platform.startswith("linux"):
+        return
+    import ctypes
+
+    try:
+        libc = ctypes.CDLL(None, use_errno=True)
+        libc.prctl(1, signal.SIGTERM, 0, 0, 0)  # PR_SET_PDEATHSIG
+    except (OSError, AttributeError):
+        return
+    if os.getppid() != parent:  # the parent died before the request took hold
+        os._exit(1)
+
+
+def _init_worker(task: PointTask, reference: ZeroFieldReference, parent: int = 0) -> None:
     # Ctrl-C reaches the whole process group: only the parent acts on it (it
     # stops the workers); SIGTERM from the parent ends a worker at once.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    if parent:
+        _end_with_parent(parent)
     # One OpenMP thread per worker process: N workers share N cores (the BLAS
     # threads the CLI sets before NumPy is imported, and workers inherit).
     from pyscf import lib
@@ -286,7 +308,7 @@ def _pool(tasks, missing, reference, workers, finish) -> None:
     waiting = list(missing)
     pending: dict = {}
     pool = ProcessPoolExecutor(max_workers=min(workers, len(missing)), initializer=_init_worker,
-                               initargs=(tasks[0], reference))
+                               initargs=(tasks[0], reference, os.getpid()))
 
     def submit() -> None:
         ready = next((i for i in waiting if finished.issuperset(before[i])), waiting[0])

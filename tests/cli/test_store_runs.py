@@ -88,18 +88,46 @@ def assert_same_numbers(a, b):
                 assert 0.25 * ey <= ex <= 4.0 * ey, (name, ex, ey)
 
 
+def processes_in(folder) -> list[int]:
+    """Ids of the live processes whose working directory is ``folder`` (Linux /proc)."""
+    found = []
+    for entry in os.listdir("/proc"):
+        if not entry.isdigit():
+            continue
+        try:
+            if os.path.realpath(f"/proc/{entry}/cwd") != os.path.realpath(folder):
+                continue
+            with open(f"/proc/{entry}/stat") as stat:
+                if stat.read().split(")")[-1].split()[0] != "Z":  # not a zombie
+                    found.append(int(entry))
+        except OSError:
+            continue
+    return found
+
+
 def test_a_killed_run_resumes_without_recomputing_and_gives_the_same_numbers(tmp_path):
+    """SIGKILL (the parent cannot stop its workers): the worker processes end
+    with it, the finished points stay stored, and the same command computes
+    only the rest, with the same numbers."""
     (tmp_path / "water.toml").write_text(WATER)
     store = tmp_path / "fieldprop-points.sqlite"
-    proc = subprocess.Popen([sys.executable, "-m", "fieldprop", "run", "water.toml", "--quiet"],
+    proc = subprocess.Popen([sys.executable, "-m", "fieldprop", "run", "water.toml", "--quiet",
+                             "--workers", "2"],
                             cwd=tmp_path, env=_env(), stdout=subprocess.DEVNULL,
                             stderr=subprocess.DEVNULL)
     deadline = time.monotonic() + 300
     while stored_points(store) < 6 and proc.poll() is None and time.monotonic() < deadline:
         time.sleep(0.02)
+    workers = [p for p in processes_in(tmp_path) if p != proc.pid]
     proc.send_signal(signal.SIGKILL)
     proc.wait()
     assert proc.returncode == -signal.SIGKILL, "the run ended before it could be killed"
+    if sys.platform.startswith("linux"):
+        assert workers, "no worker processes seen: the test lost its premise"
+        deadline = time.monotonic() + 10
+        while processes_in(tmp_path) and time.monotonic() < deadline:
+            time.sleep(0.05)
+        assert not processes_in(tmp_path), "worker processes outlived the killed run"
     kept = stored_points(store)
     assert kept >= 6
     assert not (tmp_path / "water.result.json").exists()
