@@ -68,12 +68,12 @@ SCHEMA_VERSION = 3
 #: schema 1 -> 2 adds points.energy_scale_au (the energy's rounding scale);
 #: 2 -> 3 adds the todo_lists table. A store of an older schema opened
 #: read-only reads a missing column as NULL, and has no to-do lists.
-_TODO_TABLE = ("CREATE TABLE todo_lists (list_key TEXT PRIMARY KEY, point_keys TEXT NOT NULL, "
+_TO_DO_LISTS_TABLE = ("CREATE TABLE todo_lists (list_key TEXT PRIMARY KEY, point_keys TEXT NOT NULL, "
                "created_at TEXT NOT NULL)")
 _MIGRATIONS = {
     1: ["ALTER TABLE points ADD COLUMN energy_scale_au REAL",
         "UPDATE meta SET value = '2' WHERE name = 'schema'"],
-    2: [_TODO_TABLE, "UPDATE meta SET value = '3' WHERE name = 'schema'"],
+    2: [_TO_DO_LISTS_TABLE, "UPDATE meta SET value = '3' WHERE name = 'schema'"],
 }
 #: Default store file name, in the job file's folder: jobs in one folder share it.
 DEFAULT_NAME = "fieldprop-points.sqlite"
@@ -119,7 +119,7 @@ CREATE TABLE points (
     created_at TEXT NOT NULL
 );
 CREATE INDEX points_by_model ON points (model_key);
-""" + _TODO_TABLE + ";\n"
+""" + _TO_DO_LISTS_TABLE + ";\n"
 
 _RECORD_COLUMNS = ("energy_au", "scf_energy_au", "dipole_au", "alpha_au", "scf_cycles",
                    "attempts", "s2", "occupied_overlap", "gradient_norm", "dipole_error_au",
