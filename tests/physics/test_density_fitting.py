@@ -12,14 +12,12 @@ import pytest
 pytest.importorskip("pyscf")
 
 from analytic_reference import cphf_polarizability  # noqa: E402
-from support import agree, mean_field, run_job  # noqa: E402
+from support import WATER_ANGSTROM, agree, geometry_text, mean_field, run_job  # noqa: E402
 
 WATER = """
     [molecule]
     geometry = \"\"\"
-    O   0.000000  0.000000  0.117300
-    H   0.000000  0.757200 -0.469200
-    H   0.000000 -0.757200 -0.469200
+""" + geometry_text("OHH", WATER_ANGSTROM) + """
     \"\"\"
     [model]
     {model}

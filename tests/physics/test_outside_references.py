@@ -18,7 +18,8 @@ import pytest
 
 pytest.importorskip("pyscf")
 
-from support import agree, rotated_water, run_job  # noqa: E402
+from support import (WATER_ANGSTROM, agree, geometry_text, rotated_water,  # noqa: E402
+                     run_job)
 
 from fieldprop.backend_pyscf import ModelContext, compute_point, compute_reference  # noqa: E402
 from fieldprop.engine import prepare  # noqa: E402
@@ -223,12 +224,10 @@ def test_beta_of_water_equals_the_analytic_2n_plus_1_beta_of_pyscf_properties(tm
         prop = pytest.importorskip("pyscf.prop.polarizability.rhf")
     from pyscf import scf
 
-    job, result = run_job(tmp_path, """
+    job, result = run_job(tmp_path, f"""
         [molecule]
         geometry = \"\"\"
-        O   0.000000  0.000000  0.117300
-        H   0.000000  0.757200 -0.469200
-        H   0.000000 -0.757200 -0.469200
+{geometry_text("OHH", WATER_ANGSTROM)}
         \"\"\"
         [model]
         method = "hf"
