@@ -479,7 +479,7 @@ def test_a_schema_1_store_is_read_as_it_is_and_migrated_when_written(tmp_path):
 
     path = tmp_path / "points.sqlite"
     old_schema = store_module._SCHEMA.replace("    energy_scale_au REAL,\n", "").replace(
-        store_module._TODO_TABLE + ";", "")
+        store_module._TO_DO_LISTS_TABLE + ";", "")
     assert "energy_scale_au" not in old_schema and "todo_lists" not in old_schema
     with sqlite3.connect(path) as db:
         db.executescript(old_schema)
