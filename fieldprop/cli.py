@@ -602,9 +602,16 @@ def cmd_plan(args) -> int:
         only = {t.key for t in todo} if args.missing else None
         full = (len(make_plan(job, prepared.plan.route).points)
                 if prepared.symmetry is not None else None)
+        stage = used = None
+        if prepared.adaptive:
+            used = set(prepared.used)
+            stage = (f"adaptive window: {len(used)} of the ladder's {len(prepared.tasks)} "
+                     "points in use, " + ("settled: no further stage" if prepared.settled else
+                                          "this stage listed; once its points are computed, "
+                                          "plan again for the next one (if any)"))
         _to_stdout(lambda: write_plan(prepared.plan, prepared.tasks, rows, sys.stdout, fmt,
                                       store.label if store is not None else None, only,
-                                      prepared.images, prepared.symmetry, full))
+                                      prepared.images, prepared.symmetry, full, stage, used))
     finally:
         if store is not None:
             store.close()
@@ -661,8 +668,8 @@ def _targets(args, prepared, store) -> list:
     for ident in _requested_ids(args):
         text = ident.strip().lower()
         found = [t for t in tasks if text and t.key.startswith(text)]
-        computed = set(prepared.computed_tasks)
-        if len(found) == 1 and found[0] not in computed:
+        if len(found) == 1 and prepared.images and \
+                prepared.images[found[0].point.index][1] is not None:
             rep = tasks[prepared.images[found[0].point.index][0]]
             raise InputError(f"{prepared.job.path}: --id {ident}: is the image of point "
                              f"{short_id(rep.key)} under a symmetry operation of the "

@@ -144,20 +144,22 @@ def lagrange_weights(nodes, target: float) -> np.ndarray:
 
 
 def check_continuity(points, values, noise, flagged=None, relative=RELATIVE_DEPARTURE,
-                     factor=NOISE_FACTOR) -> ContinuityReport:
+                     factor=NOISE_FACTOR, present=None) -> ContinuityReport:
     """Predict each point from the smaller fields on its line; see the module text.
 
     ``points`` are the plan's FieldPoints (``points[0]`` zero field), ``values``
     an (n, m) array of the differentiated quantity (m = 1 energy, 3 dipole, 9
     alpha), ``noise`` the (n,) noise of one of its components at each point,
-    ``flagged`` {point index: reason} for points the state checks refused.
+    ``flagged`` {point index: reason} for points the state checks refused,
+    ``present`` the indices of the points computed (None: all); the others are
+    not on any line.
     """
     flagged = flagged or {}
     values = np.asarray(values, dtype=float).reshape(len(points), -1)
     noise = np.asarray(noise, dtype=float) * math.sqrt(values.shape[1])
     lines: dict[tuple[int, int, int], list[tuple[float, int]]] = {}
     for i, p in enumerate(points):
-        if not any(p.offsets):
+        if not any(p.offsets) or (present is not None and i not in present):
             continue
         direction, factor_int = _line(p.offsets)
         strength = math.copysign(float(np.linalg.norm(p.field_vector_au)), factor_int)

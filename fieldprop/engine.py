@@ -88,13 +88,17 @@ class NoiseModel:
 
 @dataclass(frozen=True)
 class PointCounts:
-    """Points planned, computed in this run, reused from the store, and
-    obtained as symmetry images of other points (never computed)."""
+    """Points planned (used by the analysis), computed in this run, reused
+    from the store, and obtained as symmetry images of other points (never
+    computed)."""
 
     planned: int
     computed: int
     reused: int
     images: int = 0
+    #: Points of the whole ladder (more than ``planned`` when the adaptive
+    #: window left levels out; 0: the same).
+    ladder: int = 0
 
 
 @dataclass(frozen=True)
@@ -115,13 +119,32 @@ class Prepared:
     model_key: str
     symmetry: "Symmetry | None" = None
     images: tuple = ()
+    #: The adaptive window reached (see :func:`settle`): (lowest, highest)
+    #: level per component, and the planned points those levels use; () and
+    #: None: every level, every point.
+    windows: tuple = ()
+    active: frozenset | None = None
+    #: False while the windows' points are not all computed (the adaptive
+    #: window may grow again once they are).
+    settled: bool = True
+
+    @property
+    def adaptive(self) -> bool:
+        return self.job.response.window == "adaptive"
+
+    @property
+    def used(self) -> tuple[int, ...]:
+        """Indices of the planned points the analysis uses (the window's)."""
+        if self.active is None:
+            return tuple(range(len(self.tasks)))
+        return tuple(sorted(self.active))
 
     @property
     def computed_tasks(self) -> tuple[PointTask, ...]:
-        """The tasks computed (the others are symmetry images of these)."""
-        if not self.images:
-            return self.tasks
-        return tuple(t for t, (j, op) in zip(self.tasks, self.images) if op is None)
+        """The tasks to compute: the points used that are not symmetry images
+        of others, and the representatives of those that are."""
+        sources = {self.images[i][0] if self.images else i for i in self.used}
+        return tuple(t for i, t in enumerate(self.tasks) if i in sources)
 
     def expand(self, by_index: dict) -> list:
         """Records of every planned point from those of the computed ones
@@ -170,6 +193,9 @@ class RunResult:
     symmetry: "Symmetry | None" = None
     #: Per planned point, as ``Prepared.images`` (empty: every point computed).
     images: tuple = ()
+    #: As ``Prepared.windows`` and ``Prepared.active`` (the adaptive window).
+    windows: tuple = ()
+    active: frozenset | None = None
 
     @property
     def energy_au(self) -> float:
@@ -181,6 +207,8 @@ class RunResult:
         (``collect --allow-partial``) nor symmetry images of other points."""
         gone = {i for i, _ in self.missing}
         gone |= {i for i, (_, op) in enumerate(self.images) if op is not None}
+        if self.active is not None:
+            gone |= set(range(len(self.records))) - self.active
         return tuple(r for i, r in enumerate(self.records) if i not in gone)
 
     @property
@@ -193,6 +221,57 @@ class RunResult:
     def missing_components(self) -> list[str]:
         return [c.plan.name for t in self.tensors.values() for c in t.components
                 if c.estimate.status is ComponentStatus.MISSING]
+
+
+def settle(prepared: Prepared, found: dict) -> Prepared:
+    """``prepared`` with the adaptive window replayed on the computed records
+    ``found`` ({plan index: PointRecord}, images not needed): from the first
+    windows, grow them (fieldprop.window) while the points they use are all
+    there; the result holds the windows reached and the points they use, some
+    of which may still be missing (the next stage to compute). The same
+    records give the same stages in every process. Without the adaptive
+    window, ``prepared`` itself."""
+    from fieldprop import window as adaptive
+
+    if not prepared.adaptive:
+        return prepared
+    plan = prepared.plan
+    records = prepared.expand(found)
+    windows = adaptive.initial_windows(plan)
+    while True:
+        need = adaptive.needed_points(plan, windows)
+        if any(records[i] is None for i in need):
+            return dataclasses.replace(prepared, windows=windows, active=need, settled=False)
+        estimates = _estimates(prepared, records, windows, need, {})[3]
+        grown = adaptive.grow(plan, windows, estimates, _tensor_scales(plan, estimates))
+        if grown == windows:
+            break
+        windows = grown
+    return dataclasses.replace(prepared, windows=windows, active=need)
+
+
+def _tensor_scales(plan: FieldPlan, estimates) -> list[float]:
+    """Per component, the largest finite |value| among its tensor's components."""
+    largest: dict[str, float] = {}
+    for comp, est in zip(plan.components, estimates):
+        if math.isfinite(est.value_au) and est.status is not ComponentStatus.UNSTABLE:
+            largest[comp.tensor] = max(largest.get(comp.tensor, 0.0), abs(est.value_au))
+    return [largest.get(comp.tensor, 0.0) for comp in plan.components]
+
+
+def _estimates(prepared: Prepared, records, windows, active, missing):
+    """(records in the plan's frame, noise, continuity, estimates) from the
+    records of every planned point (None: a placeholder, never used)."""
+    plan = prepared.plan
+    records = tuple(_placeholder(t) if r is None else r for t, r in zip(prepared.tasks, records))
+    # In the plan's frame (the molecule's symmetry frame, if it has one) the
+    # dipoles and alphas are differentiated along its axes.
+    framed = records if plan.frame is None else _in_frame(records, plan.frame)
+    noise = noise_model(prepared.job, framed, prepared.molecule)
+    smooth = continuity(plan, framed, noise, active)
+    estimates = extrapolate_components(plan, framed, noise, smooth.cause, missing,
+                                       windows or None)
+    return framed, noise, smooth, estimates
 
 
 def make_plan(job: Job, route: Route | str | None = None, symmetry=None) -> FieldPlan:
@@ -246,7 +325,8 @@ def prepare(job: Job, route: Route | str | None = None, facts: dict | None = Non
         from fieldprop.symmetry import images as find_images
 
         images = tuple(find_images([p.field_vector_au for p in plan.points], sym))
-    return Prepared(job, molecule, facts, plan, tuple(tasks), tasks[0].model_key, sym, images)
+    return settle(Prepared(job, molecule, facts, plan, tuple(tasks), tasks[0].model_key, sym,
+                           images), {})
 
 
 #: Why a molecule's symmetry is not used, when it has one (None: it is used).
@@ -299,17 +379,23 @@ def _route_values(plan: FieldPlan, records, noise: NoiseModel):
     return np.array(values, dtype=float), noise.per_point(plan.route, len(records))
 
 
-def continuity(plan: FieldPlan, records, noise: NoiseModel) -> ContinuityReport:
-    """Taylor continuity of the route's quantity along every line of field points."""
+def continuity(plan: FieldPlan, records, noise: NoiseModel, active=None) -> ContinuityReport:
+    """Taylor continuity of the route's quantity along every line of the
+    field points (those in ``active``, if given)."""
     values, eps = _route_values(plan, records, noise)
-    flagged = {i: r.state_issue for i, r in enumerate(records) if r.state_issue}
-    return check_continuity(plan.points, values, eps, flagged)
+    flagged = {i: r.state_issue for i, r in enumerate(records) if r.state_issue
+               and (active is None or i in active)}
+    return check_continuity(plan.points, values, eps, flagged, present=active)
 
 
 def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel,
-                           excluded=None, missing=None) -> list[ComponentEstimate]:
+                           excluded=None, missing=None, windows=None) -> list[ComponentEstimate]:
     """Richardson estimates of every component.
 
+    ``windows`` (one (lowest, highest) level per component, the adaptive
+    window's; None: every level) restricts each component's ladder; its
+    estimate's chosen entry and table count levels from the ladder's first
+    (the table's columns hold NaN below the window).
     A component's ladder stops below the first level whose stencil uses an
     ``excluded`` point ({point index: label of the departure that excluded it},
     ContinuityReport.cause): nothing is extrapolated through another state.
@@ -323,46 +409,57 @@ def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel,
                if all(r.dipole_au is not None for r in records) else None)
     alphas = (np.array([r.alpha_au for r in records]) if plan.route is Route.ALPHA else None)
     estimates = []
-    for comp in plan.components:
-        eps = noise.per_point(comp.quantity, len(records))
-        stencils = list(comp.stencils)
-        gone = next((k for k, s in enumerate(stencils)
-                     if any(p in missing for p, _ in s.terms)), None)
-        if gone is not None:
-            stencils = stencils[:gone]
-        cut = next((k for k, s in enumerate(stencils)
-                    if any(p in excluded for p, _ in s.terms)), None)
-        if cut is not None:
-            stencils = stencils[:cut]
-        why = ""
-        if cut is not None:
-            named = sorted({excluded[p] for p, _ in comp.stencils[cut].terms if p in excluded})
-            why = (f"level {cut} and above use field points at or beyond a departure from "
-                   f"the zero-field state ({', '.join(named[:2])})")
-        elif gone is not None:
-            named = sorted({missing[p] for p, _ in comp.stencils[gone].terms if p in missing})
-            why = (f"level {gone} and above use field points not computed "
-                   f"({', '.join(named[:3])}{' ...' if len(named) > 3 else ''})")
-            if len(stencils) < (2 if comp.order > 0 else 1):  # no Richardson table left
-                estimates.append(ComponentEstimate(math.nan, math.nan, (0, 0),
-                                                   ComponentStatus.MISSING, math.nan, ((),),
-                                                   f"not determined: {why}"))
-                continue
-        if not stencils:
-            estimates.append(ComponentEstimate(math.nan, math.nan, (0, 0),
-                                               ComponentStatus.UNSTABLE, math.nan, ((),),
-                                               f"every field strength is excluded: {why}"))
-            continue
-        values = [stencil_estimate(comp, s, energies, dipoles, alphas) for s in stencils]
-        floors = [sum(abs(w) * eps[p] for p, w in s.terms) / s.step_au ** comp.order
-                  for s in stencils]
-        est = richardson(values, plan.ratio, floors)
-        if comp.order > 0 and len(values) == 1:
-            est = mark_unstable(est, f"one field strength: {why}" if why else
-                                "one field strength: the truncation error cannot be "
-                                "estimated; use levels >= 2")
-        estimates.append(est)
+    for n, comp in enumerate(plan.components):
+        lo, hi = windows[n] if windows else (0, len(comp.stencils) - 1)
+        est = _component_estimate(plan, comp, comp.stencils[lo:hi + 1], energies, dipoles,
+                                  alphas, noise.per_point(comp.quantity, len(records)),
+                                  excluded, missing, lo)
+        estimates.append(_shifted(est, lo) if lo and est.table[0] else est)
     return estimates
+
+
+def _shifted(est: ComponentEstimate, lo: int) -> ComponentEstimate:
+    """An estimate over levels lo.. with its entry and table counted from level 0."""
+    k, m = est.chosen_entry
+    table = tuple((math.nan,) * lo + tuple(col) for col in est.table)
+    return dataclasses.replace(est, chosen_entry=(k + lo, m), table=table)
+
+
+def _component_estimate(plan, comp, stencils, energies, dipoles, alphas, eps, excluded,
+                        missing, lo) -> ComponentEstimate:
+    """One component's estimate from ``stencils`` (its levels lo.., consecutive)."""
+    window = list(stencils)
+    gone = next((k for k, s in enumerate(window) if any(p in missing for p, _ in s.terms)),
+                None)
+    stencils = window if gone is None else window[:gone]
+    cut = next((k for k, s in enumerate(stencils) if any(p in excluded for p, _ in s.terms)),
+               None)
+    if cut is not None:
+        stencils = stencils[:cut]
+    why = ""
+    if cut is not None:
+        named = sorted({excluded[p] for p, _ in window[cut].terms if p in excluded})
+        why = (f"level {cut + lo} and above use field points at or beyond a departure from "
+               f"the zero-field state ({', '.join(named[:2])})")
+    elif gone is not None:
+        named = sorted({missing[p] for p, _ in window[gone].terms if p in missing})
+        why = (f"level {gone + lo} and above use field points not computed "
+               f"({', '.join(named[:3])}{' ...' if len(named) > 3 else ''})")
+        if len(stencils) < (2 if comp.order > 0 else 1):  # no Richardson table left
+            return ComponentEstimate(math.nan, math.nan, (0, 0), ComponentStatus.MISSING,
+                                     math.nan, ((),), f"not determined: {why}")
+    if not stencils:
+        return ComponentEstimate(math.nan, math.nan, (0, 0), ComponentStatus.UNSTABLE,
+                                 math.nan, ((),), f"every field strength is excluded: {why}")
+    values = [stencil_estimate(comp, s, energies, dipoles, alphas) for s in stencils]
+    floors = [sum(abs(w) * eps[p] for p, w in s.terms) / s.step_au ** comp.order
+              for s in stencils]
+    est = richardson(values, plan.ratio, floors)
+    if comp.order > 0 and len(values) == 1:
+        est = mark_unstable(est, f"one field strength: {why}" if why else
+                            "one field strength: the truncation error cannot be "
+                            "estimated; use levels >= 2")
+    return est
 
 
 def noise_model(job: Job, records, molecule: MoleculeSpec | None = None) -> NoiseModel:
@@ -446,23 +543,44 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
                 store.label, workers, "" if workers == 1 else "es")
     if progress is None:
         progress = sys.stderr.isatty()
+    found: dict[int, PointRecord] = {}
+    computed = reused = 0
+    prepared = settle(prepared, found)
     try:
-        outcome = compute_points(list(prepared.computed_tasks), store, prepared.facts,
-                                 prepared.description(), workers=workers, progress=progress,
-                                 retry_failed=retry_failed, log_every_s=log_every_s)
+        while True:  # one pass per stage of the adaptive window (else one pass)
+            todo = [t for t in prepared.computed_tasks if t.point.index not in found]
+            if not todo:
+                break
+            if found:
+                logger.info("adaptive window: %d more field point%s for the components whose "
+                            "tables have not settled", len(todo), "" if len(todo) == 1 else "s")
+            outcome = compute_points(todo, store, prepared.facts, prepared.description(),
+                                     workers=workers, progress=progress,
+                                     retry_failed=retry_failed, log_every_s=log_every_s)
+            computed, reused = computed + outcome.computed, reused + outcome.reused
+            if outcome.failures:
+                raise failed_points_error(prepared, outcome.failures, retry_failed)
+            found.update((r.point.index, r) for r in outcome.records)
+            prepared = settle(prepared, found)
     finally:
         if own_store:
             store.close()
-    n_images = len(plan.points) - len(prepared.computed_tasks)
-    counts = PointCounts(len(plan.points), outcome.computed, outcome.reused, n_images)
-    logger.info("%d field point%s: %d computed, %d reused from %s%s", counts.planned,
+    counts = point_counts(prepared, computed, reused)
+    logger.info("%d field point%s: %d computed, %d reused from %s%s%s", counts.planned,
                 "" if counts.planned == 1 else "s", counts.computed, counts.reused, store.label,
-                f", {n_images} images by symmetry ({prepared.symmetry.name})" if n_images
-                else "")
-    if outcome.failures:
-        raise failed_points_error(prepared, outcome.failures, retry_failed)
-    records = prepared.expand({r.point.index: r for r in outcome.records})
-    return analyse(prepared, records, counts, store.label, time.perf_counter() - start)
+                f", {counts.images} images by symmetry ({prepared.symmetry.name})"
+                if counts.images else "",
+                f"; the adaptive window used {counts.planned} of the ladder's {counts.ladder}"
+                if prepared.adaptive else "")
+    return analyse(prepared, prepared.expand(found), counts, store.label,
+                   time.perf_counter() - start)
+
+
+def point_counts(prepared: Prepared, computed: int, reused: int) -> PointCounts:
+    """The counts of a finished run or collection (see PointCounts)."""
+    used = len(prepared.used)
+    return PointCounts(used, computed, reused, used - len(prepared.computed_tasks),
+                       len(prepared.tasks))
 
 
 def failed_points_error(prepared: Prepared, failures, retried: bool = False):
@@ -511,18 +629,16 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
     if len(records) != len(plan.points):
         raise ValueError(f"{len(records)} records for {len(plan.points)} planned points")
     source = [j for j, _ in prepared.images] or range(len(records))
+    used = set(prepared.used)
     missing = {i: short_id(prepared.tasks[source[i]].key) for i, r in enumerate(records)
-               if r is None}
+               if r is None and i in used}
     if 0 in missing:
         raise ValueError("the zero-field point is needed by every analysis")
+    records = tuple(r if i in used else None for i, r in enumerate(records))
+    framed, noise, smooth, estimates = _estimates(prepared, records, prepared.windows,
+                                                  prepared.active, missing)
     records = tuple(_placeholder(t) if r is None else r
                     for t, r in zip(prepared.tasks, records))
-    # In the plan's frame (the molecule's symmetry frame, if it has one) the
-    # dipoles and alphas are differentiated along its axes.
-    framed = records if plan.frame is None else _in_frame(records, plan.frame)
-    noise = noise_model(job, framed, prepared.molecule)
-    smooth = continuity(plan, framed, noise)
-    estimates = extrapolate_components(plan, framed, noise, smooth.cause, missing)
     sym = prepared.symmetry
     if sym is not None:
         group = sym if plan.frame is None else sym.in_frame(plan.frame)
@@ -546,13 +662,14 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
     return RunResult(job, prepared.molecule, plan, records, noise, tensors,
                      tuple(invariants(tensors)), prepared.facts, wall_time_s, warnings, smooth,
                      counts, store_label,
-                     tuple(sorted((i, k) for i, k in missing.items() if source[i] == i)),
-                     prepared.symmetry, prepared.images)
+                     tuple(sorted({(source[i], k) for i, k in missing.items()})),
+                     prepared.symmetry, prepared.images, prepared.windows, prepared.active)
 
 
 def gather(job: Job, store=None, lines=None, route: Route | str | None = None,
            facts_needed: bool = True) -> tuple[Prepared, dict]:
-    """The job prepared, and its planned points found in ``store`` and in point
+    """The job prepared (with the adaptive window's stage those points reach:
+    :func:`settle`), and its planned points found in ``store`` and in point
     ``lines`` (a list of (iterable of text, source label), one per file or
     stream): {point key: StoredPoint}, a computed point winning over a failure. No PySCF when the backend facts are
     in the store or the lines (else PySCF validates the job, computing nothing).
@@ -579,6 +696,12 @@ def gather(job: Job, store=None, lines=None, route: Route | str | None = None,
     for key, row in found.items():
         if key not in rows or (row.ok and not rows[key].ok):
             rows[key] = row
+    if prepared.adaptive:  # the stage the points found have reached
+        sources = {j for j, _ in prepared.images} if prepared.images else None
+        prepared = settle(prepared, {
+            t.point.index: rows[t.key].record(t.point) for t in prepared.tasks
+            if (sources is None or t.point.index in sources)
+            and t.key in rows and rows[t.key].ok})
     return prepared, rows
 
 
@@ -617,18 +740,22 @@ def collect(job: Job, store=None, route: Route | str | None = None, lines=None,
         raise failed_points_error(prepared, failures)
     found = {t.point.index: rows[t.key].record(t.point) for t in prepared.computed_tasks
              if t.key in rows and rows[t.key].ok}
-    records = prepared.expand(found)
-    counts = PointCounts(len(records), 0, len(found), len(records) - len(prepared.computed_tasks))
-    return analyse(prepared, records, counts, where, time.perf_counter() - start)
+    counts = point_counts(prepared, 0, len(found))
+    return analyse(prepared, prepared.expand(found), counts, where, time.perf_counter() - start)
 
 
 def to_compute(prepared: Prepared) -> str:
     """For example "32 field points to compute (61 planned, 29 of them symmetry
     images)"."""
     n, planned = len(prepared.computed_tasks), len(prepared.tasks)
-    images = (f" ({planned} planned, {planned - n} of them symmetry images)"
-              if planned > n else "")
-    return f"{n} field point{'s' if n != 1 else ''} to compute{images}"
+    used = len(prepared.used)
+    images = (f" ({used} planned, {used - n} of them symmetry images)" if used > n else "")
+    stage = ""
+    if prepared.adaptive:
+        stage = (f", the adaptive window's {'last' if prepared.settled else 'current'} stage "
+                 f"of the ladder's {planned} points" + (
+                     "" if prepared.settled else ": more may follow once they are computed"))
+    return f"{n} field point{'s' if n != 1 else ''} to compute{images}{stage}"
 
 
 def todo_list_key(prepared: Prepared) -> str:

@@ -52,6 +52,9 @@ _Z_OF = {sym.lower(): z for z, sym in enumerate(ELEMENTS) if z > 0}
 METHODS = tuple(METHOD_TRAITS)
 REFERENCES = ("auto", "restricted", "unrestricted")
 ROUTES = ("auto", "energy", "dipole")
+#: [response] window: grow each component's levels of the automatic ladder
+#: while its table has not settled, or compute every level.
+WINDOWS = ("adaptive", "full")
 UNITS = ("angstrom", "bohr")
 ORIGINS = ("nuclear-charge", "centre-of-mass", "zero")
 #: Other spellings accepted for an origin.
@@ -85,7 +88,7 @@ _SECTIONS = {
     "model": {"method", "functional", "basis", "reference", "frozen_core", "cartesian",
               "density_fit"},
     "response": {"properties", "field_au", "ratio", "levels", "origin", "differentiate", "route",
-                 "symmetry",
+                 "symmetry", "window",
                  "nuclear_relaxation"},
     "scf": {"energy_conv_tol_au", "max_cycle", "grid_level", "gradient_target",
             "gradient_needed", "solver"},
@@ -162,6 +165,11 @@ class ResponseSpec:
     nuclear_relaxation: bool = False
     #: Compute only symmetry-unique field points and map the others (closed shells).
     symmetry: bool = True
+    #: Which levels of the ladder are computed: "adaptive" (the automatic
+    #: ladder, each component's levels grown from three while its table has not
+    #: settled: fieldprop.window), "full" (every level of the automatic ladder)
+    #: or "fixed" (the job's own field_au: every level).
+    window: str = "fixed"
 
     @property
     def max_order(self) -> int:
@@ -585,8 +593,14 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
     symmetry = table.get("symmetry", True)
     if not isinstance(symmetry, bool):
         raise r.fail("symmetry", f"must be true or false, got {symmetry!r}")
+    window = r.string("window", "adaptive" if automatic else "fixed", WINDOWS)
+    if not automatic and "window" in table:
+        raise r.fail("window", f"= \"{window}\" chooses levels of the automatic ladder, which "
+                     "a job with its own field_au does not use: remove window, or field_au")
+    if automatic and no_derivatives:
+        window = "full"
     return ResponseSpec(props_sorted, field_au, source, ratio, levels, origin, route, relax,
-                        symmetry)
+                        symmetry, window)
 
 
 def _parse_scf(path: str, table: dict[str, Any], method: str, max_order: int,

@@ -191,8 +191,11 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
     counts = result.counts
     reused = (f" ({counts.reused} reused from {result.store or 'the store'})"
               if counts and counts.reused else "")
-    n = len(result.records)
+    n = counts.planned if counts else len(result.records)
     gone = ""
+    if counts and counts.ladder > n:
+        gone += (f" (the adaptive window's, of the {counts.ladder} on the whole ladder: see "
+                 "each component's levels)")
     if counts and counts.images:
         gone += (f", {counts.images} of them images of the others under the molecule's "
                  f"symmetry ({result.symmetry.name}"
@@ -205,7 +208,8 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
         gone += (f", {len(result.missing)} of the {n - (counts.images if counts else 0)} to "
                  "compute missing (their components: missing)")
     out.write(f"  {n} field point{'s' if n != 1 else ''}{reused}{gone}, "
-              f"{sum(r.scf_cycles for r in result.records)} SCF cycles (zero field included); "
+              f"{sum(r.scf_cycles for r in result.computed_records)} SCF cycles (zero field "
+              "included); "
               "SCF energy tolerance "
               f"{job.scf.energy_conv_tol_au:g} Eh; E(0) = {result.energy_au:.10f} Eh\n")
     system = {"au": "atomic units", "esu": "tensors in esu (dipole in debye, alpha in "
@@ -327,6 +331,11 @@ def result_document(result: RunResult) -> dict[str, Any]:
         "points": _points_document(result),
         "field_plan": {"route": plan.route, "field_au": plan.field_au, "ratio": plan.ratio,
                        "levels": plan.levels, "steps_au": list(plan.steps_au()),
+                       "window": result.job.response.window,
+                       **({"component_levels": {
+                           c.name: list(w) for c, w in zip(plan.components, result.windows)
+                           if c.stencils}, "frame_components": plan.frame is not None}
+                          if result.windows else {}),
                        "largest_field_V_per_m": max(
                            float(np.linalg.norm(p.field_vector_au)) for p in plan.points)
                        * FIELD_AU_TO_V_PER_M},
@@ -354,7 +363,7 @@ def _points_document(result: RunResult) -> dict[str, Any]:
     """Planned, computed now, reused from the store; SCF cycles of every point
     (when it was computed), and where the store is."""
     counts = result.counts
-    planned = len(result.plan.points)
+    planned = counts.planned if counts else len(result.plan.points)
     out = {"planned": planned,
            "computed": counts.computed if counts else len(result.records),
            "reused": counts.reused if counts else 0,
@@ -362,6 +371,8 @@ def _points_document(result: RunResult) -> dict[str, Any]:
            "store": result.store or None}
     if counts and counts.images:
         out["images"] = counts.images
+    if result.windows:
+        out["ladder"] = len(result.plan.points)
     if result.missing:
         out["missing"] = [{"id": ident, "point": result.plan.points[i].label,
                            "field_vector_au": list(result.plan.points[i].field_vector_au)}
@@ -454,14 +465,17 @@ def _stored_status(task, stored) -> str:
 
 def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
                store_label: str | None = None, only=None, images=(), symmetry=None,
-               without_symmetry: int | None = None) -> None:
+               without_symmetry: int | None = None, stage: str | None = None,
+               used=None) -> None:
     """The field points ``run`` would compute, which components use them, and
     which the store holds already (``stored``: {key: StoredPoint}); ``fmt``
     table, json (a JSON object per line), csv or ids (an id per line);
     ``only``: the keys to list (default all); ``images``: per point, the index
     of the point it is a symmetry image of and the operation (None: computed);
     the ids listing leaves images out; ``without_symmetry``: the number of
-    points the plan has when symmetry is not used."""
+    points the plan has when symmetry is not used; ``used``: the indices of
+    the points the adaptive window uses at its ``stage`` (a line of text);
+    only those are listed and counted."""
     import csv
 
     image_of = {i: (j, op) for i, (j, op) in enumerate(images) if op is not None}
@@ -476,6 +490,9 @@ def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
         for s in c.stencils:
             for p, _ in s.terms:
                 uses[p] = uses.get(p, 0) + 1
+    if used is not None:
+        only = {t.key for t in tasks if t.point.index in used
+                and (only is None or t.key in only)}
     listed = [(p, t) for p, t in zip(plan.points, tasks) if only is None or t.key in only]
     if fmt == "ids":
         for p, t in listed:
@@ -503,9 +520,9 @@ def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
                              *(repr(float(v)) for v in p.field_vector_au),
                              uses.get(p.index, 0), plan_status(t, stored)])
         return
-    counts = {s: sum(1 for t in tasks if plan_status(t, stored) == s)
+    counted = tasks if used is None else [t for t in tasks if t.point.index in used]
+    counts = {s: sum(1 for t in counted if plan_status(t, stored) == s)
               for s in ("stored", "failed", "missing")}
-    counts["images"] = len(image_of)
     if len(plan.points) == 1:
         out.write(f"no field applied: 1 point (zero field) for {len(plan.components)} "
                   "components\n")
@@ -520,6 +537,8 @@ def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
             per_property.setdefault(c.tensor, set()).update(p for p, _ in s.terms)
     out.write("points used per property: " + ", ".join(
         f"{name} {len(points)}" for name, points in per_property.items()) + "\n")
+    if stage:
+        out.write(stage + "\n")
     if symmetry is not None:
         out.write(f"symmetry: {symmetry.name}: {len(tasks) - len(image_of)} points computed, "
                   f"{len(image_of)} images of them (without symmetry: "

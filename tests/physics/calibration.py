@@ -75,7 +75,9 @@ LARGER_SET = [
 
 
 def job_text(name: str, model: str, route: str, props, basis: str = "6-31+g*",
-             field_au: float = 0.002) -> str:
+             field_au: float | None = 0.002, window: str = "adaptive") -> str:
+    """The job of one case; ``field_au`` None: the automatic ladder, its levels
+    chosen by ``window`` ("adaptive" or "full")."""
     symbols, local, charge, multiplicity = MOLECULES[name]
     dft = "dft" in model
     return textwrap.dedent("""
@@ -91,26 +93,37 @@ def job_text(name: str, model: str, route: str, props, basis: str = "6-31+g*",
         [response]
         properties = {props}
         differentiate = "{route}"
-        field_au = {field_au}
+        {field}
         {scf}
         """).format(geometry=_tilted(symbols, local).replace("\n", "\n        "),
                     charge=charge, multiplicity=multiplicity,
                     model=model.replace("\n", "\n        "),
                     props="[" + ", ".join(f'"{p}"' for p in props) + "]", route=route,
-                    basis=basis, field_au=field_au,
+                    basis=basis, field=(f"window = \"{window}\"" if field_au is None
+                                        else f"field_au = {field_au}"),
                     scf="[scf]\n        grid_level = 3" if dft else "")
 
 
-def collect(tmp_dir: Path, cases=VALIDATION_SET, workers: int = 1):
-    """Rows (case, route, component, value, error bar, true error, reference error)."""
+def collect(tmp_dir: Path, cases=VALIDATION_SET, workers: int = 1, window: str | None = None,
+            points: list | None = None):
+    """Rows (case, route, component, value, error bar, true error, reference error).
+    ``window``: "adaptive" or "full" runs each case on the automatic ladder
+    (None: the case's own field_au); ``points``, if given, receives the points
+    each job computed."""
     rows, betas = [], {}
     for n, (name, model, *setting) in enumerate(cases):
         for route, props in (("energy", ("dipole", "alpha", "beta")),
                              ("dipole", ("alpha", "beta"))):
             path = Path(tmp_dir) / f"case{n}_{route}.toml"
-            path.write_text(job_text(name, model, route, props, *setting))
+            if window is None:
+                path.write_text(job_text(name, model, route, props, *setting))
+            else:
+                basis = setting[0] if setting else "6-31+g*"
+                path.write_text(job_text(name, model, route, props, basis, None, window))
             job = load_job(path)
             result = compute(job, progress=False, workers=workers)
+            if points is not None:
+                points.append(result.counts.computed)
             mf = mean_field(job)
             origin = result.molecule.origin_bohr
             # The references' own uncertainty, from the reference SCF's measured
