@@ -554,10 +554,13 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
             if found:
                 logger.info("adaptive window: %d more field point%s for the components whose "
                             "tables have not settled", len(todo), "" if len(todo) == 1 else "s")
-            outcome = compute_points(todo, store, prepared.facts, prepared.description(),
-                                     workers=workers, progress=progress,
-                                     retry_failed=retry_failed, log_every_s=log_every_s)
-            computed, reused = computed + outcome.computed, reused + outcome.reused
+            zero = prepared.tasks[0]
+            again = 0 if todo[0] is zero else 1  # a later stage: zero field found already
+            outcome = compute_points(todo if not again else [zero, *todo], store,
+                                     prepared.facts, prepared.description(), workers=workers,
+                                     progress=progress, retry_failed=retry_failed,
+                                     log_every_s=log_every_s)
+            computed, reused = computed + outcome.computed, reused + outcome.reused - again
             if outcome.failures:
                 raise failed_points_error(prepared, outcome.failures, retry_failed)
             found.update((r.point.index, r) for r in outcome.records)
