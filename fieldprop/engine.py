@@ -562,6 +562,7 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
                                      log_every_s=log_every_s)
             computed, reused = computed + outcome.computed, reused + outcome.reused - again
             if outcome.failures:
+                _log_counts(prepared, point_counts(prepared, computed, reused), store.label)
                 raise failed_points_error(prepared, outcome.failures, retry_failed)
             found.update((r.point.index, r) for r in outcome.records)
             prepared = settle(prepared, found)
@@ -569,14 +570,19 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
         if own_store:
             store.close()
     counts = point_counts(prepared, computed, reused)
+    _log_counts(prepared, counts, store.label)
+    return analyse(prepared, prepared.expand(found), counts, store.label,
+                   time.perf_counter() - start)
+
+
+def _log_counts(prepared: Prepared, counts: PointCounts, label: str) -> None:
+    """The closing line of the points' work."""
     logger.info("%d field point%s: %d computed, %d reused from %s%s%s", counts.planned,
-                "" if counts.planned == 1 else "s", counts.computed, counts.reused, store.label,
+                "" if counts.planned == 1 else "s", counts.computed, counts.reused, label,
                 f", {counts.images} images by symmetry ({prepared.symmetry.name})"
                 if counts.images else "",
                 f"; the adaptive window used {counts.planned} of the ladder's {counts.ladder}"
                 if prepared.adaptive else "")
-    return analyse(prepared, prepared.expand(found), counts, store.label,
-                   time.perf_counter() - start)
 
 
 def point_counts(prepared: Prepared, computed: int, reused: int) -> PointCounts:

@@ -4,6 +4,7 @@ h0 = 0.002 au) and the larger molecules (3-aminopropenal, 4-nitroaniline at
 HF/6-31G, h0 = 0.001 au).
 
 Run: python tests/benchmarks/bench_calibration.py [--small | --larger] [--workers N]
+     [--window adaptive|full]
 (small set about 15 minutes on one core; larger set about 10 minutes on two)
 """
 
@@ -29,6 +30,9 @@ def main() -> None:
     which.add_argument("--small", action="store_true", help="the small validation set only")
     which.add_argument("--larger", action="store_true", help="the larger molecules only")
     parser.add_argument("--workers", type=int, default=1)
+    parser.add_argument("--window", choices=("adaptive", "full"), default=None,
+                        help="run every case on the automatic ladder with this window "
+                        "instead of its own field_au")
     args = parser.parse_args()
     classes = [("small", VALIDATION_SET), ("larger", LARGER_SET)]
     if args.small or args.larger:
@@ -38,7 +42,9 @@ def main() -> None:
         for label, cases in classes:
             folder = Path(tmp) / label
             folder.mkdir()
-            by_class[label] = collect(folder, cases, args.workers)
+            points = []
+            by_class[label] = collect(folder, cases, args.workers, args.window, points)
+            print(f"{label}: {sum(points)} field points computed")
             rows += by_class[label]
     groups = collections.defaultdict(list)
     for row in rows:

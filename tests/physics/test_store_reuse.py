@@ -81,14 +81,20 @@ def test_gamma_after_beta_and_the_automatic_window_after_a_fixed_field_reuse_eve
                               response="field_au = 0.001\nlevels = 3"), store)
         auto = run(write_job(tmp_path, "auto.toml", properties='["alpha"]', response=""),
                    store)
+        full = run(write_job(tmp_path, "full.toml", properties='["alpha"]',
+                             response='window = "full"'), store)
     assert both.counts.reused == len(beta.plan.points)
     assert both.counts.computed == len(both.plan.points) - len(beta.plan.points) > 0
-    # The automatic window for alpha starts at 2.5e-4 au with ratio 2: its third,
+    # The automatic ladder for alpha starts at 2.5e-4 au with ratio 2: its third,
     # fourth and fifth levels are 0.001, 0.002 and 0.004 au, the fixed job's ladder
-    # (0.00025 * 4 is 0.001 exactly in binary).
+    # (0.00025 * 4 is 0.001 exactly in binary), where the adaptive window starts:
+    # every point it starts from is reused, and only its growth is computed.
     assert auto.job.response.field_au_source == "automatic window"
     assert auto.counts.reused == len(fixed.plan.points)
-    assert auto.counts.computed == len(auto.plan.points) - len(fixed.plan.points)
+    assert auto.counts.computed == auto.counts.planned - len(fixed.plan.points)
+    # The whole ladder then computes only what neither used.
+    assert full.counts.reused == auto.counts.planned
+    assert full.counts.computed == len(full.plan.points) - auto.counts.planned > 0
 
 
 @pytest.mark.parametrize("change", ["basis", "origin", "scf"])
