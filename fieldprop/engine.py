@@ -247,7 +247,7 @@ def settle(prepared: Prepared, found: dict) -> Prepared:
         if grown == windows:
             break
         windows = grown
-    return dataclasses.replace(prepared, windows=windows, active=need)
+    return dataclasses.replace(prepared, windows=windows, active=need, settled=True)
 
 
 def _tensor_scales(plan: FieldPlan, estimates) -> list[float]:
@@ -758,21 +758,24 @@ def to_compute(prepared: Prepared) -> str:
     images)"."""
     n, planned = len(prepared.computed_tasks), len(prepared.tasks)
     used = len(prepared.used)
-    images = (f" ({used} planned, {used - n} of them symmetry images)" if used > n else "")
-    stage = ""
+    notes = [f"{used} planned, {used - n} of them symmetry images"] if used > n else []
     if prepared.adaptive:
-        stage = (f", the adaptive window's {'last' if prepared.settled else 'current'} stage "
-                 f"of the ladder's {planned} points" + (
-                     "" if prepared.settled else ": more may follow once they are computed"))
-    return f"{n} field point{'s' if n != 1 else ''} to compute{images}{stage}"
+        notes.append(f"the adaptive window's {'last' if prepared.settled else 'current'} stage "
+                     f"on a ladder of {planned} points" + (
+                         "" if prepared.settled else ", more may follow once they are computed"))
+    return f"{n} field point{'s' if n != 1 else ''} to compute" + (
+        f" ({'; '.join(notes)})" if notes else "")
 
 
 def todo_list_key(prepared: Prepared) -> str:
-    """The key of a plan's to-do list in a store: its points' keys, in order."""
+    """The key of a plan's to-do list in a store: the keys of the points it
+    may compute, in order (the whole ladder's, not the adaptive window's
+    stage: ``point --index`` finds the list without knowing the stage)."""
     from fieldprop.keys import digest
 
-    return digest({"kind": "fieldprop-todo",
-                   "points": [t.key for t in prepared.computed_tasks]})
+    tasks = [t for i, t in enumerate(prepared.tasks)
+             if not prepared.images or prepared.images[i][1] is None]
+    return digest({"kind": "fieldprop-todo", "points": [t.key for t in tasks]})
 
 
 QUANTITY = {"energy": ("energy", "Eh"), "dipole": ("dipole", "au"),

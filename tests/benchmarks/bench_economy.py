@@ -142,8 +142,13 @@ def main() -> None:
         # The automatic window against a fixed 3-level ladder, beta alone: the
         # adaptive window's points depend on the numbers, so those jobs run.
         rows = []
-        for name in ("bromochlorofluoromethane (C1)", "water (C2v)", "lithium hydride"):
-            symbols, coords = MOLECULES.get(name, (["Li", "H"], [(0, 0, 0), (0, 0, 1.60)]))
+        others = {"chlorofluoromethanol (C1)": (
+            ["C", "H", "F", "Cl", "O", "H"], [(0, 0, 0), (0.63, 0.63, 0.63), (-0.78, -0.78, 0.78),
+                                             (-1.02, 1.02, -1.02), (0.82, -0.82, -0.82),
+                                             (1.55, -0.45, -1.30)]),
+                  "lithium hydride (C-inf-v)": (["Li", "H"], [(0, 0, 0), (0, 0, 1.60)])}
+        for name in ("chlorofluoromethanol (C1)", "water (C2v)", "lithium hydride (C-inf-v)"):
+            symbols, coords = MOLECULES.get(name) or others[name]
             x = np.array(coords, dtype=float) @ TURN.T
             for route in ("energy", "dipole"):
                 fixed = computed(folder, job_text(symbols, x, ["beta"], route, True))

@@ -100,21 +100,31 @@ def fieldprop(*args, cwd, stdin=None):
 
 
 def test_the_pipeline_computes_stage_by_stage_and_collects_what_run_gives(runs, tmp_path):
+    """The first stage by ids into the store, the later ones as a job array
+    would: ``plan --count`` fixes each stage's list, ``point --index`` elements
+    write point lines, ``plan`` and ``collect`` read them."""
     _, adaptive, _, _ = runs
     (tmp_path / "lih.toml").write_text(JOB)
-    stages = 0
+    (tmp_path / "points").mkdir()
+    ids = fieldprop("plan", "lih.toml", "--missing", "--ids", cwd=tmp_path).stdout.split()
+    fieldprop("point", "lih.toml", "--id", *ids, cwd=tmp_path)
+    stages = 1
     while True:
-        ids = fieldprop("plan", "lih.toml", "--missing", "--ids", cwd=tmp_path).stdout.split()
-        if not ids:
+        lines = ["--points", "points"] if stages > 1 else []
+        count = int(fieldprop("plan", "lih.toml", *lines, "--count", cwd=tmp_path).stdout)
+        if not count:
             break
-        done = fieldprop("collect", "lih.toml", cwd=tmp_path)
-        if stages:  # after a stage, collect names the next stage's points as missing
-            assert done.returncode == 3 and "adaptive window" in done.stderr, done.stderr
-        fieldprop("point", "lih.toml", "--id", *ids, cwd=tmp_path)
+        done = fieldprop("collect", "lih.toml", *lines, cwd=tmp_path)
+        assert done.returncode == 3 and "more may follow" in done.stderr, done.stderr
+        for index in range(count):
+            line = fieldprop("point", "lih.toml", "--index", str(index), "--stdout",
+                             "--quiet", cwd=tmp_path).stdout
+            (tmp_path / "points" / f"{stages}-{index}.jsonl").write_text(line)
         stages += 1
         assert stages <= 4
     assert stages == 3  # the first window and two growths, as in run
-    fieldprop("collect", "lih.toml", "--json", "lih.result.json", "--quiet", cwd=tmp_path)
+    fieldprop("collect", "lih.toml", "--points", "points", "--json", "lih.result.json",
+              "--quiet", cwd=tmp_path)
     doc = json.loads((tmp_path / "lih.result.json").read_text())
     assert doc["points"]["planned"] == adaptive.counts.planned
     assert doc["points"]["ladder"] == len(adaptive.plan.points)
