@@ -370,33 +370,85 @@ def detect(charges, coords_bohr, centre=None,
     a = next(i for i in order if r[i] > tolerance)
     b = next(i for i in order if np.linalg.norm(np.cross(x[a], x[i])) > tolerance * r[a])
     source = np.column_stack([x[a], x[b], np.cross(x[a], x[b])])
-    ops, perms = [], []
-    for a2 in classes[member[a]]:
-        for b2 in classes[member[b]]:
-            if abs(np.linalg.norm(x[a2] - x[b2]) - np.linalg.norm(x[a] - x[b])) > 2 * tolerance:
-                continue
-            for sense in (1.0, -1.0):
-                target = np.column_stack([x[a2], x[b2], sense * np.cross(x[a2], x[b2])])
-                m = target @ np.linalg.inv(source)
-                w, _, vt = np.linalg.svd(m)
-                op = w @ vt  # the nearest orthogonal matrix
-                perm = _permutation(op, z, x, tolerance)
-                if perm is not None and not any(np.allclose(op, o, atol=1e-6) for o in ops):
-                    ops.append(op)
-                    perms.append(perm)
-    if len(ops) <= 1:
-        return None
-    first = next(k for k, op in enumerate(ops) if np.allclose(op, np.eye(3), atol=1e-6))
-    ops.insert(0, ops.pop(first))
-    perms.insert(0, perms.pop(first))
-    ops = [_exact(op) for op in ops]
-    # Symmetrise: each atom to the average of the images that land on it.
-    sym = np.zeros_like(x)
-    for op, perm in zip(ops, perms):
-        sym[perm] += x @ op.T
-    sym /= len(ops)
-    moved = float(np.max(np.linalg.norm(sym - x, axis=1)))
-    return Symmetry("finite", np.array(ops), centre, sym + centre, moved)
+    # An operation built from two reference atoms is as inexact as their
+    # symmetry, and the error grows with the distance of the atoms it maps: so
+    # atoms are first matched with MATCH_SLACK times the tolerance, the set is
+    # required to be a group, and the refined framework must lie within the
+    # tolerance of the given one; failing that, the strict tolerance.
+    for slack in (MATCH_SLACK, 1.0):
+        ops, perms = [], []
+        for a2 in classes[member[a]]:
+            for b2 in classes[member[b]]:
+                if abs(np.linalg.norm(x[a2] - x[b2]) - np.linalg.norm(x[a] - x[b])) > \
+                        2 * tolerance:
+                    continue
+                for sense in (1.0, -1.0):
+                    target = np.column_stack([x[a2], x[b2], sense * np.cross(x[a2], x[b2])])
+                    m = target @ np.linalg.inv(source)
+                    w, _, vt = np.linalg.svd(m)
+                    op = w @ vt  # the nearest orthogonal matrix
+                    perm = _permutation(op, z, x, slack * tolerance)
+                    if perm is not None and not any(np.allclose(op, o, atol=1e-6) for o in ops):
+                        ops.append(op)
+                        perms.append(perm)
+        if len(ops) <= 1 or not _closed(ops):
+            continue
+        first = next(k for k, op in enumerate(ops) if np.allclose(op, np.eye(3), atol=1e-6))
+        ops.insert(0, ops.pop(first))
+        perms.insert(0, perms.pop(first))
+        ops, sym = _refine(ops, perms, x)
+        if ops is None:
+            continue
+        moved = float(np.max(np.linalg.norm(sym - x, axis=1)))
+        if moved <= tolerance:
+            return Symmetry("finite", np.array(ops), centre, sym + centre, moved)
+    return None
+
+
+#: Atoms are matched under trial operations with this many tolerances first
+#: (see detect).
+MATCH_SLACK = 20.0
+
+
+def _closed(ops) -> bool:
+    """True when every product of two operations is (nearly) one of them."""
+    return all(any(np.abs(a @ b - c).max() < 1e-4 for c in ops) for a in ops for b in ops)
+
+
+#: The symmetrised framework must map onto itself to this (bohr) under the
+#: refined operations: images then carry dipoles and alphas to ~1e-15.
+EXACTNESS_BOHR = 1e-11
+
+
+def _refine(ops, perms, x):
+    """Operations exact to round-off, and the framework exactly symmetric.
+
+    The operations found from two reference atoms are only as accurate as the
+    framework's symmetry (~tolerance / distance); an image's dipole R mu would
+    carry that error into every derivative. So alternate: symmetrise the
+    framework (each atom to the average of the images that land on it), then
+    make each operation the orthogonal matrix that best maps the symmetrised
+    framework onto its permuted self (Kabsch, keeping the determinant's sign:
+    for a planar framework that picks the operation, not its product with
+    the reflection through the plane), until both agree to EXACTNESS_BOHR.
+    (None, x) when they do not (no symmetry is then used)."""
+    ops = [np.asarray(op, dtype=float) for op in ops]
+    sym = x
+    for _ in range(30):
+        new = np.zeros_like(x)
+        for op, perm in zip(ops, perms):
+            new[perm] += sym @ op.T
+        sym = new / len(ops)
+        refined = []
+        for op, perm in zip(ops, perms):
+            w, _, vt = np.linalg.svd(sym[perm].T @ sym)
+            d = np.sign(np.linalg.det(op)) * np.sign(np.linalg.det(w @ vt))
+            refined.append(_exact(w @ np.diag([1.0, 1.0, d]) @ vt))
+        ops = refined
+        worst = max(float(np.max(np.abs(sym @ op.T - sym[perm]))) for op, perm in zip(ops, perms))
+        if worst <= EXACTNESS_BOHR:
+            return ops, sym
+    return None, x
 
 
 def _exact(op: np.ndarray) -> np.ndarray:

@@ -244,3 +244,33 @@ def test_the_symmetry_frame_makes_the_operations_lattice_maps(name):
     assert np.allclose(frame @ frame.T, np.eye(3), atol=1e-11)
     assert _lattice_operations(turned.operations, frame) == in_axes
     assert in_axes == {"C3v": 2, "D6h": 8}.get(name.split("(")[1][:-1], order)
+
+
+@pytest.mark.parametrize("name", list(MOLECULES))
+def test_a_framework_symmetric_only_to_the_tolerance_gets_exact_operations(name):
+    # A force-field geometry is symmetric only to ~1e-7 bohr. Operations found
+    # from it are that inexact, and an image's dipole R mu would carry the error
+    # into every derivative (1e-7 of mu over h^2 is ~0.1 au of beta); worse, the
+    # forced zeros computed from them were all of them (the dipole of ammonia
+    # came out zero by "symmetry"). The operations must come out exact.
+    from fieldprop.symmetry import _invariant_basis
+
+    charges, coords, order = MOLECULES[name]
+    q, shift = _turn(11)
+    exact = detect(charges, np.array(coords, dtype=float) @ q.T + shift)
+    rng = np.random.default_rng(5)
+    x = np.array(coords, dtype=float) @ q.T + shift
+    x += rng.uniform(-0.3, 0.3, size=x.shape) * SYMMETRY_TOLERANCE_BOHR
+    sym = detect(charges, x)
+    assert len(sym.operations) == order and sym.name == exact.name
+    ops = sym.operations
+    for a in ops:
+        assert np.abs(a @ a.T - np.eye(3)).max() < 1e-13
+        for b in ops:  # closed under products, to round-off
+            assert min(np.abs(a @ b - c).max() for c in ops) < 1e-12
+    centred = sym.coords_bohr - sym.centre
+    for op in ops:  # the symmetrised framework maps onto itself
+        image = centred @ op.T
+        assert max(np.linalg.norm(centred - p, axis=1).min() for p in image) < 1e-10
+    for rank in (1, 2, 3):  # the same invariant tensors as the exact framework
+        assert _invariant_basis(sym, rank).shape == _invariant_basis(exact, rank).shape
