@@ -24,7 +24,7 @@ from pathlib import Path  # noqa: E402
 from typing import Sequence  # noqa: E402
 
 from fieldprop import __version__  # noqa: E402
-from fieldprop.errors import FieldpropError, IncompleteError, InputError  # noqa: E402
+from fieldprop.errors import CampaignError, FieldpropError, IncompleteError, InputError  # noqa: E402,E501
 
 logger = logging.getLogger("fieldprop")
 
@@ -146,6 +146,21 @@ examples:
   fieldprop report results/*.json --format csv > table.csv
   fieldprop report water.result.json --components --convention perturbation
 """
+
+SCREEN_EXAMPLES = """\
+examples:
+  fieldprop screen candidates.toml --csv ranked.csv --units esu
+  fieldprop screen candidates.toml --rank-by beta_parallel --csv - | sort -t, -k1n
+  fieldprop screen candidates.toml --scheduler tcp://head-node:8786   a Dask cluster
+exit codes: 0 every molecule has every number; 1 some molecule failed or lacks a number
+(the others' results are written, the failed ones named with their reason); 2 bad input
+(one line naming the set file, the molecule and the key; nothing computed); 130/143
+interrupted (finished points stay stored: the same command resumes).
+"""
+
+#: --rank-by choices (fieldprop.ranking.RANK_KEYS, without importing it here).
+RANK_CHOICES = ("dipole_norm", "alpha_iso", "alpha_aniso", "beta_parallel",
+                "beta_vector_norm", "beta_hrs", "gamma_parallel", "beta_vec")
 
 #: Seconds between progress lines in a batch log (stderr not a terminal).
 DEFAULT_LOG_EVERY_S = 60.0
@@ -337,6 +352,39 @@ def build_parser() -> argparse.ArgumentParser:
     report.add_argument("--components", action="store_true", help="one row per tensor "
                         "component instead of one row of invariants per result")
     report.set_defaults(handler=cmd_report)
+
+    screen = sub.add_parser("screen", help="many molecules, one model: every molecule's "
+                            "result and a ranked table", epilog=SCREEN_EXAMPLES,
+                            formatter_class=argparse.RawDescriptionHelpFormatter)
+    screen.add_argument("set", type=Path, help="set file (TOML): molecules and the model, "
+                        "response and geometry options they share")
+    screen.add_argument("--rank-by", choices=RANK_CHOICES, default=None,
+                        help="ranking invariant, by magnitude (default: beta_hrs when beta is "
+                        "computed, else gamma_parallel, else alpha_iso, else dipole_norm)")
+    screen.add_argument("--units", choices=("au", "esu", "si"), default="au",
+                        help="units of the table and the CSV (the result files stay in au)")
+    screen.add_argument("--csv", type=Path, help="write the ranked table as CSV to PATH "
+                        "(- for stdout, in place of the table)")
+    screen.add_argument("--png", type=Path, help="summary picture (default "
+                        "SET.summary.png beside the set file)")
+    screen.add_argument("--results", type=Path, metavar="DIR", help="folder of the molecules' "
+                        "result JSON files, NAME.result.json (default SET.results beside the "
+                        "set file)")
+    screen.add_argument("--workers", type=_positive_int, default=None,
+                        help="local worker processes (default: one per core, see --threads)")
+    screen.add_argument("--threads", type=_positive_int, default=1,
+                        help="BLAS threads per worker process or Dask task (default 1)")
+    where = screen.add_mutually_exclusive_group()
+    where.add_argument("--scheduler", metavar="ADDRESS", help="send the points to the Dask "
+                       "cluster whose scheduler listens at ADDRESS (tcp://host:8786)")
+    where.add_argument("--scheduler-file", type=Path, metavar="PATH",
+                       help="the same, with the scheduler's address from its scheduler file")
+    screen.add_argument("--quiet", action="store_true", help="no progress or log lines")
+    screen.add_argument("--log-every", type=_non_negative_float, default=DEFAULT_LOG_EVERY_S,
+                        metavar="SECONDS", help="in a batch log, a progress line at most this "
+                        f"often (default {DEFAULT_LOG_EVERY_S:g})")
+    _store_options(screen)
+    screen.set_defaults(handler=cmd_screen)
 
     inspect = sub.add_parser("inspect", epilog=INSPECT_EXAMPLES,
                              formatter_class=argparse.RawDescriptionHelpFormatter,
@@ -810,6 +858,101 @@ def cmd_collect(args) -> int:
                               "missing; compute the points and collect again")
     require_stable(result)
     return 0
+
+
+def cmd_screen(args) -> int:
+    from fieldprop import ranking
+    from fieldprop.campaign import load_set
+    from fieldprop.report import check_output_path, is_stdout, result_document, \
+        write_json_atomic
+    from fieldprop.screening import DaskPool, LocalPool, run_campaign
+
+    campaign = load_set(args.set)
+    stem = args.set.with_suffix("")
+    results = args.results or stem.with_name(stem.name + ".results")
+    png = args.png or stem.with_name(stem.name + ".summary.png")
+    if results.exists() and not results.is_dir():
+        raise InputError(f"--results {results}: exists and is not a folder")
+    check_output_path(png, "--png")
+    if args.csv is not None and not is_stdout(args.csv):
+        check_output_path(args.csv, "--csv")
+    props = campaign.candidates[0].job.response.properties
+    key = args.rank_by or next(k for p, k in (("beta", "beta_hrs"), ("gamma", "gamma_parallel"),
+                                              ("alpha", "alpha_iso"), ("dipole", "dipole_norm"))
+                               if p in props)
+    needed = ranking.PROPERTY_OF[ranking.resolve_key(key)]
+    if needed not in props:
+        raise InputError(f"--rank-by {key}: needs {needed}, which the set's [response] "
+                         f"properties ({', '.join(props)}) do not compute")
+    results.mkdir(parents=True, exist_ok=True)
+    if args.scheduler or args.scheduler_file:
+        pool = DaskPool(args.scheduler, str(args.scheduler_file) if args.scheduler_file else None,
+                        threads=args.threads)
+    else:
+        workers = args.workers or max(1, default_workers() // args.threads)
+        pool = LocalPool(workers, args.threads)
+    logger.info("%s: %d molecules, %s/%s; %s", campaign.path, len(campaign.candidates),
+                campaign.candidates[0].job.model.method, campaign.candidates[0].job.model.basis,
+                pool.label)
+    bar, log_every = _progress(args)
+    written: dict[str, Path] = {}
+
+    def keep(outcome) -> None:
+        if outcome.result is not None:
+            path = results / f"{outcome.candidate.name}.result.json"
+            write_json_atomic(result_document(outcome.result), path)
+            written[outcome.candidate.name] = path
+
+    store_anchor = args.set
+    with _open_store(args, store_anchor) as store:
+        outcomes, counts = run_campaign(campaign, store, pool, progress=bar,
+                                        log_every_s=log_every, on_result=keep)
+    entries = []
+    for o in outcomes:
+        if o.result is not None:
+            entries.append(ranking.entry_from(o.candidate.name, result_document(o.result)))
+        else:
+            entries.append(ranking.entry_from(o.candidate.name, None, o.failure,
+                                              _formula_text(o.candidate.job),
+                                              _model_text(o.candidate.job)))
+    rows = ranking.rank(entries, key)
+    if args.csv is not None and not is_stdout(args.csv):
+        with open(args.csv, "w", encoding="utf-8", newline="") as out:
+            ranking.write_csv(rows, args.units, out)
+        logger.info("ranked table written to %s", args.csv)
+    if any(r.rank is not None for r in rows):
+        ranking.write_png(rows, key, args.units, png)
+        logger.info("summary picture written to %s", png)
+    logger.info("%d molecules: %d done, %d failed; %d field points computed, %d reused; "
+                "%d SCF cycles; %.1f s; results in %s", counts.molecules,
+                counts.molecules - counts.failed, counts.failed, counts.computed, counts.reused,
+                counts.scf_cycles, counts.wall_time_s, results)
+    if args.csv is not None and is_stdout(args.csv):
+        _to_stdout(lambda: ranking.write_csv(rows, args.units, sys.stdout))
+    else:
+        _to_stdout(lambda: ranking.write_table(rows, args.units, key, sys.stdout))
+    bad = [r for r in rows if r.status != "ok"]
+    if bad:
+        raise CampaignError(f"{campaign.path}: {len(bad)} of {len(rows)} molecules without "
+                            f"every number: " + "; ".join(f"{r.entry.name} ({r.status})"
+                                                          for r in bad[:5])
+                            + (" ..." if len(bad) > 5 else ""))
+    return 0
+
+
+def _formula_text(job) -> str:
+    from fieldprop.molecule import build_molecule
+
+    try:
+        return build_molecule(job.molecule, job.response.origin).formula
+    except Exception:  # noqa: BLE001 - a label only
+        return ""
+
+
+def _model_text(job) -> str:
+    m = job.model
+    basis = m.basis if isinstance(m.basis, str) else "per-element basis"
+    return "/".join(x for x in (m.method.upper(), m.functional, basis) if x)
 
 
 def cmd_report(args) -> int:

@@ -48,3 +48,10 @@ class BackendError(FieldpropError):
     recorded as failed, the others go on."""
 
     kind = "backend failure"
+
+
+class CampaignError(FieldpropError):
+    """Some molecules of a screening campaign failed or lack a number (the
+    others' results are written)."""
+
+    kind = "molecules failed"

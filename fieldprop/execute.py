@@ -341,3 +341,82 @@ def _pool(tasks, missing, reference, workers, finish) -> None:
             process.terminate()
         raise
     pool.shutdown()
+
+
+# ------------------------------------------------------------ tasks of many models
+#
+# A screening campaign sends the points of many molecules to one pool (local
+# processes or Dask workers). A worker keeps the model contexts of the last
+# few models it worked on, built from the reference sent with each task; the
+# parent (the store's only writer) stores every outcome.
+
+#: Model contexts a campaign worker keeps (each holds its model's integrals).
+CONTEXTS_KEPT = 2
+_CONTEXTS: dict = {}
+
+
+def set_threads(threads: int) -> None:
+    """This process's BLAS and OpenMP threads (PySCF's and NumPy's)."""
+    from pyscf import lib
+    from threadpoolctl import threadpool_limits
+
+    lib.num_threads(threads)
+    threadpool_limits(threads)
+
+
+def init_campaign_worker(parent: int, threads: int) -> None:
+    """A local campaign worker: signals as _init_worker's, ``threads`` threads."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    if parent:
+        _end_with_parent(parent)
+    set_threads(threads)
+
+
+def _keep_context(key: str, context: ModelContext) -> None:
+    _CONTEXTS[key] = context
+    while len(_CONTEXTS) > CONTEXTS_KEPT:
+        _CONTEXTS.pop(next(iter(_CONTEXTS)))
+
+
+def campaign_reference(task: PointTask, threads: int = 0):
+    """A molecule's zero-field point and reference, in a worker:
+    (PointRecord, ZeroFieldReference), or (PointFailure, None)."""
+    if threads:
+        set_threads(threads)
+    start = time.perf_counter()
+    context = ModelContext(task.molecule, task.model, task.scf)
+    try:
+        record, reference = compute_reference(context, task)
+    except FieldpropError as exc:
+        return PointFailure(task.point, str(exc), type(exc).__name__,
+                            time.perf_counter() - start), None
+    except Exception as exc:  # noqa: BLE001 - named, never a traceback
+        logger.debug("zero field", exc_info=True)
+        text = " ".join(str(exc).split())[:300] or "no message"
+        return PointFailure(task.point, f"the zero-field point failed inside the backend "
+                            f"({type(exc).__name__}: {text})", BackendError.__name__,
+                            time.perf_counter() - start), None
+    _keep_context(task.model_key, context)
+    return record, reference
+
+
+def campaign_point(task: PointTask, reference: ZeroFieldReference, solved: dict,
+                   threads: int = 0):
+    """One field point of any model, in a worker: (outcome, converged
+    rotation or None), as _worker_task."""
+    if threads:
+        set_threads(threads)
+    context = _CONTEXTS.get(task.model_key)
+    if context is None:
+        context = ModelContext(task.molecule, task.model, task.scf, reference)
+        _keep_context(task.model_key, context)
+    outcome = run_task(context, task, solved)
+    key = field_key(task.point.field_vector_au)
+    return outcome, (context.solved.get(key) if isinstance(outcome, PointRecord) else None)
+
+
+def predecessors(tasks) -> dict[int, tuple[int, ...]]:
+    """For each of ``tasks`` (by position), the positions of the tasks whose
+    converged orbitals start it best (see _predecessors)."""
+    return _predecessors(list(tasks), list(range(len(tasks))))

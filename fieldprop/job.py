@@ -705,8 +705,13 @@ def load_job(path: str | os.PathLike[str]) -> Job:
     InputError : one line naming the file and key.
     """
     job_path = Path(path)
-    shown = str(path)
-    data = _read_toml(job_path)
+    return job_from_tables(str(path), job_path, _read_toml(job_path))
+
+
+def job_from_tables(shown: str, job_path: Path, data: dict[str, Any]) -> Job:
+    """:func:`load_job` for tables already read: ``shown`` names the job in
+    every message (and becomes ``Job.path``), an ``xyz`` path is relative to
+    ``job_path``'s folder."""
     for section, value in data.items():
         if section not in _SECTIONS:
             raise InputError(f"{shown}: unknown section [{section}]; valid sections: "

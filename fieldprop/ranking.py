@@ -1,0 +1,201 @@
+"""A screening campaign's ranked table: one row per molecule, best first.
+
+Built from the molecules' result documents (:func:`fieldprop.report.
+result_document`) and failures, in any unit system (:mod:`fieldprop.summary`
+converts). Molecules are ranked by the magnitude of the ranking invariant
+(|beta_parallel| for a sign-carrying one); a molecule without a number for it
+(failed, or the invariant unstable) comes last, unranked. Two neighbours whose
+ranking values overlap within their error bars are marked as not separated.
+
+CSV columns: ``rank, name, formula``, then ``<invariant>_<unit>`` and
+``<invariant>_error_<unit>`` for each invariant, then ``status``, ``model``,
+``separated_from_next`` and ``reason``.
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TextIO
+
+from tabulate import tabulate
+
+from fieldprop.summary import INVARIANTS, UNIT_TAGS, _formula, _model, conversion
+
+#: Ranking keys: every invariant, and the short name of the vector norm.
+RANK_KEYS = tuple(name for name, _ in INVARIANTS) + ("beta_vec",)
+_ALIASES = {"beta_vec": "beta_vector_norm"}
+PROPERTY_OF = dict(INVARIANTS)
+
+
+@dataclass(frozen=True)
+class Entry:
+    """One molecule: its result document (None when it failed) or failure."""
+
+    name: str
+    document: dict | None
+    formula: str = ""
+    model: str = ""
+    failure: str = ""
+
+    def invariant(self, name: str) -> tuple[float | None, float | None]:
+        if self.document is None:
+            return None, None
+        item = self.document["invariants"].get(name) or {}
+        value, error = item.get("value"), item.get("error")
+        ok = all(isinstance(x, (int, float)) and math.isfinite(x) for x in (value, error))
+        return (float(value), float(error)) if ok else (None, None)
+
+
+@dataclass(frozen=True)
+class Row:
+    rank: int | None
+    entry: Entry
+    status: str
+    reason: str
+    separated_from_next: bool | None
+
+
+def resolve_key(key: str) -> str:
+    return _ALIASES.get(key, key)
+
+
+def rank(entries: list[Entry], key: str) -> list[Row]:
+    """The rows, best first by |key|; unranked molecules last, by name."""
+    key = resolve_key(key)
+    scored, rest = [], []
+    for e in entries:
+        value, error = e.invariant(key)
+        (scored if value is not None else rest).append((e, value, error))
+    scored.sort(key=lambda x: -abs(x[1]))
+    rows = []
+    for n, (e, value, error) in enumerate(scored):
+        separated = None
+        if n + 1 < len(scored):
+            _, v2, e2 = scored[n + 1]
+            separated = abs(value) - error > abs(v2) + e2
+        status, reason = _status(e)
+        rows.append(Row(n + 1, e, status, reason, separated))
+    for e, _, _ in sorted(rest, key=lambda x: x[0].name):
+        status, reason = _status(e)
+        if status == "ok":
+            status, reason = "unranked", f"{key}: no number (see its result file)"
+        rows.append(Row(None, e, status, reason, None))
+    return rows
+
+
+def _status(e: Entry) -> tuple[str, str]:
+    if e.document is None:
+        return "failed", e.failure
+    problems = [f"{c.get('name')}: {c.get('reason') or c.get('status')}"
+                for t in e.document["tensors"].values() for c in t.get("components", ())
+                if c.get("status") in ("unstable", "missing")]
+    return ("unstable", "; ".join(problems[:3])) if problems else ("ok", "")
+
+
+def _present(entries) -> list[tuple[str, str]]:
+    return [(n, p) for n, p in INVARIANTS
+            if any(e.document is not None and n in e.document["invariants"] for e in entries)]
+
+
+def table(rows: list[Row], units: str) -> tuple[list[str], list[list], list[str]]:
+    """(CSV header, rows of values, display header)."""
+    present = _present([r.entry for r in rows])
+    header, shown = ["rank", "name", "formula"], ["rank", "name", "formula"]
+    for name, prop in present:
+        tag = UNIT_TAGS[units][prop]
+        header += [f"{name}_{tag}", f"{name}_error_{tag}"]
+        shown += [f"{name} ({conversion(prop, units, 'taylor')[0]})", "+- error"]
+    header += ["status", "model", "separated_from_next", "reason"]
+    shown += ["status", "model", "separated", "reason"]
+    out = []
+    for r in rows:
+        e = r.entry
+        row = [r.rank, e.name, e.formula]
+        for name, prop in present:
+            value, error = e.invariant(name)
+            factor = conversion(prop, units, "taylor")[1]
+            row += [None, None] if value is None else [value * factor, error * factor]
+        row += [r.status, e.model,
+                None if r.separated_from_next is None else r.separated_from_next, r.reason]
+        out.append(row)
+    return header, out, shown
+
+
+def write_csv(rows: list[Row], units: str, out: TextIO) -> None:
+    header, values, _ = table(rows, units)
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(header)
+    for row in values:
+        writer.writerow(["" if v is None else repr(v) if isinstance(v, float)
+                         else str(v).lower() if isinstance(v, bool) else v for v in row])
+
+
+def write_table(rows: list[Row], units: str, key: str, out: TextIO) -> None:
+    header, values, shown = table(rows, units)
+    text = []
+    for row in values:
+        cells = []
+        for h, v in zip(header, row):
+            if v is None:
+                cells.append("-")
+            elif isinstance(v, float):
+                cells.append(f"{v:.4g}" if "_error_" in h else f"{v:.6g}")
+            elif isinstance(v, bool):
+                cells.append("yes" if v else "NO (overlaps next)")
+            else:
+                cells.append(str(v)[:60])
+        text.append(cells)
+    out.write(f"ranked by |{resolve_key(key)}|, best first; error bars are estimates of the "
+              "numerical differentiation only\n")
+    out.write(tabulate(text, headers=shown, disable_numparse=True) + "\n")
+
+
+def entry_from(name: str, document: dict | None, failure: str = "", formula: str = "",
+               model: str = "") -> Entry:
+    if document is not None:
+        formula, model = _formula(document), _model(document)
+    return Entry(name, document, formula, model, failure)
+
+
+def write_png(rows: list[Row], key: str, units: str, path: Path) -> None:
+    """Two panels: the ranking key with error bars per molecule (ranked), and
+    the ranking key against alpha_iso (when alpha is there)."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    key = resolve_key(key)
+    prop = PROPERTY_OF[key]
+    label, factor = conversion(prop, units, "taylor")
+    ranked = [r for r in rows if r.rank is not None]
+    names = [r.entry.name for r in ranked]
+    values = [abs(r.entry.invariant(key)[0]) * factor for r in ranked]
+    errors = [r.entry.invariant(key)[1] * factor for r in ranked]
+    alpha_label, alpha_factor = conversion("alpha", units, "taylor")
+    pairs = [(abs(r.entry.invariant(key)[0]) * factor, r.entry.invariant("alpha_iso")[0],
+              r.entry.name) for r in ranked if r.entry.invariant("alpha_iso")[0] is not None]
+    panels = 2 if pairs and key != "alpha_iso" else 1
+    fig, axes = plt.subplots(1, panels, figsize=(6.0 * panels, 0.35 * len(names) + 2.5),
+                             squeeze=False, constrained_layout=True)
+    ax = axes[0][0]
+    positions = list(range(len(names)))[::-1]
+    ax.barh(positions, values, xerr=errors, color="tab:blue", alpha=0.7, capsize=3)
+    ax.set_yticks(positions, names, fontsize=8)
+    ax.set_xlabel(f"|{key}| ({label})")
+    ax.set_title(f"ranked by |{key}|", fontsize=10)
+    if panels == 2:
+        ax = axes[0][1]
+        ax.scatter([a * alpha_factor for _, a, _ in pairs], [v for v, _, _ in pairs],
+                   color="tab:orange")
+        for v, a, n in pairs:
+            ax.annotate(n, (a * alpha_factor, v), fontsize=7, xytext=(3, 3),
+                        textcoords="offset points")
+        ax.set_xlabel(f"alpha_iso ({alpha_label})")
+        ax.set_ylabel(f"|{key}| ({label})")
+        ax.set_title(f"|{key}| against alpha_iso", fontsize=10)
+    fig.savefig(path, dpi=120)
+    plt.close(fig)

@@ -1,0 +1,71 @@
+"""Structures from line notation: a SMILES string as a 3D geometry (RDKit).
+
+Explicit hydrogens, ETKDG embedding with a fixed seed (the same SMILES gives
+the same start on every run), then a force-field clean-up (MMFF94 where it
+has parameters for every atom, else UFF). A start for the job's own model, not
+a minimum of it: optimise it ([geometry] optimize) before trusting response
+properties, and note that no conformer search is done.
+
+No PySCF here; RDKit is imported only when a SMILES is given.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+#: The embedding seed: fixed, so a SMILES always gives the same coordinates.
+EMBEDDING_SEED = 61453
+#: Force-field steps of the clean-up (converges for drug-sized molecules).
+FORCE_FIELD_STEPS = 2000
+
+
+@dataclass(frozen=True)
+class SmilesStructure:
+    """A 3D structure from a SMILES: symbols, angstrom coordinates, the charge
+    (sum of formal charges) and multiplicity (radical electrons + 1) it
+    implies, and the force field used."""
+
+    symbols: tuple[str, ...]
+    coords_angstrom: tuple[tuple[float, float, float], ...]
+    charge: int
+    multiplicity: int
+    force_field: str
+
+    def geometry_text(self) -> str:
+        """``symbol x y z`` lines, angstrom, 10 decimals."""
+        return "\n".join(f"{s} {x:.10f} {y:.10f} {z:.10f}"
+                         for s, (x, y, z) in zip(self.symbols, self.coords_angstrom))
+
+
+def from_smiles(smiles: str) -> SmilesStructure:
+    """The 3D structure of ``smiles``; ValueError with a short reason when it
+    cannot be parsed or embedded."""
+    from rdkit import Chem, RDLogger
+    from rdkit.Chem import AllChem, Descriptors
+
+    RDLogger.DisableLog("rdApp.*")  # its reasons go into our one line instead
+    mol = Chem.MolFromSmiles(smiles)
+    if mol is None or mol.GetNumAtoms() == 0:
+        raise ValueError("RDKit cannot parse it")
+    charge = Chem.GetFormalCharge(mol)
+    multiplicity = Descriptors.NumRadicalElectrons(mol) + 1
+    mol = Chem.AddHs(mol)
+    params = AllChem.ETKDGv3()
+    params.randomSeed = EMBEDDING_SEED
+    if AllChem.EmbedMolecule(mol, params) != 0:
+        params.useRandomCoords = True  # RDKit's advice for hard cases; still seeded
+        if AllChem.EmbedMolecule(mol, params) != 0:
+            raise ValueError("RDKit could not embed it in 3D")
+    if mol.GetNumAtoms() > 1:
+        if AllChem.MMFFHasAllMoleculeParams(mol):
+            AllChem.MMFFOptimizeMolecule(mol, maxIters=FORCE_FIELD_STEPS)
+            force_field = "MMFF94"
+        else:
+            AllChem.UFFOptimizeMolecule(mol, maxIters=FORCE_FIELD_STEPS)
+            force_field = "UFF"
+    else:
+        force_field = "none (one atom)"
+    positions = mol.GetConformer().GetPositions()
+    return SmilesStructure(tuple(a.GetSymbol() for a in mol.GetAtoms()),
+                           tuple(tuple(float(v) for v in row) for row in positions),
+                           int(charge), int(multiplicity), force_field)
