@@ -443,6 +443,39 @@ def _to_stdout(write) -> None:
         os.dup2(devnull, sys.stdout.fileno())
 
 
+def _at_optimised_geometry(prepared, store, job_path: Path):
+    """``prepared`` again at the optimised geometry, when the job asks for
+    one (optimised now or found in ``store``), with it written beside the job
+    as JOB.optimised.xyz; else ``prepared`` itself."""
+    from fieldprop.engine import optimised, prepare
+
+    job = prepared.job
+    if not job.geometry.optimize:
+        return prepared
+    job = optimised(job, store)
+    xyz = job_path.with_name(job_path.stem + ".optimised.xyz")
+    write_xyz(job, xyz)
+    logger.info("optimised geometry written to %s", xyz)
+    return prepare(job, facts=prepared.facts)
+
+
+def write_xyz(job, path: Path) -> None:
+    """The job's molecule as an XYZ file (angstrom), written atomically."""
+    from fieldprop.units import BOHR_TO_ANGSTROM
+
+    doc = job.optimisation or {}
+    lines = [str(len(job.molecule.atoms)),
+             f"{job.path}: optimised at {doc.get('model', {}).get('method', '?')}/"
+             f"{doc.get('model', {}).get('basis', '?')}, E = {doc.get('energy_au', 0.0):.10f} Eh, "
+             f"{doc.get('steps', '?')} steps, {doc.get('criteria', '?')} criteria"]
+    for a in job.molecule.atoms:
+        x, y, z = (v * BOHR_TO_ANGSTROM for v in a.coords_bohr)
+        lines.append(f"{a.symbol:<2} {x:15.10f} {y:15.10f} {z:15.10f}")
+    part = path.with_name(path.name + ".part")
+    part.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    os.replace(part, path)
+
+
 def default_result_path(job_path: Path) -> Path:
     """JOB.result.json beside the job file (``water.toml`` -> ``water.result.json``)."""
     return job_path.with_name(job_path.stem + ".result.json")
@@ -478,6 +511,7 @@ def cmd_run(args) -> int:
     workers = args.workers or default_workers()
     bar, log_every = _progress(args)
     with _open_store(args, args.job) as store:
+        prepared = _at_optimised_geometry(prepared, store, args.job)
         result = run_prepared(prepared, store, workers=workers, progress=bar,
                               retry_failed=args.retry_failed, log_every_s=log_every)
     # The file first: a closed stdout (``| head``) must not lose the result.
@@ -528,6 +562,8 @@ def cmd_check(args) -> int:
     prepared = prepare(job)
     workers = args.workers or default_workers()
     with _open_store(args, args.job) as store:
+        prepared = _at_optimised_geometry(prepared, store, args.job)
+        job = prepared.job
         result = run_prepared(prepared, store, workers=workers, progress=progress,
                               retry_failed=args.retry_failed, log_every_s=log_every)
         if reference_file is not None:
@@ -752,6 +788,11 @@ def cmd_point(args) -> int:
     else:
         real = PointStore.open(path)
     try:
+        if job.geometry.optimize:
+            from fieldprop.engine import optimised
+
+            job = optimised(job, real, compute=True)
+            prepared = prepare(job, facts=prepared.facts)
         targets = _targets(args, prepared, real)
         rows = real.get_points(t.key for t in targets) if real is not None else {}
         todo = []
@@ -902,6 +943,9 @@ def cmd_screen(args) -> int:
             path = results / f"{outcome.candidate.name}.result.json"
             write_json_atomic(result_document(outcome.result), path)
             written[outcome.candidate.name] = path
+            if outcome.result.job.optimisation is not None:
+                write_xyz(outcome.result.job,
+                          results / f"{outcome.candidate.name}.optimised.xyz")
 
     store_anchor = args.set
     with _open_store(args, store_anchor) as store:

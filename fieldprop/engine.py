@@ -274,6 +274,71 @@ def _estimates(prepared: Prepared, records, windows, active, missing):
     return framed, noise, smooth, estimates
 
 
+def geometry_key(job: Job) -> str:
+    """The store key of a job's optimised geometry: the starting nuclei (bohr,
+    to 1e-10), charge and multiplicity, the optimisation's model, criteria
+    and step limit."""
+    from fieldprop.backend_pyscf import optimisation_model
+    from fieldprop.keys import digest
+
+    model = optimisation_model(job)
+    return digest({"kind": "fieldprop-geometry",
+                   "atoms": [[a.symbol, [round(v, 10) for v in a.coords_bohr]]
+                             for a in job.molecule.atoms],
+                   "charge": job.molecule.charge, "multiplicity": job.molecule.multiplicity,
+                   "model": {"method": model.method, "functional": model.functional,
+                             "basis": model.basis if isinstance(model.basis, str)
+                             else [list(p) for p in model.basis],
+                             "reference": model.reference, "cartesian": model.cartesian,
+                             "frozen_core": model.frozen_core},
+                   "criteria": job.geometry.thresholds(), "max_steps": job.geometry.max_steps})
+
+
+def with_geometry(job: Job, document: dict) -> Job:
+    """``job`` with the optimised coordinates of ``document`` (the stored
+    optimisation) and the document itself as ``job.optimisation``."""
+    from fieldprop.job import Atom
+
+    atoms = tuple(Atom(a.symbol, tuple(float(v) for v in xyz))
+                  for a, xyz in zip(job.molecule.atoms, document["coords_bohr"]))
+    molecule = dataclasses.replace(job.molecule, atoms=atoms,
+                                   source=f"{job.molecule.source}, optimised")
+    return dataclasses.replace(job, molecule=molecule, optimisation=document)
+
+
+def optimised(job: Job, store=None, compute: bool = True) -> Job:
+    """The job at its optimised geometry when [geometry] optimize is set:
+    from the store, or optimised now (``compute``) and stored; else ``job``.
+    Without ``compute`` a geometry not stored is IncompleteError (exit 3)."""
+    if not job.geometry.optimize or job.optimisation is not None:
+        return job
+    key = geometry_key(job)
+    document = store.get_geometry(key) if store is not None else None
+    if document is None:
+        if not compute:
+            raise IncompleteError(f"{job.path}: [geometry] optimize: the optimised geometry "
+                                  f"(key {short_id(key)}) is not in "
+                                  f"{store.label if store is not None else 'any store'}; "
+                                  "fieldprop run, or fieldprop point --zero-field, optimises "
+                                  "it first")
+        from fieldprop.backend_pyscf import optimize_geometry
+
+        start = time.perf_counter()
+        logger.info("%s: optimising the geometry (%s criteria, at most %d steps)", job.path,
+                    job.geometry.criteria, job.geometry.max_steps)
+        molecule = build_molecule(job.molecule, job.response.origin)
+        document = optimize_geometry(job, molecule)
+        document["wall_time_s"] = time.perf_counter() - start
+        if store is not None:
+            store.put_geometry(key, document)
+        logger.info("%s: geometry optimised in %d steps, %.1f s (largest gradient %.1e Eh/bohr)",
+                    job.path, document["steps"], document["wall_time_s"],
+                    document["largest_gradient_au"])
+    else:
+        logger.info("%s: the optimised geometry from %s", job.path, store.label)
+    return with_geometry(job, document)
+
+
 def make_plan(job: Job, route: Route | str | None = None, symmetry=None) -> FieldPlan:
     """The job's field plan, on its own route or on ``route``; with the
     molecule's ``symmetry``, in its symmetry frame (see Symmetry.frame), and
@@ -686,6 +751,7 @@ def gather(job: Job, store=None, lines=None, route: Route | str | None = None,
     Bad lines raise InputError (:mod:`fieldprop.pointlines`)."""
     from fieldprop import pointlines
 
+    job = optimised(job, store, compute=False)
     molecule, sym = symmetric_molecule(job)
     mkey = model_key(molecule, job.model, job.scf)
     facts = store.get_facts(mkey) if store is not None else None

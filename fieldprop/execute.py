@@ -420,3 +420,24 @@ def predecessors(tasks) -> dict[int, tuple[int, ...]]:
     """For each of ``tasks`` (by position), the positions of the tasks whose
     converged orbitals start it best (see _predecessors)."""
     return _predecessors(list(tasks), list(range(len(tasks))))
+
+
+def campaign_optimise(job, threads: int = 0):
+    """A molecule's geometry optimisation, in a worker: (document, None) or
+    (None, (reason, kind))."""
+    from fieldprop.backend_pyscf import optimize_geometry
+    from fieldprop.molecule import build_molecule
+
+    if threads:
+        set_threads(threads)
+    start = time.perf_counter()
+    try:
+        document = optimize_geometry(job, build_molecule(job.molecule, job.response.origin))
+    except FieldpropError as exc:
+        return None, (str(exc), type(exc).__name__)
+    except Exception as exc:  # noqa: BLE001 - named, never a traceback
+        text = " ".join(str(exc).split())[:300] or "no message"
+        return None, (f"{job.path}: [geometry] optimize failed inside the backend "
+                      f"({type(exc).__name__}: {text})", BackendError.__name__)
+    document["wall_time_s"] = time.perf_counter() - start
+    return document, None

@@ -90,6 +90,7 @@ _SECTIONS = {
     "response": {"properties", "field_au", "ratio", "levels", "origin", "differentiate", "route",
                  "symmetry", "window",
                  "nuclear_relaxation"},
+    "geometry": {"optimize", "method", "functional", "basis", "criteria", "max_steps"},
     "scf": {"energy_conv_tol_au", "max_cycle", "grid_level", "gradient_target",
             "gradient_needed", "solver"},
 }
@@ -202,6 +203,33 @@ class ScfSpec:
         return max(self.gradient_conv_tol, self.gradient_needed)
 
 
+#: Convergence criteria of a geometry optimisation, by name: geomeTRIC's
+#: convergence_energy (Eh), _grms and _gmax (Eh/bohr), _drms and _dmax
+#: (angstrom), the values of the sets geomeTRIC names GAU, GAU_TIGHT and
+#: GAU_VERYTIGHT (from its documentation, from memory; passed explicitly).
+GEOMETRY_CRITERIA = {
+    "standard": {"energy": 1e-6, "grms": 3e-4, "gmax": 4.5e-4, "drms": 1.2e-3, "dmax": 1.8e-3},
+    "tight": {"energy": 1e-6, "grms": 1e-5, "gmax": 1.5e-5, "drms": 4e-5, "dmax": 6e-5},
+    "very-tight": {"energy": 1e-6, "grms": 1e-6, "gmax": 2e-6, "drms": 4e-6, "dmax": 6e-6},
+}
+
+
+@dataclass(frozen=True)
+class GeometrySpec:
+    """A geometry optimisation before the response ([geometry]): at the job's
+    own model, or at ``method``/``functional``/``basis`` when given."""
+
+    optimize: bool = False
+    method: str | None = None
+    functional: str | None = None
+    basis: str | None = None
+    criteria: str = "tight"
+    max_steps: int = 100
+
+    def thresholds(self) -> dict[str, float]:
+        return dict(GEOMETRY_CRITERIA[self.criteria])
+
+
 @dataclass(frozen=True)
 class Job:
     """A validated job; ``path`` is the job file it came from."""
@@ -211,6 +239,10 @@ class Job:
     model: ModelSpec
     response: ResponseSpec
     scf: ScfSpec = field(default_factory=lambda: ScfSpec(1e-12, 1e-8, 200, None))
+    geometry: GeometrySpec = field(default_factory=GeometrySpec)
+    #: What the optimisation did (its stored document), once the molecule's
+    #: coordinates are the optimised ones; None before, or without one.
+    optimisation: dict | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """The job as understood, every default filled in (for the result JSON)."""
@@ -229,6 +261,8 @@ class Job:
                          "origin": (self.response.origin if isinstance(self.response.origin, str)
                                     else list(self.response.origin))},
             "scf": asdict(self.scf),
+            "geometry": {**asdict(self.geometry), "thresholds": self.geometry.thresholds()},
+            "optimisation": self.optimisation,
         }
 
 
@@ -731,4 +765,36 @@ def job_from_tables(shown: str, job_path: Path, data: dict[str, Any]) -> Job:
     response = _parse_response(shown, data["response"], model.method, scale)
     scf = _parse_scf(shown, data.get("scf", {}), model.method, response.max_order,
                      response.route, molecule.multiplicity > 1, response.field_au)
-    return Job(shown, molecule, model, response, scf)
+    geometry = _parse_geometry(shown, data.get("geometry", {}), model)
+    return Job(shown, molecule, model, response, scf, geometry)
+
+
+#: Methods whose nuclear gradients PySCF has (for [geometry] optimize).
+GRADIENT_METHODS = ("hf", "dft", "mp2")
+
+
+def _parse_geometry(path: str, table: dict[str, Any], model: ModelSpec) -> GeometrySpec:
+    r = _Reader(path, "geometry", table)
+    optimize = table.get("optimize", False)
+    if not isinstance(optimize, bool):
+        raise r.fail("optimize", f"must be true or false, got {optimize!r}")
+    others = [k for k in table if k != "optimize"]
+    if others and not optimize:
+        raise r.fail(others[0], "is given but optimize is not true; set optimize = true or "
+                     "remove it")
+    method = r.string("method", None, METHODS) if r.has("method") else None
+    functional = r.string("functional") if r.has("functional") else None
+    basis = r.string("basis") if r.has("basis") else None
+    effective = method or model.method
+    if effective == "dft" and (functional or (model.functional if method in (None, "dft")
+                                              else None)) is None:
+        raise r.fail("functional", "is missing; method = \"dft\" needs a functional")
+    if effective != "dft" and functional is not None:
+        raise r.fail("functional", f"is given but the optimisation's method is {effective!r}")
+    if optimize and effective not in GRADIENT_METHODS:
+        raise r.fail("method", f"= {effective!r} has no nuclear gradient in fieldprop; optimise "
+                     f"at one of {', '.join(GRADIENT_METHODS)} (give [geometry] method and "
+                     "basis)")
+    criteria = r.string("criteria", "tight", tuple(GEOMETRY_CRITERIA))
+    max_steps = r.integer("max_steps", 100, low=1)
+    return GeometrySpec(optimize, method, functional, basis, criteria, max_steps)

@@ -36,8 +36,8 @@ from fieldprop import errors
 from fieldprop.campaign import Campaign, Candidate
 from fieldprop.engine import (Prepared, RunResult, analyse, failed_points_error, gather,
                               point_counts, settle)
-from fieldprop.execute import campaign_point, campaign_reference, init_campaign_worker, \
-    predecessors
+from fieldprop.execute import campaign_optimise, campaign_point, campaign_reference, \
+    init_campaign_worker, predecessors
 from fieldprop.records import PointFailure, PointTask
 
 logger = logging.getLogger(__name__)
@@ -129,6 +129,7 @@ class MoleculeOutcome:
 @dataclass
 class _State:
     candidate: Candidate
+    job: object = None  # the candidate's job at its optimised geometry, if optimised
     prepared: Prepared | None = None
     found: dict = field(default_factory=dict)  # plan index -> PointRecord
     reference: object = None  # ZeroFieldReference, or its Dask future
@@ -161,8 +162,10 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
     text); ``on_result(outcome)`` is called as each molecule finishes."""
     start = time.perf_counter()
     states = [_State(c, outcome=MoleculeOutcome(c)) for c in campaign.candidates]
+    _optimise(states, store, pool, progress)
     for state in states:
-        _prepare(state, store, retry_failed)
+        if not state.outcome.failure:
+            _prepare(state, store, retry_failed)
     bar = tqdm(total=0, desc="field points", unit="pt", disable=not progress, leave=False)
     lines = _Lines(log_every_s) if log_every_s is not None and not progress else None
     pending: dict = {}  # future -> (state, task)
@@ -310,12 +313,52 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
     return outcomes, counts
 
 
+def _optimise(states, store, pool, progress: bool) -> None:
+    """Geometry optimisations first ([geometry] optimize), in the pool, one
+    task per molecule whose optimised geometry is not stored; each result is
+    stored at once. A failed optimisation fails its molecule."""
+    from fieldprop.engine import geometry_key, with_geometry
+
+    pending = {}
+    for state in states:
+        job = state.candidate.job
+        if not job.geometry.optimize:
+            continue
+        key = geometry_key(job)
+        document = store.get_geometry(key)
+        if document is not None:
+            state.job = with_geometry(job, document)
+        else:
+            pending[pool.submit(campaign_optimise, job, pool.threads)] = (state, key)
+    if not pending:
+        return
+    logger.info("optimising %d geometr%s", len(pending), "y" if len(pending) == 1 else "ies")
+    bar = tqdm(total=len(pending), desc="geometries", unit="mol", disable=not progress,
+               leave=False)
+    try:
+        while pending:
+            for future in pool.first_done(pending):
+                state, key = pending.pop(future)
+                document, failure = future.result()
+                bar.update()
+                if failure is not None:
+                    state.outcome.failure, state.outcome.kind = failure
+                    continue
+                store.put_geometry(key, document)
+                state.job = with_geometry(state.candidate.job, document)
+    except BaseException:
+        bar.close()
+        pool.close(abort=True)
+        raise
+    bar.close()
+
+
 def _prepare(state: _State, store, retry_failed: bool) -> None:
     """The molecule's plan, its points found in the store, its stored
     reference; a model PySCF refuses for it fails the molecule, not the set."""
     out = state.outcome
     try:
-        prepared, rows = gather(state.candidate.job, store)
+        prepared, rows = gather(state.job or state.candidate.job, store)
     except errors.FieldpropError as exc:
         out.failure, out.kind = str(exc), type(exc).__name__
         return

@@ -9,7 +9,7 @@ functions, core electrons, PySCF version): any process can compute any point
 later without redoing zero field, and the analysis of stored points needs no
 PySCF at all.
 
-File format (``SCHEMA_VERSION`` 3; an older store is migrated when opened
+File format (``SCHEMA_VERSION`` 4; an older store is migrated when opened
 for writing, and read as it is otherwise), SQLite from the standard library, WAL
 journal, a busy timeout so several processes can share one file, one
 transaction per finished point:
@@ -25,6 +25,11 @@ transaction per finished point:
   created_at)``: ``status`` is ``ok``
   or ``failed``; vectors, matrices and lists are JSON text (floats round-trip
   exactly);
+- ``geometries(geometry_key, document, created_at, host, version)``: geometries
+  optimised before a job's response (``[geometry] optimize``), keyed by the
+  starting geometry, the optimisation's model and its criteria; ``document``
+  JSON (coordinates in bohr, energy, steps, criteria), so a rerun does not
+  optimise again;
 - ``todo_lists(list_key, point_keys, created_at)``: the points of a plan still
   to compute, as fixed by ``fieldprop plan --count`` (a JSON list of point keys
   in plan order), so that ``fieldprop point --index N`` maps array element N to
@@ -63,17 +68,21 @@ from fieldprop.records import PointFailure, PointRecord, SymmetryOperation, Zero
 logger = logging.getLogger(__name__)
 
 FORMAT = "fieldprop-store"
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 #: Migrations of older schemas, applied when a store is opened for writing:
 #: schema 1 -> 2 adds points.energy_scale_au (the energy's rounding scale);
 #: 2 -> 3 adds the todo_lists table. A store of an older schema opened
 #: read-only reads a missing column as NULL, and has no to-do lists.
 _TO_DO_LISTS_TABLE = ("CREATE TABLE todo_lists (list_key TEXT PRIMARY KEY, point_keys TEXT NOT NULL, "
                "created_at TEXT NOT NULL)")
+_GEOMETRIES_TABLE = ("CREATE TABLE geometries (geometry_key TEXT PRIMARY KEY, "
+                     "document TEXT NOT NULL, created_at TEXT NOT NULL, host TEXT NOT NULL, "
+                     "version TEXT NOT NULL)")
 _MIGRATIONS = {
     1: ["ALTER TABLE points ADD COLUMN energy_scale_au REAL",
         "UPDATE meta SET value = '2' WHERE name = 'schema'"],
     2: [_TO_DO_LISTS_TABLE, "UPDATE meta SET value = '3' WHERE name = 'schema'"],
+    3: [_GEOMETRIES_TABLE, "UPDATE meta SET value = '4' WHERE name = 'schema'"],
 }
 #: Default store file name, in the job file's folder: jobs in one folder share it.
 DEFAULT_NAME = "fieldprop-points.sqlite"
@@ -119,7 +128,7 @@ CREATE TABLE points (
     created_at TEXT NOT NULL
 );
 CREATE INDEX points_by_model ON points (model_key);
-""" + _TO_DO_LISTS_TABLE + ";\n"
+""" + _TO_DO_LISTS_TABLE + ";\n" + _GEOMETRIES_TABLE + ";\n"
 
 _RECORD_COLUMNS = ("energy_au", "scf_energy_au", "dipole_au", "alpha_au", "scf_cycles",
                    "attempts", "s2", "occupied_overlap", "gradient_norm", "dipole_error_au",
@@ -330,6 +339,22 @@ class PointStore:
                              "created_at = excluded.created_at",
                              (list_key, json.dumps(list(point_keys)), created))
         return created
+
+    def put_geometry(self, geometry_key: str, document: dict) -> None:
+        """Keep an optimised geometry (a JSON document; an existing one stays)."""
+        with self._db:
+            self._db.execute("INSERT OR IGNORE INTO geometries VALUES (?, ?, ?, ?, ?)",
+                             (geometry_key, json.dumps(document), _now(), socket.gethostname(),
+                              __version__))
+
+    def get_geometry(self, geometry_key: str) -> dict | None:
+        """An optimised geometry's document, or None (also for an older store)."""
+        try:
+            row = self._db.execute("SELECT document FROM geometries WHERE geometry_key = ?",
+                                   (geometry_key,)).fetchone()
+        except sqlite3.OperationalError:  # an older schema, opened read-only
+            return None
+        return None if row is None else json.loads(row[0])
 
     def get_todo(self, list_key: str) -> tuple[list[str], str] | None:
         """(point keys, time fixed) of a plan's to-do list, or None."""

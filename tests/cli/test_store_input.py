@@ -479,8 +479,10 @@ def test_a_schema_1_store_is_read_as_it_is_and_migrated_when_written(tmp_path):
 
     path = tmp_path / "points.sqlite"
     old_schema = store_module._SCHEMA.replace("    energy_scale_au REAL,\n", "").replace(
-        store_module._TO_DO_LISTS_TABLE + ";", "")
+        store_module._TO_DO_LISTS_TABLE + ";", "").replace(
+        store_module._GEOMETRIES_TABLE + ";", "")
     assert "energy_scale_au" not in old_schema and "todo_lists" not in old_schema
+    assert "geometries" not in old_schema
     with sqlite3.connect(path) as db:
         db.executescript(old_schema)
         db.executemany("INSERT INTO meta VALUES (?, ?)", [
@@ -496,6 +498,7 @@ def test_a_schema_1_store_is_read_as_it_is_and_migrated_when_written(tmp_path):
     with PointStore.open(path, read_only=True) as store:
         row = store.get_points(["k1"])["k1"]
         assert store.get_todo("any") is None  # no to-do lists in schema 1
+        assert store.get_geometry("any") is None  # nor geometries
     assert row.fields["energy_au"] == -1.5 and row.fields["energy_scale_au"] == 0.0
     assert path.read_bytes() == before and not journal_files(path)
     with PointStore.open(path) as store:
@@ -503,9 +506,11 @@ def test_a_schema_1_store_is_read_as_it_is_and_migrated_when_written(tmp_path):
         assert row.fields["scf_cycles"] == 7 and row.fields["energy_scale_au"] == 0.0
         store.put_todo("plan", ["k1", "k2"])
         assert store.get_todo("plan")[0] == ["k1", "k2"]
+        store.put_geometry("g", {"coords_bohr": [[0.0, 0.0, 0.0]]})
+        assert store.get_geometry("g") == {"coords_bohr": [[0.0, 0.0, 0.0]]}
     with sqlite3.connect(path) as db:
         schema = db.execute("SELECT value FROM meta WHERE name = 'schema'").fetchone()[0]
         columns = {r[1] for r in db.execute("PRAGMA table_info(points)")}
     db.close()
-    assert schema == str(store_module.SCHEMA_VERSION) == "3"
+    assert schema == str(store_module.SCHEMA_VERSION) == "4"
     assert "energy_scale_au" in columns
