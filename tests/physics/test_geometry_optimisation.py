@@ -1,0 +1,110 @@
+"""[geometry] optimize: geomeTRIC through PySCF before the response.
+
+Water at HF/6-31G: the textbook trend of the model (a longer bond and a wider
+angle than experiment's 0.958 angstrom and 104.5 degrees: about 0.950 angstrom
+and 111.5 degrees at HF/6-31G without polarisation functions; values from
+memory), and a zero gradient: the largest component of PySCF's analytic
+gradient, computed here at the optimised coordinates, below the criteria's
+largest-gradient threshold.
+"""
+
+import math
+import textwrap
+
+import numpy as np
+import pytest
+
+from fieldprop.cli import main
+from fieldprop.job import GEOMETRY_CRITERIA
+
+pytest.importorskip("pyscf")
+
+JOB = textwrap.dedent("""
+    [molecule]
+    geometry = \"\"\"
+    O 0 0 0.1
+    H 0 0.8 -0.45
+    H 0 -0.8 -0.45
+    \"\"\"
+    [model]
+    method = "hf"
+    basis = "6-31g"
+    [response]
+    properties = ["dipole", "alpha"]
+    [geometry]
+    optimize = true
+    """)
+
+
+def test_optimised_water_has_the_hf_631g_shape_and_no_gradient(tmp_path, capsys):
+    from pyscf import gto, scf
+
+    path = tmp_path / "water.toml"
+    path.write_text(JOB)
+    assert main(["run", str(path), "--quiet"]) == 0
+    capsys.readouterr()
+    import json
+
+    doc = json.loads((tmp_path / "water.result.json").read_text())
+    xyz = (tmp_path / "water.optimised.xyz").read_text().splitlines()
+    assert xyz[0] == "3" and "optimised at hf/6-31g" in xyz[1]
+    coords = np.array([a["coords_bohr"] for a in doc["job"]["molecule"]["atoms"]])
+    o, h1, h2 = coords * 0.529177210544
+    r1, r2 = np.linalg.norm(h1 - o), np.linalg.norm(h2 - o)
+    angle = math.degrees(math.acos((h1 - o) @ (h2 - o) / (r1 * r2)))
+    assert 0.945 < r1 < 0.955 and abs(r1 - r2) < 1e-4
+    assert 110.5 < angle < 112.5
+    opt = doc["job"]["optimisation"]
+    assert opt["criteria"] == "tight" and opt["thresholds"] == GEOMETRY_CRITERIA["tight"]
+    # An independent gradient at the coordinates the response used.
+    mol = gto.M(atom=[("O", coords[0]), ("H", coords[1]), ("H", coords[2])], unit="Bohr",
+                basis="6-31g", verbose=0)
+    mf = scf.RHF(mol)
+    mf.conv_tol, mf.conv_tol_grad = 1e-12, 1e-9
+    mf.kernel()
+    gradient = mf.nuc_grad_method().kernel()
+    assert np.abs(gradient).max() < GEOMETRY_CRITERIA["tight"]["gmax"]
+    assert opt["largest_gradient_au"] < GEOMETRY_CRITERIA["tight"]["gmax"]
+
+
+def test_a_rerun_takes_the_optimised_geometry_from_the_store(tmp_path, capsys, monkeypatch):
+    from fieldprop import backend_pyscf
+
+    path = tmp_path / "water.toml"
+    path.write_text(JOB)
+    assert main(["run", str(path), "--quiet"]) == 0
+    first = (tmp_path / "water.result.json").read_text()
+
+    def tripwire(*args, **kwargs):
+        raise AssertionError("optimised again")
+
+    monkeypatch.setattr(backend_pyscf, "optimize_geometry", tripwire)
+    assert main(["run", str(path)]) == 0
+    err = capsys.readouterr().err
+    assert "the optimised geometry from" in err
+    assert (tmp_path / "water.result.json").read_text().count('"coords_bohr"') == \
+        first.count('"coords_bohr"')
+    # collect needs no optimisation either: the store has it.
+    assert main(["collect", str(path), "--quiet"]) == 0
+
+
+def test_plan_before_the_optimisation_is_incomplete_and_bad_options_are_refused(tmp_path,
+                                                                                  capsys):
+    path = tmp_path / "water.toml"
+    path.write_text(JOB)
+    assert main(["point", str(path), "--zero-field", "--quiet"]) == 0  # creates the store
+    capsys.readouterr()
+    other = tmp_path / "other.toml"
+    other.write_text(JOB.replace("optimize = true", 'optimize = true\ncriteria = "standard"'))
+    assert main(["plan", str(other), "--count"]) == 3
+    assert "optimised geometry" in capsys.readouterr().err
+    for extra, key in (('method = "ccsd"\nbasis = "sto-3g"', "method"),
+                       ('criteria = "loose-ish"', "criteria")):
+        bad = tmp_path / "bad.toml"
+        bad.write_text(JOB.replace("optimize = true", "optimize = true\n" + extra))
+        assert main(["run", str(bad)]) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and "[geometry]" in err[0] and key in err[0]
+    bad.write_text(JOB.replace("optimize = true", 'basis = "sto-3g"'))
+    assert main(["run", str(bad)]) == 2
+    assert "optimize is not true" in capsys.readouterr().err
