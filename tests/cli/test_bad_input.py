@@ -265,7 +265,7 @@ CASES = [
     ("unknown_key_in_response", job(response={"field": "0.001"}), {},
      ["{job}: [response] unknown key 'field'", "valid keys:", "field_au", "ratio"], []),
     ("unknown_section", job(output={"format": '"json"'}), {},
-     ["{job}: unknown section [output]", "[molecule], [model], [response], [scf]"], []),
+     ["{job}: unknown section [output]", "[molecule], [model], [response], [geometry], [scf]"], []),
     ("section_not_a_table", job(before="scf = 5"), {},
      ["{job}: scf must be a [scf] table"], []),
     ("missing_model", job(drop=("model",)), {},
