@@ -10,9 +10,11 @@ the end:
 1. the zero-field point of every molecule whose reference is not stored
    (it is the warm start and the state reference of that molecule's points),
    before any field point;
-2. then the field points of all molecules interleaved (a molecule at a time,
-   in turn), each preferably once the points it starts from are done (their
-   converged orbitals go with it, as in a single run);
+2. then the field points, a molecule's before the next one's, but any
+   molecule's points fill a worker that would otherwise wait (at the end of
+   a stage, or of the campaign); each point preferably once the points it
+   starts from are done (their converged orbitals go with it, as in a single
+   run);
 3. when a molecule's points are all done, its adaptive window is settled
    again (:func:`fieldprop.engine.settle`): a new stage joins the pool, or the
    molecule is analysed.
@@ -169,7 +171,6 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
     bar = tqdm(total=0, desc="field points", unit="pt", disable=not progress, leave=False)
     lines = _Lines(log_every_s) if log_every_s is not None and not progress else None
     pending: dict = {}  # future -> (state, task)
-    turn = 0
 
     def finish_molecule(state: _State) -> None:
         out = state.outcome
@@ -205,16 +206,18 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
         bar.refresh()
 
     def pick():
-        """The next (state, task): a zero field first, then molecules in turn."""
-        nonlocal turn
+        """The next (state, task): a zero field first; then the points of the
+        first molecule in the set that has any to send, so that a worker
+        mostly stays with one molecule (its model context, the integrals and
+        the zero-field response, is built once per worker and molecule, not
+        once per point), while any molecule's points fill a worker that would
+        idle."""
         for state in states:
             if state.queue and state.queue[0].is_zero_field:
                 return state, state.queue.pop(0)
-        ready = [s for s in states if s.queue and s.reference is not None]
-        if not ready:
+        state = next((s for s in states if s.queue and s.reference is not None), None)
+        if state is None:
             return None
-        state = ready[turn % len(ready)]
-        turn += 1
         done = set(state.found)
         task = next((t for t in state.queue if done.issuperset(state.before.get(
             t.point.index, ()))), state.queue[0])

@@ -78,7 +78,7 @@ def main() -> None:
                      f"{60 * points / wall:.0f}", f"{1 - busy / (2 * wall):.2f}"])
         print("ten molecules from SMILES, HF/6-31G, mu, alpha, beta (adaptive window):")
         print(tabulate(rows, headers=["pool", "points", "wall time (s)", "points / min",
-                                      "share of worker time outside a point's SCF"]))
+                                      "share of worker time outside field points (zero field, set-up, idle)"]))
         base = results["1 local worker x 1 thread"]
         print(f"speed-up over 1 worker x 1 thread: 1 x 2 threads "
               f"{base / results['1 local worker x 2 threads']:.2f}, 2 workers x 1 thread "
