@@ -411,6 +411,9 @@ def campaign_point(task: PointTask, reference: ZeroFieldReference, solved: dict,
     if context is None:
         context = ModelContext(task.molecule, task.model, task.scf, reference)
         _keep_context(task.model_key, context)
+    # The start comes from ``solved`` alone, not from whatever else this
+    # worker solved before: the same task gives the same numbers anywhere.
+    context.solved.clear()
     outcome = run_task(context, task, solved)
     key = field_key(task.point.field_vector_au)
     return outcome, (context.solved.get(key) if isinstance(outcome, PointRecord) else None)

@@ -198,9 +198,15 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
         if not todo:
             finish_molecule(state)
             return
-        tasks = list(state.prepared.tasks)
+        # Predecessors among the points this stage uses (computed, or found
+        # computed): a point is sent once they are done, with their converged
+        # orbitals and nothing else, so its start, and with it every number,
+        # does not depend on the schedule (a Dask cluster gives a serial run's
+        # numbers bit for bit).
+        tasks = [t for t in state.prepared.computed_tasks if not t.is_zero_field]
         order = predecessors(tasks)
-        state.before = {i: order[i] for i in range(len(tasks))}
+        state.before = {t.point.index: tuple(tasks[j].point.index for j in order[i])
+                        for i, t in enumerate(tasks)}
         state.queue = todo
         bar.total += len(todo)
         bar.refresh()
@@ -211,18 +217,21 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
         mostly stays with one molecule (its model context, the integrals and
         the zero-field response, is built once per worker and molecule, not
         once per point), while any molecule's points fill a worker that would
-        idle."""
+        idle; of a molecule's points, one whose predecessors are done (None
+        when no point anywhere is ready: wait for one to finish)."""
         for state in states:
             if state.queue and state.queue[0].is_zero_field:
                 return state, state.queue.pop(0)
-        state = next((s for s in states if s.queue and s.reference is not None), None)
-        if state is None:
-            return None
-        done = set(state.found)
-        task = next((t for t in state.queue if done.issuperset(state.before.get(
-            t.point.index, ()))), state.queue[0])
-        state.queue.remove(task)
-        return state, task
+        for state in states:
+            if not state.queue or state.reference is None:
+                continue
+            done = set(state.found)
+            task = next((t for t in state.queue if done.issuperset(state.before.get(
+                t.point.index, ()))), None)
+            if task is not None:
+                state.queue.remove(task)
+                return state, task
+        return None
 
     def send() -> bool:
         chosen = pick()
