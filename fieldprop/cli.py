@@ -950,7 +950,8 @@ def cmd_screen(args) -> int:
     store_anchor = args.set
     with _open_store(args, store_anchor) as store:
         outcomes, counts = run_campaign(campaign, store, pool, progress=bar,
-                                        log_every_s=log_every, on_result=keep)
+                                        log_every_s=log_every, on_result=keep,
+                                        retry_failed=args.retry_failed)
     entries = []
     for o in outcomes:
         if o.result is not None:

@@ -221,3 +221,14 @@ def test_a_killed_campaign_resumes_without_recomputing_finished_points(tmp_path)
     reused = int(closing.split("computed, ")[1].split()[0])
     assert reused == kept  # every point stored before the kill was reused
     assert computed + reused == _stored_points(store)
+
+
+def test_the_example_set_is_a_valid_set():
+    from fieldprop.campaign import load_set
+
+    path = Path(__file__).resolve().parents[2] / "configs" / "chromophores.toml"
+    campaign = load_set(path)
+    assert [c.name for c in campaign.candidates] == ["aminopropenal", "aminoacrylonitrile",
+                                                     "nitroethenamine", "propenal"]
+    assert all(c.job.geometry.optimize and c.job.molecule.charge == 0
+               and c.job.molecule.source.startswith("smiles ") for c in campaign.candidates)
