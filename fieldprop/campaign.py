@@ -98,9 +98,11 @@ def load_set(path: str | Path) -> Campaign:
         if key not in SET_KEYS:
             raise _fail(shown, f"unknown key or table {key!r}; valid: {', '.join(sorted(SET_KEYS))}")
     for table in ("model", "response"):
-        if not isinstance(data.get(table), dict):
+        if table not in data:
             raise _fail(shown, f"[{table}] is missing; the set's molecules share one [model] "
                         "and one [response]")
+        if not isinstance(data[table], dict):
+            raise _fail(shown, f"{table} must be a [{table}] table")
     shared = {k: data[k] for k in ("model", "response", "scf", "geometry") if k in data}
     entries: list[tuple[str, str, dict, str | None]] = []  # name, source, molecule table, smiles
     if "xyz_dir" in data:
@@ -153,20 +155,22 @@ def load_set(path: str | Path) -> Campaign:
         if source in ("xyz", "xyz_dir") and not (set_path.parent / str(table["xyz"])).is_file():
             raise _fail(shown, f"{where}: xyz file {table['xyz']!r} not found (relative to the "
                         "set file)")
+        made = ""
         if smiles is not None:
-            molecule = _from_smiles(shown, where, smiles, molecule)
+            molecule, made = _from_smiles(shown, where, smiles, molecule)
         job = job_from_tables(f"{shown} ({where})", set_path,
                               {"molecule": molecule, **shared})
         if smiles is not None:
             job = dataclasses.replace(job, molecule=dataclasses.replace(
-                job.molecule, source=f"smiles {smiles}"))
+                job.molecule, source=f"smiles {smiles} ({made})"))
         candidates.append(Candidate(name, source, job, smiles))
     return Campaign(shown, tuple(candidates))
 
 
-def _from_smiles(shown: str, where: str, smiles, molecule: dict) -> dict:
+def _from_smiles(shown: str, where: str, smiles, molecule: dict) -> tuple[dict, str]:
     """The molecule table with the SMILES' 3D geometry (angstrom) and its
-    charge and multiplicity, checked against those given."""
+    charge and multiplicity, checked against those given; and how the
+    structure was made."""
     from fieldprop.structures import from_smiles
 
     if not isinstance(smiles, str) or not smiles.strip():
@@ -183,5 +187,5 @@ def _from_smiles(shown: str, where: str, smiles, molecule: dict) -> dict:
         if given != implied:
             raise _fail(shown, f"{where}: {key} = {given!r} disagrees with smiles {smiles!r}, "
                         f"which implies {key} {implied}")
-    return {**molecule, "geometry": structure.geometry_text(), "charge": structure.charge,
-            "multiplicity": structure.multiplicity}
+    return ({**molecule, "geometry": structure.geometry_text(), "charge": structure.charge,
+             "multiplicity": structure.multiplicity}, structure.provenance)

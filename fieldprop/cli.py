@@ -925,7 +925,6 @@ def cmd_screen(args) -> int:
     if needed not in props:
         raise InputError(f"--rank-by {key}: needs {needed}, which the set's [response] "
                          f"properties ({', '.join(props)}) do not compute")
-    results.mkdir(parents=True, exist_ok=True)
     if args.scheduler or args.scheduler_file:
         pool = DaskPool(args.scheduler, str(args.scheduler_file) if args.scheduler_file else None,
                         threads=args.threads)
@@ -936,19 +935,20 @@ def cmd_screen(args) -> int:
                 campaign.candidates[0].job.model.method, campaign.candidates[0].job.model.basis,
                 pool.label)
     bar, log_every = _progress(args)
-    written: dict[str, Path] = {}
 
     def keep(outcome) -> None:
+        path = results / f"{outcome.candidate.name}.result.json"
         if outcome.result is not None:
-            path = results / f"{outcome.candidate.name}.result.json"
             write_json_atomic(result_document(outcome.result), path)
-            written[outcome.candidate.name] = path
             if outcome.result.job.optimisation is not None:
                 write_xyz(outcome.result.job,
                           results / f"{outcome.candidate.name}.optimised.xyz")
+        elif path.exists():  # an earlier campaign's result must not pass for this one's
+            path.unlink()
+            logger.info("%s: removed (from an earlier campaign; this one failed)", path)
 
-    store_anchor = args.set
-    with _open_store(args, store_anchor) as store:
+    with _open_store(args, args.set) as store:
+        results.mkdir(parents=True, exist_ok=True)
         outcomes, counts = run_campaign(campaign, store, pool, progress=bar,
                                         log_every_s=log_every, on_result=keep,
                                         retry_failed=args.retry_failed)
@@ -962,12 +962,16 @@ def cmd_screen(args) -> int:
                                               _model_text(o.candidate.job)))
     rows = ranking.rank(entries, key)
     if args.csv is not None and not is_stdout(args.csv):
-        with open(args.csv, "w", encoding="utf-8", newline="") as out:
+        part = args.csv.with_name(args.csv.name + ".part")
+        with open(part, "w", encoding="utf-8", newline="") as out:
             ranking.write_csv(rows, args.units, out)
+        os.replace(part, args.csv)
         logger.info("ranked table written to %s", args.csv)
     if any(r.rank is not None for r in rows):
         ranking.write_png(rows, key, args.units, png)
         logger.info("summary picture written to %s", png)
+    elif png.exists():
+        png.unlink()  # an earlier campaign's picture: nothing is ranked now
     logger.info("%d molecules: %d done, %d failed; %d field points computed, %d reused; "
                 "%d SCF cycles; %.1f s; results in %s", counts.molecules,
                 counts.molecules - counts.failed, counts.failed, counts.computed, counts.reused,

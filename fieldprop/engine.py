@@ -275,22 +275,18 @@ def _estimates(prepared: Prepared, records, windows, active, missing):
 
 
 def geometry_key(job: Job) -> str:
-    """The store key of a job's optimised geometry: the starting nuclei (bohr,
-    to 1e-10), charge and multiplicity, the optimisation's model, criteria
-    and step limit."""
+    """The store key of a job's optimised geometry: the starting nuclei (as
+    :func:`fieldprop.keys.model_document` fixes them), charge, multiplicity,
+    the optimisation's model (method, functional, basis, reference, density
+    fitting, DFT grid), the numerics version, the criteria and step limit."""
     from fieldprop.backend_pyscf import optimisation_model
     from fieldprop.keys import digest
 
     model = optimisation_model(job)
-    return digest({"kind": "fieldprop-geometry",
-                   "atoms": [[a.symbol, [round(v, 10) for v in a.coords_bohr]]
-                             for a in job.molecule.atoms],
-                   "charge": job.molecule.charge, "multiplicity": job.molecule.multiplicity,
-                   "model": {"method": model.method, "functional": model.functional,
-                             "basis": model.basis if isinstance(model.basis, str)
-                             else [list(p) for p in model.basis],
-                             "reference": model.reference, "cartesian": model.cartesian,
-                             "frozen_core": model.frozen_core},
+    molecule = build_molecule(job.molecule, job.response.origin)
+    document = model_document(molecule, model, job.scf)
+    document["scf"] = {"grid_level": job.scf.grid_level}  # the optimiser's SCF is its own
+    return digest({"kind": "fieldprop-geometry", "model": document,
                    "criteria": job.geometry.thresholds(), "max_steps": job.geometry.max_steps})
 
 
@@ -299,8 +295,12 @@ def with_geometry(job: Job, document: dict) -> Job:
     optimisation) and the document itself as ``job.optimisation``."""
     from fieldprop.job import Atom
 
+    coords = document["coords_bohr"]
+    if len(coords) != len(job.molecule.atoms):
+        raise ValueError(f"{job.path}: a stored optimised geometry has {len(coords)} atoms, "
+                         f"the molecule {len(job.molecule.atoms)}")
     atoms = tuple(Atom(a.symbol, tuple(float(v) for v in xyz))
-                  for a, xyz in zip(job.molecule.atoms, document["coords_bohr"]))
+                  for a, xyz in zip(job.molecule.atoms, coords))
     molecule = dataclasses.replace(job.molecule, atoms=atoms,
                                    source=f"{job.molecule.source}, optimised")
     return dataclasses.replace(job, molecule=molecule, optimisation=document)

@@ -373,7 +373,15 @@ def init_campaign_worker(parent: int, threads: int) -> None:
     set_threads(threads)
 
 
-def _keep_context(key: str, context: ModelContext) -> None:
+def _context_key(model_key: str):
+    """A worker's contexts per model and thread: a Dask worker may run two
+    tasks of one model at once, and a context's solved points are its own."""
+    import threading
+
+    return model_key, threading.get_ident()
+
+
+def _keep_context(key, context: ModelContext) -> None:
     _CONTEXTS[key] = context
     while len(_CONTEXTS) > CONTEXTS_KEPT:
         _CONTEXTS.pop(next(iter(_CONTEXTS)))
@@ -385,8 +393,8 @@ def campaign_reference(task: PointTask, threads: int = 0):
     if threads:
         set_threads(threads)
     start = time.perf_counter()
-    context = ModelContext(task.molecule, task.model, task.scf)
     try:
+        context = ModelContext(task.molecule, task.model, task.scf)
         record, reference = compute_reference(context, task)
     except FieldpropError as exc:
         return PointFailure(task.point, str(exc), type(exc).__name__,
@@ -397,7 +405,7 @@ def campaign_reference(task: PointTask, threads: int = 0):
         return PointFailure(task.point, f"the zero-field point failed inside the backend "
                             f"({type(exc).__name__}: {text})", BackendError.__name__,
                             time.perf_counter() - start), None
-    _keep_context(task.model_key, context)
+    _keep_context(_context_key(task.model_key), context)
     return record, reference
 
 
@@ -407,10 +415,18 @@ def campaign_point(task: PointTask, reference: ZeroFieldReference, solved: dict,
     rotation or None), as _worker_task."""
     if threads:
         set_threads(threads)
-    context = _CONTEXTS.get(task.model_key)
+    key = _context_key(task.model_key)
+    context = _CONTEXTS.get(key)
     if context is None:
-        context = ModelContext(task.molecule, task.model, task.scf, reference)
-        _keep_context(task.model_key, context)
+        start = time.perf_counter()
+        try:
+            context = ModelContext(task.molecule, task.model, task.scf, reference)
+        except Exception as exc:  # noqa: BLE001 - named, never a traceback
+            text = " ".join(str(exc).split())[:300] or "no message"
+            return PointFailure(task.point, f"field point {task.point.label}: the model could "
+                                f"not be set up ({type(exc).__name__}: {text})",
+                                BackendError.__name__, time.perf_counter() - start), None
+        _keep_context(key, context)
     # The start comes from ``solved`` alone, not from whatever else this
     # worker solved before: the same task gives the same numbers anywhere.
     context.solved.clear()

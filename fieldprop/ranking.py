@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import csv
 import math
+import os
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TextIO
@@ -197,5 +198,7 @@ def write_png(rows: list[Row], key: str, units: str, path: Path) -> None:
         ax.set_xlabel(f"alpha_iso ({alpha_label})")
         ax.set_ylabel(f"|{key}| ({label})")
         ax.set_title(f"|{key}| against alpha_iso", fontsize=10)
-    fig.savefig(path, dpi=120)
+    part = Path(path).with_name(Path(path).name + ".part.png")
+    fig.savefig(part, dpi=120)
     plt.close(fig)
+    os.replace(part, path)

@@ -68,7 +68,7 @@ class LocalPool:
 
         return wait(futures, return_when=FIRST_COMPLETED).done
 
-    def close(self, abort: bool = False) -> None:
+    def close(self, abort: bool = False, pending=()) -> None:
         if abort:
             self._pool.shutdown(wait=False, cancel_futures=True)
             for process in list((getattr(self._pool, "_processes", None) or {}).values()):
@@ -90,11 +90,14 @@ class DaskPool:
                                      if scheduler_file else Client(address, timeout="20s"))
         except (OSError, TimeoutError, ValueError) as exc:
             where = scheduler_file or address
-            raise errors.InputError(f"--scheduler {where}: no Dask scheduler answered "
+            option = "--scheduler-file" if scheduler_file else "--scheduler"
+            raise errors.InputError(f"{option} {where}: no Dask scheduler answered "
                                     f"({type(exc).__name__}: {exc})") from None
         self._own = client is None
         self.threads = threads
-        self.slots = max(1, sum(self.client.nthreads().values()))
+        # A task runs ``threads`` BLAS threads: as many tasks at once as the
+        # workers' threads allow.
+        self.slots = max(1, sum(self.client.nthreads().values()) // max(1, threads))
         self.label = f"Dask scheduler {self.client.scheduler.address} ({self.slots} worker " \
                      f"thread{'s' if self.slots != 1 else ''}, {threads} BLAS thread" \
                      f"{'s' if threads != 1 else ''} per task)"
@@ -110,7 +113,9 @@ class DaskPool:
 
         return wait(list(futures), return_when="FIRST_COMPLETED").done
 
-    def close(self, abort: bool = False) -> None:
+    def close(self, abort: bool = False, pending=()) -> None:
+        if abort and pending:  # the cluster is not ours: stop only our tasks
+            self.client.cancel(list(pending))
         if self._own:
             self.client.close()
 
@@ -138,6 +143,7 @@ class _State:
     queue: list = field(default_factory=list)  # PointTasks of this stage still to send
     before: dict = field(default_factory=dict)  # plan index -> predecessor plan indices
     rotations: dict = field(default_factory=dict)
+    computed_now: set = field(default_factory=set)  # plan indices computed in this run
     running: int = 0
     outcome: MoleculeOutcome | None = None
 
@@ -177,15 +183,18 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
         if out.failure:
             logger.error("%s: failed: %s", state.candidate.name, out.failure)
         else:
+            used = {t.point.index for t in state.prepared.computed_tasks}
+            out.reused = len(used & set(state.found)) - len(used & state.computed_now)
             counts = point_counts(state.prepared, out.computed, out.reused)
             out.result = analyse(state.prepared, state.prepared.expand(state.found), counts,
-                                 store.label, 0.0)
+                                 store.label, time.perf_counter() - start)
         if on_result is not None:
             on_result(out)
 
     def fail(state: _State, reason: str, kind: str) -> None:
         state.outcome.failure, state.outcome.kind = reason, kind
         bar.total -= len(state.queue)
+        bar.refresh()
         state.queue = []
         if state.running == 0:
             finish_molecule(state)
@@ -202,7 +211,8 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
         # computed): a point is sent once they are done, with their converged
         # orbitals and nothing else, so its start, and with it every number,
         # does not depend on the schedule (a Dask cluster gives a serial run's
-        # numbers bit for bit).
+        # numbers bit for bit; a resumed campaign has no orbitals of the points
+        # stored before, so its points differ in the last digits).
         tasks = [t for t in state.prepared.computed_tasks if not t.is_zero_field]
         order = predecessors(tasks)
         state.before = {t.point.index: tuple(tasks[j].point.index for j in order[i])
@@ -266,9 +276,15 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
             prepared = state.prepared
             if not store.put_model(task.model_key, prepared.description(), prepared.facts,
                                    extra, (task, outcome)):
+                # Another process stored this model first: its reference and
+                # its zero-field point are the ones every point is checked against.
                 extra = store.get_model(task.model_key)[0]
+                row = store.get_points([task.key]).get(task.key)
+                if row is not None and row.ok:
+                    outcome = row.record(task.point)
             state.reference = pool.share(extra)
             state.found[0] = outcome
+            state.computed_now.add(0)
             out.computed += 1
             out.scf_cycles += outcome.scf_cycles
             next_stage(state)
@@ -288,6 +304,7 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
                 finish_molecule(state)
             return
         state.found[task.point.index] = outcome
+        state.computed_now.add(task.point.index)
         from fieldprop.backend_pyscf import field_key
 
         if extra is not None:
@@ -311,13 +328,25 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
                 break
             for future in pool.first_done(pending):
                 state, task = pending.pop(future)
-                received(state, task, future.result())
+                try:
+                    result = future.result()
+                except Exception as exc:  # noqa: BLE001 - a lost worker fails one molecule
+                    text = " ".join(str(exc).split())[:200] or "no message"
+                    result = (PointFailure(task.point, f"field point {task.point.label}: its "
+                                           f"worker failed ({type(exc).__name__}: {text})",
+                                           errors.BackendError.__name__), None)
+                received(state, task, result)
     except BaseException:
         bar.close()
-        pool.close(abort=True)
+        pool.close(abort=True, pending=list(pending))
         raise
     bar.close()
     pool.close()
+    for state in states:  # cannot happen: predecessors lie within a stage and are acyclic
+        if not state.done:
+            stuck = len(state.queue)
+            fail(state, f"{state.candidate.name}: {stuck} field points never became ready to "
+                 "compute (a scheduling fault)", "FieldpropError")
     outcomes = [s.outcome for s in states]
     counts = CampaignCounts(len(outcomes), sum(1 for o in outcomes if o.result is None),
                             sum(o.computed for o in outcomes), sum(o.reused for o in outcomes),
@@ -351,7 +380,13 @@ def _optimise(states, store, pool, progress: bool) -> None:
         while pending:
             for future in pool.first_done(pending):
                 state, key = pending.pop(future)
-                document, failure = future.result()
+                try:
+                    document, failure = future.result()
+                except Exception as exc:  # noqa: BLE001 - a lost worker fails one molecule
+                    document, failure = None, (f"{state.candidate.job.path}: [geometry] "
+                                               f"optimize: its worker failed ({type(exc).__name__}"
+                                               f": {' '.join(str(exc).split())[:200]})",
+                                               errors.BackendError.__name__)
                 bar.update()
                 if failure is not None:
                     state.outcome.failure, state.outcome.kind = failure
@@ -360,7 +395,7 @@ def _optimise(states, store, pool, progress: bool) -> None:
                 state.job = with_geometry(state.candidate.job, document)
     except BaseException:
         bar.close()
-        pool.close(abort=True)
+        pool.close(abort=True, pending=list(pending))
         raise
     bar.close()
 
@@ -375,18 +410,18 @@ def _prepare(state: _State, store, retry_failed: bool) -> None:
         out.failure, out.kind = str(exc), type(exc).__name__
         return
     found = {}
+    stage = {t.point.index for t in prepared.computed_tasks}
     for t in prepared.tasks:
         row = rows.get(t.key)
         if row is None or (prepared.images and prepared.images[t.point.index][1] is not None):
             continue
         if row.ok:
             found[t.point.index] = row.record(t.point)
-        elif not retry_failed:
+        elif not retry_failed and t.point.index in stage:
             err = failed_points_error(prepared, [row.failure(t.point)])
             out.failure, out.kind = str(err), row.fields.get("kind", "")
             return
     state.prepared, state.found = prepared, found
-    out.reused = len(found)
     model = store.get_model(prepared.model_key)
     if model is not None and 0 in found:
         state.reference = model[0]

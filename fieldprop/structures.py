@@ -30,6 +30,13 @@ class SmilesStructure:
     charge: int
     multiplicity: int
     force_field: str
+    rdkit_version: str = ""
+
+    @property
+    def provenance(self) -> str:
+        """How the structure was made, for the job's molecule source."""
+        return (f"RDKit {self.rdkit_version}, ETKDG seed {EMBEDDING_SEED}, "
+                f"{self.force_field}")
 
     def geometry_text(self) -> str:
         """``symbol x y z`` lines, angstrom, 10 decimals."""
@@ -40,10 +47,12 @@ class SmilesStructure:
 def from_smiles(smiles: str) -> SmilesStructure:
     """The 3D structure of ``smiles``; ValueError with a short reason when it
     cannot be parsed or embedded."""
-    from rdkit import Chem, RDLogger
+    import rdkit
+    from rdkit import Chem
     from rdkit.Chem import AllChem, Descriptors
+    from rdkit.rdBase import BlockLogs
 
-    RDLogger.DisableLog("rdApp.*")  # its reasons go into our one line instead
+    quiet = BlockLogs()  # RDKit's own messages, while it lives: ours is the one line
     mol = Chem.MolFromSmiles(smiles)
     if mol is None or mol.GetNumAtoms() == 0:
         raise ValueError("RDKit cannot parse it")
@@ -56,16 +65,27 @@ def from_smiles(smiles: str) -> SmilesStructure:
         params.useRandomCoords = True  # RDKit's advice for hard cases; still seeded
         if AllChem.EmbedMolecule(mol, params) != 0:
             raise ValueError("RDKit could not embed it in 3D")
+    force_field = "none (one atom)"
     if mol.GetNumAtoms() > 1:
+        # 0: converged, 1: steps used up (go on), -1: no parameters (UFF instead).
+        status = -1
         if AllChem.MMFFHasAllMoleculeParams(mol):
-            AllChem.MMFFOptimizeMolecule(mol, maxIters=FORCE_FIELD_STEPS)
             force_field = "MMFF94"
-        else:
-            AllChem.UFFOptimizeMolecule(mol, maxIters=FORCE_FIELD_STEPS)
+            for _ in range(3):
+                status = AllChem.MMFFOptimizeMolecule(mol, maxIters=FORCE_FIELD_STEPS)
+                if status != 1:
+                    break
+        if status == -1:
             force_field = "UFF"
-    else:
-        force_field = "none (one atom)"
+            for _ in range(3):
+                status = AllChem.UFFOptimizeMolecule(mol, maxIters=FORCE_FIELD_STEPS)
+                if status != 1:
+                    break
+        if status != 0:
+            raise ValueError(f"RDKit's {force_field} clean-up did not converge; give an xyz "
+                             "geometry instead")
     positions = mol.GetConformer().GetPositions()
+    del quiet
     return SmilesStructure(tuple(a.GetSymbol() for a in mol.GetAtoms()),
                            tuple(tuple(float(v) for v in row) for row in positions),
-                           int(charge), int(multiplicity), force_field)
+                           int(charge), int(multiplicity), force_field, rdkit.__version__)
