@@ -232,3 +232,25 @@ def test_the_example_set_is_a_valid_set():
                                                      "nitroethenamine", "propenal"]
     assert all(c.job.geometry.optimize and c.job.molecule.charge == 0
                and c.job.molecule.source.startswith("smiles ") for c in campaign.candidates)
+
+
+def test_a_campaign_optimises_each_geometry_once(tmp_path):
+    """[geometry] optimize in a set: each molecule optimised in the pool, its
+    XYZ written beside its result, and a rerun takes the geometries from the
+    store (none optimised again, no point computed again)."""
+    path = write_set(tmp_path, '[[molecule]]\nname = "water"\nsmiles = "O"\n'
+                     '[[molecule]]\nname = "hydrogen-fluoride"\nsmiles = "F"\n',
+                     SHARED + "[geometry]\noptimize = true\n")
+    command = [sys.executable, "-m", "fieldprop", "screen", str(path), "--workers", "2"]
+    first = subprocess.run(command, capture_output=True, text=True, timeout=600)
+    assert first.returncode == 0, first.stderr
+    assert "optimising 2 geometries" in first.stderr
+    for name in ("water", "hydrogen-fluoride"):
+        doc = json.loads((tmp_path / "set.results" / f"{name}.result.json").read_text())
+        opt = doc["job"]["optimisation"]
+        assert opt["criteria"] == "tight" and opt["largest_gradient_au"] < 1.5e-5
+        xyz = (tmp_path / "set.results" / f"{name}.optimised.xyz").read_text().splitlines()
+        assert int(xyz[0]) == len(doc["job"]["molecule"]["atoms"])
+    again = subprocess.run(command, capture_output=True, text=True, timeout=600)
+    assert again.returncode == 0, again.stderr
+    assert "optimising" not in again.stderr and " 0 field points computed" in again.stderr
