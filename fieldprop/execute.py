@@ -336,11 +336,22 @@ def _pool(tasks, missing, reference, workers, finish) -> None:
         # the running ones now rather than after their SCF. The executor has no
         # public way to end running workers before Python 3.14, hence the
         # guarded use of its process table.
-        pool.shutdown(wait=False, cancel_futures=True)
-        for process in list((getattr(pool, "_processes", None) or {}).values()):
-            process.terminate()
+        abort_pool(pool)
         raise
     pool.shutdown()
+
+
+def abort_pool(pool) -> None:
+    """End a ProcessPoolExecutor now: queued tasks dropped, running workers
+    terminated, and its manager thread given a moment to close its pipes, so
+    that the interpreter's exit hook does not write to a pipe being closed
+    (a race of Python 3.11's executor that printed an ignored OSError)."""
+    pool.shutdown(wait=False, cancel_futures=True)
+    for process in list((getattr(pool, "_processes", None) or {}).values()):
+        process.terminate()
+    manager = getattr(pool, "_executor_manager_thread", None)
+    if manager is not None:
+        manager.join(timeout=3.0)
 
 
 # ------------------------------------------------------------ tasks of many models

@@ -38,8 +38,8 @@ from fieldprop import errors
 from fieldprop.campaign import Campaign, Candidate
 from fieldprop.engine import (Prepared, RunResult, analyse, failed_points_error, gather,
                               point_counts, settle)
-from fieldprop.execute import campaign_optimise, campaign_point, campaign_reference, \
-    init_campaign_worker, predecessors
+from fieldprop.execute import abort_pool, campaign_optimise, campaign_point, \
+    campaign_reference, init_campaign_worker, predecessors
 from fieldprop.records import PointFailure, PointTask
 
 logger = logging.getLogger(__name__)
@@ -70,9 +70,7 @@ class LocalPool:
 
     def close(self, abort: bool = False, pending=()) -> None:
         if abort:
-            self._pool.shutdown(wait=False, cancel_futures=True)
-            for process in list((getattr(self._pool, "_processes", None) or {}).values()):
-                process.terminate()
+            abort_pool(self._pool)
         else:
             self._pool.shutdown()
 
