@@ -158,10 +158,6 @@ exit codes: 0 every molecule has every number; 1 some molecule failed or lacks a
 interrupted (finished points stay stored: the same command resumes).
 """
 
-#: --rank-by choices (fieldprop.ranking.RANK_KEYS, without importing it here).
-RANK_CHOICES = ("dipole_norm", "alpha_iso", "alpha_aniso", "beta_parallel",
-                "beta_vector_norm", "beta_hrs", "gamma_parallel", "beta_vec")
-
 #: Seconds between progress lines in a batch log (stderr not a terminal).
 DEFAULT_LOG_EVERY_S = 60.0
 
@@ -358,7 +354,9 @@ def build_parser() -> argparse.ArgumentParser:
                             formatter_class=argparse.RawDescriptionHelpFormatter)
     screen.add_argument("set", type=Path, help="set file (TOML): molecules and the model, "
                         "response and geometry options they share")
-    screen.add_argument("--rank-by", choices=RANK_CHOICES, default=None,
+    from fieldprop.ranking import RANK_KEYS
+
+    screen.add_argument("--rank-by", choices=RANK_KEYS, default=None,
                         help="ranking invariant, by magnitude (default: beta_hrs when beta is "
                         "computed, else gamma_parallel, else alpha_iso, else dipole_norm)")
     screen.add_argument("--units", choices=("au", "esu", "si"), default="au",
@@ -914,9 +912,9 @@ def cmd_screen(args) -> int:
     png = args.png or stem.with_name(stem.name + ".summary.png")
     if results.exists() and not results.is_dir():
         raise InputError(f"--results {results}: exists and is not a folder")
-    check_output_path(png, "--png")
+    check_output_path(png, "--png", "summary.png")
     if args.csv is not None and not is_stdout(args.csv):
-        check_output_path(args.csv, "--csv")
+        check_output_path(args.csv, "--csv", "ranked.csv")
     props = campaign.candidates[0].job.response.properties
     key = args.rank_by or next(k for p, k in (("beta", "beta_hrs"), ("gamma", "gamma_parallel"),
                                               ("alpha", "alpha_iso"), ("dipole", "dipole_norm"))

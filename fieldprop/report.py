@@ -412,12 +412,12 @@ def is_stdout(path) -> bool:
     return str(path) == STDOUT
 
 
-def check_output_path(path: Path, what: str = "--json") -> None:
-    """Refuse, before any work, a result path that cannot be written."""
+def check_output_path(path: Path, what: str = "--json", example: str = "result.json") -> None:
+    """Refuse, before any work, an output path that cannot be written."""
     if is_stdout(path):
         return
     if path.is_dir():
-        raise_input(f"{what} {path}: is a directory; give a file name such as result.json")
+        raise_input(f"{what} {path}: is a directory; give a file name such as {example}")
     parent = path.parent if str(path.parent) else Path(".")
     if not parent.is_dir():
         raise_input(f"{what} {path}: folder {str(parent)!r} does not exist; create it first")
