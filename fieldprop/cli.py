@@ -457,6 +457,16 @@ def _at_optimised_geometry(prepared, store, job_path: Path):
     return prepare(job, facts=prepared.facts)
 
 
+def _at_relaxation_minimum(prepared, store):
+    """``prepared`` again at the zero-field minimum the nuclear relaxation is
+    held to (computed now or found in ``store``), when the job asks for it."""
+    from fieldprop.engine import prepare, relaxed_reference
+
+    if not prepared.job.response.nuclear_relaxation:
+        return prepared
+    return prepare(relaxed_reference(prepared.job, store), facts=prepared.facts)
+
+
 def write_xyz(job, path: Path) -> None:
     """The job's molecule as an XYZ file (angstrom), written atomically."""
     from fieldprop.units import BOHR_TO_ANGSTROM
@@ -510,6 +520,7 @@ def cmd_run(args) -> int:
     bar, log_every = _progress(args)
     with _open_store(args, args.job) as store:
         prepared = _at_optimised_geometry(prepared, store, args.job)
+        prepared = _at_relaxation_minimum(prepared, store)
         result = run_prepared(prepared, store, workers=workers, progress=bar,
                               retry_failed=args.retry_failed, log_every_s=log_every)
     # The file first: a closed stdout (``| head``) must not lose the result.

@@ -196,6 +196,8 @@ class RunResult:
     #: As ``Prepared.windows`` and ``Prepared.active`` (the adaptive window).
     windows: tuple = ()
     active: frozenset | None = None
+    #: With [response] nuclear_relaxation: the relaxed points' analysis (None: none).
+    relaxation: "NuclearRelaxation | None" = None
 
     @property
     def energy_au(self) -> float:
@@ -213,14 +215,31 @@ class RunResult:
 
     @property
     def unstable_components(self) -> list[str]:
-        return [c.plan.name + (f" ({c.estimate.reason})" if c.estimate.reason else "")
-                for t in self.tensors.values() for c in t.components
-                if c.estimate.status is ComponentStatus.UNSTABLE]
+        own = [c.plan.name + (f" ({c.estimate.reason})" if c.estimate.reason else "")
+               for t in self.tensors.values() for c in t.components
+               if c.estimate.status is ComponentStatus.UNSTABLE]
+        if self.relaxation is not None:
+            own += [f"{name} with relaxed nuclei"
+                    for name in self.relaxation.total.unstable_components]
+        return own
 
     @property
     def missing_components(self) -> list[str]:
         return [c.plan.name for t in self.tensors.values() for c in t.components
                 if c.estimate.status is ComponentStatus.MISSING]
+
+
+@dataclass(frozen=True)
+class NuclearRelaxation:
+    """The nuclear-relaxation part of a result: ``total`` is the analysis of
+    the relaxed points (electronic plus nuclear relaxation), ``nuclear`` the
+    tensors total less electronic, ``frame`` the zero-field frame's document
+    (backend_pyscf.relaxation_frame), ``counts`` the relaxed points'."""
+
+    total: RunResult
+    nuclear: dict[str, TensorResult]
+    frame: dict
+    counts: PointCounts
 
 
 def settle(prepared: Prepared, found: dict) -> Prepared:
@@ -337,6 +356,88 @@ def optimised(job: Job, store=None, compute: bool = True) -> Job:
     else:
         logger.info("%s: the optimised geometry from %s", job.path, store.label)
     return with_geometry(job, document)
+
+
+def relaxation_key(job: Job, molecule: MoleculeSpec) -> str:
+    """The store key of a job's zero-field relaxation frame: the model's
+    reference key (nuclei, model, SCF), the route (the dipole's tolerance
+    applies on the dipole route) and the relaxation's tolerances."""
+    from fieldprop import relaxation as nr
+    from fieldprop.keys import digest
+
+    return digest({"kind": "fieldprop-relaxation-frame",
+                   "model": model_key(molecule, job.model, job.scf),
+                   "route": str(job.response.route),
+                   "tolerances": [nr.MINIMUM_GRADIENT_AU, nr.ENERGY_TOLERANCE_AU,
+                                  nr.DIPOLE_TOLERANCE_AU, nr.MAX_STEPS, nr.STALL_FACTOR]})
+
+
+def relaxed_reference(job: Job, store=None, compute: bool = True) -> Job:
+    """With [response] nuclear_relaxation: ``job`` at the zero-field minimum
+    of its model (the frame every relaxation is held to: from the store, or
+    computed now and stored; ``job.relaxation`` its document). Refuses
+    (InputError) a geometry that is not a minimum. Without ``compute`` a frame
+    not stored is IncompleteError (exit 3). Otherwise ``job`` itself."""
+    if not job.response.nuclear_relaxation or job.relaxation is not None:
+        return job
+    molecule, _ = symmetric_molecule(job)
+    key = relaxation_key(job, molecule)
+    document = store.get_geometry(key) if store is not None else None
+    if document is None:
+        if not compute:
+            raise IncompleteError(f"{job.path}: [response] nuclear_relaxation: the zero-field "
+                                  f"frame (key {short_id(key)}) is not in "
+                                  f"{store.label if store is not None else 'any store'}; "
+                                  "fieldprop run computes it first")
+        from fieldprop.backend_pyscf import relaxation_frame
+
+        logger.info("%s: the zero-field minimum for nuclear relaxation: gradient, Hessian, "
+                    "dipole derivatives", job.path)
+        document = relaxation_frame(job, molecule, job.response.route is Route.DIPOLE)
+        if store is not None:
+            store.put_geometry(key, document)
+        logger.info("%s: zero-field minimum polished in %d step%s (moved %.1e bohr), lowest "
+                    "harmonic frequency %.0f cm^-1, %.1f s", job.path, document["polish_steps"],
+                    "" if document["polish_steps"] == 1 else "s", document["moved_bohr"],
+                    document["frequencies_cm"][0] if document["frequencies_cm"] else 0.0,
+                    document["wall_time_s"])
+    from fieldprop.job import Atom
+
+    atoms = tuple(Atom(a.symbol, tuple(float(v) for v in xyz))
+                  for a, xyz in zip(job.molecule.atoms, document["coords_bohr"]))
+    molecule_input = dataclasses.replace(job.molecule, atoms=atoms)
+    return dataclasses.replace(job, molecule=molecule_input, relaxation=document)
+
+
+def relax_target(prepared: Prepared):
+    """The RelaxTarget of a prepared job with a relaxation frame."""
+    from fieldprop.records import RelaxTarget
+    from fieldprop.relaxation import Frame
+
+    job = prepared.job
+    doc = job.relaxation
+    frame = Frame.build(doc["coords_bohr"], doc["masses_u"], doc["hessian_cartesian"],
+                        doc["dipole_derivatives_cartesian"])
+    return RelaxTarget(frame, job.response.route is Route.DIPOLE,
+                       relaxation_key(job, prepared.molecule))
+
+
+def relaxed_tasks(prepared: Prepared) -> list[PointTask]:
+    """The relaxed points of the computed tasks (zero field: the clamped
+    point itself, the frame being its minimum), keyed by the clamped point's
+    key and the frame's."""
+    from fieldprop.keys import digest
+
+    target = relax_target(prepared)
+    out = []
+    for task in prepared.computed_tasks:
+        if task.is_zero_field:
+            out.append(task)
+            continue
+        key = digest({"kind": "fieldprop-relaxed-point", "point": task.key,
+                      "frame": target.key})
+        out.append(dataclasses.replace(task, key=key, relax=target))
+    return out
 
 
 def make_plan(job: Job, route: Route | str | None = None, symmetry=None) -> FieldPlan:
@@ -553,6 +654,10 @@ def noise_model(job: Job, records, molecule: MoleculeSpec | None = None) -> Nois
                 # CCSD 4.1e-12 Eh, the (T) correction 3e-13 Eh, the same for
                 # amplitude tolerances 1e-5 to 1e-9); hence ten tolerances.
                 e += CC_TOLERANCES * max(job.scf.energy_conv_tol_au, 1e-12)
+        relaxed = r.relaxation or {}
+        # A relaxed structure's optimiser error: what one more Newton step would
+        # still change (fieldprop.relaxation), twice for safety.
+        e += 2.0 * relaxed.get("energy_change_au", 0.0)
         energy.append(float(e))
         # The dipole's convergence error: ~g for a closed shell (measured 0.9 g for
         # water), more across small gaps. The closed-shell one-step estimate came
@@ -560,7 +665,8 @@ def noise_model(job: Job, records, molecule: MoleculeSpec | None = None) -> Nois
         # full-Hessian one (dipole route) at 0.98-1.01 of it, doubled alike. Plus
         # the dipole's rounding, a sum of ~nao^2 products of the terms' size.
         dipole.append(float(max(g, 2.0 * r.dipole_error_au)
-                            + 10.0 * ENERGY_ULPS * ulp * moments))
+                            + 10.0 * ENERGY_ULPS * ulp * moments
+                            + 2.0 * relaxed.get("dipole_change_au", 0.0)))
         a = 0.0 if r.alpha_au is None else float(np.abs(r.alpha_au).max())
         # Ten CPHF residual tolerances: the solver stops at or below it, and the
         # residual maps into alpha through an operator of norm ~|alpha|.
@@ -631,13 +737,43 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
                 raise failed_points_error(prepared, outcome.failures, retry_failed)
             found.update((r.point.index, r) for r in outcome.records)
             prepared = settle(prepared, found)
+        counts = point_counts(prepared, computed, reused)
+        _log_counts(prepared, counts, store.label)
+        relaxed = None
+        if job.response.nuclear_relaxation:
+            tasks = relaxed_tasks(prepared)
+            logger.info("nuclear relaxation: %d field point%s with the nuclei relaxed",
+                        len(tasks) - 1, "" if len(tasks) == 2 else "s")
+            outcome = compute_points(tasks, store, prepared.facts, prepared.description(),
+                                     workers=workers, progress=progress,
+                                     retry_failed=retry_failed, log_every_s=log_every_s)
+            if outcome.failures:
+                raise failed_points_error(prepared, outcome.failures, retry_failed)
+            relaxed = ({r.point.index: r for r in outcome.records},
+                       point_counts(prepared, outcome.computed, outcome.reused - 1))
     finally:
         if own_store:
             store.close()
-    counts = point_counts(prepared, computed, reused)
-    _log_counts(prepared, counts, store.label)
-    return analyse(prepared, prepared.expand(found), counts, store.label,
-                   time.perf_counter() - start)
+    result = analyse(prepared, prepared.expand(found), counts, store.label,
+                     time.perf_counter() - start)
+    if relaxed is not None:
+        result = with_relaxation(result, prepared, *relaxed)
+    return result
+
+
+def with_relaxation(result: RunResult, prepared: Prepared, relaxed: dict,
+                    counts: PointCounts) -> RunResult:
+    """``result`` (clamped nuclei) with the analysis of the relaxed points
+    ``relaxed`` ({plan index: record} of the computed tasks): total tensors,
+    and the nuclear-relaxation ones as total less electronic."""
+    from fieldprop.tensors import difference
+
+    total = analyse(prepared, prepared.expand(relaxed), counts, result.store, 0.0,
+                    label="with relaxed nuclei")
+    part = NuclearRelaxation(total, difference(total.tensors, result.tensors),
+                             prepared.job.relaxation, counts)
+    return dataclasses.replace(result, relaxation=part,
+                               warnings=result.warnings + total.warnings)
 
 
 def _log_counts(prepared: Prepared, counts: PointCounts, label: str) -> None:
@@ -694,7 +830,7 @@ def _in_frame(records, frame) -> tuple[PointRecord, ...]:
 
 
 def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
-            store_label: str = "", wall_time_s: float = 0.0) -> RunResult:
+            store_label: str = "", wall_time_s: float = 0.0, label: str = "") -> RunResult:
     """Tensors, invariants and warnings from the records of every planned point
     (in plan order; None for a point not computed, whose components are then
     MISSING: ``collect --allow-partial``). Pure: no PySCF."""
@@ -731,6 +867,8 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
                     f"to compute are missing ({' '.join(ids[:8])}"
                     f"{' ...' if len(ids) > 8 else ''}); the components that need them are "
                     "reported as missing, without a number",) + warnings
+    if label:
+        warnings = tuple(f"{label}: {text}" for text in warnings)
     for text in warnings:
         logger.warning("%s", text)
     return RunResult(job, prepared.molecule, plan, records, noise, tensors,

@@ -29,7 +29,8 @@ from dataclasses import dataclass
 import numpy as np
 from tqdm import tqdm
 
-from fieldprop.backend_pyscf import ModelContext, compute_point, compute_reference, field_key
+from fieldprop.backend_pyscf import (ModelContext, compute_point, compute_reference,
+                                     compute_relaxed_point, field_key)
 from fieldprop.errors import BackendError, FieldpropError
 from fieldprop.records import PointFailure, PointRecord, PointTask, ZeroFieldReference
 from fieldprop.store import PointStore
@@ -113,6 +114,8 @@ def run_task(context: ModelContext, task: PointTask,
     and message, its traceback logged at debug level."""
     start = time.perf_counter()
     try:
+        if task.relax is not None:
+            return compute_relaxed_point(context, task)
         return compute_point(context, task, solved)
     except FieldpropError as exc:
         return PointFailure(task.point, str(exc), type(exc).__name__,

@@ -243,6 +243,9 @@ class Job:
     #: What the optimisation did (its stored document), once the molecule's
     #: coordinates are the optimised ones; None before, or without one.
     optimisation: dict | None = None
+    #: The zero-field frame of a nuclear relaxation (its stored document), once
+    #: the molecule's coordinates are its polished minimum; None before.
+    relaxation: dict | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """The job as understood, every default filled in (for the result JSON)."""
@@ -621,9 +624,12 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
     relax = table.get("nuclear_relaxation", False)
     if not isinstance(relax, bool):
         raise r.fail("nuclear_relaxation", f"must be true or false, got {relax!r}")
-    if relax:
-        raise r.fail("nuclear_relaxation", "= true is not available in this version; set it "
-                     "to false (electronic response at fixed nuclei)")
+    if relax and not METHOD_TRAITS[method].nuclear_gradient:
+        with_gradient = ", ".join(m for m, t in METHOD_TRAITS.items()
+                                 if t.nuclear_gradient)
+        raise r.fail("nuclear_relaxation", f"= true needs nuclear gradients of E(R; F), which "
+                     f"fieldprop has for {with_gradient}; {method} has none: set it to false, "
+                     "or use one of those")
     symmetry = table.get("symmetry", True)
     if not isinstance(symmetry, bool):
         raise r.fail("symmetry", f"must be true or false, got {symmetry!r}")

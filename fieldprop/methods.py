@@ -47,6 +47,7 @@ class MethodTraits:
     real orbital Hessian in fieldprop). ``restricted_open_shell``: whether the
     method runs on a restricted open-shell reference at all. ``amplitude_solver``:
     a coupled-cluster solver, whose amplitude tolerance adds to the energy noise.
+    ``nuclear_gradient``: nuclear relaxation in a field is available.
     ``integration_grid``: the energy is integrated on a grid fixed in the input
     axes (DFT: atom-centred Lebedev grids, invariant only under signed
     permutations of those axes), so a symmetry operation maps a field point onto
@@ -59,6 +60,9 @@ class MethodTraits:
     restricted_open_shell: bool
     amplitude_solver: bool = False
     integration_grid: bool = False
+    #: PySCF has the method's nuclear gradient, so E(R; F) can be minimised
+    #: over the nuclei ([response] nuclear_relaxation).
+    nuclear_gradient: bool = False
 
     def has(self, route: Route | str) -> bool:
         return Route(route) in self.routes
@@ -72,9 +76,10 @@ _SCF_ROUTES = frozenset({Route.ENERGY, Route.DIPOLE, Route.ALPHA})
 _ENERGY_ONLY = frozenset({Route.ENERGY})
 
 METHODS: dict[str, MethodTraits] = {
-    "hf": MethodTraits("hf", True, _SCF_ROUTES, True),
-    "dft": MethodTraits("dft", True, _SCF_ROUTES, True, integration_grid=True),
-    "mp2": MethodTraits("mp2", False, _ENERGY_ONLY, False),
+    "hf": MethodTraits("hf", True, _SCF_ROUTES, True, nuclear_gradient=True),
+    "dft": MethodTraits("dft", True, _SCF_ROUTES, True, integration_grid=True,
+                        nuclear_gradient=True),
+    "mp2": MethodTraits("mp2", False, _ENERGY_ONLY, False, nuclear_gradient=True),
     "ccsd": MethodTraits("ccsd", False, _ENERGY_ONLY, False, amplitude_solver=True),
     "ccsd(t)": MethodTraits("ccsd(t)", False, _ENERGY_ONLY, False, amplitude_solver=True),
 }

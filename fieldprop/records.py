@@ -18,6 +18,7 @@ from fieldprop.job import ModelSpec, ScfSpec
 from fieldprop.keys import Quantities
 from fieldprop.molecule import MoleculeSpec
 from fieldprop.plan import FieldPoint
+from fieldprop.relaxation import Frame
 
 #: Relative residual at which the CPHF/CPKS linear equations count as solved: far
 #: below the finite-difference precision of any derivative taken of alpha. Used
@@ -76,6 +77,19 @@ class ZeroFieldReference:
 
 
 @dataclass(frozen=True, eq=False)
+class RelaxTarget:
+    """What makes a field point a relaxed one: the nuclei move to the minimum
+    of E(R; F) under the Eckart conditions of ``frame`` (the zero-field
+    minimum, its Hessian and dipole derivatives: fieldprop.relaxation.Frame);
+    ``dipole_route``: the dipole is differentiated, so its optimiser error
+    counts too. ``key``: the frame's key (part of the point's key)."""
+
+    frame: Frame
+    dipole_route: bool
+    key: str
+
+
+@dataclass(frozen=True, eq=False)
 class PointTask:
     """One field point of one job, ready for any worker process.
 
@@ -93,6 +107,8 @@ class PointTask:
     quantities: Quantities
     key: str = ""
     model_key: str = ""
+    #: Relax the nuclei in the field (None: clamped nuclei, the usual point).
+    relax: RelaxTarget | None = None
 
     @property
     def is_zero_field(self) -> bool:
@@ -134,6 +150,10 @@ class PointRecord:
     #: |E_one-electron| + |E_two-electron| + |E_nuclear| of the SCF energy (Eh):
     #: the terms whose cancellation sets the energy's rounding noise (0: unknown).
     energy_scale_au: float = 0.0
+    #: A relaxed point's structure and optimiser errors (fieldprop.relaxation:
+    #: coords_bohr, steps, energy_change_au, dipole_change_au,
+    #: largest_gradient_au, gradients); None for clamped nuclei.
+    relaxation: dict | None = None
 
     @property
     def retried(self) -> bool:

@@ -252,10 +252,81 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
         out.write(tabulate(rows, headers=["invariant", "value (au)", "+- error", "converted",
                                           "definition"], disable_numparse=True,
                            maxcolwidths=[None, None, None, 44, 56]) + "\n\n")
+    if result.relaxation is not None:
+        _write_relaxation(result, out, units)
     for text in result.warnings:
         out.write(f"warning: {text}\n")
     if any(p in result.tensors for p in ("beta", "gamma")):
         out.write(f"note: {CAUTION}\n")
+
+
+def _pair_text(est, stable: bool, factor: float) -> str:
+    if not stable:
+        return est.status.value
+    v, e = format_pair(est.value_au * factor, est.error_au * factor)
+    return f"{v} +- {e}"
+
+
+def _write_relaxation(result: RunResult, out: TextIO, units: str) -> None:
+    """Electronic, nuclear-relaxation and total tensors side by side, and the
+    invariants with the nuclei clamped and relaxed."""
+    part = result.relaxation
+    frame = part.frame
+    total = part.total
+    freqs = frame.get("frequencies_cm") or [0.0]
+    steps = [r.relaxation["steps"] for r in total.computed_records if r.relaxation]
+    gradients = sum(r.relaxation.get("gradients", 0) for r in total.computed_records
+                    if r.relaxation)
+    worst_e = max((r.relaxation["energy_change_au"] for r in total.computed_records
+                   if r.relaxation), default=0.0)
+    reused = (f", {part.counts.reused} reused from {result.store or 'the store'}"
+              if part.counts.reused else "")
+    out.write("nuclear relaxation (static limit; the nuclei relaxed at every field point under "
+              "the Eckart conditions of the zero-field minimum)\n")
+    out.write(f"  zero-field minimum: polished in {frame['polish_steps']} Newton step"
+              f"{'s' if frame['polish_steps'] != 1 else ''} (moved {frame['moved_bohr']:.1e} "
+              f"bohr from the given structure, whose largest gradient was "
+              f"{frame['input_gradient_au']:.1e} Eh/bohr); Hessian: {frame['hessian_source']}; "
+              f"harmonic frequencies {freqs[0]:.0f} to {freqs[-1]:.0f} cm^-1\n")
+    if steps:
+        out.write(f"  {len(steps)} relaxed field points{reused}: {min(steps)} to {max(steps)} "
+                  f"Newton steps, {gradients} gradients; the remaining energy error at most "
+                  f"{worst_e:.1e} Eh (in the error bars)\n\n")
+    for name, nuclear in part.nuclear.items():
+        label, factor = TABLE_UNITS[units][name]
+        rows = []
+        for ce, cn, ct in zip(result.tensors[name].components, nuclear.components,
+                              total.tensors[name].components):
+            if ce.estimate.status is ComponentStatus.SYMMETRY_ZERO:
+                continue
+            rows.append([ce.plan.name, _pair_text(ce.estimate, ce.stable, factor),
+                         _pair_text(cn.estimate, cn.stable, factor),
+                         _pair_text(ct.estimate, ct.stable, factor)])
+        out.write(f"{name} ({label}; components not zero by symmetry)\n")
+        out.write(tabulate(rows, headers=["component", "electronic", "nuclear relaxation",
+                                          "total"], disable_numparse=True) + "\n\n")
+    if frame.get("double_harmonic_alpha_au") and "alpha" in part.nuclear:
+        a = np.asarray(frame["double_harmonic_alpha_au"])
+        out.write("  double-harmonic alpha^nr = sum over modes (dmu/dQ)^2/omega^2 (zero-field "
+                  "Hessian; a check, not a result): diagonal "
+                  + ", ".join(f"{v:.6g}" for v in np.diag(a)) + " au\n\n")
+    rows = []
+    clamped = {inv.name: inv for inv in result.invariants}
+    for inv in total.invariants:
+        if inv.name == "dipole_norm":
+            continue
+        e = clamped[inv.name]
+        rows.append([inv.name, " +- ".join(format_pair(e.value_au, e.error_au))
+                     if e.value_au is not None else "unstable",
+                     " +- ".join(format_pair(inv.value_au, inv.error_au))
+                     if inv.value_au is not None else "unstable"])
+    if rows:
+        out.write("invariants (au): clamped and relaxed nuclei\n")
+        out.write(tabulate(rows, headers=["invariant", "electronic", "total"],
+                           disable_numparse=True) + "\n")
+        out.write("  Static limit only: no zero-point vibrational averaging; vibrational "
+                  "contributions depend strongly on the model, and the optical (high-frequency) "
+                  "limit differs.\n\n")
 
 
 def _nested(array: np.ndarray, mask: np.ndarray):
@@ -270,10 +341,12 @@ def _finite(x: float) -> float | None:
     return float(x) if math.isfinite(x) else None
 
 
-def result_document(result: RunResult) -> dict[str, Any]:
-    """The result JSON of the contract (schema fieldprop-result-1), with extensions."""
+def _tensors_document(result: RunResult, tensors_in: dict, tables: bool = True) -> dict:
+    """The ``tensors`` layout of the result JSON for ``tensors_in`` (without
+    Richardson entries and tables when ``tables`` is False: a difference of
+    two tensors has none of its own)."""
     tensors = {}
-    for name, t in result.tensors.items():
+    for name, t in tensors_in.items():
         status = np.empty(t.value_au.shape, dtype=object)
         for c in t.components:
             for e in c.entries:
@@ -292,7 +365,8 @@ def result_document(result: RunResult) -> dict[str, Any]:
                 "status": c.estimate.status.value,
                 "reason": c.estimate.reason,
                 "roundoff_floor": _finite(c.estimate.roundoff_au),
-                **({"richardson_entry": None, "window_au": None, "richardson_table": []}
+                **({} if not tables else
+                   {"richardson_entry": None, "window_au": None, "richardson_table": []}
                    if c.estimate.status is ComponentStatus.SYMMETRY_ZERO else {
                     "richardson_entry": {"level": c.estimate.chosen_entry[0],
                                          "steps": c.estimate.chosen_entry[1]},
@@ -301,8 +375,13 @@ def result_document(result: RunResult) -> dict[str, Any]:
                                          for col in c.estimate.table]}),
             } for c in t.components],
         }
+    return tensors
+
+
+def _invariants_document(items) -> dict:
+    """The ``invariants`` layout of the result JSON."""
     invariants = {}
-    for inv in result.invariants:
+    for inv in items:
         prop = _INVARIANT_PROPERTY[inv.name]
         entry: dict[str, Any] = {"value": inv.value_au, "error": inv.error_au}
         if inv.value_au is None:
@@ -316,8 +395,39 @@ def result_document(result: RunResult) -> dict[str, Any]:
             old = next(k for k, v in DEPRECATED_INVARIANTS.items() if v == inv.name)
             invariants[old] = {**entry, "deprecated": f"renamed {inv.name}; this key goes in a "
                                                       "later version"}
-    plan = result.plan
+    return invariants
+
+
+def _relaxation_document(part) -> dict:
+    """How the nuclear relaxation was done: the zero-field minimum and each
+    relaxed point's structure and remaining optimiser errors."""
+    frame = part.frame
+    from fieldprop import relaxation as nr
+
     return {
+        "method": "finite-field nuclear relaxation under the Eckart conditions of the "
+                  "zero-field minimum (static limit; no zero-point averaging)",
+        "tolerances": {"energy_change_au": nr.ENERGY_TOLERANCE_AU,
+                       "dipole_change_au": nr.DIPOLE_TOLERANCE_AU,
+                       "max_steps": nr.MAX_STEPS,
+                       "minimum_gradient_au": nr.MINIMUM_GRADIENT_AU},
+        "minimum": {k: frame[k] for k in ("coords_bohr", "moved_bohr", "input_gradient_au",
+                                           "polish_steps", "masses_u", "hessian_source",
+                                           "frequencies_cm", "double_harmonic_alpha_au",
+                                           "energy_au")},
+        "points": {"planned": part.counts.planned, "computed": part.counts.computed,
+                   "reused": part.counts.reused},
+        "relaxed": [{"point": r.point.label, "field_vector_au": list(r.point.field_vector_au),
+                     **r.relaxation} for r in part.total.computed_records if r.relaxation],
+    }
+
+
+def result_document(result: RunResult) -> dict[str, Any]:
+    """The result JSON of the contract (schema fieldprop-result-1), with extensions."""
+    tensors = _tensors_document(result, result.tensors)
+    invariants = _invariants_document(result.invariants)
+    plan = result.plan
+    document = {
         "schema": SCHEMA,
         "version": __version__,
         "units": "au",
@@ -328,6 +438,15 @@ def result_document(result: RunResult) -> dict[str, Any]:
         "energy_au": result.energy_au,
         "tensors": tensors,
         "invariants": invariants,
+    }
+    if result.relaxation is not None:
+        part = result.relaxation
+        document["tensors_nuclear_relaxation"] = _tensors_document(result, part.nuclear,
+                                                                   tables=False)
+        document["tensors_total"] = _tensors_document(part.total, part.total.tensors)
+        document["invariants_total"] = _invariants_document(part.total.invariants)
+        document["nuclear_relaxation"] = _relaxation_document(part)
+    return document | {
         "points": _points_document(result),
         "field_plan": {"route": plan.route, "field_au": plan.field_au, "ratio": plan.ratio,
                        "levels": plan.levels, "steps_au": list(plan.steps_au()),

@@ -9,7 +9,7 @@ functions, core electrons, PySCF version): any process can compute any point
 later without redoing zero field, and the analysis of stored points needs no
 PySCF at all.
 
-File format (``SCHEMA_VERSION`` 4; an older store is migrated when opened
+File format (``SCHEMA_VERSION`` 5; an older store is migrated when opened
 for writing, and read as it is otherwise), SQLite from the standard library, WAL
 journal, a busy timeout so several processes can share one file, one
 transaction per finished point:
@@ -21,15 +21,16 @@ transaction per finished point:
 - ``points(point_key, model_key, field_vector_au, origin_bohr, quantities,
   status, energy_au, scf_energy_au, dipole_au, alpha_au, scf_cycles, attempts,
   s2, occupied_overlap, gradient_norm, dipole_error_au, state_issue,
-  energy_scale_au, failure, failure_kind, wall_time_s, host, version,
-  created_at)``: ``status`` is ``ok``
-  or ``failed``; vectors, matrices and lists are JSON text (floats round-trip
+  energy_scale_au, relaxation, failure, failure_kind, wall_time_s, host,
+  version, created_at)``: ``status`` is ``ok`` or ``failed``; ``relaxation``
+  holds a relaxed point's structure and the optimiser's remaining errors; vectors, matrices and lists are JSON text (floats round-trip
   exactly);
 - ``geometries(geometry_key, document, created_at, host, version)``: geometries
   optimised before a job's response (``[geometry] optimize``), keyed by the
   starting geometry, the optimisation's model and its criteria; ``document``
   JSON (coordinates in bohr, energy, steps, criteria), so a rerun does not
-  optimise again;
+  optimise again; also the zero-field frame of a nuclear relaxation (the
+  polished minimum, its Hessian and dipole derivatives);
 - ``todo_lists(list_key, point_keys, created_at)``: the points of a plan still
   to compute, as fixed by ``fieldprop plan --count`` (a JSON list of point keys
   in plan order), so that ``fieldprop point --index N`` maps array element N to
@@ -68,10 +69,12 @@ from fieldprop.records import PointFailure, PointRecord, SymmetryOperation, Zero
 logger = logging.getLogger(__name__)
 
 FORMAT = "fieldprop-store"
-SCHEMA_VERSION = 4
+SCHEMA_VERSION = 5
 #: Migrations of older schemas, applied when a store is opened for writing:
 #: schema 1 -> 2 adds points.energy_scale_au (the energy's rounding scale);
-#: 2 -> 3 adds the todo_lists table. A store of an older schema opened
+#: 2 -> 3 adds the todo_lists table; 3 -> 4 the geometries table; 4 -> 5
+#: points.relaxation (a relaxed point's structure and optimiser errors, JSON).
+#: A store of an older schema opened
 #: read-only reads a missing column as NULL, and has no to-do lists.
 _TO_DO_LISTS_TABLE = ("CREATE TABLE todo_lists (list_key TEXT PRIMARY KEY, point_keys TEXT NOT NULL, "
                "created_at TEXT NOT NULL)")
@@ -83,6 +86,8 @@ _MIGRATIONS = {
         "UPDATE meta SET value = '2' WHERE name = 'schema'"],
     2: [_TO_DO_LISTS_TABLE, "UPDATE meta SET value = '3' WHERE name = 'schema'"],
     3: [_GEOMETRIES_TABLE, "UPDATE meta SET value = '4' WHERE name = 'schema'"],
+    4: ["ALTER TABLE points ADD COLUMN relaxation TEXT",
+        "UPDATE meta SET value = '5' WHERE name = 'schema'"],
 }
 #: Default store file name, in the job file's folder: jobs in one folder share it.
 DEFAULT_NAME = "fieldprop-points.sqlite"
@@ -120,6 +125,7 @@ CREATE TABLE points (
     dipole_error_au REAL,
     state_issue TEXT,
     energy_scale_au REAL,
+    relaxation TEXT,
     failure TEXT,
     failure_kind TEXT,
     wall_time_s REAL,
@@ -132,7 +138,7 @@ CREATE INDEX points_by_model ON points (model_key);
 
 _RECORD_COLUMNS = ("energy_au", "scf_energy_au", "dipole_au", "alpha_au", "scf_cycles",
                    "attempts", "s2", "occupied_overlap", "gradient_norm", "dipole_error_au",
-                   "state_issue", "energy_scale_au")
+                   "state_issue", "energy_scale_au", "relaxation")
 _POINT_COLUMNS = ("point_key", "model_key", "field_vector_au", "origin_bohr", "quantities",
                   "status", *_RECORD_COLUMNS, "failure", "failure_kind", "wall_time_s", "host",
                   "version", "created_at")
@@ -420,7 +426,9 @@ class PointStore:
                                    [list(row) for row in r.alpha_au]),
                                r.scf_cycles, json.dumps(list(r.attempts)), r.s2,
                                r.occupied_overlap, r.gradient_norm, r.dipole_error_au,
-                               r.state_issue, r.energy_scale_au, None, None)
+                               r.state_issue, r.energy_scale_au,
+                               None if r.relaxation is None else json.dumps(r.relaxation),
+                               None, None)
         values += (outcome.wall_time_s, socket.gethostname(), __version__, _now())
         marks = ", ".join("?" * len(values))
         # A computed point is never replaced; a failure is, by a later success.
@@ -493,6 +501,8 @@ def _stored_point(row) -> StoredPoint:
             "gradient_norm": values["gradient_norm"],
             "dipole_error_au": values["dipole_error_au"], "state_issue": values["state_issue"],
             "energy_scale_au": values["energy_scale_au"] or 0.0,
+            "relaxation": (None if values["relaxation"] is None
+                           else json.loads(values["relaxation"])),
         }
     else:
         fields = {"reason": failure, "kind": kind}

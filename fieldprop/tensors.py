@@ -367,3 +367,28 @@ def invariants(tensors: dict[str, TensorResult]) -> list[Invariant]:
             err = max(err, _seminorm_error(value, err, _seminorm_bound(fn, tensors, needs)))
         out.append(Invariant(name, value, err))
     return out
+
+
+def difference(total: dict[str, TensorResult],
+               part: dict[str, TensorResult]) -> dict[str, TensorResult]:
+    """``total`` minus ``part``, tensor by tensor and component by component
+    (both from the same plan): the nuclear-relaxation tensors as total
+    (relaxed nuclei) less electronic (clamped nuclei). Error bars add (the two
+    share points, so their errors are not independent; the sum does not
+    assume they are); a status is the worse of the two; the Richardson entry
+    and table are the total's (the difference has no table of its own)."""
+    out = {}
+    for name, t in total.items():
+        p = part[name]
+        comps = []
+        for ct, cp in zip(t.components, p.components, strict=True):
+            a, b = ct.estimate, cp.estimate
+            status = next(s for s in _WORST_FIRST if s in (a.status, b.status))
+            reason = a.reason if status is a.status else b.reason
+            est = ComponentEstimate(a.value_au - b.value_au, a.error_au + b.error_au,
+                                    a.chosen_entry, status, a.roundoff_au + b.roundoff_au,
+                                    a.table, reason)
+            comps.append(ComponentResult(ct.plan, est, ct.entries))
+        out[name] = TensorResult(name, t.order, t.value_au - p.value_au, t.error_au + p.error_au,
+                                 t.stable & p.stable, tuple(comps))
+    return out

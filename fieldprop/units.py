@@ -73,3 +73,8 @@ DISPLAY_UNITS = {
     "beta": [("esu", esu_factor(3)), ("C m^3 V^-2", si_factor(3))],
     "gamma": [("esu", esu_factor(4)), ("C m^4 V^-3", si_factor(4))],
 }
+
+#: One unified atomic mass unit in electron masses (atomic units of mass).
+AMU_TO_ME = _c.atomic_mass / _c.m_e
+#: One hartree as a wavenumber (cm^-1): Eh / (h c), c in cm/s.
+HARTREE_TO_CM = HARTREE_J / (_c.h * _c.c * 100.0)
