@@ -103,6 +103,10 @@ def load_set(path: str | Path) -> Campaign:
                         "and one [response]")
         if not isinstance(data[table], dict):
             raise _fail(shown, f"{table} must be a [{table}] table")
+    if data["response"].get("nuclear_relaxation") is True:
+        raise _fail(shown, "[response] nuclear_relaxation = true: a screening campaign "
+                    "computes clamped-nucleus responses only; run the molecules you want "
+                    "relaxed as jobs (fieldprop run), or set it to false")
     shared = {k: data[k] for k in ("model", "response", "scf", "geometry") if k in data}
     entries: list[tuple[str, str, dict, str | None]] = []  # name, source, molecule table, smiles
     if "xyz_dir" in data:

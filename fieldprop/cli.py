@@ -100,6 +100,14 @@ examples:
   fieldprop check water.toml --against mycode.json --sigmas 3 || echo "disagrees"
 """
 
+RELAX_EXAMPLES = """\
+examples:
+  fieldprop relax water.toml --field 0 0 0.01     forces, relaxed structure, water.relaxed.xyz
+  fieldprop relax water.toml --field 0 0.005 0 --json - | jq '.relaxation_energy_au'
+the nuclei are relaxed under the Eckart conditions of the zero-field minimum (no overall
+translation or rotation); the job's geometry must be that minimum ([geometry] optimize).
+"""
+
 INSPECT_EXAMPLES = """\
 examples:
   fieldprop inspect fieldprop-points.sqlite
@@ -384,6 +392,22 @@ def build_parser() -> argparse.ArgumentParser:
     _store_options(screen)
     screen.set_defaults(handler=cmd_screen)
 
+    relax = sub.add_parser("relax", help="the nuclei in one static field: forces on the "
+                           "zero-field minimum, the relaxed structure (XYZ) and its displacement",
+                           epilog=RELAX_EXAMPLES,
+                           formatter_class=argparse.RawDescriptionHelpFormatter)
+    relax.add_argument("job", type=Path, help="job file (TOML); its [model], [scf] and "
+                       "[geometry] are used, [response] only for the origin")
+    relax.add_argument("--field", type=float, nargs=3, required=True, metavar=("FX", "FY", "FZ"),
+                       help="the field vector in atomic units (1 au = 5.14e11 V/m)")
+    relax.add_argument("--xyz", type=Path, help="the relaxed structure as XYZ (default "
+                       "JOB.relaxed.xyz beside the job file)")
+    relax.add_argument("--json", type=Path, help="the forces, structures and energies as JSON "
+                       "(- writes it to stdout instead of the table)")
+    relax.add_argument("--quiet", action="store_true", help="no log lines on stderr")
+    _store_options(relax)
+    relax.set_defaults(handler=cmd_relax)
+
     inspect = sub.add_parser("inspect", epilog=INSPECT_EXAMPLES,
                              formatter_class=argparse.RawDescriptionHelpFormatter,
                              help="what a point store holds: molecules and models, "
@@ -455,6 +479,16 @@ def _at_optimised_geometry(prepared, store, job_path: Path):
     write_xyz(job, xyz)
     logger.info("optimised geometry written to %s", xyz)
     return prepare(job, facts=prepared.facts)
+
+
+def _clamped_only(job, command: str) -> None:
+    """Refuse a job with nuclear relaxation in a command that handles
+    clamped nuclei only (one line, exit 2)."""
+    if job.response.nuclear_relaxation:
+        raise InputError(f"{job.path}: [response] nuclear_relaxation = true: fieldprop "
+                         f"{command} works with clamped nuclei only; fieldprop run computes "
+                         "the relaxed points (resumable, --workers) and fieldprop collect "
+                         "reads them back; set it to false here")
 
 
 def _at_relaxation_minimum(prepared, store):
@@ -548,6 +582,7 @@ def cmd_check(args) -> int:
                                   write_comparison, write_json_atomic)
 
     job = load_job(args.job)
+    _clamped_only(job, "check")
     json_out = args.json is not None and is_stdout(args.json)
     if args.json is not None and not json_out:
         if args.json.resolve() == args.job.resolve():
@@ -670,6 +705,7 @@ def cmd_plan(args) -> int:
     from fieldprop.store import PointStore, default_store_path
 
     job = load_job(args.job)
+    _clamped_only(job, "plan")
     lines = _read_point_lines(args.points)
     path = args.store if args.store is not None else default_store_path(args.job)
     if args.count:
@@ -790,6 +826,7 @@ def cmd_point(args) -> int:
     from fieldprop.store import PointStore, default_store_path
 
     job = load_job(args.job)
+    _clamped_only(job, "point")
     prepared = prepare(job)
     path = args.store if args.store is not None else default_store_path(args.job)
     if args.stdout:
@@ -1011,6 +1048,54 @@ def _model_text(job) -> str:
     m = job.model
     basis = m.basis if isinstance(m.basis, str) else "per-element basis"
     return "/".join(x for x in (m.method.upper(), m.functional, basis) if x)
+
+
+#: The largest field ``relax`` takes (au): beyond it the structure leaves the
+#: perturbative regime (the job parser's limit for field_au, 2.6e10 V/m).
+RELAX_MAX_FIELD_AU = 0.05
+
+
+def cmd_relax(args) -> int:
+    import dataclasses
+
+    import numpy as np
+
+    from fieldprop.engine import prepare, relax_at_field
+    from fieldprop.job import load_job
+    from fieldprop.methods import METHODS
+    from fieldprop.report import (check_output_path, is_stdout, write_json_atomic,
+                                  write_relaxation_table, write_relaxed_structure)
+
+    job = load_job(args.job)
+    field = np.array(args.field, dtype=float)
+    if not np.all(np.isfinite(field)) or np.linalg.norm(field) > RELAX_MAX_FIELD_AU:
+        raise InputError(f"--field {' '.join(f'{v:g}' for v in args.field)}: must be finite "
+                         f"and at most {RELAX_MAX_FIELD_AU:g} au long (beyond it the structure "
+                         "leaves the perturbative regime)")
+    if not METHODS[job.model.method].nuclear_gradient:
+        with_gradient = ", ".join(m for m, t in METHODS.items() if t.nuclear_gradient)
+        raise InputError(f"{job.path}: [model] method = \"{job.model.method}\": relax needs "
+                         f"nuclear gradients, which fieldprop has for {with_gradient}")
+    xyz = args.xyz if args.xyz is not None else args.job.with_name(args.job.stem
+                                                                     + ".relaxed.xyz")
+    check_output_path(xyz, "--xyz", "relaxed.xyz")
+    if args.json is not None and not is_stdout(args.json):
+        check_output_path(args.json)
+    job = dataclasses.replace(job, response=dataclasses.replace(job.response,
+                                                                nuclear_relaxation=True))
+    prepared = prepare(job)
+    with _open_store(args, args.job) as store:
+        prepared = _at_optimised_geometry(prepared, store, args.job)
+        prepared = _at_relaxation_minimum(prepared, store)
+    document = relax_at_field(prepared, field)
+    write_relaxed_structure(document, xyz, str(job.path))
+    logger.info("relaxed structure written to %s", xyz)
+    if args.json is not None:
+        write_json_atomic(document, args.json)
+        if is_stdout(args.json):
+            return 0
+    _to_stdout(lambda: write_relaxation_table(document, sys.stdout))
+    return 0
 
 
 def cmd_report(args) -> int:

@@ -440,6 +440,51 @@ def relaxed_tasks(prepared: Prepared) -> list[PointTask]:
     return out
 
 
+def relax_at_field(prepared: Prepared, field_au) -> dict:
+    """The nuclei of a prepared job (at its zero-field minimum: relaxed_reference)
+    relaxed in one static field, under the Eckart conditions: the forces the
+    field puts on the zero-field minimum, the relaxed structure, each atom's
+    displacement, the relaxation energy and the dipole before and after. A
+    document (bohr, Eh, au). Raises ScfNotConvergedError when an SCF or the
+    relaxation does not converge."""
+    from fieldprop import relaxation
+    from fieldprop.backend_pyscf import StructureEvaluator
+
+    start = time.perf_counter()
+    job, molecule = prepared.job, prepared.molecule
+    field = np.asarray(field_au, dtype=float)
+    target = relax_target(prepared)
+    frame = target.frame
+    evaluate = StructureEvaluator(molecule, job.model, job.scf, field,
+                                  label="(" + ", ".join(f"{v:g}" for v in field) + ") au")
+    clamped = evaluate(frame.coords_bohr)
+    try:
+        relaxed = relaxation.relax(frame, field, evaluate, dipole_matters=True)
+    except relaxation.NotRelaxed as exc:
+        raise errors.ScfNotConvergedError(f"{job.path}: field {evaluate.label}: the structure "
+                                          f"was {exc}") from exc
+    shift, turn = relaxation.eckart_residuals(frame.coords_bohr, relaxed.coords_bohr,
+                                              frame.masses)
+    moved = relaxed.coords_bohr - frame.coords_bohr
+    return {
+        "field_au": [float(v) for v in field],
+        "symbols": list(molecule.symbols),
+        "zero_field_minimum_bohr": [[float(v) for v in row] for row in frame.coords_bohr],
+        "forces_at_minimum_au": [[float(-v) for v in row] for row in clamped.gradient],
+        "relaxed_bohr": [[float(v) for v in row] for row in relaxed.coords_bohr],
+        "displacement_bohr": [[float(v) for v in row] for row in moved],
+        "energy_clamped_au": clamped.energy_au,
+        "energy_relaxed_au": relaxed.evaluation.energy_au,
+        "relaxation_energy_au": clamped.energy_au - relaxed.evaluation.energy_au,
+        "dipole_clamped_au": [float(v) for v in clamped.dipole_au],
+        "dipole_relaxed_au": [float(v) for v in relaxed.evaluation.dipole_au],
+        "eckart_residuals": {"translation_bohr": shift, "rotation_bohr2": turn},
+        **{k: v for k, v in relaxed.document().items() if k != "coords_bohr"},
+        "gradients": evaluate.gradients,
+        "wall_time_s": time.perf_counter() - start,
+    }
+
+
 def make_plan(job: Job, route: Route | str | None = None, symmetry=None) -> FieldPlan:
     """The job's field plan, on its own route or on ``route``; with the
     molecule's ``symmetry``, in its symmetry frame (see Symmetry.frame), and
@@ -889,7 +934,7 @@ def gather(job: Job, store=None, lines=None, route: Route | str | None = None,
     Bad lines raise InputError (:mod:`fieldprop.pointlines`)."""
     from fieldprop import pointlines
 
-    job = optimised(job, store, compute=False)
+    job = relaxed_reference(optimised(job, store, compute=False), store, compute=False)
     molecule, sym = symmetric_molecule(job)
     mkey = model_key(molecule, job.model, job.scf)
     facts = store.get_facts(mkey) if store is not None else None
@@ -954,7 +999,23 @@ def collect(job: Job, store=None, route: Route | str | None = None, lines=None,
     found = {t.point.index: rows[t.key].record(t.point) for t in prepared.computed_tasks
              if t.key in rows and rows[t.key].ok}
     counts = point_counts(prepared, 0, len(found))
-    return analyse(prepared, prepared.expand(found), counts, where, time.perf_counter() - start)
+    result = analyse(prepared, prepared.expand(found), counts, where,
+                     time.perf_counter() - start)
+    if job.response.nuclear_relaxation:
+        tasks = relaxed_tasks(prepared)
+        rows = store.get_points(t.key for t in tasks[1:]) if store is not None else {}
+        absent = [t for t in tasks[1:] if t.key not in rows]
+        if absent:
+            raise IncompleteError(f"{job.path}: {len(absent)} of the {len(tasks) - 1} relaxed "
+                                  f"field points are not in {where}; fieldprop run computes "
+                                  "them (and reuses every point stored)")
+        failures = [rows[t.key].failure(t.point) for t in tasks[1:] if not rows[t.key].ok]
+        if failures:
+            raise failed_points_error(prepared, failures)
+        relaxed = {0: found[0]} | {t.point.index: rows[t.key].record(t.point) for t in tasks[1:]}
+        result = with_relaxation(result, prepared, relaxed,
+                                 point_counts(prepared, 0, len(relaxed)))
+    return result
 
 
 def to_compute(prepared: Prepared) -> str:

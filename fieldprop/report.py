@@ -23,8 +23,8 @@ from fieldprop.engine import RunResult, entry_window_au
 from fieldprop.extrapolate import ComponentStatus
 from fieldprop.keys import short_id
 from fieldprop.plan import FieldPlan
-from fieldprop.units import (ANGSTROM_TO_BOHR, DISPLAY_UNITS, FIELD_AU_TO_V_PER_M,
-                             PROPERTY_ORDER, TABLE_UNITS)
+from fieldprop.units import (ANGSTROM_TO_BOHR, BOHR_TO_ANGSTROM, DISPLAY_UNITS,
+                             FIELD_AU_TO_V_PER_M, PROPERTY_ORDER, TABLE_UNITS)
 
 SCHEMA = "fieldprop-result-1"
 
@@ -756,3 +756,50 @@ def comparison_document(comparisons, reference, sigmas: float, verdict: str) -> 
                             "allowed": c.allowed, "agrees": c.agrees} for c in rows]
                     for name, rows in comparisons.items()},
     }
+
+
+def write_relaxed_structure(document: dict, path: Path, job_path: str) -> None:
+    """The relaxed structure of ``fieldprop relax`` as XYZ (angstrom), atomically."""
+    field = " ".join(f"{v:g}" for v in document["field_au"])
+    lines = [str(len(document["symbols"])),
+             f"{job_path}: nuclei relaxed in the field ({field}) au under the Eckart conditions "
+             f"of the zero-field minimum; E = {document['energy_relaxed_au']:.10f} Eh"]
+    for symbol, xyz in zip(document["symbols"], document["relaxed_bohr"]):
+        x, y, z = (v * BOHR_TO_ANGSTROM for v in xyz)
+        lines.append(f"{symbol:<2} {x:15.10f} {y:15.10f} {z:15.10f}")
+    part = path.with_name(path.name + ".part")
+    part.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    os.replace(part, path)
+
+
+def write_relaxation_table(document: dict, out: TextIO) -> None:
+    """``fieldprop relax``: per atom the field's force on the zero-field
+    minimum and the displacement to the relaxed structure; energies, dipoles."""
+    field = ", ".join(f"{v:g}" for v in document["field_au"])
+    out.write(f"nuclei relaxed in the field ({field}) au "
+              f"({np.linalg.norm(document['field_au']) * FIELD_AU_TO_V_PER_M:.3g} V/m), "
+              "no overall translation or rotation (Eckart conditions of the zero-field "
+              "minimum)\n")
+    rows = []
+    for n, (symbol, force, moved, xyz) in enumerate(zip(
+            document["symbols"], document["forces_at_minimum_au"],
+            document["displacement_bohr"], document["relaxed_bohr"]), start=1):
+        rows.append([f"{n} {symbol}", *(f"{v:.3e}" for v in force),
+                     *(f"{v * BOHR_TO_ANGSTROM:.3e}" for v in moved),
+                     *(f"{v * BOHR_TO_ANGSTROM:.8f}" for v in xyz)])
+    out.write(tabulate(rows, headers=["atom", "Fx (Eh/bohr)", "Fy", "Fz", "dx (angstrom)", "dy",
+                                      "dz", "x relaxed (angstrom)", "y", "z"],
+                       disable_numparse=True) + "\n")
+    mu0, mu1 = np.asarray(document["dipole_clamped_au"]), np.asarray(document["dipole_relaxed_au"])
+    residual = document["eckart_residuals"]
+    out.write(f"  forces: the field's, on the zero-field minimum (where they are zero without "
+              f"it)\n  relaxation energy {document['relaxation_energy_au']:.6e} Eh "
+              f"(E clamped {document['energy_clamped_au']:.10f}, relaxed "
+              f"{document['energy_relaxed_au']:.10f} Eh); {document['steps']} Newton steps, "
+              f"{document['gradients']} gradients, a further step would lower E by "
+              f"{document['energy_change_au']:.1e} Eh\n"
+              f"  dipole (au) clamped ({', '.join(f'{v:.8f}' for v in mu0)}), relaxed "
+              f"({', '.join(f'{v:.8f}' for v in mu1)}): the nuclei add "
+              f"({', '.join(f'{v:.3e}' for v in mu1 - mu0)})\n"
+              f"  Eckart residuals: translation {residual['translation_bohr']:.1e} bohr, rotation "
+              f"{residual['rotation_bohr2']:.1e} bohr^2\n")
