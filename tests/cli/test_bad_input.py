@@ -238,8 +238,10 @@ CASES = [
     ("route_and_differentiate",
      job(response={"differentiate": '"dipole"', "route": '"dipole"'}), {},
      ["{job}: [response] route and differentiate are both given"], []),
-    ("nuclear_relaxation_true", job(response={"nuclear_relaxation": "true"}), {},
-     ["{job}: [response] nuclear_relaxation = true", "not available"], []),
+    ("nuclear_relaxation_without_gradient",
+     job(model={"method": '"ccsd"'}, response={"nuclear_relaxation": "true"}), {},
+     ["{job}: [response] nuclear_relaxation = true needs nuclear gradients", "ccsd has none"],
+     []),
     ("nuclear_relaxation_text", job(response={"nuclear_relaxation": '"yes"'}), {},
      ["{job}: [response] nuclear_relaxation must be true or false"], []),
     # [scf]
