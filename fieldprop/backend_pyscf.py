@@ -1548,6 +1548,8 @@ def _hessian(evaluate: StructureEvaluator, mf, coords) -> tuple[np.ndarray, str]
     RHF, UHF, RKS, UKS, else central differences of analytic gradients."""
     n = len(coords)
     try:
+        if not METHODS[evaluate.model.method].mean_field:
+            raise NotImplementedError("the SCF object's Hessian is not the method's")
         h = mf.Hessian()
         h.verbose = 0
         value = np.asarray(h.kernel()).transpose(0, 2, 1, 3).reshape(3 * n, 3 * n)

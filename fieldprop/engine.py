@@ -470,6 +470,7 @@ def relax_at_field(prepared: Prepared, field_au) -> dict:
         "field_au": [float(v) for v in field],
         "symbols": list(molecule.symbols),
         "origin_bohr": [float(v) for v in molecule.origin_bohr],
+        "masses_u": [float(m) for m in frame.masses],
         "zero_field_minimum_bohr": [[float(v) for v in row] for row in frame.coords_bohr],
         "forces_at_minimum_au": [[float(-v) for v in row] for row in clamped.gradient],
         "relaxed_bohr": [[float(v) for v in row] for row in relaxed.coords_bohr],

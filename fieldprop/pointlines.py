@@ -37,7 +37,8 @@ _REQUIRED = ("key", "model_key", "field_vector_au", "origin_bohr", "quantities",
 _RECORD = {"energy_au": float, "scf_energy_au": float, "scf_cycles": int, "attempts": list,
            "s2": float, "occupied_overlap": float, "gradient_norm": float}
 _OPTIONAL = {"dipole_au": list, "alpha_au": list, "dipole_error_au": float, "state_issue": str,
-             "energy_scale_au": float}
+             "energy_scale_au": float, "relaxation": dict}
+_KIND_NAMES = {list: "list", str: "string", dict: "JSON object"}
 
 
 def line_document(row: StoredPoint, field_vector_au, origin_bohr, quantities,
@@ -96,11 +97,12 @@ def parse_line(text: str, source: str, number: int) -> dict:
             if value is None and name in _OPTIONAL:
                 continue
             good = (isinstance(value, list) if kind is list else isinstance(value, str)
-                    if kind is str else isinstance(value, (int, float))
+                    if kind is str else isinstance(value, dict) if kind is dict
+                    else isinstance(value, (int, float))
                     and not isinstance(value, bool) and math.isfinite(value))
             if not good:
                 raise InputError(f"{where}: {name} is missing or not a "
-                                 f"{'list' if kind is list else 'string' if kind is str else 'number'}"
+                                 f"{_KIND_NAMES.get(kind, 'number')}"
                                  " (a damaged point line)")
     elif not isinstance(doc.get("reason"), str):
         raise InputError(f"{where}: a failed point without its reason (a damaged point line)")
@@ -122,6 +124,7 @@ def stored_point(doc: dict) -> StoredPoint:
             "dipole_error_au": float(doc.get("dipole_error_au") or 0.0),
             "state_issue": doc.get("state_issue") or "",
             "energy_scale_au": float(doc.get("energy_scale_au") or 0.0),
+            "relaxation": doc.get("relaxation"),
         }
     else:
         fields = {"reason": doc["reason"], "kind": doc.get("kind") or "FieldpropError"}

@@ -66,6 +66,8 @@ BAD_SETS = {
     "bad name": ('[[molecule]]\nname = "a/b"\nsmiles = "O"\n', ["'a/b'", "name"]),
     "bad model": ('[[molecule]]\nname = "w"\nsmiles = "O"\n',
                   ["[model] method"]),
+    "nuclear relaxation": ('[[molecule]]\nname = "w"\nsmiles = "O"\n',
+                           ["[response] nuclear_relaxation = true", "clamped-nucleus"]),
 }
 
 
@@ -73,6 +75,8 @@ BAD_SETS = {
 def test_a_bad_set_is_one_line_exit_2_and_nothing_is_written(tmp_path, capsys, case):
     molecules, words = BAD_SETS[case]
     shared = SHARED.replace('"hf"', '"hartree"') if case == "bad model" else SHARED
+    if case == "nuclear relaxation":
+        shared += "nuclear_relaxation = true\n"  # in [response], the last table
     path = write_set(tmp_path, molecules, shared)
     before = set(tmp_path.iterdir())
     result = main(["screen", str(path), "--csv", str(tmp_path / "out.csv")])

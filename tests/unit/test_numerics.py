@@ -851,7 +851,7 @@ def test_unit_factor_matches_codata_derived_unit(order, key):
 
 def test_numerics_import_without_pyscf():
     code = ("import fieldprop.plan, fieldprop.extrapolate, fieldprop.tensors, "
-            "fieldprop.continuity, sys; "
+            "fieldprop.continuity, fieldprop.window, fieldprop.relaxation, sys; "
             "assert 'pyscf' not in sys.modules")
     assert subprocess.run([sys.executable, "-c", code], cwd=REPO).returncode == 0
 
