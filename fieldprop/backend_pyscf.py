@@ -1685,7 +1685,7 @@ def compute_relaxed_point(context: ModelContext, task: PointTask) -> PointRecord
     dipole = tuple(float(v) for v in relaxed.evaluation.dipole_au) if want.dipole else None
     dipole_error = 0.0
     if want.dipole:
-        dipole_error = _dipole_error(mf, r, mf.get_fock(), g, False)
+        dipole_error = _dipole_error(mf, r, mf.get_fock(), g, want.newton_dipole_error)
     document = relaxed.document()
     document["gradients"] = evaluate.gradients
     return PointRecord(point, float(relaxed.evaluation.energy_au), float(mf.e_tot), dipole,

@@ -131,34 +131,34 @@ def _tensor(doc, key, name):
     return (np.array(t["value"], dtype=float), np.array(t["error"], dtype=float))
 
 
-def _scf_dipole(symbols, coords, basis="6-31g"):
+def _scf_dipole(symbols, coords, basis="6-31g", spin=0):
     from pyscf import scf
 
-    mf = scf.RHF(_mol(symbols, coords, basis))
+    mf = (scf.UHF if spin else scf.RHF)(_mol(symbols, coords, basis, spin=spin))
     mf.conv_tol, mf.conv_tol_grad = 1e-13, 1e-10
     mf.kernel()
     return mf.dip_moment(unit="au", verbose=0)
 
 
-def _analytic_hessian(symbols, coords, basis="6-31g"):
+def _analytic_hessian(symbols, coords, basis="6-31g", spin=0):
     from pyscf import scf
 
-    mf = scf.RHF(_mol(symbols, coords, basis))
+    mf = (scf.UHF if spin else scf.RHF)(_mol(symbols, coords, basis, spin=spin))
     mf.conv_tol, mf.conv_tol_grad = 1e-13, 1e-10
     mf.kernel()
     n = len(symbols)
     return mf.Hessian().kernel().transpose(0, 2, 1, 3).reshape(3 * n, 3 * n)
 
 
-def _dipole_derivatives(symbols, coords, step):
+def _dipole_derivatives(symbols, coords, step, spin=0):
     """dmu/dR (3, 3N) by central differences of PySCF's analytic dipoles."""
     out = np.zeros((3, coords.size))
     for i in range(coords.size):
         d = np.zeros(coords.size)
         d[i] = step
         d = d.reshape(coords.shape)
-        out[:, i] = (_scf_dipole(symbols, coords + d) - _scf_dipole(symbols, coords - d)) / (
-            2 * step)
+        out[:, i] = (_scf_dipole(symbols, coords + d, spin=spin)
+                     - _scf_dipole(symbols, coords - d, spin=spin)) / (2 * step)
     return out
 
 
@@ -223,10 +223,10 @@ WATER = """
     """
 
 
-def _normal_mode_alpha(symbols, coords, masses):
+def _normal_mode_alpha(symbols, coords, masses, spin=0):
     """sum_a (dmu/dQ_a)^2 / omega_a^2: the harmonic analysis written here."""
     n = len(symbols)
-    hessian = _analytic_hessian(symbols, coords)
+    hessian = _analytic_hessian(symbols, coords, spin=spin)
     root = np.repeat(np.sqrt(masses), 3)
     weighted = hessian / np.outer(root, root)
     # Project the translations and rotations out (mass-weighted, about the
@@ -246,7 +246,7 @@ def _normal_mode_alpha(symbols, coords, masses):
     assert keep.sum() == 3 * n - 6
     derivatives = {}
     for step in (1e-3, 2e-3):
-        derivatives[step] = _dipole_derivatives(symbols, coords, step)
+        derivatives[step] = _dipole_derivatives(symbols, coords, step, spin)
     out = []
     for d in derivatives.values():
         dq = d @ (modes[:, keep] / root[:, None])  # dmu/dQ_a, Q mass-weighted
@@ -318,3 +318,38 @@ def test_beta_nr_vanishes_for_a_centrosymmetric_molecule(tmp_path):
     # are infrared-active, alpha^nr is not zero.
     alpha, alpha_error = _tensor(doc, "tensors_nuclear_relaxation", "alpha")
     assert alpha[0, 0] > 10 * alpha_error[0, 0] and alpha[2, 2] > 10 * alpha_error[2, 2]
+
+
+NH2 = """
+    [molecule]
+    geometry = \"\"\"
+    N 0 0 0
+    H 0 0.80 0.62
+    H 0 -0.80 0.62
+    \"\"\"
+    multiplicity = 2
+    [model]
+    method = "hf"
+    basis = "6-31g"
+    [geometry]
+    optimize = true
+    [response]
+    properties = ["alpha"]
+    nuclear_relaxation = true
+    """
+
+
+@pytest.mark.slow
+def test_an_open_shell_matches_the_sum_over_normal_modes(tmp_path):
+    """The NH2 radical at UHF (dipole route, open-shell SCF targets): alpha^nr
+    against the normal-mode sum from PySCF's UHF Hessian and dipoles."""
+    code, doc = _run(tmp_path, "nh2", NH2)
+    assert code == 0
+    relaxation = doc["nuclear_relaxation"]
+    coords = np.array(relaxation["minimum"]["coords_bohr"])
+    masses = np.array(relaxation["minimum"]["masses_u"])
+    reference, ref_error = _normal_mode_alpha(("N", "H", "H"), coords, masses, spin=1)
+    value, error = _tensor(doc, "tensors_nuclear_relaxation", "alpha")
+    assert np.all(np.abs(value - reference) <= error + ref_error + 1e-7 * np.abs(reference).max()), (
+        value, error, reference)
+    assert np.abs(reference).max() > 0.01
