@@ -94,7 +94,9 @@ def _frame():
     return np.array([e1, np.cross(BOND, e1), BOND])
 
 
-@pytest.mark.parametrize("model", list(MODELS), ids=list(MODELS))
+# UKS in the slow set: 30 s, and the default suite keeps UKS in test_check.
+@pytest.mark.parametrize("model", [pytest.param(m, marks=pytest.mark.slow) if m == "uks-pbe"
+                                   else m for m in MODELS], ids=list(MODELS))
 def test_oh_radical_converges_on_both_routes_and_matches_analytic_response(tmp_path, model):
     with PointStore.open(tmp_path / "points.sqlite") as store:
         # compute raises if any point failed or left the zero-field state.

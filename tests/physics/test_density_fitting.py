@@ -29,8 +29,8 @@ WATER = """
     """
 
 
-@pytest.mark.parametrize("model", ['method = "hf"',
-                                   'method = "dft"\n    functional = "pbe0"'], ids=["hf", "pbe0"])
+@pytest.mark.parametrize("model", ['method = "hf"', pytest.param(
+    'method = "dft"\n    functional = "pbe0"', marks=pytest.mark.slow)], ids=["hf", "pbe0"])
 def test_a_fitted_model_gives_its_own_analytic_polarizability(tmp_path, model):
     job, fitted = run_job(tmp_path, WATER.format(model=model, fit='density_fit = true'),
                           name="fitted.toml")

@@ -110,7 +110,8 @@ def test_an_open_shell_keeps_every_point(tmp_path):
     assert result.symmetry is None and result.counts.images == 0
 
 
-@pytest.mark.parametrize("placed", ["aligned", "off-axis"])
+# Off the axes in the slow set (50 s): the default suite keeps the aligned case.
+@pytest.mark.parametrize("placed", ["aligned", pytest.param("off-axis", marks=pytest.mark.slow)])
 def test_dft_maps_points_only_by_operations_its_grid_keeps(tmp_path, placed):
     """DFT integrates on atom-centred Lebedev grids fixed in the input axes,
     invariant under signed permutations of those axes only: water in its axes
