@@ -414,7 +414,7 @@ def _relaxation_document(part) -> dict:
         "minimum": {k: frame[k] for k in ("coords_bohr", "moved_bohr", "input_gradient_au",
                                            "polish_steps", "masses_u", "hessian_source",
                                            "frequencies_cm", "double_harmonic_alpha_au",
-                                           "energy_au")},
+                                           "energy_au", "gradients", "wall_time_s")},
         "points": {"planned": part.counts.planned, "computed": part.counts.computed,
                    "reused": part.counts.reused},
         "relaxed": [{"point": r.point.label, "field_vector_au": list(r.point.field_vector_au),
