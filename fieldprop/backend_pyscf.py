@@ -1671,8 +1671,8 @@ def relaxation_frame(job: Job, molecule, dipole_route: bool) -> dict:
 def compute_relaxed_point(context: ModelContext, task: PointTask) -> PointRecord:
     """One field point with the nuclei relaxed (task.relax: the frame and
     tolerances): the Newton steps of fieldprop.relaxation on E(R; F), each
-    structure's SCF from the last one's density (the first from the
-    zero-field reference's); the record holds the energy and dipole at the
+    structure's SCF from the last one's density (the first from the clamped
+    point's at this field); the record holds the energy and dipole at the
     relaxed structure, the structure and the optimiser's remaining errors.
     The state checks: <S^2> and the occupied overlap with the zero-field
     reference (across the two structures' basis sets).
