@@ -1581,15 +1581,16 @@ def _hessian(evaluate: StructureEvaluator, mf, coords) -> tuple[np.ndarray, str]
     """The Cartesian Hessian (3N, 3N) at zero field: PySCF's analytic one for
     RHF, UHF, RKS, UKS, else central differences of analytic gradients."""
     n = len(coords)
-    try:
-        if not METHODS[evaluate.model.method].mean_field:
-            raise NotImplementedError("the SCF object's Hessian is not the method's")
-        h = mf.Hessian()
-        h.verbose = 0
-        value = np.asarray(h.kernel()).transpose(0, 2, 1, 3).reshape(3 * n, 3 * n)
-        return value, "analytic"
-    except (NotImplementedError, AttributeError, TypeError):
-        pass
+    # Only a mean-field method's Hessian is the SCF object's (MP2's is not).
+    analytic = METHODS[evaluate.model.method].mean_field and hasattr(mf, "Hessian")
+    if analytic:
+        try:
+            h = mf.Hessian()
+            h.verbose = 0
+            value = np.asarray(h.kernel()).transpose(0, 2, 1, 3).reshape(3 * n, 3 * n)
+            return value, "analytic"
+        except (NotImplementedError, TypeError):  # PySCF has none for this reference
+            pass
     value = np.zeros((3 * n, 3 * n))
     for i in range(3 * n):
         step = np.zeros(3 * n)
