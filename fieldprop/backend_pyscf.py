@@ -26,12 +26,12 @@ import warnings
 
 import numpy as np
 
-from fieldprop.errors import InputError, ScfNotConvergedError
+from fieldprop.errors import FieldpropError, InputError, ScfNotConvergedError
 from fieldprop.job import Job
 from fieldprop.methods import METHODS
 from fieldprop.records import (CPHF_RTOL, PointRecord, PointTask, SymmetryOperation,
                                ZeroFieldReference)
-from fieldprop.units import ANGSTROM_TO_BOHR
+from fieldprop.units import BACKEND_BOHR_ANGSTROM
 
 logger = logging.getLogger(__name__)
 
@@ -144,7 +144,7 @@ def _refuse_close_atoms(job: Job, molecule) -> None:
     coords = np.asarray(molecule.coords_bohr)
     symbols = molecule.symbols
     covalent = [float(radii.COVALENT[atomic_number(s)]) for s in symbols]
-    to_unit = 1.0 / ANGSTROM_TO_BOHR if job.molecule.units == "angstrom" else 1.0
+    to_unit = 1.0 / job.molecule.unit_scale
     other = "bohr" if job.molecule.units == "angstrom" else "angstrom"
     for i in range(len(symbols)):
         for j in range(i):
@@ -168,8 +168,17 @@ def validate(job: Job, molecule) -> dict:
     replaces (0 without one), the functional as libxc parses it, PySCF's version.
     """
     import pyscf
+    from pyscf.data.nist import BOHR
     from pyscf.dft import libxc
 
+    if BOHR != BACKEND_BOHR_ANGSTROM:
+        # The job's angstrom was turned into bohr with units.BACKEND_BOHR_ANGSTROM,
+        # which no longer is PySCF's: the molecule would not be the one PySCF
+        # builds from the same XYZ.
+        raise FieldpropError(f"PySCF {pyscf.__version__} converts angstrom with a bohr of "
+                             f"{BOHR!r} angstrom, fieldprop's default is PySCF's former "
+                             f"{BACKEND_BOHR_ANGSTROM!r}; update fieldprop, or set "
+                             f"[molecule] bohr_angstrom = {BOHR!r} in {job.path}")
     _refuse_close_atoms(job, molecule)
     mol = build_mole(molecule, job.model.basis, f"{job.path}: [model] basis",
                      job.model.cartesian)

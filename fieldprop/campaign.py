@@ -36,10 +36,11 @@ from typing import Any
 
 from fieldprop.errors import InputError
 from fieldprop.job import Job, job_from_tables
+from fieldprop.units import BACKEND_BOHR_ANGSTROM, NAMED_BOHR_ANGSTROM
 
 #: Keys of a [[molecule]] entry.
 MOLECULE_KEYS = {"name", "xyz", "geometry", "smiles", "units", "charge", "multiplicity",
-                 "allow_close_atoms"}
+                 "allow_close_atoms", "bohr_angstrom"}
 #: Top-level keys and tables of a set file.
 SET_KEYS = {"xyz_dir", "molecule", "model", "response", "scf", "geometry"}
 #: A molecule's name names its result files: letters, digits, . _ - only.
@@ -191,5 +192,13 @@ def _from_smiles(shown: str, where: str, smiles, molecule: dict) -> tuple[dict, 
         if given != implied:
             raise _fail(shown, f"{where}: {key} = {given!r} disagrees with smiles {smiles!r}, "
                         f"which implies {key} {implied}")
-    return ({**molecule, "geometry": structure.geometry_text(), "charge": structure.charge,
-             "multiplicity": structure.multiplicity}, structure.provenance)
+    given = molecule.get("bohr_angstrom", "backend")
+    bohr = NAMED_BOHR_ANGSTROM.get(given, BACKEND_BOHR_ANGSTROM) if isinstance(given, str) \
+        else given if isinstance(given, float) else BACKEND_BOHR_ANGSTROM  # the job checks it
+    # Symmetrised at the source, in bohr at full precision: the nuclei the job
+    # computes, reports and writes are the ones made here, and a group it is
+    # near applies to them exactly.
+    geometry, group = structure.symmetrised_bohr(bohr)
+    return ({**molecule, "geometry": geometry, "units": "bohr", "charge": structure.charge,
+             "multiplicity": structure.multiplicity},
+            structure.provenance + (f", symmetrised to {group.split(',')[0]}" if group else ""))

@@ -502,17 +502,18 @@ def _at_relaxation_minimum(prepared, store):
 
 
 def write_xyz(job, path: Path) -> None:
-    """The job's molecule as an XYZ file (angstrom), written atomically."""
-    from fieldprop.units import BOHR_TO_ANGSTROM
-
+    """The job's molecule as an XYZ file (angstrom, the job's bohr; 15 decimals,
+    so that read back it gives the computed nuclei to the last bits), written
+    atomically."""
+    bohr = job.molecule.bohr_angstrom
     doc = job.optimisation or {}
     lines = [str(len(job.molecule.atoms)),
              f"{job.path}: optimised at {doc.get('model', {}).get('method', '?')}/"
              f"{doc.get('model', {}).get('basis', '?')}, E = {doc.get('energy_au', 0.0):.10f} Eh, "
              f"{doc.get('steps', '?')} steps, {doc.get('criteria', '?')} criteria"]
     for a in job.molecule.atoms:
-        x, y, z = (v * BOHR_TO_ANGSTROM for v in a.coords_bohr)
-        lines.append(f"{a.symbol:<2} {x:15.10f} {y:15.10f} {z:15.10f}")
+        x, y, z = (v * bohr for v in a.coords_bohr)
+        lines.append(f"{a.symbol:<2} {x:20.15f} {y:20.15f} {z:20.15f}")
     part = path.with_name(path.name + ".part")
     part.write_text("\n".join(lines) + "\n", encoding="utf-8")
     os.replace(part, path)
@@ -740,7 +741,8 @@ def cmd_plan(args) -> int:
                                           "plan again for the next one (if any)"))
         _to_stdout(lambda: write_plan(prepared.plan, prepared.tasks, rows, sys.stdout, fmt,
                                       store.label if store is not None else None, only,
-                                      prepared.images, prepared.symmetry, full, stage, used))
+                                      prepared.images, prepared.symmetry, full, stage, used,
+                                      prepared.near_symmetry))
     finally:
         if store is not None:
             store.close()
@@ -1088,13 +1090,14 @@ def cmd_relax(args) -> int:
         prepared = _at_optimised_geometry(prepared, store, args.job)
         prepared = _at_relaxation_minimum(prepared, store)
     document = relax_at_field(prepared, field)
-    write_relaxed_structure(document, xyz, str(job.path))
+    write_relaxed_structure(document, xyz, str(job.path), job.molecule.bohr_angstrom)
     logger.info("relaxed structure written to %s", xyz)
     if args.json is not None:
         write_json_atomic(document, args.json)
         if is_stdout(args.json):
             return 0
-    _to_stdout(lambda: write_relaxation_table(document, sys.stdout))
+    _to_stdout(lambda: write_relaxation_table(document, sys.stdout,
+                                              job.molecule.bohr_angstrom))
     return 0
 
 

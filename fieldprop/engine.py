@@ -26,7 +26,7 @@ from fieldprop import errors
 from fieldprop.continuity import ContinuityReport, check_continuity
 from fieldprop.errors import IncompleteError, UnstableResultError
 from fieldprop.extrapolate import ComponentEstimate, ComponentStatus, mark_unstable, richardson
-from fieldprop.job import Job
+from fieldprop.job import SYMMETRISE, Job
 from fieldprop.keys import Quantities, model_document, model_key, point_key, short_id
 from fieldprop.methods import METHODS, Route
 from fieldprop.molecule import MoleculeSpec, build_molecule
@@ -127,6 +127,9 @@ class Prepared:
     #: False while the windows' points are not all computed (the adaptive
     #: window may grow again once they are).
     settled: bool = True
+    #: The group the given framework is near but not symmetric under to
+    #: round-off (not used; None: none).
+    near_symmetry: "NearSymmetry | None" = None
 
     @property
     def adaptive(self) -> bool:
@@ -198,6 +201,8 @@ class RunResult:
     active: frozenset | None = None
     #: With [response] nuclear_relaxation: the relaxed points' analysis (None: none).
     relaxation: "NuclearRelaxation | None" = None
+    #: As ``Prepared.near_symmetry``.
+    near_symmetry: "NearSymmetry | None" = None
 
     @property
     def energy_au(self) -> float:
@@ -355,7 +360,37 @@ def optimised(job: Job, store=None, compute: bool = True) -> Job:
                     document["largest_gradient_au"])
     else:
         logger.info("%s: the optimised geometry from %s", job.path, store.label)
-    return with_geometry(job, document)
+    return with_geometry(job, symmetrised_optimum(job, document))
+
+
+def symmetrised_optimum(job: Job, document: dict) -> dict:
+    """An optimised geometry made exactly symmetric at its source.
+
+    An optimiser leaves its structure a little off the point group it
+    converged to (formaldehyde came out tilted by ~1e-7 angstrom): computed as
+    it stands, forbidden components are small numbers with tiny bars instead
+    of zeros. The geometry is moved onto the group of the starting geometry
+    (whose operations, for a molecule placed in its symmetry axes, keep the
+    elements on those axes) where that group fits the optimum within
+    symmetry.SYMMETRY_TOLERANCE_BOHR, else onto the group the optimum itself
+    is near; the move (within the optimiser's own tolerance) is recorded as
+    ``document["symmetrised"]``. So the geometry reported and written is the
+    one computed, and symmetry applies to it exactly."""
+    from fieldprop import symmetry
+
+    start = build_molecule(job.molecule, job.response.origin)
+    charges = start.nuclear_charges
+    optimum = np.asarray(document["coords_bohr"], dtype=float)
+    group = symmetry.detect(charges, start.coords_bohr)
+    coords = None if group is None else symmetry.symmetrise_like(group, charges, optimum)
+    if coords is None:
+        group = symmetry.detect(charges, optimum)
+        coords = None if group is None else np.asarray(group.coords_bohr, dtype=float)
+    if coords is None:
+        return document
+    moved = float(np.max(np.linalg.norm(coords - optimum, axis=1)))
+    return {**document, "coords_bohr": [[float(v) for v in row] for row in coords],
+            "symmetrised": {"group": group.name, "moved_bohr": moved}}
 
 
 def relaxation_key(job: Job, molecule: MoleculeSpec) -> str:
@@ -403,6 +438,8 @@ def relaxed_reference(job: Job, store=None, compute: bool = True) -> Job:
                     document["wall_time_s"])
     from fieldprop.job import Atom
 
+    # The polish moves the minimum by the gradient's noise: back onto its group.
+    document = symmetrised_optimum(job, document)
     atoms = tuple(Atom(a.symbol, tuple(float(v) for v in xyz))
                   for a, xyz in zip(job.molecule.atoms, document["coords_bohr"]))
     molecule_input = dataclasses.replace(job.molecule, atoms=atoms)
@@ -524,7 +561,7 @@ def prepare(job: Job, route: Route | str | None = None, facts: dict | None = Non
     functional) and reports them; with ``facts`` (from a store) PySCF is not
     imported.
     """
-    molecule, sym = symmetric_molecule(job)
+    molecule, sym, near = symmetry_decision(job)
     if facts is None:
         from fieldprop.backend_pyscf import validate
 
@@ -539,7 +576,7 @@ def prepare(job: Job, route: Route | str | None = None, facts: dict | None = Non
 
         images = tuple(find_images([p.field_vector_au for p in plan.points], sym))
     return settle(Prepared(job, molecule, facts, plan, tuple(tasks), tasks[0].model_key, sym,
-                           images), {})
+                           images, near_symmetry=_near_symmetry(job, route, near)), {})
 
 
 #: Why a molecule's symmetry is not used, when it has one (None: it is used).
@@ -552,33 +589,75 @@ def symmetry_refusal(job: Job, molecule: MoleculeSpec) -> str | None:
     return None
 
 
+@dataclass(frozen=True)
+class NearSymmetry:
+    """A point group the given framework is near, but not symmetric to round-off
+    under, so it is not used (``[response] symmetry = true``): its name, how far
+    the nuclei would move to fit it (bohr), and how many of the planned points
+    ``symmetry = "symmetrise"`` would leave uncomputed."""
+
+    group: str
+    distance_bohr: float
+    points_saved: int = 0
+
+
 def symmetric_molecule(job: Job):
     """The molecule, and the point group its field points may use (None: none).
+
+    See :func:`symmetry_decision`; this drops the near group."""
+    molecule, sym, _ = symmetry_decision(job)
+    return molecule, sym
+
+
+def symmetry_decision(job: Job):
+    """The molecule, the point group its field points use (None: none), and the
+    group it is only near (a Symmetry not used, or None).
 
     The group is that of the nuclear framework about the centre of nuclear
     charge, for closed shells (a non-degenerate, totally symmetric state); an
     ion's origin must be fixed by it (its dipole depends on the origin). With
     an integration grid (DFT) only the operations that map the grid onto
-    itself count (Symmetry.lattice_subgroup), and no frame is turned. The
-    framework is symmetrised (moved by at most symmetry.SYMMETRY_TOLERANCE_BOHR)
-    so that the images are exact."""
+    itself count (Symmetry.lattice_subgroup), and no frame is turned.
+
+    The given nuclei are the computed nuclei: a group is used as it stands
+    only where the framework is symmetric to round-off (Symmetry.exact). A
+    framework within symmetry.SYMMETRY_TOLERANCE_BOHR of a group, but not to
+    round-off, is computed as given (the group is returned as near), unless
+    ``[response] symmetry = "symmetrise"``: the framework is then moved onto
+    the group, and the moved nuclei are the molecule."""
     from fieldprop import symmetry
 
     molecule = build_molecule(job.molecule, job.response.origin)
     if symmetry_refusal(job, molecule):
-        return molecule, None
+        return molecule, None, None
     sym = symmetry.detect(molecule.nuclear_charges, molecule.coords_bohr)
     if sym is not None and METHODS[job.model.method].integration_grid:
         sym = sym.lattice_subgroup()  # the operations that map the grid onto itself
     if sym is None:
-        return molecule, None
+        return molecule, None, None
     origin = np.asarray(molecule.origin_bohr)
     if molecule.charge != 0 and np.linalg.norm(origin - sym.centre) > 1e-8:
-        return molecule, None
+        return molecule, None, None
+    if job.response.symmetry != SYMMETRISE:
+        return (molecule, sym, None) if sym.exact else (molecule, None, sym)
     if sym.moved_bohr > 0.0:
         molecule = dataclasses.replace(molecule, coords_bohr=tuple(
             tuple(float(v) for v in xyz) for xyz in sym.coords_bohr))
-    return molecule, sym
+    return molecule, sym, None
+
+
+def _near_symmetry(job: Job, route, near) -> NearSymmetry | None:
+    """What the near group would save: the points its images would replace on
+    the planned ladder."""
+    if near is None:
+        return None
+    from fieldprop.symmetry import images as find_images
+
+    plain = make_plan(job, route, None)
+    grouped = make_plan(job, route, near)
+    computed = sum(op is None for _, op in
+                   find_images([p.field_vector_au for p in grouped.points], near))
+    return NearSymmetry(near.name, near.moved_bohr, max(0, len(plain.points) - computed))
 
 
 def _route_values(plan: FieldPlan, records, noise: NoiseModel):
@@ -908,6 +987,11 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
     if plan.frame is not None:  # back into the input frame, where every name points
         tensors = turn_tensors(tensors, plan.frame, sym.forced_zero)
     warnings = departure_warnings(job, plan, smooth) + window_warnings(job, plan, tensors)
+    if sym is not None and job.response.symmetry == SYMMETRISE and not sym.exact:
+        warnings = (f"{job.path}: [response] symmetry = \"{SYMMETRISE}\": the nuclei were "
+                    f"moved by up to {sym.moved_bohr:.1e} bohr onto the point group "
+                    f"{sym.name}; the tensors belong to the moved nuclei "
+                    "(geometry_computed_bohr), not to the geometry as given",) + warnings
     if missing:
         ids = list(dict.fromkeys(missing.values()))
         warnings = (f"{job.path}: {len(ids)} of {len(prepared.computed_tasks)} field points "
@@ -922,7 +1006,8 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
                      tuple(invariants(tensors)), prepared.facts, wall_time_s, warnings, smooth,
                      counts, store_label,
                      tuple(sorted({(source[i], k) for i, k in missing.items()})),
-                     prepared.symmetry, prepared.images, prepared.windows, prepared.active)
+                     prepared.symmetry, prepared.images, prepared.windows, prepared.active,
+                     near_symmetry=prepared.near_symmetry)
 
 
 def gather(job: Job, store=None, lines=None, route: Route | str | None = None,

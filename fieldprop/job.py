@@ -36,7 +36,7 @@ from typing import Any
 from fieldprop.errors import InputError
 from fieldprop.methods import METHODS as METHOD_TRAITS
 from fieldprop.methods import Route, methods_with
-from fieldprop.units import ANGSTROM_TO_BOHR, PROPERTY_ORDER
+from fieldprop.units import BACKEND_BOHR_ANGSTROM, NAMED_BOHR_ANGSTROM, PROPERTY_ORDER
 
 logger = logging.getLogger(__name__)
 
@@ -56,6 +56,9 @@ ROUTES = ("auto", "energy", "dipole")
 #: while its table has not settled, or compute every level.
 WINDOWS = ("adaptive", "full")
 UNITS = ("angstrom", "bohr")
+#: [response] symmetry = "symmetrise": a geometry near a point group is moved
+#: onto it (the moved nuclei are the molecule computed).
+SYMMETRISE = "symmetrise"
 ORIGINS = ("nuclear-charge", "centre-of-mass", "zero")
 #: Other spellings accepted for an origin.
 ORIGIN_ALIASES = {"center-of-mass": "centre-of-mass"}
@@ -84,7 +87,8 @@ AUTO_LEVELS = 6
 MAX_LEVELS = 6
 
 _SECTIONS = {
-    "molecule": {"geometry", "xyz", "units", "charge", "multiplicity", "allow_close_atoms"},
+    "molecule": {"geometry", "xyz", "units", "charge", "multiplicity", "allow_close_atoms",
+                 "bohr_angstrom"},
     "model": {"method", "functional", "basis", "reference", "frozen_core", "cartesian",
               "density_fit"},
     "response": {"properties", "field_au", "ratio", "levels", "origin", "differentiate", "route",
@@ -121,6 +125,21 @@ class MoleculeInput:
     #: Atoms closer than backend_pyscf.CLOSE_FRACTION of their covalent bond
     #: length are refused unless this is set ([molecule] allow_close_atoms).
     allow_close_atoms: bool = False
+    #: The bohr in angstrom that turned angstrom input into bohr ([molecule]
+    #: bohr_angstrom: by default the backend's, units.BACKEND_BOHR_ANGSTROM), and
+    #: what the job said: "backend", "scipy" or "given".
+    bohr_angstrom: float = BACKEND_BOHR_ANGSTROM
+    bohr_source: str = "backend"
+
+    @property
+    def angstrom_to_bohr(self) -> float:
+        """The factor from the job's angstrom to bohr (1 / bohr_angstrom)."""
+        return 1.0 / self.bohr_angstrom
+
+    @property
+    def unit_scale(self) -> float:
+        """The factor from the job's length unit to bohr."""
+        return self.angstrom_to_bohr if self.units == "angstrom" else 1.0
 
     @property
     def n_electrons(self) -> int:
@@ -164,8 +183,10 @@ class ResponseSpec:
     origin: str | tuple[float, float, float]  # one of ORIGINS, or bohr
     route: Route  # ENERGY or DIPOLE after resolution
     nuclear_relaxation: bool = False
-    #: Compute only symmetry-unique field points and map the others (closed shells).
-    symmetry: bool = True
+    #: Compute only symmetry-unique field points and map the others (closed
+    #: shells): True where the geometry is symmetric to round-off as given,
+    #: SYMMETRISE to move a near-symmetric one onto its group first, False never.
+    symmetry: bool | str = True
     #: Which levels of the ladder are computed: "adaptive" (the automatic
     #: ladder, each component's levels grown from three while its table has not
     #: settled: fieldprop.window), "full" (every level of the automatic ladder)
@@ -256,6 +277,7 @@ class Job:
                 "atoms": [{"symbol": a.symbol, "coords_bohr": list(a.coords_bohr)}
                           for a in mol.atoms],
                 "units_in_job": mol.units, "source": mol.source,
+                "bohr_angstrom": mol.bohr_angstrom, "bohr_source": mol.bohr_source,
                 "charge": mol.charge, "multiplicity": mol.multiplicity,
                 "allow_close_atoms": mol.allow_close_atoms,
             },
@@ -352,15 +374,18 @@ def _read_toml(path: Path) -> dict[str, Any]:
 
 
 def parse_geometry_lines(lines: list[str], units: str, where: str,
-                         first_line: int = 1) -> tuple[Atom, ...]:
+                         first_line: int = 1,
+                         bohr_angstrom: float = BACKEND_BOHR_ANGSTROM) -> tuple[Atom, ...]:
     """Parse ``symbol x y z`` lines (units "angstrom" or "bohr") into atoms in bohr.
 
     ``where`` prefixes every message (file and key); ``first_line`` is the line
-    number of ``lines[0]`` in its file (3 in an .xyz file). Raises InputError on an
+    number of ``lines[0]`` in its file (3 in an .xyz file). Angstrom becomes
+    bohr as the backend converts it, x * (1 / bohr_angstrom), so the same
+    text gives the same nuclei bit for bit in both. Raises InputError on an
     unknown element, a wrong column count, text or non-finite coordinates, an
     empty geometry, or two nuclei closer than MIN_DISTANCE_BOHR.
     """
-    scale = ANGSTROM_TO_BOHR if units == "angstrom" else 1.0
+    scale = 1.0 / bohr_angstrom if units == "angstrom" else 1.0
     atoms = []
     for number, line in enumerate(lines, start=first_line):
         fields = line.split()
@@ -399,7 +424,8 @@ def parse_geometry_lines(lines: list[str], units: str, where: str,
     return tuple(atoms)
 
 
-def _read_xyz(job_path: Path, rel: str, units: str) -> tuple[Atom, ...]:
+def _read_xyz(job_path: Path, rel: str, units: str,
+              bohr_angstrom: float = BACKEND_BOHR_ANGSTROM) -> tuple[Atom, ...]:
     where_key = f"{job_path}: [molecule] xyz"
     xyz_path = (job_path.parent / rel)
     try:
@@ -426,23 +452,25 @@ def _read_xyz(job_path: Path, rel: str, units: str) -> tuple[Atom, ...]:
     if count < 1 or len(body) != count:
         raise InputError(f"{where}: line 1 says {count} atoms but {len(body)} atom lines "
                          "follow the comment line")
-    atoms = parse_geometry_lines(lines[2:], units, where, first_line=3)
+    atoms = parse_geometry_lines(lines[2:], units, where, first_line=3,
+                                 bohr_angstrom=bohr_angstrom)
     return atoms
 
 
 def _parse_molecule(path: str, job_path: Path, table: dict[str, Any]) -> MoleculeInput:
     r = _Reader(path, "molecule", table)
     units = r.string("units", "angstrom", UNITS)
+    bohr, bohr_source = _bohr_angstrom(r, table.get("bohr_angstrom", "backend"))
     if r.has("geometry") and r.has("xyz"):
         raise r.fail("geometry", "and xyz are both given; give exactly one")
     if r.has("geometry"):
         geometry = r.string("geometry")
         atoms = parse_geometry_lines(geometry.splitlines(), units,
-                                     f"{path}: [molecule] geometry")
+                                     f"{path}: [molecule] geometry", bohr_angstrom=bohr)
         source = "inline"
     elif r.has("xyz"):
         source = r.string("xyz")
-        atoms = _read_xyz(job_path, source, units)
+        atoms = _read_xyz(job_path, source, units, bohr)
     else:
         raise r.fail("geometry", "is missing; give geometry = \"\"\"...\"\"\" or xyz = \"file.xyz\"")
     charge = r.integer("charge", 0)
@@ -458,7 +486,29 @@ def _parse_molecule(path: str, job_path: Path, table: dict[str, Any]) -> Molecul
     allow_close = table.get("allow_close_atoms", False)
     if not isinstance(allow_close, bool):
         raise r.fail("allow_close_atoms", f"must be true or false, got {allow_close!r}")
-    return MoleculeInput(atoms, charge, multiplicity, units, source, allow_close)
+    return MoleculeInput(atoms, charge, multiplicity, units, source, allow_close, bohr,
+                         bohr_source)
+
+
+#: A bohr (angstrom) outside this range is a typing mistake, not another
+#: CODATA edition (the editions since 1986 agree to 2e-8 relative).
+BOHR_ANGSTROM_RANGE = (0.529, 0.5295)
+
+
+def _bohr_angstrom(r: "_Reader", value: Any) -> tuple[float, str]:
+    """[molecule] bohr_angstrom: a name of NAMED_BOHR_ANGSTROM, or a number."""
+    if isinstance(value, str):
+        if value not in NAMED_BOHR_ANGSTROM:
+            raise r.fail("bohr_angstrom", f"must be {' or '.join(map(repr, NAMED_BOHR_ANGSTROM))}"
+                         f" or the bohr in angstrom as a number, got {value!r}")
+        return NAMED_BOHR_ANGSTROM[value], value
+    low, high = BOHR_ANGSTROM_RANGE
+    if isinstance(value, bool) or not isinstance(value, (int, float)) \
+            or not low < value < high:
+        raise r.fail("bohr_angstrom", f"must be the bohr in angstrom (between {low} and "
+                     f"{high}, e.g. 0.529177210903) or one of "
+                     f"{', '.join(map(repr, NAMED_BOHR_ANGSTROM))}, got {value!r}")
+    return float(value), "given"
 
 
 def _parse_model(path: str, table: dict[str, Any], multiplicity: int) -> ModelSpec:
@@ -631,8 +681,10 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
                      f"fieldprop has for {with_gradient}; {method} has none: set it to false, "
                      "or use one of those")
     symmetry = table.get("symmetry", True)
-    if not isinstance(symmetry, bool):
-        raise r.fail("symmetry", f"must be true or false, got {symmetry!r}")
+    if not isinstance(symmetry, bool) and symmetry != SYMMETRISE:
+        raise r.fail("symmetry", f"must be true (symmetry of the geometry as given), false, "
+                     f"or \"{SYMMETRISE}\" (move a near-symmetric geometry onto its point "
+                     f"group first), got {symmetry!r}")
     window = r.string("window", "adaptive" if automatic else "fixed", WINDOWS)
     if not automatic and "window" in table:
         raise r.fail("window", f"= \"{window}\" chooses levels of the automatic ladder, which "
@@ -767,8 +819,7 @@ def job_from_tables(shown: str, job_path: Path, data: dict[str, Any]) -> Job:
             raise InputError(f"{shown}: section [{section}] is missing")
     molecule = _parse_molecule(shown, job_path, data["molecule"])
     model = _parse_model(shown, data["model"], molecule.multiplicity)
-    scale = ANGSTROM_TO_BOHR if molecule.units == "angstrom" else 1.0
-    response = _parse_response(shown, data["response"], model.method, scale)
+    response = _parse_response(shown, data["response"], model.method, molecule.unit_scale)
     scf = _parse_scf(shown, data.get("scf", {}), model.method, response.max_order,
                      response.route, molecule.multiplicity > 1, response.field_au)
     geometry = _parse_geometry(shown, data.get("geometry", {}), model)

@@ -20,10 +20,11 @@ from tabulate import tabulate
 
 from fieldprop import __version__
 from fieldprop.engine import RunResult, entry_window_au
+from fieldprop.job import SYMMETRISE
 from fieldprop.extrapolate import ComponentStatus
 from fieldprop.keys import short_id
 from fieldprop.plan import FieldPlan
-from fieldprop.units import (ANGSTROM_TO_BOHR, BOHR_TO_ANGSTROM, DISPLAY_UNITS,
+from fieldprop.units import (DISPLAY_UNITS,
                              FIELD_AU_TO_V_PER_M, PROPERTY_ORDER, TABLE_UNITS)
 
 SCHEMA = "fieldprop-result-1"
@@ -141,11 +142,29 @@ def _origin_note(result: RunResult) -> str:
             f"({where}) bohr")
 
 
+def symmetry_note(result: RunResult) -> str:
+    """One line on the geometry and its point group, where it matters: a group
+    the geometry is only near (not used: how far, what symmetrising would
+    save), or a geometry moved onto its group (the moved nuclei were computed).
+    Empty where the geometry is used as given, with or without its group."""
+    near = result.near_symmetry
+    if near is not None:
+        return (f"geometry computed as given: it is near {near.group} (the nuclei are "
+                f"{near.distance_bohr:.1e} bohr from it), not symmetric to round-off; "
+                f"[response] symmetry = \"symmetrise\" would move it onto the group and save "
+                f"{near.points_saved} of the planned field points")
+    sym = result.symmetry
+    if sym is not None and result.job.response.symmetry == SYMMETRISE and not sym.exact:
+        return (f"geometry symmetrised ({sym.name}): the nuclei were moved by up to "
+                f"{sym.moved_bohr:.1e} bohr, and the moved nuclei are the molecule computed "
+                "(geometry_computed_bohr in the result JSON)")
+    return ""
+
+
 def _write_geometry(job, out: TextIO) -> None:
     """The structure used, in the job's units, and its shortest distance."""
     mol = job.molecule
-    scale = 1.0 / ANGSTROM_TO_BOHR if mol.units == "angstrom" else 1.0
-    coords = np.array([a.coords_bohr for a in mol.atoms]) * scale
+    coords = np.array([a.coords_bohr for a in mol.atoms]) / mol.unit_scale
     out.write(f"  geometry ({mol.units}, {mol.source}):\n")
     for atom, xyz in zip(mol.atoms, coords):
         out.write(f"    {atom.symbol:<2} {xyz[0]:12.6f} {xyz[1]:12.6f} {xyz[2]:12.6f}\n")
@@ -198,15 +217,16 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
                  "each component's levels)")
     if counts and counts.images:
         gone += (f", {counts.images} of them images of the others under the molecule's "
-                 f"symmetry ({result.symmetry.name}"
-                 + (f"; geometry symmetrised, moved by at most {result.symmetry.moved_bohr:.1e}"
-                    " bohr" if result.symmetry.moved_bohr > 0 else "") + ")")
+                 f"symmetry ({result.symmetry.name})")
     if plan.frame is not None:
         gone += (f", along the axes of its symmetry frame {_frame_text(plan.frame)} (tensors "
                  "turned back into the input frame)")
     if result.missing:
         gone += (f", {len(result.missing)} of the {n - (counts.images if counts else 0)} to "
                  "compute missing (their components: missing)")
+    note = symmetry_note(result)
+    if note:
+        out.write(f"  {note}\n")
     out.write(f"  {n} field point{'s' if n != 1 else ''}{reused}{gone}, "
               f"{sum(r.scf_cycles for r in result.computed_records)} SCF cycles (zero field "
               "included); "
@@ -435,6 +455,8 @@ def result_document(result: RunResult) -> dict[str, Any]:
         "job": result.job.to_dict(),
         "formula": result.molecule.formula,
         "origin_bohr": list(result.molecule.origin_bohr),
+        "geometry_computed_bohr": [{"symbol": symbol, "coords_bohr": list(xyz)} for symbol, xyz
+                                   in zip(result.molecule.symbols, result.molecule.coords_bohr)],
         "energy_au": result.energy_au,
         "tensors": tensors,
         "invariants": invariants,
@@ -468,7 +490,12 @@ def result_document(result: RunResult) -> dict[str, Any]:
                            for op in result.symmetry.operations]
             if result.symmetry.kind == "finite" else None,
             "geometry_moved_bohr": result.symmetry.moved_bohr,
+            "geometry_symmetrised": not result.symmetry.exact,
             "frame": None if plan.frame is None else [list(row) for row in plan.frame]},
+        "symmetry_near": None if result.near_symmetry is None else {
+            "group": result.near_symmetry.group,
+            "distance_bohr": result.near_symmetry.distance_bohr,
+            "points_saved_by_symmetrise": result.near_symmetry.points_saved},
         "backend": result.backend_facts,
         "unit_factors": {p: {label: f for label, f in DISPLAY_UNITS[p]}
                          for p in PROPERTY_ORDER},
@@ -585,7 +612,7 @@ def _stored_status(task, stored) -> str:
 def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
                store_label: str | None = None, only=None, images=(), symmetry=None,
                without_symmetry: int | None = None, stage: str | None = None,
-               used=None) -> None:
+               used=None, near=None) -> None:
     """The field points ``run`` would compute, which components use them, and
     which the store holds already (``stored``: {key: StoredPoint}); ``fmt``
     table, json (a JSON object per line), csv or ids (an id per line);
@@ -594,7 +621,8 @@ def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
     the ids listing leaves images out; ``without_symmetry``: the number of
     points the plan has when symmetry is not used; ``used``: the indices of
     the points the adaptive window uses at its ``stage`` (a line of text);
-    only those are listed and counted."""
+    only those are listed and counted; ``near``: the engine's NearSymmetry
+    (a group the geometry is near but not used)."""
     import csv
 
     image_of = {i: (j, op) for i, (j, op) in enumerate(images) if op is not None}
@@ -665,7 +693,11 @@ def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
                   + (f"; offsets along the symmetry frame's axes {_frame_text(plan.frame)}"
                      if plan.frame is not None else "")
                   + (f"; geometry symmetrised, largest move {symmetry.moved_bohr:.1e} bohr"
-                     if symmetry.moved_bohr > 0 else "") + "\n")
+                     if not symmetry.exact else "") + "\n")
+    if near is not None:
+        out.write(f"symmetry: not used: the geometry is near {near.group} "
+                  f"({near.distance_bohr:.1e} bohr from it), not symmetric to round-off; "
+                  f"symmetry = \"symmetrise\" would save {near.points_saved} points\n")
     out.write(f"store {store_label or '(none yet)'}: {counts['stored']} stored, "
               f"{counts['failed']} failed, {counts['missing']} to compute\n")
     rows = [[short_id(t.key), p.level, p.label, *(f"{v:+.6g}" for v in p.field_vector_au),
@@ -758,21 +790,23 @@ def comparison_document(comparisons, reference, sigmas: float, verdict: str) -> 
     }
 
 
-def write_relaxed_structure(document: dict, path: Path, job_path: str) -> None:
-    """The relaxed structure of ``fieldprop relax`` as XYZ (angstrom), atomically."""
+def write_relaxed_structure(document: dict, path: Path, job_path: str,
+                            bohr_angstrom: float) -> None:
+    """The relaxed structure of ``fieldprop relax`` as XYZ (angstrom, the job's
+    bohr), atomically."""
     field = " ".join(f"{v:g}" for v in document["field_au"])
     lines = [str(len(document["symbols"])),
              f"{job_path}: nuclei relaxed in the field ({field}) au under the Eckart conditions "
              f"of the zero-field minimum; E = {document['energy_relaxed_au']:.10f} Eh"]
     for symbol, xyz in zip(document["symbols"], document["relaxed_bohr"]):
-        x, y, z = (v * BOHR_TO_ANGSTROM for v in xyz)
-        lines.append(f"{symbol:<2} {x:15.10f} {y:15.10f} {z:15.10f}")
+        x, y, z = (v * bohr_angstrom for v in xyz)
+        lines.append(f"{symbol:<2} {x:20.15f} {y:20.15f} {z:20.15f}")
     part = path.with_name(path.name + ".part")
     part.write_text("\n".join(lines) + "\n", encoding="utf-8")
     os.replace(part, path)
 
 
-def write_relaxation_table(document: dict, out: TextIO) -> None:
+def write_relaxation_table(document: dict, out: TextIO, bohr_angstrom: float) -> None:
     """``fieldprop relax``: per atom the field's force on the zero-field
     minimum and the displacement to the relaxed structure; energies, dipoles."""
     field = ", ".join(f"{v:g}" for v in document["field_au"])
@@ -785,8 +819,8 @@ def write_relaxation_table(document: dict, out: TextIO) -> None:
             document["symbols"], document["forces_at_minimum_au"],
             document["displacement_bohr"], document["relaxed_bohr"]), start=1):
         rows.append([f"{n} {symbol}", *(f"{v:.3e}" for v in force),
-                     *(f"{v * BOHR_TO_ANGSTROM:.3e}" for v in moved),
-                     *(f"{v * BOHR_TO_ANGSTROM:.8f}" for v in xyz)])
+                     *(f"{v * bohr_angstrom:.3e}" for v in moved),
+                     *(f"{v * bohr_angstrom:.8f}" for v in xyz)])
     out.write(tabulate(rows, headers=["atom", "Fx (Eh/bohr)", "Fy", "Fz", "dx (angstrom)", "dy",
                                       "dz", "x relaxed (angstrom)", "y", "z"],
                        disable_numparse=True) + "\n")

@@ -13,6 +13,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numpy as np
+
 #: The embedding seed: fixed, so a SMILES always gives the same coordinates.
 EMBEDDING_SEED = 61453
 #: Force-field steps of the clean-up (converges for drug-sized molecules).
@@ -42,6 +44,23 @@ class SmilesStructure:
         """``symbol x y z`` lines, angstrom, 10 decimals."""
         return "\n".join(f"{s} {x:.10f} {y:.10f} {z:.10f}"
                          for s, (x, y, z) in zip(self.symbols, self.coords_angstrom))
+
+    def symmetrised_bohr(self, bohr_angstrom: float) -> tuple[str, str]:
+        """``symbol x y z`` lines in bohr, made exactly symmetric under the
+        point group the force-field structure is near (a force field leaves
+        ~1e-7 bohr of asymmetry), each number at full precision (the text
+        reads back to the same doubles), and the group's name ("" for none):
+        the structure computed is then exactly the one reported."""
+        from fieldprop.job import _Z_OF
+        from fieldprop.symmetry import detect
+
+        coords = np.asarray(self.coords_angstrom, dtype=float) * (1.0 / bohr_angstrom)
+        group = detect([_Z_OF[s.lower()] for s in self.symbols], coords)
+        if group is not None:
+            coords = np.asarray(group.coords_bohr, dtype=float)
+        text = "\n".join(f"{s} {float(x)!r} {float(y)!r} {float(z)!r}"
+                         for s, (x, y, z) in zip(self.symbols, coords))
+        return text, "" if group is None else group.name
 
 
 def from_smiles(smiles: str) -> SmilesStructure:

@@ -29,9 +29,14 @@ Three kinds of group:
   with a centre of inversion) and their lengths across it do;
 - ``atom``: O(3) about the nucleus; fields of the same length relate.
 
-The framework is symmetrised before use (each atom moved to the average of its
-images under the group), so that the images are exact: a geometry symmetric to
-SYMMETRY_TOLERANCE_BOHR moves by at most that, and the move is reported.
+:func:`detect` finds the group of a framework symmetric to within
+SYMMETRY_TOLERANCE_BOHR and symmetrises it (each atom moved to the average of
+its images under the group) so that the images are exact; ``moved_bohr`` says
+how far. A group is used as it stands only where the framework is symmetric to
+round-off (:attr:`Symmetry.exact`: the move is within ROUNDOFF_ULPS units in
+the last place of the framework's size); a geometry typed to six decimals is
+~1e-7 bohr off, and computing it moved would compute another molecule. The
+engine decides what to do with a group that is only near.
 
 Only states of the molecule's full symmetry may be mapped: closed shells
 (a non-degenerate, totally symmetric ground state); the engine decides when.
@@ -55,6 +60,15 @@ import numpy as np
 #: Largest distance (bohr) between an atom's image and an atom of the same
 #: element for an operation to count; the geometry is then symmetrised exactly.
 SYMMETRY_TOLERANCE_BOHR = 1e-5
+#: A framework is symmetric "to round-off" when symmetrising it moves no atom
+#: by more than this many units in the last place (double precision) of its
+#: size (largest distance from the centre, at least 1 bohr). An image is a 3x3
+#: product (three roundings per coordinate), the centre a weighted mean, a
+#: refined operation exact to a few ulp: a framework exactly symmetric in its
+#: digits, or turned by a rotation in double precision, moves by 0-10 ulp
+#: (measured: water turned off its axes, 1.6e-16 bohr); one typed to six
+#: decimals in angstrom moves by ~1e-7 bohr, ~1e8 ulp.
+ROUNDOFF_ULPS = 64
 #: Relative tolerance for two field vectors to be images of each other.
 FIELD_TOLERANCE = 1e-9
 #: Rotations about an axis used to stand for the continuous ones (C_n with n
@@ -80,6 +94,17 @@ class Symmetry:
     moved_bohr: float
     axis: np.ndarray | None = None
     inversion: bool = False
+
+    @property
+    def roundoff_bohr(self) -> float:
+        """The move below which the framework counts as symmetric as given:
+        ROUNDOFF_ULPS ulp of its size (see ROUNDOFF_ULPS)."""
+        return roundoff_tolerance_bohr(self.coords_bohr, self.centre)
+
+    @property
+    def exact(self) -> bool:
+        """True when the framework was symmetric to round-off as given."""
+        return self.moved_bohr <= self.roundoff_bohr
 
     @property
     def name(self) -> str:
@@ -410,14 +435,52 @@ def detect(charges, coords_bohr, centre=None,
 MATCH_SLACK = 20.0
 
 
+def roundoff_tolerance_bohr(coords_bohr, centre) -> float:
+    """ROUNDOFF_ULPS units in the last place of the framework's size (bohr)."""
+    x = np.asarray(coords_bohr, dtype=float) - np.asarray(centre, dtype=float)
+    size = max(1.0, float(np.max(np.linalg.norm(x, axis=1))))
+    return ROUNDOFF_ULPS * float(np.finfo(float).eps) * size
+
+
+def symmetrise_like(sym: Symmetry, charges, coords_bohr,
+                    tolerance: float = SYMMETRY_TOLERANCE_BOHR) -> np.ndarray | None:
+    """``coords_bohr`` made exactly symmetric under the operations of ``sym``
+    (a finite group found on another framework of the same atoms, e.g. the
+    starting geometry of an optimisation), about their own centre of nuclear
+    charge: each atom moved to the average of its images (the average over a
+    group is a projection, so one pass suffices). None when an operation maps
+    an atom further than ``tolerance`` from every atom of its element (the
+    frameworks do not share the group). A framework whose group had its
+    elements along the input axes keeps them there exactly, which a
+    detection on the moved framework itself (tilted by the optimiser's
+    noise) would not.
+    """
+    if sym.kind != "finite":
+        return None
+    z = np.asarray(charges, dtype=float)
+    xyz = np.asarray(coords_bohr, dtype=float)
+    centre = (z @ xyz) / z.sum()
+    x = xyz - centre
+    new = np.zeros_like(x)
+    for op in sym.operations:
+        perm = _permutation(op, z, x, tolerance)
+        if perm is None:
+            return None
+        new[perm] += x @ op.T
+    return new / len(sym.operations) + centre
+
+
 def _closed(ops) -> bool:
     """True when every product of two operations is (nearly) one of them."""
     return all(any(np.abs(a @ b - c).max() < 1e-4 for c in ops) for a in ops for b in ops)
 
 
 #: The symmetrised framework must map onto itself to this (bohr) under the
-#: refined operations: images then carry dipoles and alphas to ~1e-15.
+#: refined operations, and is refined on towards round-off while that gains.
 EXACTNESS_BOHR = 1e-11
+#: Most alternations of symmetrisation and operation refinement (each gains
+#: a factor of a few; from 1e-5 bohr to round-off takes ~10).
+REFINE_STEPS = 60
 
 
 def _refine(ops, perms, x):
@@ -434,7 +497,9 @@ def _refine(ops, perms, x):
     (None, x) when they do not (no symmetry is then used)."""
     ops = [np.asarray(op, dtype=float) for op in ops]
     sym = x
-    for _ in range(30):
+    exact = roundoff_tolerance_bohr(x, np.zeros(3)) / 4
+    worst = np.inf
+    for _ in range(REFINE_STEPS):
         new = np.zeros_like(x)
         for op, perm in zip(ops, perms):
             new[perm] += sym @ op.T
@@ -445,10 +510,13 @@ def _refine(ops, perms, x):
             d = np.sign(np.linalg.det(op)) * np.sign(np.linalg.det(w @ vt))
             refined.append(_exact(w @ np.diag([1.0, 1.0, d]) @ vt))
         ops = refined
-        worst = max(float(np.max(np.abs(sym @ op.T - sym[perm]))) for op, perm in zip(ops, perms))
-        if worst <= EXACTNESS_BOHR:
+        last, worst = worst, max(float(np.max(np.abs(sym @ op.T - sym[perm])))
+                                 for op, perm in zip(ops, perms))
+        # On to round-off (a symmetrised framework is then symmetric as it
+        # stands), or as far as the alternation still gains.
+        if worst <= exact or (worst <= EXACTNESS_BOHR and worst >= 0.5 * last):
             return ops, sym
-    return None, x
+    return (ops, sym) if worst <= EXACTNESS_BOHR else (None, x)
 
 
 def _exact(op: np.ndarray) -> np.ndarray:
@@ -531,4 +599,5 @@ def image_record(record, op: np.ndarray, point):
                    wall_time_s=0.0)
 
 
-__all__ = ["SYMMETRY_TOLERANCE_BOHR", "Symmetry", "detect", "image_record", "images"]
+__all__ = ["ROUNDOFF_ULPS", "SYMMETRY_TOLERANCE_BOHR", "Symmetry", "detect", "image_record",
+           "images", "roundoff_tolerance_bohr", "symmetrise_like"]

@@ -26,6 +26,19 @@ EPSILON0_SI = _c.epsilon_0
 BOHR_TO_ANGSTROM = BOHR_M / _c.angstrom
 ANGSTROM_TO_BOHR = 1.0 / BOHR_TO_ANGSTROM
 
+#: The bohr in angstrom with which the backend turns angstrom into bohr
+#: (PySCF's ``pyscf.data.nist.BOHR``, CODATA 2010). A validator feeds both codes
+#: the same angstrom XYZ; converted with another bohr, the "same" molecule
+#: differs at ~1e-9 relative, enough to move alpha by several of fieldprop's
+#: error bars. Held here, not imported, so that reading a job never imports
+#: PySCF; the backend refuses to run if its value ever differs (and a test
+#: compares the two).
+BACKEND_BOHR_ANGSTROM = 0.52917721092
+
+#: The values ``[molecule] bohr_angstrom`` accepts by name: the backend's, or
+#: the CODATA edition of the installed SciPy.
+NAMED_BOHR_ANGSTROM = {"backend": BACKEND_BOHR_ANGSTROM, "scipy": BOHR_TO_ANGSTROM}
+
 #: Elementary charge in statcoulomb (Gaussian units): e * sqrt(1e9 / (4 pi eps0)).
 ELEMENTARY_CHARGE_STATC = ELEMENTARY_CHARGE_C * math.sqrt(1e9 / (4.0 * math.pi * EPSILON0_SI))
 _BOHR_CM = BOHR_M * 100.0
