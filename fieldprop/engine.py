@@ -32,6 +32,7 @@ from fieldprop.methods import METHODS, Route
 from fieldprop.molecule import MoleculeSpec, build_molecule
 from fieldprop.plan import FieldPlan, plan_fields, stencil_estimate
 from fieldprop.records import CPHF_RTOL, PointRecord, PointTask
+from fieldprop.symmetry import FRAME_ERROR
 from fieldprop.tensors import Invariant, TensorResult, assemble, invariants, turn_tensors
 
 if TYPE_CHECKING:
@@ -985,7 +986,7 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
                      for comp, est in zip(plan.components, estimates)]
     tensors = assemble(plan.components, estimates)
     if plan.frame is not None:  # back into the input frame, where every name points
-        tensors = turn_tensors(tensors, plan.frame, sym.forced_zero)
+        tensors = turn_tensors(tensors, plan.frame, sym.forced_zero, FRAME_ERROR)
     warnings = departure_warnings(job, plan, smooth) + window_warnings(job, plan, tensors)
     if sym is not None and job.response.symmetry == SYMMETRISE and not sym.exact:
         warnings = (f"{job.path}: [response] symmetry = \"{SYMMETRISE}\": the nuclei were "

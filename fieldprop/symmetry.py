@@ -69,6 +69,11 @@ SYMMETRY_TOLERANCE_BOHR = 1e-5
 #: (measured: water turned off its axes, 1.6e-16 bohr); one typed to six
 #: decimals in angstrom moves by ~1e-7 bohr, ~1e8 ulp.
 ROUNDOFF_ULPS = 64
+#: A symmetry frame's entries are rounded to this many decimals (keys must not
+#: depend on a linear-algebra library's last bits), so each is known to
+#: FRAME_ERROR: what a turned tensor entry's error bar carries for it.
+FRAME_DECIMALS = 12
+FRAME_ERROR = 0.5 * 10.0 ** -FRAME_DECIMALS
 #: Relative tolerance for two field vectors to be images of each other.
 FIELD_TOLERANCE = 1e-9
 #: Rotations about an axis used to stand for the continuous ones (C_n with n
@@ -322,7 +327,7 @@ def _nearest_order(q: np.ndarray) -> np.ndarray:
 
 
 def _rounded(q: np.ndarray) -> np.ndarray:
-    out = np.round(q, 12)
+    out = np.round(q, FRAME_DECIMALS)
     out[out == 0.0] = 0.0  # no negative zeros
     return out
 
@@ -445,29 +450,47 @@ def roundoff_tolerance_bohr(coords_bohr, centre) -> float:
 def symmetrise_like(sym: Symmetry, charges, coords_bohr,
                     tolerance: float = SYMMETRY_TOLERANCE_BOHR) -> np.ndarray | None:
     """``coords_bohr`` made exactly symmetric under the operations of ``sym``
-    (a finite group found on another framework of the same atoms, e.g. the
-    starting geometry of an optimisation), about their own centre of nuclear
-    charge: each atom moved to the average of its images (the average over a
-    group is a projection, so one pass suffices). None when an operation maps
-    an atom further than ``tolerance`` from every atom of its element (the
-    frameworks do not share the group). A framework whose group had its
-    elements along the input axes keeps them there exactly, which a
-    detection on the moved framework itself (tilted by the optimiser's
-    noise) would not.
+    about its centre (a finite group found on another framework of the same
+    atoms, e.g. the starting geometry of an optimisation): each atom moved to
+    the average of its images (the average over a group is a projection, so
+    one pass suffices). None when an operation maps an atom further than
+    ``tolerance`` from every atom of its element (the frameworks do not share
+    the group). A framework whose symmetry elements lay on the input axes
+    keeps them there exactly, which a detection on the moved framework itself
+    (tilted and shifted by an optimiser's noise) would not.
     """
     if sym.kind != "finite":
         return None
     z = np.asarray(charges, dtype=float)
-    xyz = np.asarray(coords_bohr, dtype=float)
-    centre = (z @ xyz) / z.sum()
-    x = xyz - centre
-    new = np.zeros_like(x)
-    for op in sym.operations:
-        perm = _permutation(op, z, x, tolerance)
-        if perm is None:
-            return None
-        new[perm] += x @ op.T
-    return new / len(sym.operations) + centre
+    centre = np.asarray(sym.centre, dtype=float)
+    x = np.asarray(coords_bohr, dtype=float) - centre
+    perms = [_permutation(op, z, x, tolerance) for op in sym.operations]
+    if any(perm is None for perm in perms):
+        return None
+    return _project(sym.operations, perms, x) + centre
+
+
+def _project(ops, perms, x) -> np.ndarray:
+    """The framework ``x`` (about the centre) averaged over the group: each
+    atom to the mean of the images that land on it. Each orbit is then
+    rebuilt from one atom by the operations themselves, so that for signed
+    permutations (a molecule in its symmetry axes) the images agree bit for
+    bit, where summing in a different order per atom would leave an ulp."""
+    mean = np.zeros_like(x)
+    for op, perm in zip(ops, perms):
+        mean[perm] += x @ np.asarray(op).T
+    mean /= len(ops)
+    out = mean.copy()
+    done = np.zeros(len(x), dtype=bool)
+    for i in range(len(x)):
+        if done[i]:
+            continue
+        for op, perm in zip(ops, perms):
+            j = perm[i]
+            if not done[j]:
+                out[j] = np.asarray(op) @ mean[i]
+                done[j] = True
+    return out
 
 
 def _closed(ops) -> bool:
@@ -500,10 +523,7 @@ def _refine(ops, perms, x):
     exact = roundoff_tolerance_bohr(x, np.zeros(3)) / 4
     worst = np.inf
     for _ in range(REFINE_STEPS):
-        new = np.zeros_like(x)
-        for op, perm in zip(ops, perms):
-            new[perm] += sym @ op.T
-        sym = new / len(ops)
+        sym = _project(ops, perms, sym)
         refined = []
         for op, perm in zip(ops, perms):
             w, _, vt = np.linalg.svd(sym[perm].T @ sym)

@@ -50,6 +50,7 @@ Example
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import math
 from dataclasses import dataclass
@@ -68,6 +69,12 @@ UNSTABLE_FRACTION = 0.1
 #: are not flagged for their noise: small next to typical molecular values of
 #: |mu| ~ 1, alpha ~ 10, beta ~ 10-1000, gamma ~ 1e3-1e5 au (common practice).
 NEGLIGIBLE_ERROR_AU = {1: 1e-5, 2: 1e-4, 3: 1e-2, 4: 1.0}
+#: No error bar is below the rounding of the value it qualifies: this many
+#: units in the last place of |value| (a Richardson entry is a few weighted
+#: sums of numbers of its size, each rounded; turned entries add their own,
+#: see turn_tensors).
+VALUE_ULPS = 8.0
+_EPS = float(np.finfo(float).eps)
 
 
 @dataclass(frozen=True)
@@ -146,7 +153,7 @@ def assemble(plans, estimates) -> dict[str, TensorResult]:
         limit = max(UNSTABLE_FRACTION * scale, NEGLIGIBLE_ERROR_AU[order])
         checked = []
         for c in comps:
-            est = c.estimate
+            est = _at_least_rounding(c.estimate)
             if c.stable and not est.error_au <= limit:
                 est = mark_unstable(est, f"error bar {est.error_au:.2g} au exceeds "
                                          f"{UNSTABLE_FRACTION:.0%} of the tensor's size "
@@ -164,6 +171,14 @@ def assemble(plans, estimates) -> dict[str, TensorResult]:
     return out
 
 
+def _at_least_rounding(est: ComponentEstimate) -> ComponentEstimate:
+    """``est`` with its error bar raised to VALUE_ULPS ulp of its value."""
+    floor = VALUE_ULPS * _EPS * abs(est.value_au)
+    if not math.isfinite(floor) or est.error_au >= floor:
+        return est
+    return dataclasses.replace(est, error_au=floor)
+
+
 #: The status of an entry drawn from several frame components: the worst of
 #: theirs, in this order (worst first).
 _WORST_FIRST = (ComponentStatus.MISSING, ComponentStatus.UNSTABLE,
@@ -178,8 +193,8 @@ def _turn(t: np.ndarray, m: np.ndarray) -> np.ndarray:
     return t
 
 
-def turn_tensors(tensors: dict[str, TensorResult], frame, forced_zero=None
-                 ) -> dict[str, TensorResult]:
+def turn_tensors(tensors: dict[str, TensorResult], frame, forced_zero=None,
+                 frame_error: float = 0.0) -> dict[str, TensorResult]:
     """Tensors computed in ``frame`` (rows: its axes in the input frame)
     turned into the input frame, component by component.
 
@@ -192,6 +207,13 @@ def turn_tensors(tensors: dict[str, TensorResult], frame, forced_zero=None
     their names and recipes; their Richardson tables are the frame's, so
     none is kept (``table`` empty), and ``chosen_entry`` is that of the
     contributor with the largest error bar.
+
+    Two more terms keep a turned bar from falling below what the turn itself
+    leaves: the frame is known to ``frame_error`` per entry (its rows are
+    rounded), so an entry carries order * frame_error * sum |q..| |T| (the
+    frame's components that symmetry made exactly zero are zero only in the
+    exact frame); and the turn's own rounding, (3^order + order) ulp of that
+    sum.
     """
     q = np.asarray(frame, dtype=float)
     out = {}
@@ -204,6 +226,8 @@ def turn_tensors(tensors: dict[str, TensorResult], frame, forced_zero=None
         # that draws on them numberless below.
         value = _turn(np.where(t.stable, t.value_au, 0.0), q.T)
         error = _turn(np.where(t.stable, t.error_au, 0.0), np.abs(q.T))
+        size = _turn(np.where(t.stable, np.abs(t.value_au), 0.0), np.abs(q.T))
+        error = error + (t.order * frame_error + (3 ** t.order + t.order) * _EPS) * size
         roundoff = np.zeros_like(t.value_au)
         for c in t.components:
             for e in c.entries:

@@ -40,7 +40,11 @@ def rotation(seed: int = 7) -> np.ndarray:
 
 
 def geometry_text(symbols, coords) -> str:
-    return "\n".join(f"{s} {x:.10f} {y:.10f} {z:.10f}" for s, (x, y, z) in zip(symbols, coords))
+    """``symbol x y z`` lines at full double precision (the text reads back to
+    the same numbers), so that a geometry built symmetric stays symmetric to
+    round-off (fieldprop uses a point group only then)."""
+    return "\n".join(f"{s} {float(x)!r} {float(y)!r} {float(z)!r}"
+                     for s, (x, y, z) in zip(symbols, coords))
 
 
 def rotated_water() -> str:
