@@ -210,10 +210,10 @@ def turn_tensors(tensors: dict[str, TensorResult], frame, forced_zero=None,
 
     Two more terms keep a turned bar from falling below what the turn itself
     leaves: the frame is known to ``frame_error`` per entry (its rows are
-    rounded), so an entry carries order * frame_error * sum |q..| |T| (the
-    frame's components that symmetry made exactly zero are zero only in the
-    exact frame); and the turn's own rounding, (3^order + order) ulp of that
-    sum.
+    rounded), so every frame entry, the ones symmetry made exactly zero
+    included (zero only in the exact frame), is uncertain by order *
+    frame_error * max |T|, turned like the bars; and the turn's own rounding,
+    (3^order + order) ulp of sum |q..| |T|.
     """
     q = np.asarray(frame, dtype=float)
     out = {}
@@ -227,7 +227,9 @@ def turn_tensors(tensors: dict[str, TensorResult], frame, forced_zero=None,
         value = _turn(np.where(t.stable, t.value_au, 0.0), q.T)
         error = _turn(np.where(t.stable, t.error_au, 0.0), np.abs(q.T))
         size = _turn(np.where(t.stable, np.abs(t.value_au), 0.0), np.abs(q.T))
-        error = error + (t.order * frame_error + (3 ** t.order + t.order) * _EPS) * size
+        largest = float(np.max(np.where(t.stable, np.abs(t.value_au), 0.0)))
+        error = (error + (3 ** t.order + t.order) * _EPS * size
+                 + t.order * frame_error * largest * _turn(np.ones_like(size), np.abs(q.T)))
         roundoff = np.zeros_like(t.value_au)
         for c in t.components:
             for e in c.entries:
@@ -389,6 +391,8 @@ def invariants(tensors: dict[str, TensorResult]) -> list[Invariant]:
         value, err = _propagate(fn, tensors, needs)
         if name in seminorms:
             err = max(err, _seminorm_error(value, err, _seminorm_bound(fn, tensors, needs)))
+        # An invariant is a sum of up to 3^4 products: at least its own rounding.
+        err = max(err, VALUE_ULPS * _EPS * abs(value))
         out.append(Invariant(name, value, err))
     return out
 

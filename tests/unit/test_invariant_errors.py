@@ -146,3 +146,36 @@ def test_a_noisy_component_does_not_loosen_the_instability_limit():
     stable = {c.plan.name: c.stable for c in alpha.components}
     assert not stable["alpha_xx"] and not stable["alpha_yy"]
     assert stable["alpha_zz"] and stable["alpha_xy"]
+
+
+def test_no_bar_below_the_rounding_of_its_value():
+    """A component or invariant known to better than its own rounding still
+    carries that rounding (tensors.VALUE_ULPS ulp of |value|): a bar of zero
+    on a non-zero value would claim more than double precision holds."""
+    alpha = np.diag([8.5, 9.25, 10.0])
+    tensors = _tensors({"alpha": alpha}, {"alpha": 0.0})
+    eps = np.finfo(float).eps
+    error = tensors["alpha"].error_au
+    assert np.all(error[np.diag_indices(3)] >= ft.VALUE_ULPS * eps * np.diag(alpha))
+    assert np.all(error[~np.eye(3, dtype=bool)] == 0.0)  # zero values keep a zero bar
+    inv = _invariants(tensors)["alpha_iso"]
+    assert inv.error_au >= ft.VALUE_ULPS * eps * inv.value_au > 0.0
+
+
+def test_turned_entries_carry_the_frames_rounding():
+    """A tensor computed in a turned frame whose forbidden components are
+    exact zeros there: turned into the input frame, an entry that is a small
+    combination of large frame entries carries the frame's own precision
+    (order x frame_error x the size it is turned from), not the frame bars
+    alone (a dipole_y of -2.7e-7 once carried a bar of 6.6e-20)."""
+    tilt = 1e-7
+    q = np.array([[1.0, 0.0, 0.0], [0.0, np.cos(tilt), -np.sin(tilt)],
+                  [0.0, np.sin(tilt), np.cos(tilt)]])
+    tensors = _tensors({"dipole": np.array([0.0, 0.0, -2.7])}, {"dipole": 1e-13})
+    turned = ft.turn_tensors(tensors, q, None, frame_error=5e-13)["dipole"]
+    value, error = turned.value_au, turned.error_au
+    assert abs(value[1]) == pytest.approx(2.7 * np.sin(tilt), rel=1e-9)
+    assert error[1] >= 5e-13 * 2.7
+    # Without the frame's precision only the rounding of the turn itself remains.
+    bare = ft.turn_tensors(tensors, q, None)["dipole"].error_au
+    assert bare[1] < error[1]

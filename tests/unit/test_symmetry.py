@@ -274,3 +274,48 @@ def test_a_framework_symmetric_only_to_the_tolerance_gets_exact_operations(name)
         assert max(np.linalg.norm(centred - p, axis=1).min() for p in image) < 1e-10
     for rank in (1, 2, 3):  # the same invariant tensors as the exact framework
         assert _invariant_basis(sym, rank).shape == _invariant_basis(exact, rank).shape
+
+
+def _turned(coords, decimals=None):
+    from scipy.spatial.transform import Rotation
+
+    q = Rotation.from_euler("zyx", [37.0, 23.0, -61.0], degrees=True).as_matrix()
+    x = np.asarray(coords, dtype=float) @ q.T + np.array([0.31, -0.17, 0.52])
+    return x if decimals is None else np.round(x, decimals)
+
+
+@pytest.mark.parametrize("name", ["water (C2v)", "ammonia (C3v)", "methane (Td)"])
+def test_symmetric_to_round_off_or_only_near(name):
+    """Exact: in the axes, or turned in double precision. Near: the same
+    turned geometry typed to six decimals (~1e-6 off): found, not exact,
+    and exact once symmetrised."""
+    charges, coords, order = MOLECULES[name]
+    for exact in (coords, _turned(coords)):
+        sym = detect(charges, exact)
+        assert sym is not None and len(sym.operations) == order and sym.exact
+        assert sym.moved_bohr <= sym.roundoff_bohr < 1e-13
+    near = detect(charges, _turned(coords, 6))
+    assert near is not None and len(near.operations) == order and not near.exact
+    assert 1e-8 < near.moved_bohr <= SYMMETRY_TOLERANCE_BOHR
+    again = detect(charges, near.coords_bohr)
+    assert again is not None and again.exact
+
+
+def test_symmetrise_like_restores_a_group_in_the_axes_exactly():
+    """An optimiser's structure tilted and shifted by ~1e-7 bohr goes back onto
+    the starting geometry's group about its centre: mirror images bit for bit,
+    atoms on the axis exactly on it."""
+    from fieldprop.symmetry import symmetrise_like
+
+    charges = (6, 8, 1, 1)
+    start = np.array([[0, 0, -1.0], [0, 0, 1.28], [0, 1.78, -2.1], [0, -1.78, -2.1]])
+    group = detect(charges, start)
+    rng = np.random.default_rng(5)
+    noisy = start * (1 + 1e-3) + rng.normal(scale=1e-7, size=start.shape)
+    fixed = symmetrise_like(group, charges, noisy)
+    assert np.all(fixed[:, 0] == 0.0) and np.all(fixed[:2, 1] == 0.0)
+    assert fixed[2, 1] == -fixed[3, 1] and fixed[2, 2] == fixed[3, 2]
+    assert np.abs(fixed - noisy).max() < 1e-6
+    # A framework of another shape does not share the group.
+    assert symmetrise_like(group, charges, noisy + np.array([0.0, 0.3, 0.0]) * [[0], [0], [1],
+                                                                                   [0]]) is None
