@@ -87,6 +87,8 @@ DEFAULT_ABS_FLOOR_AU = {order: v / 10.0 for order, v in NEGLIGIBLE_ERROR_AU.item
 BOUND_ERROR_BARS = "error-bars"
 BOUND_RELATIVE_FLOOR = "relative-floor"
 BOUND_ABSOLUTE_FLOOR = "absolute-floor"
+_BOUND_TEXT = {BOUND_ERROR_BARS: "the error bars", BOUND_RELATIVE_FLOOR: "the relative floor",
+               BOUND_ABSOLUTE_FLOOR: "the absolute floor"}
 
 #: The causes ``diagnose`` and ``align_reference`` can name (the JSON's ``cause``).
 CAUSE_SIGN = "sign"
@@ -361,7 +363,7 @@ def verdict(comparisons, rule: AgreementRule, diagnoses=()) -> Verdict:
     causes = ", ".join(f"{d.cause} ({d.property})" for d in diagnoses)
     if bad:
         names = ", ".join(
-            f"{c.name} (diff {c.difference:+.3g}, allowed {c.allowed:.2g} by {c.bound})"
+            f"{c.name} (diff {c.difference:+.3g}, allowed {c.allowed:.2g} by {_BOUND_TEXT[c.bound]})"
             if c.ff_value is not None else f"{c.name} (unstable)" for c in bad[:3])
         text = (f"DISAGREE: {len(bad)} of {total} tensor entries outside "
                 f"{bars + (' (--strict: no floor)' if rule.strict else ' plus the floor')}; "
@@ -374,7 +376,7 @@ def verdict(comparisons, rule: AgreementRule, diagnoses=()) -> Verdict:
             c = by_floor[0]
             text += (f"within the bounds, {len(by_floor)} of them only by the floor (beyond "
                      f"{bars}; worst {c.name}: diff {c.difference:+.2g} is {c.ratio:.3g} error "
-                     f"bars, {c.floor_kind} {c.floor:.2g}); --strict would fail them")
+                     f"bars, {_BOUND_TEXT[c.floor_kind]} {c.floor:.2g} au); --strict would fail them")
         else:
             text += f"within {bars}" + (" (--strict: no floor)" if rule.strict else "")
             floored = [c for rows in comparisons.values() for c in rows
