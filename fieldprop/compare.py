@@ -363,7 +363,8 @@ def verdict(comparisons, rule: AgreementRule, diagnoses=()) -> Verdict:
     causes = ", ".join(f"{d.cause} ({d.property})" for d in diagnoses)
     if bad:
         names = ", ".join(
-            f"{c.name} (diff {c.difference:+.3g}, allowed {c.allowed:.2g} by {_BOUND_TEXT[c.bound]})"
+            f"{c.name} (diff {c.difference:+.3g}, allowed {c.allowed:.2g} by "
+            f"{_BOUND_TEXT[c.bound]})"
             if c.ff_value is not None else f"{c.name} (unstable)" for c in bad[:3])
         text = (f"DISAGREE: {len(bad)} of {total} tensor entries outside "
                 f"{bars + (' (--strict: no floor)' if rule.strict else ' plus the floor')}; "
@@ -376,7 +377,8 @@ def verdict(comparisons, rule: AgreementRule, diagnoses=()) -> Verdict:
             c = by_floor[0]
             text += (f"within the bounds, {len(by_floor)} of them only by the floor (beyond "
                      f"{bars}; worst {c.name}: diff {c.difference:+.2g} is {c.ratio:.3g} error "
-                     f"bars, {_BOUND_TEXT[c.floor_kind]} {c.floor:.2g} au); --strict would fail them")
+                     f"bars, {_BOUND_TEXT[c.floor_kind]} {c.floor:.2g} au); --strict would "
+                     "fail them")
         else:
             text += f"within {bars}" + (" (--strict: no floor)" if rule.strict else "")
             floored = [c for rows in comparisons.values() for c in rows
