@@ -281,7 +281,10 @@ def _candidates(name: str, ref: np.ndarray, err: np.ndarray | None, ff: np.ndarr
                 stable: np.ndarray):
     """(cause, transformed reference, its errors, detail) for each mistake tried."""
     order = PROPERTY_ORDER[name]
-    scaled = lambda f: (f * ref, None if err is None else abs(f) * err)  # noqa: E731
+
+    def scaled(f: float):
+        return f * ref, None if err is None else abs(f) * err
+
     yield (CAUSE_SIGN, *scaled(-1.0),
            "-reference agrees: the opposite sign convention (here E(F) = E0 - mu.F - ..., "
            "mu = -dE/dF, the dipole pointing from - to +)")
@@ -600,9 +603,10 @@ def _uniform_scale(pc: np.ndarray, qc: np.ndarray, rmsd: float) -> Diagnosis | N
                      f"the reference geometry is the job's scaled by 1 + d, d = {d:.2g} (RMS "
                      f"deviation {rmsd:.2g} bohr, {left:.2g} after the scaling): the size of the "
                      "change of the bohr between CODATA editions, so the reference converted "
-                     "angstrom to bohr with another edition; a tensor of order n then moves by "
-                     "about n |d| of itself (a heuristic: a geometry's scaling moves each entry "
-                     "by its own amount)")
+                     "angstrom to bohr with another edition (a heuristic); each tensor then "
+                     "differs by |d| times its logarithmic derivative with respect to the "
+                     "molecule's size, not computed here: a few |d| of itself, below the "
+                     "floors")
 
 
 def align_reference(where: str, ref: ReferenceFile, symbols, coords_bohr, charge: int,
