@@ -98,6 +98,9 @@ CHECK_EXAMPLES = """
 examples:
   fieldprop check water.toml                      against PySCF's analytic tensors
   fieldprop check water.toml --against mycode.json --sigmas 3 || echo "disagrees"
+  fieldprop check water.toml --against mycode.json --strict --json - | jq .agree
+without --strict an entry may agree by a floor (1e-5 au for alpha) far above its
+error bars: the table marks it "ok by floor" and the verdict counts such entries.
 """
 
 RELAX_EXAMPLES = """\
@@ -248,6 +251,9 @@ def build_parser() -> argparse.ArgumentParser:
                        "(- writes it to stdout instead of the table)")
     check.add_argument("--sigmas", type=_positive_float, default=None,
                        help="agreement within this many error bars (default 3)")
+    check.add_argument("--strict", action="store_true",
+                       help="error bars only (the finite-field one plus the reference's own, "
+                       "when it has one), no relative or absolute floor")
     check.add_argument("--rel-floor", type=_positive_float, default=None,
                        help="relative floor of the allowed difference (default 1e-6)")
     check.add_argument("--abs-floor-au", type=_positive_float, default=None,
@@ -584,6 +590,7 @@ def cmd_check(args) -> int:
 
     job = load_job(args.job)
     _clamped_only(job, "check")
+    rule = _agreement_rule(args)
     json_out = args.json is not None and is_stdout(args.json)
     if args.json is not None and not json_out:
         if args.json.resolve() == args.job.resolve():
@@ -618,39 +625,47 @@ def cmd_check(args) -> int:
         else:
             reference = reference_tensors(job, result, workers=workers, progress=progress,
                                           store=store, retry_failed=args.retry_failed)
-    sigmas = compare.DEFAULT_SIGMAS if args.sigmas is None else args.sigmas
-    rel_floor = compare.DEFAULT_REL_FLOOR if args.rel_floor is None else args.rel_floor
-    floors = None if args.abs_floor_au is None else {n: args.abs_floor_au for n in range(1, 5)}
-    comparisons = compare.compare_tensors(result.tensors, reference, sigmas, rel_floor, floors)
+    comparisons = compare.compare_tensors(result.tensors, reference, rule)
     if not comparisons:
         raise InputError(f"{args.against or job.path}: no tensor in common between the job's "
                          f"properties ({', '.join(result.tensors)}) and the reference "
                          f"({', '.join(reference.value) or 'none'})")
-    if not json_out:
-        _to_stdout(lambda: write_comparison(comparisons, reference, sigmas, sys.stdout))
-    bad = compare.worst(comparisons)
-    total = sum(len(rows) for rows in comparisons.values())
-    if bad:
-        names = ", ".join(f"{c.name} (diff {c.difference:+.3g}, allowed {c.allowed:.2g})"
-                          if c.ff_value is not None else f"{c.name} (unstable)" for c in bad[:3])
-        verdict = (f"DISAGREE: {len(bad)} of {total} tensor entries outside {sigmas:g} error "
-                   f"bars; worst: {names}")
-    else:
-        verdict = (f"AGREE: all {total} tensor entries of {', '.join(comparisons)} within "
-                   f"{sigmas:g} error bars")
+    diagnoses = compare.diagnose(result.tensors, reference, comparisons, rule)
+    outcome = compare.verdict(comparisons, rule, diagnoses)
+    document = comparison_document(comparisons, reference, rule, outcome, diagnoses)
+    # Diagnoses and the verdict go where the verdict goes: after the table on
+    # stdout, or on stderr when stdout carries the JSON.
+    lines = [f"fieldprop check: diagnosis: {d.cause} ({d.property}): {d.detail}"
+             for d in diagnoses] + [f"fieldprop check: {outcome.text}"]
     if json_out:
-        _to_stdout(lambda: write_json_atomic(
-            comparison_document(comparisons, reference, sigmas, verdict), args.json))
-        print(f"fieldprop check: {verdict}", file=sys.stderr)
+        _to_stdout(lambda: write_json_atomic(document, args.json))
+        print("\n".join(lines), file=sys.stderr)
     else:
-        _to_stdout(lambda: print(f"fieldprop check: {verdict}"))
+        _to_stdout(lambda: write_comparison(comparisons, reference, rule, sys.stdout))
+        _to_stdout(lambda: print("\n".join(lines)))
         if args.json is not None:
-            write_json_atomic(comparison_document(comparisons, reference, sigmas, verdict),
-                              args.json)
-    if bad:
-        print(f"fieldprop: error: {CHECK_DISAGREES}: {verdict}", file=sys.stderr)
+            write_json_atomic(document, args.json)
+    if not outcome.agree:
+        print(f"fieldprop: error: {CHECK_DISAGREES}: {outcome.text}", file=sys.stderr)
         return 1
     return 0
+
+
+def _agreement_rule(args):
+    """check's rule from its options; --strict refuses the floors' options."""
+    from fieldprop import compare
+
+    if args.strict:
+        given = [o for o, v in (("--rel-floor", args.rel_floor),
+                                ("--abs-floor-au", args.abs_floor_au)) if v is not None]
+        if given:
+            raise InputError(f"fieldprop check: --strict uses no floor; drop {' and '.join(given)}")
+    floors = (dict(compare.DEFAULT_ABS_FLOOR_AU) if args.abs_floor_au is None
+              else {n: args.abs_floor_au for n in range(1, 5)})
+    return compare.AgreementRule(
+        sigmas=compare.DEFAULT_SIGMAS if args.sigmas is None else args.sigmas,
+        rel_floor=compare.DEFAULT_REL_FLOOR if args.rel_floor is None else args.rel_floor,
+        abs_floor_au=floors, strict=args.strict)
 
 
 def _write_result(result, fmt: str, units: str, label) -> None:

@@ -741,17 +741,27 @@ def write_store_lines(store, out: TextIO) -> None:
                                  extra["quantities"], facts[row.model_key], description), out)
 
 
-def write_comparison(comparisons, reference, sigmas: float, out: TextIO) -> None:
-    """One table per tensor: finite field vs reference, difference, verdict per entry.
+#: How an entry's verdict reads in check's table.
+_VERDICT_WORDS = {(True, False): "ok", (True, True): "ok by floor", (False, False): "DISAGREE"}
+#: The bound column of check's table: which term of the allowed difference is larger.
+_BOUND_WORDS = {"error-bars": "error bars", "relative-floor": "rel. floor",
+                "absolute-floor": "abs. floor"}
+
+
+def write_comparison(comparisons, reference, rule, out: TextIO) -> None:
+    """One table per tensor: finite field vs reference, difference, the allowed
+    difference and its larger term, the margin |diff|/allowed, the verdict.
 
     Entries are listed in sorted index order (beta_xyz, not beta_zyx) unless they
     disagree; every entry of the full tensor is compared.
     """
     out.write(f"reference: {reference.source}" + (f" ({reference.note})" if reference.note
                                                  else "") + "\n")
-    out.write(f"agreement: |ff - ref| <= allowed = {sigmas:g} x (ff error + ref error) + floor "
-              "(the floor: the larger of a relative and an absolute one); ok where "
-              "diff/allowed <= 1\n\n")
+    out.write(f"agreement: {rule.describe()}; ok where diff/allowed <= 1")
+    if not rule.strict:
+        out.write("; \"ok by floor\": the difference exceeds the error bars' term and only "
+                  "the floor admits it (--strict fails it)")
+    out.write("\n\n")
     for name, rows in comparisons.items():
         table = []
         for c in rows:
@@ -762,30 +772,48 @@ def write_comparison(comparisons, reference, sigmas: float, out: TextIO) -> None
                 f"{c.ref_value:.10g}", "0")
             diff = "-" if c.difference is None else f"{c.difference:+.3g}"
             allowed = "-" if c.allowed is None else f"{c.allowed:.2g}"
-            share = ("-" if c.allowed is None or c.difference is None else
-                     f"{abs(c.difference) / c.allowed:.2g}" if c.allowed > 0 else "inf")
-            table.append([c.name, v, e, rv, re, diff, allowed, share,
-                          "ok" if c.agrees else "DISAGREE"])
+            bound = "-" if c.bound is None else _BOUND_WORDS[c.bound]
+            margin = ("-" if c.allowed is None else "inf" if c.margin is None
+                      else f"{c.margin:.2g}")
+            table.append([c.name, v, e, rv, re, diff, allowed, bound, margin,
+                          _VERDICT_WORDS[(c.agrees, c.floor_decided)]])
         out.write(f"{name} (au)\n")
         out.write(tabulate(table, headers=["component", "finite field", "+- error", "reference",
-                                           "+- error", "difference", "allowed", "diff/allowed",
-                                           "verdict"], disable_numparse=True) + "\n\n")
+                                           "+- error", "difference", "allowed", "bound",
+                                           "diff/allowed", "verdict"],
+                           disable_numparse=True) + "\n\n")
 
 
-def comparison_document(comparisons, reference, sigmas: float, verdict: str) -> dict[str, Any]:
-    """The comparison as JSON: every entry, and the verdict."""
+def comparison_document(comparisons, reference, rule, outcome, diagnoses) -> dict[str, Any]:
+    """The comparison as JSON: the rule, every entry with its bound and margin,
+    the boolean ``agree``, the verdict and the diagnoses."""
+    floors = None if rule.strict else {
+        "relative": rule.rel_floor,
+        "absolute_au": {n: rule.abs_floor_au[o] for n, o in PROPERTY_ORDER.items()}}
     return {
         "schema": "fieldprop-check-1",
         "version": __version__,
         "units": "au",
         "convention": "taylor",
         "reference": {"source": reference.source, "note": reference.note},
-        "sigmas": sigmas,
-        "verdict": verdict,
+        "agree": outcome.agree,
+        "strict": rule.strict,
+        "sigmas": rule.sigmas,
+        "error_bars_combined": "sum",
+        "floors": floors,
+        "entries": outcome.entries,
+        "entries_disagreeing": len(outcome.disagreeing),
+        "entries_by_floor": len(outcome.floor_decided),
+        "verdict": outcome.text,
+        "diagnoses": [{"cause": d.cause, "property": d.property, "detail": d.detail}
+                      for d in diagnoses],
         "tensors": {name: [{"name": c.name, "index": list(c.index), "value": c.ff_value,
                             "error": c.ff_error, "reference": c.ref_value,
                             "reference_error": c.ref_error, "difference": c.difference,
-                            "allowed": c.allowed, "agrees": c.agrees} for c in rows]
+                            "allowed": c.allowed, "agrees": c.agrees,
+                            "error_bars_term": c.bars, "floor": c.floor if c.floor_kind else None,
+                            "bound": c.bound, "margin": c.margin,
+                            "by_floor": c.floor_decided} for c in rows]
                     for name, rows in comparisons.items()},
     }
 

@@ -155,6 +155,17 @@ def test_check_refuses_a_restricted_open_shell_before_any_work(tmp_path):
     assert not list(tmp_path.glob("*.sqlite"))
 
 
+def test_check_strict_refuses_the_floors_options_before_any_work(tmp_path):
+    (tmp_path / "lih.toml").write_text(JOB)
+    done = fieldprop("check", "lih.toml", "--strict", "--abs-floor-au", "1e-5",
+                     "--json", "check.json", cwd=tmp_path)
+    assert done.returncode == 2, done.stderr
+    lines = done.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("fieldprop: error: bad input: ")
+    assert "--strict" in lines[0] and "--abs-floor-au" in lines[0] and done.stdout == ""
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["lih.toml"]
+
+
 def test_json_dash_means_stdout_for_run_collect_and_check(tmp_path):
     pytest.importorskip("pyscf")
     (tmp_path / "lih.toml").write_text(JOB)
@@ -168,9 +179,17 @@ def test_json_dash_means_stdout_for_run_collect_and_check(tmp_path):
     assert json.loads(collected.stdout)["tensors"] == doc["tensors"]
     checked = fieldprop("check", "lih.toml", "--quiet", "--json", "-", cwd=tmp_path)
     assert checked.returncode == 0, checked.stderr
-    assert "AGREE" in json.loads(checked.stdout)["verdict"]
+    checked_doc = json.loads(checked.stdout)
+    assert "AGREE" in checked_doc["verdict"] and checked_doc["agree"] is True
     assert "fieldprop check: AGREE" in checked.stderr
     assert not (tmp_path / "-").exists()
+    # --strict: the error bars alone; the boolean says what the exit code says.
+    strict = fieldprop("check", "lih.toml", "--quiet", "--strict", "--json", "-", cwd=tmp_path)
+    strict_doc = json.loads(strict.stdout)
+    assert strict_doc["strict"] is True and strict_doc["floors"] is None
+    assert strict_doc["agree"] is (strict.returncode == 0) and strict.returncode in (0, 1)
+    assert all(c["bound"] == "error-bars" for rows in strict_doc["tensors"].values()
+               for c in rows if c["bound"] is not None)
 
 
 def test_a_reader_that_closes_stdout_early_is_not_a_failure(tmp_path):

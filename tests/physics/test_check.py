@@ -204,3 +204,158 @@ def test_origin_shift_of_a_cation_dipole(tmp_path):
     mf = mean_field(a.job)
     assert np.allclose(scf_dipole(mf, b.molecule.origin_bohr), b.tensors["dipole"].value_au,
                        atol=1e-6)
+
+
+# ------------------------------------------------ what decides, and the common mistakes
+
+@pytest.fixture(scope="module")
+def water_reference(tmp_path_factory):
+    """Water off its axes (HF/6-31G, dipole route, mu to gamma) and the content of a
+    correct reference file: PySCF's SCF dipole, fieldprop's analytic alpha and its
+    field derivatives (beta, gamma) with their error bars, read from check's own
+    JSON, and the job's geometry in bohr. Returns (folder, job path, document)."""
+    from fieldprop.job import load_job
+
+    folder = tmp_path_factory.mktemp("mistakes")
+    job_path = folder / "water.toml"
+    job_path.write_text(job_text(rotated_water(), 'method = "hf"',
+                                 props='["dipole", "alpha", "beta", "gamma"]')
+                        .replace('"6-31g*"', '"6-31g"'))
+    assert main(["check", str(job_path), "--quiet", "--json", str(folder / "own.json")]) == 0
+    own = json.loads((folder / "own.json").read_text())
+    job = load_job(job_path)
+    tensors = {}
+    for name, rows in own["tensors"].items():
+        shape = (3,) * len(rows[0]["index"])
+        tensors[name] = {"value": np.reshape([c["reference"] for c in rows], shape).tolist(),
+                         "error": np.reshape([c["reference_error"] for c in rows],
+                                             shape).tolist()}
+    # PySCF's SCF dipole (neutral: it does not depend on the origin). PySCF stops
+    # near an orbital gradient of 2e-9 for this molecule (DIIS on a singular DIIS
+    # matrix with one BLAS thread, hence not support.mean_field; its second-order
+    # solver stalls there): converged to 1e-8, the dipole errs by ~1e-8.
+    from pyscf import gto, scf
+
+    mol = gto.M(atom=[(a.symbol, a.coords_bohr) for a in job.molecule.atoms], unit="Bohr",
+                basis="6-31g", verbose=0)
+    mf = scf.RHF(mol)
+    mf.conv_tol, mf.conv_tol_grad = 1e-10, 1e-8
+    mf.kernel()
+    assert mf.converged
+    tensors["dipole"] = {"value": mf.dip_moment(unit="AU", verbose=0).tolist(),
+                         "error": [1e-8] * 3}
+    document = {"geometry": {"symbols": [a.symbol for a in job.molecule.atoms],
+                             "coords_bohr": [list(a.coords_bohr) for a in job.molecule.atoms]},
+                "tensors": tensors}
+    return folder, job_path, document
+
+
+def check_against(water_reference, capsys, name, document, *extra):
+    folder, job_path, _ = water_reference
+    ref = folder / f"{name}.json"
+    ref.write_text(json.dumps(document))
+    out_json = folder / f"{name}.check.json"
+    code = main(["check", str(job_path), "--against", str(ref), "--quiet", "--json",
+                 str(out_json), *extra])
+    return code, capsys.readouterr(), json.loads(out_json.read_text())
+
+
+def test_strict_fails_where_the_floor_hid_an_error(water_reference, capsys):
+    import copy
+
+    _, _, document = water_reference
+    code, out, doc = check_against(water_reference, capsys, "correct", document, "--strict")
+    assert code == 0 and doc["agree"] is True and doc["strict"] is True, out.out[-3000:]
+    assert doc["floors"] is None and doc["diagnoses"] == []
+    # alpha_yy off by 1e-7 au: ~20 combined error bars (dipole route, ~5e-9), a
+    # hundredth of the absolute floor 1e-5 au.
+    wrong = copy.deepcopy(document)
+    wrong["tensors"]["alpha"]["value"][1][1] += 1e-7
+    code, out, doc = check_against(water_reference, capsys, "floor", wrong)
+    assert code == 0 and doc["agree"] is True and doc["entries_by_floor"] == 1
+    entry = next(c for c in doc["tensors"]["alpha"] if c["name"] == "alpha_yy")
+    assert entry["by_floor"] and entry["bound"] == "absolute-floor" and entry["floor"] == 1e-5
+    assert entry["error_bars_term"] < abs(entry["difference"]) < entry["allowed"]
+    assert entry["margin"] == pytest.approx(abs(entry["difference"]) / entry["allowed"])
+    assert "1 of them only by the floor" in doc["verdict"]
+    assert "--strict would fail" in doc["verdict"]
+    assert "ok by floor" in out.out
+    code, out, doc = check_against(water_reference, capsys, "floor-strict", wrong, "--strict")
+    assert code == 1 and doc["agree"] is False and doc["entries_disagreeing"] == 1
+    entry = next(c for c in doc["tensors"]["alpha"] if c["name"] == "alpha_yy")
+    assert not entry["agrees"] and entry["bound"] == "error-bars" and entry["margin"] > 1
+    assert "alpha_yy" in out.err and out.err.startswith("fieldprop: error: check disagrees")
+
+
+def _negate(doc, *names):
+    for name in names:
+        doc["tensors"][name]["value"] = (-np.array(doc["tensors"][name]["value"])).tolist()
+
+
+def _scale(doc, name, factor):
+    for key in ("value", "error"):
+        doc["tensors"][name][key] = (np.array(doc["tensors"][name][key]) * factor).tolist()
+
+
+def _unsymmetrise(doc):
+    beta = np.array(doc["tensors"]["beta"]["value"])
+    beta[0, 1, 1] += 0.5  # moved between permutations: the average is the same
+    beta[1, 0, 1] -= 0.25
+    beta[1, 1, 0] -= 0.25
+    doc["tensors"]["beta"]["value"] = beta.tolist()
+
+
+def _geometry(doc, factor):
+    coords = np.array(doc["geometry"]["coords_bohr"])
+    doc["geometry"]["coords_bohr"] = (coords * factor).tolist()
+
+
+def _declare_perturbation(doc):
+    doc["convention"] = "perturbation"
+
+
+# CODATA bohr in angstrom (scipy.constants._codata tables): 2006 0.52917720859,
+# 2018 0.529177210903, 2022 0.529177210544 (SciPy's own, hence the job's).
+D_2018 = 0.529177210903 / 0.529177210544 - 1.0   # 6.8e-10
+D_2006 = 0.52917720859 / 0.529177210544 - 1.0    # -3.7e-9
+MISTAKES = [
+    pytest.param(lambda d: _negate(d, "dipole", "beta"), (), 1,
+                 {("sign", "dipole"), ("sign", "beta")}, id="sign-of-odd-orders"),
+    pytest.param(lambda d: _scale(d, "beta", 0.5), (), 1,
+                 {("perturbation-convention", "beta")}, id="beta-halved"),
+    pytest.param(lambda d: _scale(d, "gamma", 1 / 6), (), 1,
+                 {("perturbation-convention", "gamma")}, id="gamma-sixth"),
+    pytest.param(_declare_perturbation, (), 1,
+                 {("perturbation-convention", "beta"), ("perturbation-convention", "gamma")},
+                 id="taylor-declared-perturbation"),
+    pytest.param(_unsymmetrise, (), 1, {("unsymmetrised", "beta")}, id="unsymmetrised-beta"),
+    # The tensors are right, only the geometry's label is wrong: compared all the same.
+    pytest.param(lambda d: _geometry(d, 0.52917721054482), (), 0,
+                 {("geometry-units", "geometry")}, id="angstrom-as-bohr"),
+    pytest.param(lambda d: _geometry(d, 1 / (1 + D_2018)), (), 0,
+                 {("bohr-value", "geometry")}, id="geometry-other-bohr"),
+    # alpha through SI units and back with the 2006 bohr: (1 + d)^2, 4e-8 of alpha,
+    # under the floors, caught by --strict.
+    pytest.param(lambda d: _scale(d, "alpha", (1 + D_2006) ** 2), ("--strict",), 1,
+                 {("bohr-value", "alpha")}, id="alpha-other-bohr"),
+]
+
+
+@pytest.mark.parametrize("spoil, extra, exit_code, causes", MISTAKES)
+def test_check_names_the_likely_cause_of_a_wrong_reference(water_reference, capsys, spoil,
+                                                           extra, exit_code, causes):
+    import copy
+
+    _, _, document = water_reference
+    wrong = copy.deepcopy(document)
+    spoil(wrong)
+    code, out, doc = check_against(water_reference, capsys, "wrong", wrong, *extra)
+    assert code == exit_code, out.out[-3000:] + out.err
+    assert doc["agree"] is (exit_code == 0)
+    assert {(d["cause"], d["property"]) for d in doc["diagnoses"]} == causes, doc["diagnoses"]
+    lines = [ln for ln in out.out.splitlines() if ln.startswith("fieldprop check: diagnosis:")]
+    assert len(lines) == len(causes)
+    if exit_code:
+        # The one error line names the likely causes.
+        assert out.err.count("\n") == 1
+        assert all(f"{c} ({p})" in out.err for c, p in causes)
