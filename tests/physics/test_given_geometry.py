@@ -153,6 +153,18 @@ def test_a_geometry_symmetric_to_its_digits_is_computed_as_given(tmp_path, capsy
         bound = 3.0 * (error + ref_err)
         worst = np.unravel_index(np.argmax(miss / bound), miss.shape)
         assert np.all(miss <= bound), (name, worst, miss[worst], error[worst], ref_err[worst])
+    # The validator's way: the analytic tensors as a reference file, with the
+    # geometry PySCF read, and check --strict (error bars only, no floors).
+    reference = tmp_path / "analytic.json"
+    reference.write_text(json.dumps({
+        "tensors": {name: {"value": ref.tolist(), "error": np.asarray(err).tolist()}
+                    for name, (ref, err) in refs.items()},
+        "geometry": {"symbols": list("OHH"), "coords_bohr": given.tolist()},
+        "origin_bohr": doc["origin_bohr"]}))
+    verdict = tmp_path / "verdict.json"
+    assert main(["check", str(path), "--against", str(reference), "--strict",
+                 "--json", str(verdict)]) == 0
+    assert json.loads(verdict.read_text())["agree"] is True
 
 
 def test_symmetrise_moves_the_geometry_onto_its_group_and_says_so(tmp_path, capsys):
