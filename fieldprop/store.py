@@ -40,6 +40,11 @@ Beside a writable store file, ``<store>.lock`` serialises the computation of a
 model's zero-field reference: processes that need it at once (job-array
 elements) wait for the first one instead of all computing it.
 
+The reading commands (``plan``, ``collect``, ``inspect``) open a read-only
+view that sees what writers commit while it is open (SQLite's ``-shm`` index);
+only in a folder this process cannot write, where SQLite cannot make that
+file, is the store read as it stands at the open (``immutable``).
+
 Every problem with a store file (a directory, not SQLite, not a fieldprop
 store, a newer schema, corrupt, not writable) is an :class:`InputError` naming
 the path; the file is left untouched.
@@ -269,11 +274,11 @@ class PointStore:
         if not read_only:
             # SQLite's WAL journal keeps two files beside the store: the folder
             # must be writable, and so must the file.
-            if not os.access(folder, os.W_OK | os.X_OK):
+            if not _writable(folder):
                 raise InputError(f"{shown}: folder {str(folder)!r} is not writable (the store "
                                  "needs its journal files beside it); give --store a path in "
                                  "a writable folder, or --no-store")
-            if exists and not os.access(path, os.W_OK):
+            if exists and not _writable(path):
                 raise InputError(f"{shown}: file is not writable; give --store another path, "
                                  "or --no-store")
         try:
@@ -292,6 +297,11 @@ class PointStore:
 
     def close(self) -> None:
         self._db.close()
+
+    def check(self) -> str:
+        """SQLite's full check of the file (``PRAGMA quick_check``: every page
+        read, so its cost grows with the store): "ok", or the first problem."""
+        return _quick_check(self._db)
 
     def __enter__(self) -> "PointStore":
         return self
@@ -543,17 +553,42 @@ def _create(path: Path) -> bool:
                 os.unlink(leftover)
 
 
-def _read_only_connection(path: Path, timeout_s: float = 5.0) -> sqlite3.Connection:
-    """A connection that never writes, nor creates files beside the store.
+def _writable(path: Path) -> bool:
+    """This process may create and write files in the folder ``path`` (or
+    write the file ``path``)."""
+    return os.access(path, os.W_OK | (os.X_OK if path.is_dir() else 0))
 
-    A store no writer has open has no ``-wal`` file: it is read as immutable, so
-    SQLite makes no journal files (a read-only folder, a refused store and
-    ``plan`` leave no trace). With a ``-wal`` file there (a writer at work, or
-    one that was killed), the journal must be read: a plain read-only connection.
+
+def _read_only_connection(path: Path, timeout_s: float = 5.0) -> sqlite3.Connection:
+    """A connection that never writes a row, sees what other processes commit
+    while it is open, and leaves no files beside the store.
+
+    A WAL reader follows writers through the ``-shm`` index beside the store,
+    so SQLite must be able to use (or make) that file:
+
+    - a writable folder and file, no ``-wal`` file yet (no writer has the store
+      open): an ordinary connection with ``PRAGMA query_only``. SQLite makes its
+      ``-wal`` and ``-shm`` companions and, when the last connection closes,
+      removes them again (a refused store, ``plan`` leave no trace);
+    - a ``-wal`` file there (a writer at work, or one that was killed), or a
+      file this process may not write: ``mode=ro``, using the companions as
+      they are;
+    - a folder this process cannot write and no ``-wal`` file: SQLite cannot
+      make the ``-shm`` file, so the file is read as immutable, as it stands
+      at this open. No fieldprop writer can work there (a writable open needs
+      the folder); a writer of another user who may write the folder, starting
+      after this open, would not be seen.
     """
-    if Path(str(path) + "-wal").exists():
+    path = Path(path)
+    folder = path.parent if str(path.parent) else Path(".")
+    if Path(str(path) + "-wal").exists() or (_writable(folder) and not _writable(path)):
         return sqlite3.connect(f"file:{path}?mode=ro", uri=True, timeout=timeout_s)
-    return sqlite3.connect(f"file:{path}?mode=ro&immutable=1", uri=True, timeout=timeout_s)
+    if not _writable(folder):
+        return sqlite3.connect(f"file:{path}?mode=ro&immutable=1", uri=True,
+                               timeout=timeout_s)
+    db = sqlite3.connect(path, timeout=timeout_s)
+    db.execute("PRAGMA query_only = ON")
+    return db
 
 
 def _initialise(db: sqlite3.Connection) -> None:
@@ -618,13 +653,21 @@ def _validate_file(path: Path, shown: str) -> None:
         if schema < SCHEMA_VERSION and schema not in _MIGRATIONS:
             raise InputError(f"{shown}: store schema {schema} is older than this version's "
                              f"{SCHEMA_VERSION} and has no migration; give --store a new path")
-        try:
-            check = db.execute("PRAGMA quick_check").fetchone()[0]
-        except sqlite3.DatabaseError as exc:
-            check = str(exc)
+        check = _quick_check(db)
         if check != "ok":
-            first = " ".join(str(check).replace("*** in database main ***", "").split())
-            raise InputError(f"{shown}: corrupt SQLite database ({first[:160]}); move it away "
+            raise InputError(f"{shown}: corrupt SQLite database ({check}); move it away "
                              "and rerun to start a new store")
     finally:
         db.close()
+
+
+def _quick_check(db: sqlite3.Connection) -> str:
+    """SQLite's ``PRAGMA quick_check`` of the whole file: "ok", or its first
+    complaint on one line."""
+    try:
+        check = db.execute("PRAGMA quick_check").fetchone()[0]
+    except sqlite3.DatabaseError as exc:
+        check = str(exc)
+    if check == "ok":
+        return check
+    return " ".join(str(check).replace("*** in database main ***", "").split())[:160]
