@@ -441,7 +441,7 @@ def _open_store(args, job_path: Path, read_only: bool = False):
     path = args.store if args.store is not None else default_store_path(job_path)
     if read_only and not path.exists():
         return None  # nothing stored yet
-    return PointStore.open(path, read_only=read_only)
+    return PointStore.open(path, read_only=read_only, verify=True)
 
 
 def _configure_logging(quiet: bool) -> None:
@@ -926,7 +926,7 @@ def cmd_collect(args) -> int:
         raise IncompleteError(f"{job.path}: no point store at {path}: nothing computed yet; "
                               "compute the points with fieldprop run or point (or give "
                               "--store PATH, or --points)")
-    store = PointStore.open(path, read_only=True) if path.exists() else None
+    store = PointStore.open(path, read_only=True, verify=True) if path.exists() else None
     try:
         result = collect(job, store, lines=lines, allow_partial=args.allow_partial)
     finally:
@@ -1114,7 +1114,7 @@ def cmd_inspect(args) -> int:
     from fieldprop.report import write_store_lines, write_store_summary
     from fieldprop.store import PointStore
 
-    with PointStore.open(args.store, read_only=True) as store:
+    with PointStore.open(args.store, read_only=True, verify=True) as store:
         if args.json_lines:
             write_store_lines(store, sys.stdout)
         else:

@@ -117,3 +117,87 @@ def test_a_store_in_a_folder_this_process_cannot_write_is_read_as_it_stands(tmp_
     assert opened and all("immutable=1" in target for target in opened), opened
     with pytest.raises(store_module.InputError, match="not writable"):
         PointStore.open(path)
+
+
+class SlowReader:
+    """An output stream whose consumer is slow (a pipe into a busy process):
+    while the export waits on its first line, another process writes a point
+    and checkpoints the store's journal."""
+
+    def __init__(self, path: Path):
+        self.path, self.lines, self.checkpoint_busy = path, [], None
+
+    def write(self, text: str) -> None:
+        if self.checkpoint_busy is None:
+            write_points(self.path, [99])
+            db = sqlite3.connect(self.path, timeout=0.2)
+            try:
+                self.checkpoint_busy = db.execute(
+                    "PRAGMA wal_checkpoint(TRUNCATE)").fetchone()[0]
+            finally:
+                db.close()
+        self.lines.append(text)
+
+
+@pytest.mark.parametrize("batch", [None, 2], ids=["one_batch", "batches_of_2"])
+def test_a_writer_checkpoints_while_an_export_is_consumed_slowly(tmp_path, monkeypatch, batch):
+    """``inspect --json-lines`` holds no read transaction while it writes:
+    a writer's checkpoint is not blocked by an export that waits on its
+    reader, and every point is exported once, in order."""
+    import json
+
+    from fieldprop import store as store_module
+    from fieldprop.report import write_store_lines
+
+    if batch is not None:
+        monkeypatch.setattr(store_module, "EXPORT_BATCH", batch)
+    path = tmp_path / "points.sqlite"
+    write_points(path, range(7))
+    out = SlowReader(path)
+    with PointStore.open(path, read_only=True) as reader:
+        write_store_lines(reader, out)
+    assert out.checkpoint_busy == 0, "the export held a read transaction open while writing"
+    exported = [json.loads(line) for line in "".join(out.lines).splitlines()]
+    keys = [d["key"] for d in exported]
+    assert len(keys) == len(set(keys)) and set(keys) >= {task(n).key for n in range(7)}
+    order = [(d["model_key"], d["created_at"], d["key"]) for d in exported]
+    assert order == sorted(order)
+
+
+def test_only_a_verifying_open_reads_the_whole_file(tmp_path, monkeypatch):
+    """The full check (PRAGMA quick_check: every page) runs when asked
+    (``verify``: once per job, and ``inspect``), not on every open."""
+    from fieldprop import store as store_module
+
+    path = tmp_path / "points.sqlite"
+    write_points(path, range(3))
+    checks: list[int] = []
+    full = store_module._quick_check
+    monkeypatch.setattr(store_module, "_quick_check", lambda db: checks.append(1) or full(db))
+    for read_only in (False, True):
+        PointStore.open(path, read_only=read_only).close()
+    assert checks == []
+    for read_only in (False, True):
+        PointStore.open(path, read_only=read_only, verify=True).close()
+    assert checks == [1, 1]
+
+
+def test_a_row_that_does_not_decode_is_bad_input_naming_the_store(tmp_path):
+    """Damage the full check cannot see (a value's bytes) or was not run to
+    see: a read that meets it is one InputError naming the store."""
+    from fieldprop.errors import InputError
+
+    path = tmp_path / "points.sqlite"
+    write_points(path, range(3))
+    db = sqlite3.connect(path)
+    with db:
+        db.execute("UPDATE points SET dipole_au = '[0.0, 0.0' WHERE point_key = ?",
+                   (task(1).key,))
+    db.close()
+    with PointStore.open(path, read_only=True, verify=True) as reader:
+        assert reader.check() == "ok"
+        assert len(reader.get_points([task(0).key, task(2).key])) == 2
+        with pytest.raises(InputError, match=f"store {path}: corrupt"):
+            reader.get_points([task(1).key])
+        with pytest.raises(InputError, match="corrupt"):
+            list(reader.iter_points())
