@@ -24,6 +24,7 @@ from pathlib import Path  # noqa: E402
 from typing import Sequence  # noqa: E402
 
 from fieldprop import __version__  # noqa: E402
+from fieldprop.atomic_files import replacing  # noqa: E402
 from fieldprop.errors import CampaignError, FieldpropError, IncompleteError, InputError  # noqa: E402,E501
 
 logger = logging.getLogger("fieldprop")
@@ -514,9 +515,8 @@ def write_xyz(job, path: Path) -> None:
     for a in job.molecule.atoms:
         x, y, z = (v * bohr for v in a.coords_bohr)
         lines.append(f"{a.symbol:<2} {x:20.15f} {y:20.15f} {z:20.15f}")
-    part = path.with_name(path.name + ".part")
-    part.write_text("\n".join(lines) + "\n", encoding="utf-8")
-    os.replace(part, path)
+    with replacing(path) as fh:
+        fh.write("\n".join(lines) + "\n")
 
 
 def default_result_path(job_path: Path) -> Path:
@@ -1010,10 +1010,7 @@ def cmd_screen(args) -> int:
                                               _model_text(o.candidate.job)))
     rows = ranking.rank(entries, key)
     if args.csv is not None and not is_stdout(args.csv):
-        part = args.csv.with_name(args.csv.name + ".part")
-        with open(part, "w", encoding="utf-8", newline="") as out:
-            ranking.write_csv(rows, args.units, out)
-        os.replace(part, args.csv)
+        ranking.write_csv_file(rows, args.units, args.csv)
         logger.info("ranked table written to %s", args.csv)
     if any(r.rank is not None for r in rows):
         ranking.write_png(rows, key, args.units, png)
