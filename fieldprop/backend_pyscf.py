@@ -161,12 +161,26 @@ def _refuse_close_atoms(job: Job, molecule) -> None:
                     "structure is meant")
 
 
+def backend_versions(method: str) -> dict:
+    """The versions this process computes a model with, as backend facts
+    (keys.BACKEND_VERSION_FACTS): PySCF's, and for DFT the libxc library's."""
+    import pyscf
+
+    versions = {"pyscf_version": pyscf.__version__}
+    if method == "dft":
+        from pyscf.dft import libxc
+
+        versions["libxc_version"] = libxc.libxc_version()
+    return versions
+
+
 def validate(job: Job, molecule) -> dict:
     """Check what only PySCF can judge (basis, functional) before any work.
 
     Returns facts for provenance: number of basis functions, Cartesian or
     spherical functions, the electrons each atom's effective core potential
-    replaces (0 without one), the functional as libxc parses it, PySCF's version.
+    replaces (0 without one), the functional as libxc parses it, PySCF's version
+    and for DFT libxc's (backend_versions).
     """
     import pyscf
     from pyscf.data.nist import BOHR
@@ -183,7 +197,7 @@ def validate(job: Job, molecule) -> dict:
     _refuse_close_atoms(job, molecule)
     mol = build_mole(molecule, job.model.basis, f"{job.path}: [model] basis",
                      job.model.cartesian)
-    facts = {"pyscf_version": pyscf.__version__, "n_basis_functions": int(mol.nao),
+    facts = {**backend_versions(job.model.method), "n_basis_functions": int(mol.nao),
              "basis_functions": "cartesian" if mol.cart else "spherical",
              "core_electrons": [int(mol.atom_nelec_core(i)) for i in range(mol.natm)]}
     if job.model.method == "dft":
