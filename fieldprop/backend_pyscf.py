@@ -29,8 +29,9 @@ import numpy as np
 from fieldprop.errors import FieldpropError, InputError, ScfNotConvergedError
 from fieldprop.job import Job
 from fieldprop.methods import METHODS
-from fieldprop.records import (CPHF_RTOL, PointRecord, PointTask, SymmetryOperation,
-                               ZeroFieldReference)
+from fieldprop.records import (CPHF_RTOL, DIIS, LINE_START, MIRROR_START, NEWTON, ONE_ELECTRON,
+                               ORIENTATION, REFERENCE_START, RESPONSE_START, PointRecord,
+                               PointTask, SymmetryOperation, ZeroFieldReference)
 from fieldprop.units import BACKEND_BOHR_ANGSTROM
 
 logger = logging.getLogger(__name__)
@@ -160,12 +161,26 @@ def _refuse_close_atoms(job: Job, molecule) -> None:
                     "structure is meant")
 
 
+def backend_versions(method: str) -> dict:
+    """The versions this process computes a model with, as backend facts
+    (keys.BACKEND_VERSION_FACTS): PySCF's, and for DFT the libxc library's."""
+    import pyscf
+
+    versions = {"pyscf_version": pyscf.__version__}
+    if method == "dft":
+        from pyscf.dft import libxc
+
+        versions["libxc_version"] = libxc.libxc_version()
+    return versions
+
+
 def validate(job: Job, molecule) -> dict:
     """Check what only PySCF can judge (basis, functional) before any work.
 
     Returns facts for provenance: number of basis functions, Cartesian or
     spherical functions, the electrons each atom's effective core potential
-    replaces (0 without one), the functional as libxc parses it, PySCF's version.
+    replaces (0 without one), the functional as libxc parses it, PySCF's version
+    and for DFT libxc's (backend_versions).
     """
     import pyscf
     from pyscf.data.nist import BOHR
@@ -182,7 +197,7 @@ def validate(job: Job, molecule) -> dict:
     _refuse_close_atoms(job, molecule)
     mol = build_mole(molecule, job.model.basis, f"{job.path}: [model] basis",
                      job.model.cartesian)
-    facts = {"pyscf_version": pyscf.__version__, "n_basis_functions": int(mol.nao),
+    facts = {**backend_versions(job.model.method), "n_basis_functions": int(mol.nao),
              "basis_functions": "cartesian" if mol.cart else "spherical",
              "core_electrons": [int(mol.atom_nelec_core(i)) for i in range(mol.natm)]}
     if job.model.method == "dft":
@@ -808,13 +823,13 @@ def _start_orbitals(context, field_vector_au) -> tuple[np.ndarray, str]:
     """
     ref = context.reference
     if ref.field_rotations is None or not np.size(ref.field_rotations):
-        return ref.mo_coeff, "reference_start"
+        return ref.mo_coeff, REFERENCE_START
     f = np.asarray(field_vector_au, dtype=float)
     linear = np.einsum("j,jn->n", f, ref.field_rotations)
     solved = context.solved
     mirror = solved.get(field_key(-f))
     if mirror is not None:
-        return _rotate(ref.mo_coeff, ref.mo_occ, mirror + 2.0 * linear), "mirror_start"
+        return _rotate(ref.mo_coeff, ref.mo_occ, mirror + 2.0 * linear), MIRROR_START
     best = None
     for key, x in solved.items():
         a = np.asarray(key)
@@ -827,8 +842,8 @@ def _start_orbitals(context, field_vector_au) -> tuple[np.ndarray, str]:
     if best is not None:
         t, x, partner = best
         return (_rotate(ref.mo_coeff, ref.mo_occ, linear + (x + partner) / (2.0 * t * t)),
-                "line_start")
-    return _rotate(ref.mo_coeff, ref.mo_occ, linear), "response_start"
+                LINE_START)
+    return _rotate(ref.mo_coeff, ref.mo_occ, linear), RESPONSE_START
 
 
 def field_key(field) -> tuple[float, float, float]:
@@ -872,7 +887,7 @@ def _ladder(mf, dm0, target: float, attempts: list[str]) -> int:
     shift = {"level_shift": 0.2, "diis_start_cycle": 4}
     if not restricted_open:
         shift["damp"] = 0.3
-    strategies = [("diis", {}), ("diis+level_shift" if restricted_open else
+    strategies = [(DIIS, {}), ("diis+level_shift" if restricted_open else
                                  "diis+damping+level_shift", shift), ("second_order", None)]
     cycles, best = 0, None
     mf.conv_tol_grad = target
@@ -926,12 +941,12 @@ def _converge(mf, context, point) -> tuple[list[str], int, np.ndarray | None]:
         # core Hamiltonian is the exact solution.
         mf.kernel()
         mf.converged = True
-        return ["one_electron"], 1, None
+        return [ONE_ELECTRON], 1, None
     attempts, cycles, g, fock = [], 0, np.inf, None
     newton_ok = scf.solver == "newton" and _has_hessian(mf)
     constraints = context.constraints
     if newton_ok and reference is None:
-        attempts.append("diis")
+        attempts.append(DIIS)
         mf.conv_tol_grad = max(target, DIIS_HANDOVER)
         mf.conv_tol = max(scf.energy_conv_tol_au, DIIS_HANDOVER ** 2)
         mf.max_cycle = min(scf.max_cycle, DIIS_HANDOVER_CYCLES)
@@ -943,7 +958,7 @@ def _converge(mf, context, point) -> tuple[list[str], int, np.ndarray | None]:
         occ = mf.mo_occ
         newton_ok = start is not None
         if newton_ok and _align(mf, context):
-            attempts.append("orientation")
+            attempts.append(ORIENTATION)
             start = mf.mo_coeff
         if newton_ok:
             constraints = context.constraints = orientation_constraints(context, start, occ)
@@ -952,7 +967,7 @@ def _converge(mf, context, point) -> tuple[list[str], int, np.ndarray | None]:
         start, how = _start_orbitals(context, point.field_vector_au)
         attempts.append(how)
     if newton_ok:
-        attempts.append("newton")
+        attempts.append(NEWTON)
         work, g, fock = _newton(mf, context, start, occ, target, constraints)
         cycles += work
         if reference is None and constraints and _align(mf, context):
@@ -1512,7 +1527,7 @@ def _converge_structure(mf, dm0, scf_spec, attempts: list[str]) -> tuple[int, fl
     """One structure's SCF: DIIS from ``dm0`` to the point's accepted
     gradient, a few cycles more towards the target; else PySCF's ladder
     (_ladder) to the target. Returns the cycles and the orbital gradient."""
-    attempts.append("diis")
+    attempts.append(DIIS)
     cycles, g = 0, math.inf
     for tolerance, most in ((scf_spec.gradient_accepted, STRUCTURE_DIIS_CYCLES),
                             (scf_spec.gradient_conv_tol, STRUCTURE_POLISH_CYCLES)):

@@ -24,6 +24,7 @@ from pathlib import Path  # noqa: E402
 from typing import Sequence  # noqa: E402
 
 from fieldprop import __version__  # noqa: E402
+from fieldprop.atomic_files import replacing  # noqa: E402
 from fieldprop.errors import CampaignError, FieldpropError, IncompleteError, InputError  # noqa: E402,E501
 
 logger = logging.getLogger("fieldprop")
@@ -447,7 +448,7 @@ def _open_store(args, job_path: Path, read_only: bool = False):
     path = args.store if args.store is not None else default_store_path(job_path)
     if read_only and not path.exists():
         return None  # nothing stored yet
-    return PointStore.open(path, read_only=read_only)
+    return PointStore.open(path, read_only=read_only, verify=True)
 
 
 def _configure_logging(quiet: bool) -> None:
@@ -520,9 +521,8 @@ def write_xyz(job, path: Path) -> None:
     for a in job.molecule.atoms:
         x, y, z = (v * bohr for v in a.coords_bohr)
         lines.append(f"{a.symbol:<2} {x:20.15f} {y:20.15f} {z:20.15f}")
-    part = path.with_name(path.name + ".part")
-    part.write_text("\n".join(lines) + "\n", encoding="utf-8")
-    os.replace(part, path)
+    with replacing(path) as fh:
+        fh.write("\n".join(lines) + "\n")
 
 
 def default_result_path(job_path: Path) -> Path:
@@ -941,7 +941,7 @@ def cmd_collect(args) -> int:
         raise IncompleteError(f"{job.path}: no point store at {path}: nothing computed yet; "
                               "compute the points with fieldprop run or point (or give "
                               "--store PATH, or --points)")
-    store = PointStore.open(path, read_only=True) if path.exists() else None
+    store = PointStore.open(path, read_only=True, verify=True) if path.exists() else None
     try:
         result = collect(job, store, lines=lines, allow_partial=args.allow_partial)
     finally:
@@ -1025,10 +1025,7 @@ def cmd_screen(args) -> int:
                                               _model_text(o.candidate.job)))
     rows = ranking.rank(entries, key)
     if args.csv is not None and not is_stdout(args.csv):
-        part = args.csv.with_name(args.csv.name + ".part")
-        with open(part, "w", encoding="utf-8", newline="") as out:
-            ranking.write_csv(rows, args.units, out)
-        os.replace(part, args.csv)
+        ranking.write_csv_file(rows, args.units, args.csv)
         logger.info("ranked table written to %s", args.csv)
     if any(r.rank is not None for r in rows):
         ranking.write_png(rows, key, args.units, png)
@@ -1129,7 +1126,7 @@ def cmd_inspect(args) -> int:
     from fieldprop.report import write_store_lines, write_store_summary
     from fieldprop.store import PointStore
 
-    with PointStore.open(args.store, read_only=True) as store:
+    with PointStore.open(args.store, read_only=True, verify=True) as store:
         if args.json_lines:
             write_store_lines(store, sys.stdout)
         else:

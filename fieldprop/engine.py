@@ -24,10 +24,11 @@ import numpy as np
 
 from fieldprop import errors
 from fieldprop.continuity import ContinuityReport, check_continuity
-from fieldprop.errors import IncompleteError, UnstableResultError
+from fieldprop.errors import IncompleteError, InputError, UnstableResultError
 from fieldprop.extrapolate import ComponentEstimate, ComponentStatus, mark_unstable, richardson
 from fieldprop.job import SYMMETRISE, Job
-from fieldprop.keys import Quantities, model_document, model_key, point_key, short_id
+from fieldprop.keys import (Quantities, backend_version_conflict, model_document, model_key,
+                            point_key, short_id)
 from fieldprop.methods import METHODS, Route
 from fieldprop.molecule import MoleculeSpec, build_molecule
 from fieldprop.plan import FieldPlan, plan_fields, stencil_estimate
@@ -1029,12 +1030,20 @@ def gather(job: Job, store=None, lines=None, route: Route | str | None = None,
     # The tasks' keys do not depend on the facts: the lines can be checked first.
     tasks = make_tasks(job, molecule, make_plan(job, route, sym))
     found: dict = {}
+    facts_from = store.label if facts is not None else ""
     for text, label in lines or ():
         more, line_facts = pointlines.read_lines(text, label, tasks, mkey)
         for key, row in more.items():
             if key not in found or (row.ok and not found[key].ok):
                 found[key] = row
-        facts = facts or line_facts
+        conflict = (backend_version_conflict(facts, line_facts)
+                    if facts is not None and line_facts is not None else None)
+        if conflict is not None:
+            raise InputError(f"{label}: points computed with {conflict[1]}, {facts_from} with "
+                             f"{conflict[0]}: one Richardson table would mix points of two "
+                             "backend versions")
+        if facts is None and line_facts is not None:
+            facts, facts_from = line_facts, label
     if facts is None and not facts_needed:
         facts = {}
     prepared = prepare(job, route, facts=facts)

@@ -29,9 +29,10 @@ from dataclasses import dataclass
 import numpy as np
 from tqdm import tqdm
 
-from fieldprop.backend_pyscf import (ModelContext, compute_point, compute_reference,
-                                     compute_relaxed_point, field_key)
-from fieldprop.errors import BackendError, FieldpropError
+from fieldprop.backend_pyscf import (ModelContext, backend_versions, compute_point,
+                                     compute_reference, compute_relaxed_point, field_key)
+from fieldprop.errors import BackendError, FieldpropError, InputError
+from fieldprop.keys import backend_version_conflict
 from fieldprop.records import PointFailure, PointRecord, PointTask, ZeroFieldReference
 from fieldprop.store import PointStore
 
@@ -141,6 +142,7 @@ def _reference(tasks: list[PointTask], store: PointStore, facts: dict,
     with store.reference_lock():
         found = store.get_model(zero.model_key)
         if found is not None:
+            refuse_another_backend(store, zero, found[1])
             return found[0], None
         logger.info("computing the zero-field reference (model %s)", zero.model_key[:12])
         context = ModelContext(zero.molecule, zero.model, zero.scf)
@@ -155,9 +157,24 @@ def _reference(tasks: list[PointTask], store: PointStore, facts: dict,
                                f"({type(exc).__name__}: {text}); no field point can start "
                                "without it") from exc
         if not store.put_model(zero.model_key, description, facts, reference, (zero, record)):
-            reference = store.get_model(zero.model_key)[0]  # stored by a process without the lock
+            # Stored meanwhile by a process without the lock.
+            reference, stored_facts = store.get_model(zero.model_key)
+            refuse_another_backend(store, zero, stored_facts)
             context.attach(reference)
     return reference, context
+
+
+def refuse_another_backend(store: PointStore, zero: PointTask, stored_facts: dict) -> None:
+    """InputError (one line, both versions) when the stored model was computed
+    with another backend version than this process has: its new points would
+    join the stored ones in one Richardson table (keys.backend_version_conflict)."""
+    conflict = backend_version_conflict(stored_facts, backend_versions(zero.model.method))
+    if conflict is not None:
+        raise InputError(
+            f"store {store.label}: model {zero.model_key[:12]} was computed with "
+            f"{conflict[0]}, this process has {conflict[1]}: its new points would join the "
+            "stored ones in one Richardson table; give --store another path (the model is "
+            f"then computed anew), or compute with {conflict[0]}")
 
 
 class _ProgressLines:

@@ -16,6 +16,15 @@ share one stored point, whatever their ladders, levels or property lists.
   the origin of the dipole operator (bohr at 1e-10) and the field vector exactly
   (``float.hex`` of each component).
 
+The backend's version (PySCF's, and libxc's for DFT) is not in the keys: keys
+must be computable without PySCF (``collect`` and ``plan`` look points up by
+key), and a key with the version in it would, after an upgrade, silently leave
+the old points beside the new ones. The store records the version with the
+model's reference (its backend facts, :data:`BACKEND_VERSION_FACTS`), and a
+process whose backend differs refuses to add points to that model
+(:func:`backend_version_conflict`): one Richardson table never mixes points of
+two versions, and what is stored stays readable by any version.
+
 Keys are SHA-256 over a canonical JSON text (sorted keys, no spaces); never
 Python's salted ``hash``. Pure: no PySCF, no I/O.
 
@@ -39,6 +48,11 @@ from dataclasses import dataclass
 #: term, another SCF finish, another state check): stored points of an older
 #: numerics version are then not reused.
 NUMERICS_VERSION = 3
+
+#: The backend facts that name the backend's version and their names for
+#: people: PySCF's, and libxc's (whose functionals a DFT model evaluates;
+#: PySCF's wheels bundle it, but a PySCF built from source may take another).
+BACKEND_VERSION_FACTS = {"pyscf_version": "PySCF", "libxc_version": "libxc"}
 
 #: Coordinates and origins enter keys rounded to this many decimals of a bohr:
 #: far below any geometric difference that matters (1e-10 bohr moves an energy
@@ -123,6 +137,22 @@ def point_key(model_key_: str, origin_bohr, quantities: Quantities, field_vector
         "quantities": quantities.canonical(),
         "field_vector_au": [_exact(v) for v in field_vector_au],
     })
+
+
+def backend_version_conflict(stored: dict, current: dict) -> tuple[str, str] | None:
+    """None when the backend versions in two sets of backend facts agree, else
+    the two, as text ("PySCF 2.13.0", "PySCF 2.14.0"). A version that one side
+    does not record (a store written before it was recorded) is not compared.
+
+    >>> backend_version_conflict({"pyscf_version": "2.13.0"}, {"pyscf_version": "2.14.0",
+    ...                                                        "libxc_version": "7.0.0"})
+    ('PySCF 2.13.0', 'PySCF 2.14.0')
+    """
+    names = [n for n in BACKEND_VERSION_FACTS if n in stored and n in current]
+    if all(str(stored[n]) == str(current[n]) for n in names):
+        return None
+    return tuple(", ".join(f"{BACKEND_VERSION_FACTS[n]} {facts[n]}" for n in names)
+                 for facts in (stored, current))
 
 
 def short_id(key: str) -> str:

@@ -21,6 +21,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from fieldprop.atomic_weights import ATOMIC_WEIGHTS
 from fieldprop.job import MoleculeInput
 
 
@@ -113,12 +114,11 @@ def centre_of_nuclear_charge(charges, coords_bohr) -> tuple[float, float, float]
     return tuple(float(v) for v in c)
 
 
-def centre_of_mass(symbols, coords_bohr) -> tuple[float, float, float]:
+def centre_of_mass(charges, coords_bohr) -> tuple[float, float, float]:
     """sum_A m_A R_A / sum_A m_A in bohr, with the standard (isotope-averaged)
-    atomic weights of PySCF's element table (pyscf.data.elements.MASSES)."""
-    from pyscf.data.elements import MASSES, charge
-
-    m = np.array([MASSES[charge(s)] for s in symbols])
+    atomic weights of :mod:`fieldprop.atomic_weights` (PySCF's values, without
+    PySCF), by nuclear charge."""
+    m = np.array([ATOMIC_WEIGHTS[int(z)] for z in charges])
     c = (m @ np.asarray(coords_bohr, dtype=float)) / m.sum()
     return tuple(float(v) for v in c)
 
@@ -131,7 +131,7 @@ def build_molecule(mol: MoleculeInput, origin: str | tuple[float, float, float])
     if origin == "nuclear-charge":
         origin_bohr = centre_of_nuclear_charge(charges, coords)
     elif origin == "centre-of-mass":
-        origin_bohr = centre_of_mass([a.symbol for a in mol.atoms], coords)
+        origin_bohr = centre_of_mass(charges, coords)
     elif origin == "zero":
         origin_bohr = (0.0, 0.0, 0.0)
     else:

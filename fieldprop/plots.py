@@ -18,6 +18,7 @@ from __future__ import annotations
 import math
 from pathlib import Path
 
+from fieldprop.atomic_files import replacing
 from fieldprop.extrapolate import ComponentStatus
 from fieldprop.plan import FieldPlan
 
@@ -103,7 +104,10 @@ def write_plots(tensors, plan: FieldPlan, directory: Path) -> dict[str, list[str
         fig.suptitle(f"{name}: Richardson table by field strength ({plan.route} route, au)",
                      fontsize=10)
         path = directory / f"{name}.png"
-        fig.savefig(path, dpi=90)
-        plt.close(fig)
+        try:
+            with replacing(path, binary=True) as fh:
+                fig.savefig(fh, format="png", dpi=90)
+        finally:
+            plt.close(fig)
         written[path.name] = [c.plan.name for c in comps]
     return written

@@ -28,7 +28,7 @@ import math
 from typing import Iterable, TextIO
 
 from fieldprop.errors import InputError
-from fieldprop.keys import point_key, short_id
+from fieldprop.keys import backend_version_conflict, point_key, short_id
 from fieldprop.store import StoredPoint
 
 #: The kind mark of a point line.
@@ -139,11 +139,13 @@ def read_lines(lines: Iterable[str], source: str, tasks, model_key_: str
 
     Returns ({point key: StoredPoint}, backend facts of the model or None). A
     computed point wins over a failure of the same key; blank lines are
-    skipped. Raises InputError (see the module notes) for any bad line.
+    skipped. Raises InputError (see the module notes) for any bad line, and
+    for lines computed with another backend version than earlier ones
+    (keys.backend_version_conflict: one table never mixes two).
     """
     by_key = {t.key: t for t in tasks}
     out: dict[str, StoredPoint] = {}
-    facts = None
+    facts, facts_where = None, ""
     for number, text in enumerate(lines, start=1):
         if not text.strip():
             continue
@@ -171,7 +173,13 @@ def read_lines(lines: Iterable[str], source: str, tasks, model_key_: str
         if doc["key"] not in out or (row.ok and not out[doc["key"]].ok):
             out[doc["key"]] = row
         if isinstance(doc.get("facts"), dict):
-            facts = doc["facts"]
+            conflict = (backend_version_conflict(facts, doc["facts"]) if facts is not None
+                        else None)
+            if conflict is not None:
+                raise InputError(f"{where}: computed with {conflict[1]}, {facts_where} with "
+                                 f"{conflict[0]}: one Richardson table would mix points of "
+                                 "two backend versions")
+            facts, facts_where = doc["facts"], f"line {number}"
     return out, facts
 
 

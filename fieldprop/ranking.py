@@ -16,13 +16,13 @@ from __future__ import annotations
 
 import csv
 import math
-import os
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TextIO
 
 from tabulate import tabulate
 
+from fieldprop.atomic_files import replacing
 from fieldprop.summary import INVARIANTS, UNIT_TAGS, _formula, _model, conversion
 
 #: Ranking keys: every invariant, and the short name of the vector norm.
@@ -134,6 +134,12 @@ def write_csv(rows: list[Row], units: str, out: TextIO) -> None:
                          else str(v).lower() if isinstance(v, bool) else v for v in row])
 
 
+def write_csv_file(rows: list[Row], units: str, path: Path) -> None:
+    """The CSV (:func:`write_csv`) as the file ``path``, whole or not at all."""
+    with replacing(path, newline="") as out:
+        write_csv(rows, units, out)
+
+
 def write_table(rows: list[Row], units: str, key: str, out: TextIO) -> None:
     header, values, shown = table(rows, units)
     text = []
@@ -198,7 +204,8 @@ def write_png(rows: list[Row], key: str, units: str, path: Path) -> None:
         ax.set_xlabel(f"alpha_iso ({alpha_label})")
         ax.set_ylabel(f"|{key}| ({label})")
         ax.set_title(f"|{key}| against alpha_iso", fontsize=10)
-    part = Path(path).with_name(Path(path).name + ".part.png")
-    fig.savefig(part, dpi=120)
-    plt.close(fig)
-    os.replace(part, path)
+    try:
+        with replacing(path, binary=True) as fh:
+            fig.savefig(fh, format="png", dpi=120)
+    finally:
+        plt.close(fig)

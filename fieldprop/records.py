@@ -25,11 +25,30 @@ from fieldprop.relaxation import Frame
 #: by the backend's solver and by the noise model of the analysis.
 CPHF_RTOL = 1e-11
 
+#: Names of the SCF strategies in ``PointRecord.attempts``, as the backend
+#: appends them (defined here once, so that what counts as a retry follows the
+#: solver): the starts of a field point's Newton steps (the zero-field orbitals
+#: rotated by the linear response, by the opposite point's rotation, by a
+#: pair's on the same line, or not rotated when there is no response:
+#: backend_pyscf._start_orbitals), DIIS, the turn of a degenerate open shell
+#: onto its fixed orientation, the Newton steps, the exact one-electron solution.
+RESPONSE_START = "response_start"
+MIRROR_START = "mirror_start"
+LINE_START = "line_start"
+REFERENCE_START = "reference_start"
+FIELD_STARTS = (RESPONSE_START, MIRROR_START, LINE_START, REFERENCE_START)
+DIIS = "diis"
+ORIENTATION = "orientation"
+NEWTON = "newton"
+ONE_ELECTRON = "one_electron"
+
 #: The SCF strategies a point takes when nothing goes wrong: a field point's
-#: response start and Newton steps, zero field's DIIS and Newton steps, or DIIS
-#: alone ([scf] solver = "diis", restricted open shells); one electron: exact.
-PRIMARY_PATHS = (("response_start", "newton"), ("diis", "newton"), ("diis",),
-                 ("one_electron",))
+#: start and Newton steps; zero field's DIIS (and turn) and Newton steps; DIIS
+#: alone ([scf] solver = "diis", restricted open shells, a relaxed structure);
+#: one electron: exact. Anything else went down PySCF's ladder (a retry).
+PRIMARY_PATHS = frozenset({(start, NEWTON) for start in FIELD_STARTS}
+                          | {(DIIS, NEWTON), (DIIS, ORIENTATION, NEWTON), (DIIS,),
+                             (ONE_ELECTRON,)})
 
 
 @dataclass(frozen=True, eq=False)

@@ -11,7 +11,6 @@ import json
 import math
 import os
 import sys
-import tempfile
 from pathlib import Path
 from typing import Any, TextIO
 
@@ -19,6 +18,7 @@ import numpy as np
 from tabulate import tabulate
 
 from fieldprop import __version__
+from fieldprop.atomic_files import replacing
 from fieldprop.engine import RunResult, entry_window_au
 from fieldprop.job import SYMMETRISE
 from fieldprop.extrapolate import ComponentStatus
@@ -578,28 +578,16 @@ def raise_input(message: str):
 
 
 def write_json_atomic(document: dict[str, Any], path: Path) -> None:
-    """Write JSON to a temporary file beside ``path``, then rename it into place
-    (``-``: to standard output)."""
+    """Write JSON to ``path`` whole or not at all (:func:`fieldprop.atomic_files.
+    replacing`; ``-``: to standard output)."""
     if is_stdout(path):
         json.dump(document, sys.stdout, indent=1, allow_nan=False)
         sys.stdout.write("\n")
         sys.stdout.flush()
         return
-    fd, tmp = tempfile.mkstemp(dir=path.parent if str(path.parent) else ".",
-                               prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            json.dump(document, fh, indent=1, allow_nan=False)
-            fh.write("\n")
-        # mkstemp makes the file private (0600); give it the usual permissions.
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    with replacing(path) as fh:
+        json.dump(document, fh, indent=1, allow_nan=False)
+        fh.write("\n")
 
 
 def _stored_status(task, stored) -> str:
@@ -829,9 +817,8 @@ def write_relaxed_structure(document: dict, path: Path, job_path: str,
     for symbol, xyz in zip(document["symbols"], document["relaxed_bohr"]):
         x, y, z = (v * bohr_angstrom for v in xyz)
         lines.append(f"{symbol:<2} {x:20.15f} {y:20.15f} {z:20.15f}")
-    part = path.with_name(path.name + ".part")
-    part.write_text("\n".join(lines) + "\n", encoding="utf-8")
-    os.replace(part, path)
+    with replacing(path) as fh:
+        fh.write("\n".join(lines) + "\n")
 
 
 def write_relaxation_table(document: dict, out: TextIO, bohr_angstrom: float) -> None:

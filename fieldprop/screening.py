@@ -39,7 +39,7 @@ from fieldprop.campaign import Campaign, Candidate
 from fieldprop.engine import (Prepared, RunResult, analyse, failed_points_error, gather,
                               point_counts, settle)
 from fieldprop.execute import abort_pool, campaign_optimise, campaign_point, \
-    campaign_reference, init_campaign_worker, predecessors
+    campaign_reference, init_campaign_worker, predecessors, refuse_another_backend
 from fieldprop.records import PointFailure, PointTask
 
 logger = logging.getLogger(__name__)
@@ -419,8 +419,16 @@ def _prepare(state: _State, store, retry_failed: bool) -> None:
             err = failed_points_error(prepared, [row.failure(t.point)])
             out.failure, out.kind = str(err), row.fields.get("kind", "")
             return
-    state.prepared, state.found = prepared, found
     model = store.get_model(prepared.model_key)
+    to_compute = not prepared.settled or any(t.point.index not in found
+                                             for t in prepared.computed_tasks)
+    if model is not None and to_compute:
+        try:
+            refuse_another_backend(store, prepared.tasks[0], model[1])
+        except errors.InputError as exc:
+            out.failure, out.kind = str(exc), type(exc).__name__
+            return
+    state.prepared, state.found = prepared, found
     if model is not None and 0 in found:
         state.reference = model[0]
 

@@ -40,6 +40,11 @@ Beside a writable store file, ``<store>.lock`` serialises the computation of a
 model's zero-field reference: processes that need it at once (job-array
 elements) wait for the first one instead of all computing it.
 
+The reading commands (``plan``, ``collect``, ``inspect``) open a read-only
+view that sees what writers commit while it is open (SQLite's ``-shm`` index);
+only in a folder this process cannot write, where SQLite cannot make that
+file, is the store read as it stands at the open (``immutable``).
+
 Every problem with a store file (a directory, not SQLite, not a fieldprop
 store, a newer schema, corrupt, not writable) is an :class:`InputError` naming
 the path; the file is left untouched.
@@ -48,6 +53,7 @@ the path; the file is left untouched.
 from __future__ import annotations
 
 import contextlib
+import functools
 import io
 import json
 import logging
@@ -91,6 +97,11 @@ _MIGRATIONS = {
 }
 #: Default store file name, in the job file's folder: jobs in one folder share it.
 DEFAULT_NAME = "fieldprop-points.sqlite"
+#: Rows an export reads per query (``inspect --json-lines``): it holds no read
+#: transaction while it writes them out, so a slow consumer of its output
+#: never blocks a writer's checkpoint; 500 rows are ~0.4 MB (0.75 kB a point
+#: with its alpha, measured on a store of 100,000).
+EXPORT_BATCH = 500
 #: How long a writer waits for another process's transaction (ms).
 BUSY_TIMEOUT_MS = 120_000
 _SQLITE_HEADER = b"SQLite format 3\x00"
@@ -216,6 +227,42 @@ def reference_from_bytes(blob: bytes) -> ZeroFieldReference:
 
 # ----------------------------------------------------------------------- the store
 
+class _DamagedRow(Exception):
+    """A stored value that does not decode: the row's bytes are damaged."""
+
+
+def _decoded(text):
+    """JSON text of a stored row (_DamagedRow if it does not parse)."""
+    try:
+        return json.loads(text)
+    except (ValueError, TypeError) as exc:
+        raise _DamagedRow(f"a stored value does not decode: {exc}") from None
+
+
+def _damage_is_bad_input(method):
+    """A read or write that finds the file damaged (SQLite's own checks of the
+    pages it touches, or a row that does not decode) is bad input naming the
+    store, as at open: the full check of the file does not run on every open."""
+    @functools.wraps(method)
+    def guarded(self, *args, **kwargs):
+        try:
+            return method(self, *args, **kwargs)
+        except (sqlite3.DatabaseError, _DamagedRow) as exc:
+            if isinstance(exc, sqlite3.DatabaseError) and not _is_damage(exc):
+                raise  # locked, busy, a table an old schema lacks, a constraint: not damage
+            detail = " ".join(str(exc).split())[:160]
+            raise InputError(f"store {self.label}: corrupt SQLite database ({detail}); move it "
+                             "away and rerun to start a new store") from None
+    return guarded
+
+
+def _is_damage(exc: sqlite3.DatabaseError) -> bool:
+    """SQLite's codes for a damaged file: SQLITE_CORRUPT (and its extended
+    codes), SQLITE_NOTADB."""
+    return str(getattr(exc, "sqlite_errorname", "")).startswith(("SQLITE_CORRUPT",
+                                                                 "SQLITE_NOTADB"))
+
+
 class PointStore:
     """A point store: a file (shared, persistent) or in memory (``--no-store``).
 
@@ -245,11 +292,18 @@ class PointStore:
         return cls(db, None, memory_label=label)
 
     @classmethod
-    def open(cls, path: Path, create: bool = True, read_only: bool = False) -> "PointStore":
+    def open(cls, path: Path, create: bool = True, read_only: bool = False,
+             verify: bool = False) -> "PointStore":
         """Open the store at ``path``, validating it first (InputError naming the path).
 
         ``create``: make a new store if the file does not exist (else InputError).
         ``read_only``: never write (``plan``, ``inspect``); the file must exist.
+        ``verify``: SQLite's full check of the file too (``PRAGMA quick_check``,
+        which reads every page: its cost grows with the store). Every open
+        checks the header, the ``meta`` table and the schema, which cost the
+        same at any size; the commands that open a store once per job (``run``,
+        ``check``, ``relax``, ``screen``, ``collect``) and ``inspect`` verify,
+        ``point`` (every job-array element) and ``plan`` do not.
         """
         path = Path(path)
         shown = f"store {path}"
@@ -265,15 +319,15 @@ class PointStore:
                 raise InputError(f"{shown}: folder {str(folder)!r} does not exist; create it "
                                  "first")
         if exists:
-            _validate_file(path, shown)
+            _validate_file(path, shown, verify)
         if not read_only:
             # SQLite's WAL journal keeps two files beside the store: the folder
             # must be writable, and so must the file.
-            if not os.access(folder, os.W_OK | os.X_OK):
+            if not _writable(folder):
                 raise InputError(f"{shown}: folder {str(folder)!r} is not writable (the store "
                                  "needs its journal files beside it); give --store a path in "
                                  "a writable folder, or --no-store")
-            if exists and not os.access(path, os.W_OK):
+            if exists and not _writable(path):
                 raise InputError(f"{shown}: file is not writable; give --store another path, "
                                  "or --no-store")
         try:
@@ -281,7 +335,7 @@ class PointStore:
                 db = _read_only_connection(path, BUSY_TIMEOUT_MS / 1000)
             else:
                 if not exists and not _create(path):
-                    _validate_file(path, shown)  # another process made it first
+                    _validate_file(path, shown, verify)  # another process made it first
                 db = sqlite3.connect(path, timeout=BUSY_TIMEOUT_MS / 1000)
                 db.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
                 db.execute("PRAGMA synchronous = NORMAL")
@@ -292,6 +346,11 @@ class PointStore:
 
     def close(self) -> None:
         self._db.close()
+
+    def check(self) -> str:
+        """SQLite's full check of the file (``PRAGMA quick_check``: every page
+        read, so its cost grows with the store): "ok", or the first problem."""
+        return _quick_check(self._db)
 
     def __enter__(self) -> "PointStore":
         return self
@@ -336,6 +395,7 @@ class PointStore:
 
     # -- to-do lists (plan --count, point --index)
 
+    @_damage_is_bad_input
     def put_todo(self, list_key: str, point_keys) -> str:
         """Fix the to-do list of a plan (replacing an older one); returns its time."""
         created = _now()
@@ -346,6 +406,7 @@ class PointStore:
                              (list_key, json.dumps(list(point_keys)), created))
         return created
 
+    @_damage_is_bad_input
     def put_geometry(self, geometry_key: str, document: dict) -> None:
         """Keep an optimised geometry (a JSON document; an existing one stays)."""
         with self._db:
@@ -353,6 +414,7 @@ class PointStore:
                              (geometry_key, json.dumps(document), _now(), socket.gethostname(),
                               __version__))
 
+    @_damage_is_bad_input
     def get_geometry(self, geometry_key: str) -> dict | None:
         """An optimised geometry's document, or None (also for an older store)."""
         try:
@@ -360,8 +422,9 @@ class PointStore:
                                    (geometry_key,)).fetchone()
         except sqlite3.OperationalError:  # an older schema, opened read-only
             return None
-        return None if row is None else json.loads(row[0])
+        return None if row is None else _decoded(row[0])
 
+    @_damage_is_bad_input
     def get_todo(self, list_key: str) -> tuple[list[str], str] | None:
         """(point keys, time fixed) of a plan's to-do list, or None."""
         try:
@@ -369,8 +432,9 @@ class PointStore:
                                    "list_key = ?", (list_key,)).fetchone()
         except sqlite3.OperationalError:  # an older schema, opened read-only
             return None
-        return None if row is None else (json.loads(row[0]), row[1])
+        return None if row is None else (_decoded(row[0]), row[1])
 
+    @_damage_is_bad_input
     def get_model(self, model_key: str) -> tuple[ZeroFieldReference, dict] | None:
         """(reference, backend facts) of a model key, or None."""
         row = self._db.execute("SELECT reference, facts FROM models WHERE model_key = ?",
@@ -384,11 +448,13 @@ class PointStore:
                              f"{model_key[:12]} is damaged ({type(exc).__name__}); move the "
                              "store away, or give --store another path") from None
 
+    @_damage_is_bad_input
     def get_facts(self, model_key: str) -> dict | None:
         row = self._db.execute("SELECT facts FROM models WHERE model_key = ?",
                                (model_key,)).fetchone()
-        return None if row is None else json.loads(row[0])
+        return None if row is None else _decoded(row[0])
 
+    @_damage_is_bad_input
     def put_model(self, model_key: str, description: dict, facts: dict,
                   reference: ZeroFieldReference, zero_point: tuple | None = None) -> bool:
         """Store a model's reference (kept if one is there already), and with it,
@@ -406,6 +472,7 @@ class PointStore:
 
     # -- points
 
+    @_damage_is_bad_input
     def put_point(self, task, outcome: PointRecord | PointFailure) -> None:
         """Store a finished point (one transaction)."""
         with self._db:
@@ -440,6 +507,7 @@ class PointStore:
                 "version", "created_at"))
             + " WHERE points.status = 'failed'", values)
 
+    @_damage_is_bad_input
     def get_points(self, keys) -> dict[str, StoredPoint]:
         """The stored rows among ``keys`` (absent keys are simply missing)."""
         keys = list(dict.fromkeys(keys))
@@ -454,30 +522,61 @@ class PointStore:
                 out[row[0]] = _stored_point(row)
         return out
 
-    def iter_points(self) -> Iterator[tuple[StoredPoint, list, dict]]:
-        """Every stored point with its field vector and its model's description."""
-        descriptions = {k: json.loads(d) for k, d in
-                        self._db.execute("SELECT model_key, description FROM models")}
-        for row in self._db.execute(
-                "SELECT point_key, model_key, status, " + self._record_select
-                + ", failure, failure_kind, wall_time_s, host, version, created_at, "
-                "field_vector_au, origin_bohr, quantities FROM points ORDER BY model_key, "
-                "created_at, point_key"):
-            extra = {"field_vector_au": json.loads(row[-3]), "origin_bohr": json.loads(row[-2]),
-                     "quantities": json.loads(row[-1])}
-            yield _stored_point(row[:-3]), extra, descriptions.get(row[1], {})
+    def iter_points(self) -> Iterator[tuple[StoredPoint, dict, dict]]:
+        """Every stored point with its field vector, origin and quantities, and
+        its model's description, in the order (model, time, key).
 
+        Read ``EXPORT_BATCH`` rows per query, each query's rows fetched whole:
+        no read transaction stays open while the caller writes them out (an
+        open one would keep every writer's checkpoint from finishing). Points
+        committed meanwhile appear if they sort after the rows already given."""
+        descriptions: dict[str, dict] = {}
+        after = None
+        while True:
+            batch = self._points_after(after, EXPORT_BATCH)
+            for row, extra in batch:
+                if row.model_key not in descriptions:
+                    descriptions[row.model_key] = self._description(row.model_key)
+                yield row, extra, descriptions[row.model_key]
+            if len(batch) < EXPORT_BATCH:
+                return
+            last = batch[-1][0]
+            after = (last.model_key, last.created_at, last.key)
+
+    @_damage_is_bad_input
+    def _points_after(self, after: tuple | None, limit: int) -> list[tuple[StoredPoint, dict]]:
+        """Up to ``limit`` points sorting after ``after`` (model key, time, point
+        key; None: from the first), read in one query."""
+        where, values = ("", ()) if after is None else (
+            "WHERE (model_key, created_at, point_key) > (?, ?, ?) ", after)
+        rows = self._db.execute(
+            "SELECT point_key, model_key, status, " + self._record_select
+            + ", failure, failure_kind, wall_time_s, host, version, created_at, "
+            f"field_vector_au, origin_bohr, quantities FROM points {where}"
+            "ORDER BY model_key, created_at, point_key LIMIT ?", (*values, limit)).fetchall()
+        return [(_stored_point(row[:-3]), {"field_vector_au": _decoded(row[-3]),
+                                           "origin_bohr": _decoded(row[-2]),
+                                           "quantities": _decoded(row[-1])}) for row in rows]
+
+    @_damage_is_bad_input
+    def _description(self, model_key: str) -> dict:
+        row = self._db.execute("SELECT description FROM models WHERE model_key = ?",
+                               (model_key,)).fetchone()
+        return {} if row is None else _decoded(row[0])
+
+    @_damage_is_bad_input
     def summary(self) -> list[dict]:
         """Per model: its description, points computed and failed, first and last time."""
         out = []
         for key, description, created in self._db.execute(
-                "SELECT model_key, description, created_at FROM models ORDER BY created_at"):
+                "SELECT model_key, description, created_at FROM models ORDER BY created_at"
+        ).fetchall():
             counts = dict(self._db.execute(
                 "SELECT status, COUNT(*) FROM points WHERE model_key = ? GROUP BY status",
                 (key,)).fetchall())
             last = self._db.execute("SELECT MAX(created_at), SUM(wall_time_s) FROM points "
                                     "WHERE model_key = ?", (key,)).fetchone()
-            out.append({"model_key": key, **json.loads(description),
+            out.append({"model_key": key, **_decoded(description),
                         "points_ok": counts.get("ok", 0), "points_failed": counts.get("failed", 0),
                         "created_at": created, "last_point_at": last[0],
                         "compute_time_s": last[1] or 0.0})
@@ -485,6 +584,13 @@ class PointStore:
 
 
 def _stored_point(row) -> StoredPoint:
+    try:
+        return _decoded_point(row)
+    except (ValueError, TypeError, KeyError) as exc:
+        raise _DamagedRow(f"point row {str(row[0])[:12]} does not decode: {exc}") from None
+
+
+def _decoded_point(row) -> StoredPoint:
     key, model_key, status = row[:3]
     values = dict(zip(_RECORD_COLUMNS, row[3:3 + len(_RECORD_COLUMNS)]))
     failure, kind, wall, host, version, created = row[3 + len(_RECORD_COLUMNS):]
@@ -543,17 +649,42 @@ def _create(path: Path) -> bool:
                 os.unlink(leftover)
 
 
-def _read_only_connection(path: Path, timeout_s: float = 5.0) -> sqlite3.Connection:
-    """A connection that never writes, nor creates files beside the store.
+def _writable(path: Path) -> bool:
+    """This process may create and write files in the folder ``path`` (or
+    write the file ``path``)."""
+    return os.access(path, os.W_OK | (os.X_OK if path.is_dir() else 0))
 
-    A store no writer has open has no ``-wal`` file: it is read as immutable, so
-    SQLite makes no journal files (a read-only folder, a refused store and
-    ``plan`` leave no trace). With a ``-wal`` file there (a writer at work, or
-    one that was killed), the journal must be read: a plain read-only connection.
+
+def _read_only_connection(path: Path, timeout_s: float = 5.0) -> sqlite3.Connection:
+    """A connection that never writes a row, sees what other processes commit
+    while it is open, and leaves no files beside the store.
+
+    A WAL reader follows writers through the ``-shm`` index beside the store,
+    so SQLite must be able to use (or make) that file:
+
+    - a writable folder and file, no ``-wal`` file yet (no writer has the store
+      open): an ordinary connection with ``PRAGMA query_only``. SQLite makes its
+      ``-wal`` and ``-shm`` companions and, when the last connection closes,
+      removes them again (a refused store, ``plan`` leave no trace);
+    - a ``-wal`` file there (a writer at work, or one that was killed), or a
+      file this process may not write: ``mode=ro``, using the companions as
+      they are;
+    - a folder this process cannot write and no ``-wal`` file: SQLite cannot
+      make the ``-shm`` file, so the file is read as immutable, as it stands
+      at this open. No fieldprop writer can work there (a writable open needs
+      the folder); a writer of another user who may write the folder, starting
+      after this open, would not be seen.
     """
-    if Path(str(path) + "-wal").exists():
+    path = Path(path)
+    folder = path.parent if str(path.parent) else Path(".")
+    if Path(str(path) + "-wal").exists() or (_writable(folder) and not _writable(path)):
         return sqlite3.connect(f"file:{path}?mode=ro", uri=True, timeout=timeout_s)
-    return sqlite3.connect(f"file:{path}?mode=ro&immutable=1", uri=True, timeout=timeout_s)
+    if not _writable(folder):
+        return sqlite3.connect(f"file:{path}?mode=ro&immutable=1", uri=True,
+                               timeout=timeout_s)
+    db = sqlite3.connect(path, timeout=timeout_s)
+    db.execute("PRAGMA query_only = ON")
+    return db
 
 
 def _initialise(db: sqlite3.Connection) -> None:
@@ -578,9 +709,10 @@ def _migrate(db: sqlite3.Connection) -> None:
                 db.execute(statement)
 
 
-def _validate_file(path: Path, shown: str) -> None:
+def _validate_file(path: Path, shown: str, verify: bool = True) -> None:
     """Refuse anything at ``path`` that is not a readable fieldprop store of a
-    schema this version reads; never writes to it."""
+    schema this version reads (``verify``: nor one SQLite's full check finds
+    damaged); never writes to it."""
     try:
         with open(path, "rb") as fh:
             header = fh.read(len(_SQLITE_HEADER))
@@ -618,13 +750,21 @@ def _validate_file(path: Path, shown: str) -> None:
         if schema < SCHEMA_VERSION and schema not in _MIGRATIONS:
             raise InputError(f"{shown}: store schema {schema} is older than this version's "
                              f"{SCHEMA_VERSION} and has no migration; give --store a new path")
-        try:
-            check = db.execute("PRAGMA quick_check").fetchone()[0]
-        except sqlite3.DatabaseError as exc:
-            check = str(exc)
+        check = _quick_check(db) if verify else "ok"
         if check != "ok":
-            first = " ".join(str(check).replace("*** in database main ***", "").split())
-            raise InputError(f"{shown}: corrupt SQLite database ({first[:160]}); move it away "
+            raise InputError(f"{shown}: corrupt SQLite database ({check}); move it away "
                              "and rerun to start a new store")
     finally:
         db.close()
+
+
+def _quick_check(db: sqlite3.Connection) -> str:
+    """SQLite's ``PRAGMA quick_check`` of the whole file: "ok", or its first
+    complaint on one line."""
+    try:
+        check = db.execute("PRAGMA quick_check").fetchone()[0]
+    except sqlite3.DatabaseError as exc:
+        check = str(exc)
+    if check == "ok":
+        return check
+    return " ".join(str(check).replace("*** in database main ***", "").split())[:160]

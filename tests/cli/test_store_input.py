@@ -516,3 +516,16 @@ def test_a_schema_1_store_is_read_as_it_is_and_migrated_when_written(tmp_path):
     db.close()
     assert schema == str(store_module.SCHEMA_VERSION) == "5"
     assert "energy_scale_au" in columns and "relaxation" in columns
+
+
+def test_point_refuses_a_corrupt_store_without_the_full_check(tmp_path, request):
+    """``point`` (every job-array element) and ``plan`` skip SQLite's full check
+    of the file, whose cost grows with the store: a store whose pages they
+    read are damaged is still refused with one line, and left as it is (plan:
+    corrupt_cells above, where only the points' pages are damaged)."""
+    job = write_job(tmp_path)
+    store = build("corrupt_pages", tmp_path, request)
+    before_store = digest_of(store)
+    proc = fieldprop(tmp_path, "point", job.name, "--zero-field", "--store", str(store))
+    check_refused(proc, store, ["corrupt"])
+    assert digest_of(store) == before_store

@@ -213,14 +213,28 @@ NO_PYSCF = ("import sys; sys.modules['pyscf'] = None; from fieldprop.cli import 
             "sys.modules if sys.modules[m] is not None]; sys.exit(code)")
 
 
-def test_the_analysis_of_stored_points_needs_no_pyscf_and_gives_the_same_json(tmp_path):
-    (tmp_path / "water.toml").write_text(WATER)
+#: Every kind of origin a job may give ([response] origin); the centre of mass
+#: needs atomic weights, which must not come from PySCF in collect.
+ORIGINS = {"nuclear-charge": '"nuclear-charge"', "centre-of-mass": '"centre-of-mass"',
+           "zero": '"zero"', "explicit": "[0.1, -0.2, 0.3]"}
+
+
+@pytest.mark.parametrize("origin", list(ORIGINS))
+def test_the_analysis_of_stored_points_needs_no_pyscf_and_gives_the_same_json(tmp_path,
+                                                                              origin):
+    (tmp_path / "water.toml").write_text(WATER + f"origin = {ORIGINS[origin]}\n")
     done = fieldprop("run", "water.toml", "--quiet", cwd=tmp_path)
     assert done.returncode == 0, done.stderr
     collected = subprocess.run([sys.executable, "-c", NO_PYSCF, "collect", "water.toml",
                                 "--json", "collected.json"], cwd=tmp_path, env=_env(),
                                capture_output=True, text=True, timeout=300)
     assert collected.returncode == 0, collected.stderr
+    reported = subprocess.run([sys.executable, "-c", NO_PYSCF, "report", "collected.json",
+                               "water.result.json"], cwd=tmp_path, env=_env(),
+                              capture_output=True, text=True, timeout=300)
+    assert reported.returncode == 0, reported.stderr
+    rows = [line for line in reported.stdout.splitlines() if "json" in line]
+    assert len(rows) == 2 and rows[0].split()[1:] == rows[1].split()[1:], reported.stdout
     ran = json.loads((tmp_path / "water.result.json").read_text())
     got = json.loads((tmp_path / "collected.json").read_text())
     for doc in (ran, got):

@@ -45,6 +45,21 @@ def test_scf_retries_are_recorded(tmp_path, capsys):
     capsys.readouterr()
 
 
+def test_a_normal_run_lists_no_scf_retries(tmp_path, capsys):
+    """Water HF/STO-3G, dipole, alpha and beta: every point converges on the
+    solver's own path (zero field: DIIS then Newton; field points: a response,
+    mirror or line start, then Newton), so ``scf_retries`` is empty. The job is
+    run in one process, where the mirror and line starts occur."""
+    job = tmp_path / "water.toml"
+    job.write_text(WATER.replace('"6-31g"', '"sto-3g"').replace('["dipole", "alpha"]',
+                                                                '["dipole", "alpha", "beta"]')
+                   .format(extra=""))
+    assert main(["run", str(job), "--quiet", "--workers", "1"]) == 0
+    doc = json.loads((tmp_path / "water.result.json").read_text())
+    assert doc["scf_retries"] == [], doc["scf_retries"]
+    capsys.readouterr()
+
+
 def test_a_point_that_never_converges_fails_the_job(tmp_path, capsys, monkeypatch):
     target = "L1(-1,0,0)"  # computed (L1(+1,0,0) is its mirror image by symmetry)
     real = backend_pyscf._converge

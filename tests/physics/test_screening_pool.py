@@ -110,3 +110,40 @@ def test_screen_sends_its_points_to_a_dask_scheduler_by_address(tmp_path):
     rows = list(csv.DictReader((tmp_path / "ranked.csv").open()))
     assert len(rows) == 3 and all(r["status"] == "ok" for r in rows)
     assert (tmp_path / "fieldprop-points.sqlite").exists()
+
+
+def test_a_campaign_does_not_mix_points_of_another_backend_version(tmp_path, monkeypatch):
+    """A molecule whose stored model was computed with another PySCF (simulated)
+    fails with both versions named, and computes nothing, when it has points
+    to compute; one whose points are all stored is analysed as usual."""
+    import pyscf
+
+    small = textwrap.dedent("""
+        [[molecule]]
+        name = "hydrogen"
+        geometry = \"\"\"
+        H 0 0 0
+        H 0 0 0.74
+        \"\"\"
+        [model]
+        method = "hf"
+        basis = "sto-3g"
+        [response]
+        properties = ["alpha"]
+        field_au = 0.002
+        levels = {levels}
+        """)
+    (tmp_path / "two.toml").write_text(small.format(levels=2))
+    (tmp_path / "three.toml").write_text(small.format(levels=3))
+    with PointStore.open(tmp_path / "points.sqlite") as store:
+        first, counts = run_campaign(load_set(tmp_path / "two.toml"), store, LocalPool(1, 1))
+        assert counts.failed == 0 and counts.computed > 0
+        installed = pyscf.__version__
+        monkeypatch.setattr(pyscf, "__version__", "0.0.1")
+        again, counts = run_campaign(load_set(tmp_path / "two.toml"), store, LocalPool(1, 1))
+        assert counts.failed == 0 and counts.computed == 0
+        more, counts = run_campaign(load_set(tmp_path / "three.toml"), store, LocalPool(1, 1))
+    assert counts.failed == 1 and counts.computed == 0
+    (outcome,) = more
+    assert outcome.result is None and outcome.kind == "InputError"
+    assert f"PySCF {installed}" in outcome.failure and "PySCF 0.0.1" in outcome.failure

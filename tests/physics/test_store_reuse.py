@@ -168,3 +168,51 @@ def test_a_stored_failure_is_not_retried_unless_asked(tmp_path, capsys, monkeypa
     # ... until asked: then only the failed point is computed, and the job succeeds.
     assert main(["run", str(tmp_path / "lih.toml"), "--retry-failed"]) == 0
     assert _counts(capsys.readouterr().err)[0] == (planned, 1, planned - 1)
+
+
+@pytest.mark.parametrize("method", ["hf", "dft"])
+def test_points_of_another_backend_version_are_not_mixed_into_one_table(tmp_path, capsys,
+                                                                        monkeypatch, method):
+    """A store whose model was computed with one PySCF (for DFT: one libxc) is
+    not extended by another (simulated by changing the version the backend
+    reports): one line names both versions (exit 2) and nothing is computed
+    or stored. What is stored is still read (the stored job again: nothing to
+    compute, nothing mixed)."""
+    import pyscf
+    from pyscf.dft import libxc
+
+    job_path = tmp_path / "lih.toml"
+    write_job(tmp_path, "lih.toml", properties='["alpha"]')
+    if method == "dft":
+        job_path.write_text(job_path.read_text().replace(
+            'method = "hf"', 'method = "dft"\nfunctional = "pbe"'))
+    assert main(["run", str(job_path), "--quiet"]) == 0
+    store_path = tmp_path / "fieldprop-points.sqlite"
+
+    def stored():
+        with PointStore.open(store_path, read_only=True) as store:
+            (model,) = store.summary()
+            return model["points_ok"] + model["points_failed"], store.get_facts(
+                model["model_key"])
+
+    count, facts = stored()
+    assert facts["pyscf_version"] == pyscf.__version__
+    if method == "dft":
+        assert facts["libxc_version"] == libxc.libxc_version()
+        old, new = f"libxc {libxc.libxc_version()}", "libxc 0.0.1"
+        monkeypatch.setattr(libxc, "libxc_version", lambda: "0.0.1")
+    else:
+        assert "libxc_version" not in facts  # HF evaluates no functional
+        old, new = f"PySCF {pyscf.__version__}", "PySCF 0.0.1"
+        monkeypatch.setattr(pyscf, "__version__", "0.0.1")
+    capsys.readouterr()
+    assert main(["run", str(job_path), "--quiet"]) == 0
+    capsys.readouterr()
+    # One more level: new points of the stored model, refused.
+    job_path.write_text(job_path.read_text().replace("levels = 3", "levels = 4"))
+    assert main(["run", str(job_path), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    lines = err.splitlines()
+    assert len(lines) == 1 and lines[0].startswith("fieldprop: error: bad input: "), err
+    assert old in lines[0] and new in lines[0] and str(store_path) in lines[0], lines[0]
+    assert stored() == (count, facts)
