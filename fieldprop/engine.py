@@ -396,8 +396,9 @@ def tightened_task(task: PointTask, steps: int) -> PointTask:
 #: A window's points are worth tightening when, at its smallest field, the
 #: convergence part of a raw estimate's floor exceeds this many times its
 #: double-precision part (below, a tighter convergence would shrink that
-#: floor by less than half) and exceeds the component's error bar (so that
-#: the noise, not the truncation, keeps the smaller fields from helping).
+#: floor by less than half), and the noise sets the error bar: the entry is
+#: at its noise floor, or that convergence part exceeds the bar (the noise,
+#: not the truncation, keeps the smaller fields from helping).
 TIGHTENING_GAIN = 1.0
 
 
@@ -418,7 +419,9 @@ def _tightenable(prepared: Prepared, noise: "NoiseModel", windows,
         rounding = noise.rounding(comp.quantity, n)
         floor = sum(abs(w) * rounding[p] for p, w in s.terms) / s.step_au ** comp.order
         converged = noise.stencil_floor(comp.quantity, s.terms, s.step_au, comp.order) - floor
-        out.append(bool(converged > TIGHTENING_GAIN * floor and converged > est.error_au))
+        noise_sets_bar = (est.status is ComponentStatus.NOISE_LIMITED
+                          or converged > est.error_au)
+        out.append(bool(converged > TIGHTENING_GAIN * floor and noise_sets_bar))
     return tuple(out)
 
 
@@ -1001,12 +1004,15 @@ def with_relaxation(result: RunResult, prepared: Prepared, relaxed: dict,
 
 def _log_counts(prepared: Prepared, counts: PointCounts, label: str) -> None:
     """The closing line of the points' work."""
-    logger.info("%d field point%s: %d computed, %d reused from %s%s%s", counts.planned,
+    tightened = len(prepared.tightening or {})
+    logger.info("%d field point%s: %d computed, %d reused from %s%s%s%s", counts.planned,
                 "" if counts.planned == 1 else "s", counts.computed, counts.reused, label,
                 f", {counts.images} images by symmetry ({prepared.symmetry.name})"
                 if counts.images else "",
                 f"; the adaptive window used {counts.planned} of the ladder's {counts.ladder}"
-                if prepared.adaptive else "")
+                if prepared.adaptive else "",
+                f"; {tightened} of them computed again with tighter convergence, to lower a "
+                "noise floor" if tightened else "")
 
 
 def point_counts(prepared: Prepared, computed: int, reused: int) -> PointCounts:

@@ -32,7 +32,8 @@ one more ScfSpec.tightened step, which divides the orbital-gradient target
 and the amplitude solver's targets by 100), when the caller says that would
 lower its floor where it matters (engine._tightenable: at the window's
 smallest field the convergence part of the noise exceeds the double-precision
-part and the error bar, and a step is left). A window is (lowest level,
+part, the noise sets the bar, at the floor or at the smaller fields, and a
+step is left). A window is (lowest level,
 highest level, tightening steps); a point used by several components is
 computed at the largest tightening among them.
 
