@@ -72,9 +72,10 @@ CC_STEP_SPREAD = 0.01
 #: with a margin.
 TRIPLES_SHARE = 0.5
 #: Coupled-cluster energy error per unit of orbital gradient g: the singles
-#: absorb most of an orbital error, leaving 0.3-2.1e-3 g (measured on the
-#: same two molecules, g from 2.6e-7 to 6.3e-5; MP2 keeps the full ~g), hence
-#: five times the largest.
+#: absorb most of an orbital error, leaving 3e-5 to 2.1e-3 g (measured on the
+#: same two molecules, CCSD converged to 1e-15 Eh on SCF orbitals with g from
+#: 2.6e-7 to 6.3e-5; an MP2 energy keeps the full ~g), hence five times the
+#: largest.
 CC_ORBITAL_SENSITIVITY = 1e-2
 
 
