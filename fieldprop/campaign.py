@@ -42,7 +42,7 @@ from fieldprop.units import BACKEND_BOHR_ANGSTROM, NAMED_BOHR_ANGSTROM
 MOLECULE_KEYS = {"name", "xyz", "geometry", "smiles", "units", "charge", "multiplicity",
                  "allow_close_atoms", "bohr_angstrom"}
 #: Top-level keys and tables of a set file.
-SET_KEYS = {"xyz_dir", "molecule", "model", "response", "scf", "geometry"}
+SET_KEYS = {"xyz_dir", "molecule", "model", "response", "scf", "correlation", "geometry"}
 #: A molecule's name names its result files: letters, digits, . _ - only.
 NAME_PATTERN = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,99}$")
 
@@ -108,7 +108,8 @@ def load_set(path: str | Path) -> Campaign:
         raise _fail(shown, "[response] nuclear_relaxation = true: a screening campaign "
                     "computes clamped-nucleus responses only; run the molecules you want "
                     "relaxed as jobs (fieldprop run), or set it to false")
-    shared = {k: data[k] for k in ("model", "response", "scf", "geometry") if k in data}
+    shared = {k: data[k] for k in ("model", "response", "scf", "correlation", "geometry")
+              if k in data}
     entries: list[tuple[str, str, dict, str | None]] = []  # name, source, molecule table, smiles
     if "xyz_dir" in data:
         folder_text = data["xyz_dir"]

@@ -754,8 +754,8 @@ def cmd_plan(args) -> int:
                      "points in use, " + ("settled: no further stage" if prepared.settled else
                                           "this stage listed; once its points are computed, "
                                           "plan again for the next one (if any)"))
-        _to_stdout(lambda: write_plan(prepared.plan, prepared.tasks, rows, sys.stdout, fmt,
-                                      store.label if store is not None else None, only,
+        _to_stdout(lambda: write_plan(prepared.plan, prepared.stage_tasks(), rows, sys.stdout,
+                                      fmt, store.label if store is not None else None, only,
                                       prepared.images, prepared.symmetry, full, stage, used,
                                       prepared.near_symmetry))
     finally:
@@ -791,7 +791,7 @@ def _targets(args, prepared, store) -> list:
     from fieldprop.engine import todo_list_key
     from fieldprop.keys import short_id
 
-    tasks = prepared.tasks
+    tasks = prepared.all_tasks()  # a later stage may ask for tightened points
     if args.zero_field:
         return [tasks[0]]
     by_key = {t.key: t for t in tasks}
@@ -816,7 +816,7 @@ def _targets(args, prepared, store) -> list:
         found = [t for t in tasks if text and t.key.startswith(text)]
         if len(found) == 1 and prepared.images and \
                 prepared.images[found[0].point.index][1] is not None:
-            rep = tasks[prepared.images[found[0].point.index][0]]
+            rep = prepared.tasks[prepared.images[found[0].point.index][0]]
             raise InputError(f"{prepared.job.path}: --id {ident}: is the image of point "
                              f"{short_id(rep.key)} under a symmetry operation of the "
                              "molecule, never computed itself; compute that point")
@@ -882,7 +882,8 @@ def cmd_point(args) -> int:
 
             lib.num_threads(threads)
             with threadpool_limits(threads):
-                compute_points([prepared.tasks[0], *(t for t in todo if not t.is_zero_field)],
+                compute_points([prepared.tasks[0], *(t for t in todo
+                                                     if t.key != prepared.tasks[0].key)],
                                work, prepared.facts, prepared.description(), workers=1,
                                progress=False, retry_failed=True)
         done = work.get_points(t.key for t in todo) if todo else {}
@@ -903,7 +904,7 @@ def cmd_point(args) -> int:
             if args.stdout:
                 doc = line_document(row, t.point.field_vector_au, t.molecule.origin_bohr,
                                     t.quantities.canonical(), prepared.facts,
-                                    prepared.description())
+                                    prepared.description(), t.tolerances)
                 _to_stdout(lambda: write_line(doc, sys.stdout))
         if work is not real:
             work.close()

@@ -26,7 +26,7 @@ from fieldprop import errors
 from fieldprop.continuity import ContinuityReport, check_continuity
 from fieldprop.errors import IncompleteError, InputError, UnstableResultError
 from fieldprop.extrapolate import ComponentEstimate, ComponentStatus, mark_unstable, richardson
-from fieldprop.job import SYMMETRISE, Job
+from fieldprop.job import MAX_TIGHTENING, SYMMETRISE, Job
 from fieldprop.keys import (Quantities, backend_version_conflict, model_document, model_key,
                             point_key, short_id)
 from fieldprop.methods import METHODS, Route
@@ -50,8 +50,35 @@ logger = logging.getLogger(__name__)
 #: against |E| it grew from 7 to 20 ulp with the molecule.
 ENERGY_ULPS = 4.0
 #: Coupled-cluster energy noise in units of the amplitude solver's energy
-#: tolerance (see noise_model).
+#: tolerance, for a record without the convergence it reached (stored before
+#: it was recorded; see noise_model).
 CC_TOLERANCES = 10.0
+#: Coupled-cluster energy error in units of what one more amplitude iteration
+#: changes (PointRecord.correlation_energy_change_au, signed): the true error
+#: was -1.2 to -2.1 times that change (HF molecule, aug-cc-pVDZ, and water,
+#: 6-31G*, CCSD at a field off the axes, stopping at energy changes of
+#: 1e-8..1e-13 Eh), hence twice the largest.
+CC_STEP_FACTOR = 4.0
+#: The part of that error that does not follow the signed change from point
+#: to point, as a fraction of it. The error is a smooth function of the field
+#: times the change (the solver's convergence rate is), so a stencil sees
+#: CC_STEP_FACTOR |sum_p w_p change_p| (signed, mostly cancelling) plus this
+#: fraction unsigned. Measured on He (CCSD/aug-cc-pVDZ against FCI, solver
+#: stopped at 1e-12 Eh): alpha and gamma corrected by -1.5 times each point's
+#: change agreed with FCI to 0.02 % and 0.2 % of the unsigned floor (the FCI
+#: finite differences' own precision), hence 1 %.
+CC_STEP_SPREAD = 0.01
+#: CCSD(T): the triples, a function of the same amplitudes, err along with
+#: them; their share of the energy error, relative to CCSD's (measured 0.07
+#: for water/6-31G* at a tolerance of 1e-12 Eh: 3e-13 against 4.1e-12 Eh),
+#: with a margin.
+TRIPLES_SHARE = 0.5
+#: Coupled-cluster energy error per unit of orbital gradient g: the singles
+#: absorb most of an orbital error, leaving 3e-5 to 2.1e-3 g (measured on the
+#: same two molecules, CCSD converged to 1e-15 Eh on SCF orbitals with g from
+#: 2.6e-7 to 6.3e-5; an MP2 energy keeps the full ~g), hence five times the
+#: largest.
+CC_ORBITAL_SENSITIVITY = 1e-2
 
 
 @dataclass(frozen=True)
@@ -66,9 +93,11 @@ class NoiseModel:
     The SCF dipole and post-HF energies are not: their errors are linear, ~g
     (orbital rotations ~g/gap times matrix elements ~1 au). Each also has the
     double-precision floor of its size (ENERGY_ULPS units in the last place; for
-    the dipole, of its nuclear and electronic terms, sum_A Z_A |R_A - O|), and
-    coupled-cluster energies CC_TOLERANCES times their solver's energy
-    tolerance (measured). The analytic alpha (alpha route) is linear in the
+    the dipole, of its nuclear and electronic terms, sum_A Z_A |R_A - O|).
+    Coupled-cluster energies depend on g far less (CC_ORBITAL_SENSITIVITY g)
+    and add CC_STEP_FACTOR times what one more amplitude iteration changes at
+    that point (measured; CC_TOLERANCES times the solver's energy tolerance
+    for records without it). The analytic alpha (alpha route) is linear in the
     orbital error too, with the CPHF residual tolerance on top: ~g * |alpha|
     plus CPHF_RTOL * |alpha|.
     """
@@ -76,11 +105,50 @@ class NoiseModel:
     energy_au: float | tuple[float, ...]  # Eh, one per point (or one for all)
     dipole_au: float | tuple[float, ...]  # e bohr
     alpha_au: float | tuple[float, ...] = 0.0  # au
+    #: The part of each noise that no tighter convergence removes: the
+    #: double-precision floor (for alpha also the CPHF residual's); what is
+    #: left is the convergence's, which ScfSpec.tightened shrinks.
+    energy_rounding_au: float | tuple[float, ...] = 0.0
+    dipole_rounding_au: float | tuple[float, ...] = 0.0
+    alpha_rounding_au: float | tuple[float, ...] = 0.0
+    #: The energy's error that follows a signed estimate from point to point
+    #: (coupled cluster: CC_STEP_FACTOR times the last amplitude step's
+    #: change), Eh, signed: a stencil carries it as |sum_p w_p drift_p|. Its
+    #: magnitude is part of energy_au, less the share that does not follow
+    #: (CC_STEP_SPREAD), which stencils carry unsigned. 0: none.
+    energy_drift_au: float | tuple[float, ...] = 0.0
 
     def per_point(self, kind: Route | str, n: int) -> np.ndarray:
         """The (n,) noise of the energy, dipole or alpha at each point."""
         return np.broadcast_to(np.asarray(getattr(self, Route(kind).value + "_au"),
                                           dtype=float), (n,))
+
+    def rounding(self, kind: Route | str, n: int) -> np.ndarray:
+        """The (n,) part of :meth:`per_point` that tightening does not remove."""
+        return np.broadcast_to(np.asarray(getattr(self, Route(kind).value + "_rounding_au"),
+                                          dtype=float), (n,))
+
+    def drift(self, kind: Route | str, n: int) -> np.ndarray:
+        """The (n,) signed error that follows an estimate (energy only)."""
+        value = self.energy_drift_au if Route(kind) is Route.ENERGY else 0.0
+        return np.broadcast_to(np.asarray(value, dtype=float), (n,))
+
+    def stencil_floor(self, kind: Route | str, terms, step_au: float, order: int) -> float:
+        """The round-off floor of one stencil (``terms``: (point, weight)):
+        sum_p |w_p| independent_p / h^n + |sum_p w_p drift_p| / h^n, the
+        independent part being :meth:`per_point` less the drift that
+        follows the signed estimate."""
+        total = np.atleast_1d(np.asarray(getattr(self, Route(kind).value + "_au"),
+                                         dtype=float))
+        drift = np.atleast_1d(np.asarray(self.energy_drift_au if Route(kind) is Route.ENERGY
+                                         else 0.0, dtype=float))
+
+        def at(values, p):  # one value per point, or one for all
+            return values[p] if values.size > 1 else values[0]
+
+        alone = sum(abs(w) * (at(total, p) - (1.0 - CC_STEP_SPREAD) * abs(at(drift, p)))
+                    for p, w in terms)
+        return float((alone + abs(sum(w * at(drift, p) for p, w in terms))) / step_au ** order)
 
     def largest(self) -> dict[str, float]:
         """The largest noise of each quantity over the points (for reports)."""
@@ -122,8 +190,8 @@ class Prepared:
     symmetry: "Symmetry | None" = None
     images: tuple = ()
     #: The adaptive window reached (see :func:`settle`): (lowest, highest)
-    #: level per component, and the planned points those levels use; () and
-    #: None: every level, every point.
+    #: level and tightening steps per component, and the planned points those
+    #: levels use; () and None: every level, every point.
     windows: tuple = ()
     active: frozenset | None = None
     #: False while the windows' points are not all computed (the adaptive
@@ -132,6 +200,9 @@ class Prepared:
     #: The group the given framework is near but not symmetric under to
     #: round-off (not used; None: none).
     near_symmetry: "NearSymmetry | None" = None
+    #: {plan index: tightening steps} of the computed points the windows
+    #: tighten (absent: the model's own convergence).
+    tightening: dict | None = None
 
     @property
     def adaptive(self) -> bool:
@@ -147,9 +218,30 @@ class Prepared:
     @property
     def computed_tasks(self) -> tuple[PointTask, ...]:
         """The tasks to compute: the points used that are not symmetry images
-        of others, and the representatives of those that are."""
+        of others, and the representatives of those that are, each with the
+        tightening the windows ask of it."""
         sources = {self.images[i][0] if self.images else i for i in self.used}
-        return tuple(t for i, t in enumerate(self.tasks) if i in sources)
+        return tuple(self.task_at(i) for i in range(len(self.tasks)) if i in sources)
+
+    def task_at(self, index: int) -> PointTask:
+        """The task of planned point ``index`` at this stage's tightening."""
+        return tightened_task(self.tasks[index], (self.tightening or {}).get(index, 0))
+
+    def stage_tasks(self) -> tuple[PointTask, ...]:
+        """Every planned point's task at this stage's tightening (plan order)."""
+        return tuple(self.task_at(i) for i in range(len(self.tasks)))
+
+    def all_tasks(self) -> tuple[PointTask, ...]:
+        """Every planned point at every tightening the window may ask for
+        (untightened first): what a store or point lines may hold of this job."""
+        steps = [k for k in range(1, MAX_TIGHTENING + 1) if self.job.scf.can_tighten(k)]
+        return self.tasks + tuple(tightened_task(t, k) for k in steps for t in self.tasks)
+
+    def records(self, found: dict) -> list:
+        """Records of every planned point (:meth:`expand`) from ``found``
+        ({task key: PointRecord}): each computed point's at its tightening."""
+        return self.expand({t.point.index: found[t.key] for t in self.computed_tasks
+                            if t.key in found})
 
     def expand(self, by_index: dict) -> list:
         """Records of every planned point from those of the computed ones
@@ -205,6 +297,8 @@ class RunResult:
     relaxation: "NuclearRelaxation | None" = None
     #: As ``Prepared.near_symmetry``.
     near_symmetry: "NearSymmetry | None" = None
+    #: As ``Prepared.tightening``: the computed points with tighter convergence.
+    tightening: dict | None = None
 
     @property
     def energy_au(self) -> float:
@@ -251,29 +345,92 @@ class NuclearRelaxation:
 
 def settle(prepared: Prepared, found: dict) -> Prepared:
     """``prepared`` with the adaptive window replayed on the computed records
-    ``found`` ({plan index: PointRecord}, images not needed): from the first
-    windows, grow them (fieldprop.window) while the points they use are all
-    there; the result holds the windows reached and the points they use, some
-    of which may still be missing (the next stage to compute). The same
-    records give the same stages in every process. Without the adaptive
-    window, ``prepared`` itself."""
+    ``found`` ({task key: PointRecord}, images not needed): from the first
+    windows, grow them (fieldprop.window: one more level, or tighter points)
+    while the points they use are all there; the result holds the windows
+    reached, the points they use and their tightening, some of which may
+    still be missing (the next stage to compute). The same records give the
+    same stages in every process. Without the adaptive window, ``prepared``
+    itself."""
     from fieldprop import window as adaptive
 
     if not prepared.adaptive:
         return prepared
     plan = prepared.plan
-    records = prepared.expand(found)
     windows = adaptive.initial_windows(plan)
     while True:
-        need = adaptive.needed_points(plan, windows)
+        stage = _stage(prepared, windows)
+        records = stage.records(found)
+        need = stage.active
         if any(records[i] is None for i in need):
-            return dataclasses.replace(prepared, windows=windows, active=need, settled=False)
-        estimates = _estimates(prepared, records, windows, need, {})[3]
-        grown = adaptive.grow(plan, windows, estimates, _tensor_scales(plan, estimates))
+            return dataclasses.replace(stage, settled=False)
+        framed, noise, _, estimates = _estimates(stage, records, windows, need, {})
+        grown = adaptive.grow(plan, windows, estimates, _tensor_scales(plan, estimates),
+                              _tightenable(stage, noise, windows, estimates))
         if grown == windows:
             break
         windows = grown
-    return dataclasses.replace(prepared, windows=windows, active=need, settled=True)
+    return dataclasses.replace(stage, settled=True)
+
+
+def _stage(prepared: Prepared, windows) -> Prepared:
+    """``prepared`` at the adaptive window's ``windows``: the points they use,
+    and the tightening of each computed point (the largest any window using
+    it, or an image of it, asks for)."""
+    from fieldprop import window as adaptive
+
+    steps = adaptive.point_tightening(prepared.plan, windows)
+    tightening: dict[int, int] = {}
+    for i, k in steps.items():
+        j = prepared.images[i][0] if prepared.images else i
+        if k:
+            tightening[j] = max(tightening.get(j, 0), k)
+    return dataclasses.replace(prepared, windows=windows, active=frozenset(steps),
+                               tightening=tightening)
+
+
+def tightened_task(task: PointTask, steps: int) -> PointTask:
+    """``task`` with its convergence tightened by ``steps`` (ScfSpec.tightened),
+    keyed by its targets: another point than ``task``, reused by any job that
+    tightens the same point alike. ``steps`` = 0: ``task`` itself."""
+    if not steps:
+        return task
+    tight = dataclasses.replace(task, scf=task.scf.tightened(steps), tightening=steps)
+    return dataclasses.replace(tight, key=point_key(
+        task.model_key, task.molecule.origin_bohr, task.quantities,
+        task.point.field_vector_au, tight.tolerances))
+
+
+#: A window's points are worth tightening when, at its smallest field, the
+#: convergence part of a raw estimate's floor exceeds this many times its
+#: double-precision part (below, a tighter convergence would shrink that
+#: floor by less than half), and the noise sets the error bar: the entry is
+#: at its noise floor, or that convergence part exceeds the bar (the noise,
+#: not the truncation, keeps the smaller fields from helping).
+TIGHTENING_GAIN = 1.0
+
+
+def _tightenable(prepared: Prepared, noise: "NoiseModel", windows,
+                 estimates) -> tuple[bool, ...]:
+    """Per component: one more tightening step is allowed and would lower its
+    floor where it matters (see TIGHTENING_GAIN); the records' noise is in the
+    plan's frame."""
+    plan, scf = prepared.plan, prepared.job.scf
+    n = len(plan.points)
+    out = []
+    for comp, window, est in zip(plan.components, windows, estimates):
+        lo, hi, steps = window
+        if len(comp.stencils) <= 1 or not scf.can_tighten(steps + 1):
+            out.append(False)
+            continue
+        s = comp.stencils[lo]
+        rounding = noise.rounding(comp.quantity, n)
+        floor = sum(abs(w) * rounding[p] for p, w in s.terms) / s.step_au ** comp.order
+        converged = noise.stencil_floor(comp.quantity, s.terms, s.step_au, comp.order) - floor
+        noise_sets_bar = (est.status is ComponentStatus.NOISE_LIMITED
+                          or converged > est.error_au)
+        out.append(bool(converged > TIGHTENING_GAIN * floor and noise_sets_bar))
+    return tuple(out)
 
 
 def _tensor_scales(plan: FieldPlan, estimates) -> list[float]:
@@ -704,10 +861,9 @@ def extrapolate_components(plan: FieldPlan, records, noise: NoiseModel,
     alphas = (np.array([r.alpha_au for r in records]) if plan.route is Route.ALPHA else None)
     estimates = []
     for n, comp in enumerate(plan.components):
-        lo, hi = windows[n] if windows else (0, len(comp.stencils) - 1)
+        lo, hi = windows[n][:2] if windows else (0, len(comp.stencils) - 1)
         est = _component_estimate(plan, comp, comp.stencils[lo:hi + 1], energies, dipoles,
-                                  alphas, noise.per_point(comp.quantity, len(records)),
-                                  excluded, missing, lo)
+                                  alphas, noise, excluded, missing, lo)
         estimates.append(_shifted(est, lo) if lo and est.table[0] else est)
     return estimates
 
@@ -719,9 +875,10 @@ def _shifted(est: ComponentEstimate, lo: int) -> ComponentEstimate:
     return dataclasses.replace(est, chosen_entry=(k + lo, m), table=table)
 
 
-def _component_estimate(plan, comp, stencils, energies, dipoles, alphas, eps, excluded,
-                        missing, lo) -> ComponentEstimate:
-    """One component's estimate from ``stencils`` (its levels lo.., consecutive)."""
+def _component_estimate(plan, comp, stencils, energies, dipoles, alphas, eps: "NoiseModel",
+                        excluded, missing, lo) -> ComponentEstimate:
+    """One component's estimate from ``stencils`` (its levels lo.., consecutive);
+    ``eps`` the points' noise."""
     window = list(stencils)
     gone = next((k for k, s in enumerate(window) if any(p in missing for p, _ in s.terms)),
                 None)
@@ -746,7 +903,7 @@ def _component_estimate(plan, comp, stencils, energies, dipoles, alphas, eps, ex
         return ComponentEstimate(math.nan, math.nan, (0, 0), ComponentStatus.UNSTABLE,
                                  math.nan, ((),), f"every field strength is excluded: {why}")
     values = [stencil_estimate(comp, s, energies, dipoles, alphas) for s in stencils]
-    floors = [sum(abs(w) * eps[p] for p, w in s.terms) / s.step_au ** comp.order
+    floors = [eps.stencil_floor(comp.quantity, s.terms, s.step_au, comp.order)
               for s in stencils]
     est = richardson(values, plan.ratio, floors)
     if comp.order > 0 and len(values) == 1:
@@ -767,39 +924,58 @@ def noise_model(job: Job, records, molecule: MoleculeSpec | None = None) -> Nois
     # as sum_A Z_A |R_A - O|; its rounding follows them, not |mu| (zero for a
     # symmetric molecule, whose terms may be large).
     moments = float(molecule.nuclear_moment_sum_au())
-    energy, dipole, alpha = [], [], []
+    energy, dipole, alpha, drift = [], [], [], []
+    rounding = {"energy": [], "dipole": [], "alpha": []}
+    triples = 1.0 + (TRIPLES_SHARE if job.model.method == "ccsd(t)" else 0.0)
     for r in records:
         g = r.gradient_norm
-        e = ENERGY_ULPS * ulp * max(r.energy_scale_au, abs(r.energy_au))
+        e_round = ENERGY_ULPS * ulp * max(r.energy_scale_au, abs(r.energy_au))
+        e, follows = e_round, 0.0
         if traits.mean_field:
             e += g * g
+        elif traits.amplitude_solver:
+            e += CC_ORBITAL_SENSITIVITY * g
+            if r.correlation_energy_change_au is not None:
+                # The error is about -1.5 times the step's change: the drift
+                # is signed like the error.
+                follows = -CC_STEP_FACTOR * triples * r.correlation_energy_change_au
+                e += abs(follows)
+            else:
+                # A record from before the convergence was recorded: CC
+                # energies stop when one iteration changes them by less than
+                # the tolerance, and end up to ~4x that from converged
+                # (measured: water/6-31G*, tolerance 1e-12: 4.1e-12 Eh); hence
+                # ten tolerances.
+                tolerance = (job.scf.correlation.energy_change_au
+                             if getattr(job.scf, "correlation", None) is not None
+                             else job.scf.energy_conv_tol_au)
+                e += g + CC_TOLERANCES * max(tolerance, 1e-12)
         else:
             e += g
-            if traits.amplitude_solver:
-                # CC energies stop when one iteration changes them by less than
-                # the tolerance, and end up to ~4x that from the converged value
-                # (measured: water/6-31G*, a field off the axes, tolerance 1e-12:
-                # CCSD 4.1e-12 Eh, the (T) correction 3e-13 Eh, the same for
-                # amplitude tolerances 1e-5 to 1e-9); hence ten tolerances.
-                e += CC_TOLERANCES * max(job.scf.energy_conv_tol_au, 1e-12)
         relaxed = r.relaxation or {}
         # A relaxed structure's optimiser error: what one more Newton step would
         # still change (fieldprop.relaxation), twice for safety.
         e += 2.0 * relaxed.get("energy_change_au", 0.0)
         energy.append(float(e))
+        drift.append(float(follows))
+        rounding["energy"].append(float(e_round))
         # The dipole's convergence error: ~g for a closed shell (measured 0.9 g for
         # water), more across small gaps. The closed-shell one-step estimate came
         # out at 0.5-0.65 of the true error for water, hence twice it; the open-shell
         # full-Hessian one (dipole route) at 0.98-1.01 of it, doubled alike. Plus
         # the dipole's rounding, a sum of ~nao^2 products of the terms' size.
-        dipole.append(float(max(g, 2.0 * r.dipole_error_au)
-                            + 10.0 * ENERGY_ULPS * ulp * moments
+        d_round = 10.0 * ENERGY_ULPS * ulp * moments
+        dipole.append(float(max(g, 2.0 * r.dipole_error_au) + d_round
                             + 2.0 * relaxed.get("dipole_change_au", 0.0)))
+        rounding["dipole"].append(float(d_round))
         a = 0.0 if r.alpha_au is None else float(np.abs(r.alpha_au).max())
         # Ten CPHF residual tolerances: the solver stops at or below it, and the
         # residual maps into alpha through an operator of norm ~|alpha|.
         alpha.append(float((g + 10.0 * CPHF_RTOL) * max(a, 1.0)))
-    return NoiseModel(tuple(energy), tuple(dipole), tuple(alpha))
+        rounding["alpha"].append(float(10.0 * CPHF_RTOL * max(a, 1.0)))
+    return NoiseModel(tuple(energy), tuple(dipole), tuple(alpha),
+                      *(tuple(rounding[k]) for k in ("energy", "dipole", "alpha")),
+                      tuple(drift))
 
 
 def compute(job: Job, workers: int = 1, progress: bool | None = None,
@@ -842,28 +1018,32 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
                 store.label, workers, "" if workers == 1 else "es")
     if progress is None:
         progress = sys.stderr.isatty()
-    found: dict[int, PointRecord] = {}
+    found: dict[str, PointRecord] = {}  # by task key
     computed = reused = 0
     prepared = settle(prepared, found)
     try:
         while True:  # one pass per stage of the adaptive window (else one pass)
-            todo = [t for t in prepared.computed_tasks if t.point.index not in found]
+            todo = [t for t in prepared.computed_tasks if t.key not in found]
             if not todo:
                 break
             if found:
+                tighter = sum(1 for t in todo if t.tightening)
                 logger.info("adaptive window: %d more field point%s for the components whose "
-                            "tables have not settled", len(todo), "" if len(todo) == 1 else "s")
+                            "tables have not settled%s", len(todo), "" if len(todo) == 1 else "s",
+                            f" ({tighter} of them again with tighter convergence, to lower a "
+                            "noise floor)" if tighter else "")
             zero = prepared.tasks[0]
             again = 0 if todo[0] is zero else 1  # a later stage: zero field found already
-            outcome = compute_points(todo if not again else [zero, *todo], store,
-                                     prepared.facts, prepared.description(), workers=workers,
-                                     progress=progress, retry_failed=retry_failed,
-                                     log_every_s=log_every_s)
+            batch = todo if not again else [zero, *todo]
+            outcome = compute_points(batch, store, prepared.facts, prepared.description(),
+                                     workers=workers, progress=progress,
+                                     retry_failed=retry_failed, log_every_s=log_every_s)
             computed, reused = computed + outcome.computed, reused + outcome.reused - again
             if outcome.failures:
                 _log_counts(prepared, point_counts(prepared, computed, reused), store.label)
                 raise failed_points_error(prepared, outcome.failures, retry_failed)
-            found.update((r.point.index, r) for r in outcome.records)
+            # Without failures the records follow the tasks one for one.
+            found.update((t.key, r) for t, r in zip(batch, outcome.records))
             prepared = settle(prepared, found)
         counts = point_counts(prepared, computed, reused)
         _log_counts(prepared, counts, store.label)
@@ -882,7 +1062,7 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
     finally:
         if own_store:
             store.close()
-    result = analyse(prepared, prepared.expand(found), counts, store.label,
+    result = analyse(prepared, prepared.records(found), counts, store.label,
                      time.perf_counter() - start)
     if relaxed is not None:
         result = with_relaxation(result, prepared, *relaxed)
@@ -906,12 +1086,15 @@ def with_relaxation(result: RunResult, prepared: Prepared, relaxed: dict,
 
 def _log_counts(prepared: Prepared, counts: PointCounts, label: str) -> None:
     """The closing line of the points' work."""
-    logger.info("%d field point%s: %d computed, %d reused from %s%s%s", counts.planned,
+    tightened = len(prepared.tightening or {})
+    logger.info("%d field point%s: %d computed, %d reused from %s%s%s%s", counts.planned,
                 "" if counts.planned == 1 else "s", counts.computed, counts.reused, label,
                 f", {counts.images} images by symmetry ({prepared.symmetry.name})"
                 if counts.images else "",
                 f"; the adaptive window used {counts.planned} of the ladder's {counts.ladder}"
-                if prepared.adaptive else "")
+                if prepared.adaptive else "",
+                f"; {tightened} of them computed again with tighter convergence, to lower a "
+                "noise floor" if tightened else "")
 
 
 def point_counts(prepared: Prepared, computed: int, reused: int) -> PointCounts:
@@ -1009,7 +1192,7 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
                      counts, store_label,
                      tuple(sorted({(source[i], k) for i, k in missing.items()})),
                      prepared.symmetry, prepared.images, prepared.windows, prepared.active,
-                     near_symmetry=prepared.near_symmetry)
+                     near_symmetry=prepared.near_symmetry, tightening=prepared.tightening)
 
 
 def gather(job: Job, store=None, lines=None, route: Route | str | None = None,
@@ -1029,6 +1212,8 @@ def gather(job: Job, store=None, lines=None, route: Route | str | None = None,
     facts = store.get_facts(mkey) if store is not None else None
     # The tasks' keys do not depend on the facts: the lines can be checked first.
     tasks = make_tasks(job, molecule, make_plan(job, route, sym))
+    tasks += [tightened_task(t, k) for k in range(1, MAX_TIGHTENING + 1)
+              if job.scf.can_tighten(k) for t in tasks]
     found: dict = {}
     facts_from = store.label if facts is not None else ""
     for text, label in lines or ():
@@ -1047,14 +1232,15 @@ def gather(job: Job, store=None, lines=None, route: Route | str | None = None,
     if facts is None and not facts_needed:
         facts = {}
     prepared = prepare(job, route, facts=facts)
-    rows = store.get_points(t.key for t in prepared.tasks) if store is not None else {}
+    every = prepared.all_tasks()
+    rows = store.get_points(t.key for t in every) if store is not None else {}
     for key, row in found.items():
         if key not in rows or (row.ok and not rows[key].ok):
             rows[key] = row
     if prepared.adaptive:  # the stage the points found have reached
         sources = {j for j, _ in prepared.images} if prepared.images else None
         prepared = settle(prepared, {
-            t.point.index: rows[t.key].record(t.point) for t in prepared.tasks
+            t.key: rows[t.key].record(t.point) for t in every
             if (sources is None or t.point.index in sources)
             and t.key in rows and rows[t.key].ok})
     return prepared, rows

@@ -14,7 +14,11 @@ share one stored point, whatever their ladders, levels or property lists.
   :data:`NUMERICS_VERSION`.
 - :func:`point_key` adds the quantities computed at the point (:class:`Quantities`),
   the origin of the dipole operator (bohr at 1e-10) and the field vector exactly
-  (``float.hex`` of each component).
+  (``float.hex`` of each component), and for a point computed with tightened
+  convergence (the adaptive window lowering a noise floor) its targets
+  (:func:`tolerance_document`).
+- Coupled-cluster models add the amplitude solver's convergence ([correlation])
+  to the model's SCF settings; other models' keys do not have it.
 
 The backend's version (PySCF's, and libxc's for DFT) is not in the keys: keys
 must be computable without PySCF (``collect`` and ``plan`` look points up by
@@ -120,7 +124,24 @@ def model_document(molecule, model, scf) -> dict:
                 "gradient_conv_tol": _exact(scf.gradient_conv_tol),
                 "grid_level": scf.grid_level, "solver": getattr(scf, "solver", "newton")},
     } | ({"density_fit": model.density_fit}
-         if getattr(model, "density_fit", None) else {})  # absent: the keys stay as they were
+         if getattr(model, "density_fit", None) else {}) | (  # absent: keys as they were
+        {"correlation": _correlation_document(scf.correlation)}
+        if getattr(scf, "correlation", None) is not None else {})
+
+
+def _correlation_document(correlation) -> dict:
+    return {"energy_change_au": _exact(correlation.energy_change_au),
+            "amplitude_change": _exact(correlation.amplitude_change)}
+
+
+def tolerance_document(scf) -> dict:
+    """The convergence targets of a tightened point (ScfSpec.tightened): part
+    of its key, so that it is another point than its untightened twin and is
+    reused by any job that tightens the same point alike."""
+    out = {"gradient_conv_tol": _exact(scf.gradient_conv_tol)}
+    if getattr(scf, "correlation", None) is not None:
+        out["correlation"] = _correlation_document(scf.correlation)
+    return out
 
 
 def model_key(molecule, model, scf) -> str:
@@ -128,15 +149,19 @@ def model_key(molecule, model, scf) -> str:
     return digest(model_document(molecule, model, scf))
 
 
-def point_key(model_key_: str, origin_bohr, quantities: Quantities, field_vector_au) -> str:
-    """Key of one field point (hex SHA-256); see the module notes."""
+def point_key(model_key_: str, origin_bohr, quantities: Quantities, field_vector_au,
+              tolerances: dict | None = None) -> str:
+    """Key of one field point (hex SHA-256); see the module notes.
+    ``tolerances``: a tightened point's convergence targets
+    (:func:`tolerance_document`; None for the model's own, and the key is
+    then what it always was)."""
     return digest({
         "kind": "fieldprop-point",
         "model": model_key_,
         "origin_bohr": [_fixed(v) for v in origin_bohr],
         "quantities": quantities.canonical(),
         "field_vector_au": [_exact(v) for v in field_vector_au],
-    })
+    } | ({"tolerances": tolerances} if tolerances else {}))
 
 
 def backend_version_conflict(stored: dict, current: dict) -> tuple[str, str] | None:

@@ -37,18 +37,23 @@ _REQUIRED = ("key", "model_key", "field_vector_au", "origin_bohr", "quantities",
 _RECORD = {"energy_au": float, "scf_energy_au": float, "scf_cycles": int, "attempts": list,
            "s2": float, "occupied_overlap": float, "gradient_norm": float}
 _OPTIONAL = {"dipole_au": list, "alpha_au": list, "dipole_error_au": float, "state_issue": str,
-             "energy_scale_au": float, "relaxation": dict}
+             "energy_scale_au": float, "relaxation": dict,
+             "correlation_energy_change_au": float, "amplitude_change": float}
 _KIND_NAMES = {list: "list", str: "string", dict: "JSON object"}
 
 
 def line_document(row: StoredPoint, field_vector_au, origin_bohr, quantities,
-                  facts: dict | None = None, description: dict | None = None) -> dict:
-    """A stored point (row of the store, with its field vector, origin and
-    quantities) as a point line's object."""
+                  facts: dict | None = None, description: dict | None = None,
+                  tolerances: dict | None = None) -> dict:
+    """A stored point (row of the store, with its field vector, origin,
+    quantities and, for a tightened point, its convergence targets) as a
+    point line's object."""
     doc = {"schema": SCHEMA, "id": short_id(row.key), "key": row.key,
            "model_key": row.model_key, "field_vector_au": [float(v) for v in field_vector_au],
            "origin_bohr": [float(v) for v in origin_bohr], "quantities": list(quantities),
            "status": row.status}
+    if tolerances:
+        doc["tolerances"] = tolerances
     if description:
         doc.update({k: description.get(k) for k in ("formula", "method", "functional",
                                                       "basis")})
@@ -125,6 +130,8 @@ def stored_point(doc: dict) -> StoredPoint:
             "state_issue": doc.get("state_issue") or "",
             "energy_scale_au": float(doc.get("energy_scale_au") or 0.0),
             "relaxation": doc.get("relaxation"),
+            **{name: None if doc.get(name) is None else float(doc[name])
+               for name in ("correlation_energy_change_au", "amplitude_change")},
         }
     else:
         fields = {"reason": doc["reason"], "kind": doc.get("kind") or "FieldpropError"}
@@ -158,8 +165,11 @@ def read_lines(lines: Iterable[str], source: str, tasks, model_key_: str
                              f"{f' ({what})' if what else ''}, model {str(doc['model_key'])[:12]}"
                              f"; this job's model is {model_key_[:12]}")
         try:
+            tolerances = doc.get("tolerances")
+            if tolerances is not None and not isinstance(tolerances, dict):
+                raise TypeError("tolerances")
             own = point_key(doc["model_key"], doc["origin_bohr"], _Quantities(doc["quantities"]),
-                            doc["field_vector_au"])
+                            doc["field_vector_au"], tolerances)
         except (TypeError, ValueError):
             own = None
         if own != doc["key"]:

@@ -128,10 +128,21 @@ class PointTask:
     model_key: str = ""
     #: Relax the nuclei in the field (None: clamped nuclei, the usual point).
     relax: RelaxTarget | None = None
+    #: Tightening steps of its convergence (``scf`` is then the model's
+    #: ScfSpec.tightened(tightening)); 0: the model's own targets.
+    tightening: int = 0
 
     @property
     def is_zero_field(self) -> bool:
         return self.point.offsets == (0, 0, 0)
+
+    @property
+    def tolerances(self) -> dict | None:
+        """A tightened point's convergence targets, as its key holds them
+        (None: the model's own)."""
+        from fieldprop.keys import tolerance_document
+
+        return tolerance_document(self.scf) if self.tightening else None
 
 
 @dataclass(frozen=True, eq=False)
@@ -173,6 +184,13 @@ class PointRecord:
     #: coords_bohr, steps, energy_change_au, dipole_change_au,
     #: largest_gradient_au, gradients); None for clamped nuclei.
     relaxation: dict | None = None
+    #: Coupled-cluster points: what one more iteration of the converged
+    #: amplitudes (a Jacobi step) changes, in the CCSD energy (Eh, signed) and
+    #: in the amplitudes (norm): the convergence reached, from which the noise
+    #: model takes the energy's. None: not an amplitude solver, or a point
+    #: stored before they were recorded.
+    correlation_energy_change_au: float | None = None
+    amplitude_change: float | None = None
 
     @property
     def retried(self) -> bool:

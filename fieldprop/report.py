@@ -474,9 +474,14 @@ def result_document(result: RunResult) -> dict[str, Any]:
                        "levels": plan.levels, "steps_au": list(plan.steps_au()),
                        "window": result.job.response.window,
                        **({"component_levels": {
-                           c.name: list(w) for c, w in zip(plan.components, result.windows)
-                           if c.stencils}, "frame_components": plan.frame is not None}
+                           c.name: list(w[:2])
+                           for c, w in zip(plan.components, result.windows) if c.stencils},
+                           "frame_components": plan.frame is not None}
                           if result.windows else {}),
+                       **({"component_tightening": {
+                           c.name: w[2] for c, w in zip(plan.components, result.windows)
+                           if c.stencils and w[2]}}
+                          if any(w[2] for w in result.windows) else {}),
                        "largest_field_V_per_m": max(
                            float(np.linalg.norm(p.field_vector_au)) for p in plan.points)
                        * FIELD_AU_TO_V_PER_M},
@@ -519,6 +524,8 @@ def _points_document(result: RunResult) -> dict[str, Any]:
         out["images"] = counts.images
     if result.windows:
         out["ladder"] = len(result.plan.points)
+    if result.tightening:
+        out["tightened"] = len(result.tightening)
     if result.missing:
         out["missing"] = [{"id": ident, "point": result.plan.points[i].label,
                            "field_vector_au": list(result.plan.points[i].field_vector_au)}
@@ -726,7 +733,8 @@ def write_store_lines(store, out: TextIO) -> None:
         if row.model_key not in facts:
             facts[row.model_key] = store.get_facts(row.model_key)
         write_line(line_document(row, extra["field_vector_au"], extra["origin_bohr"],
-                                 extra["quantities"], facts[row.model_key], description), out)
+                                 extra["quantities"], facts[row.model_key], description,
+                                 extra.get("tolerances")), out)
 
 
 #: How an entry's verdict reads in check's table.

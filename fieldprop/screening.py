@@ -136,12 +136,12 @@ class _State:
     candidate: Candidate
     job: object = None  # the candidate's job at its optimised geometry, if optimised
     prepared: Prepared | None = None
-    found: dict = field(default_factory=dict)  # plan index -> PointRecord
+    found: dict = field(default_factory=dict)  # task key -> PointRecord
     reference: object = None  # ZeroFieldReference, or its Dask future
     queue: list = field(default_factory=list)  # PointTasks of this stage still to send
-    before: dict = field(default_factory=dict)  # plan index -> predecessor plan indices
+    before: dict = field(default_factory=dict)  # task key -> predecessor tasks
     rotations: dict = field(default_factory=dict)
-    computed_now: set = field(default_factory=set)  # plan indices computed in this run
+    computed_now: set = field(default_factory=set)  # task keys computed in this run
     running: int = 0
     outcome: MoleculeOutcome | None = None
 
@@ -181,10 +181,10 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
         if out.failure:
             logger.error("%s: failed: %s", state.candidate.name, out.failure)
         else:
-            used = {t.point.index for t in state.prepared.computed_tasks}
+            used = {t.key for t in state.prepared.computed_tasks}
             out.reused = len(used & set(state.found)) - len(used & state.computed_now)
             counts = point_counts(state.prepared, out.computed, out.reused)
-            out.result = analyse(state.prepared, state.prepared.expand(state.found), counts,
+            out.result = analyse(state.prepared, state.prepared.records(state.found), counts,
                                  store.label, time.perf_counter() - start)
         if on_result is not None:
             on_result(out)
@@ -201,7 +201,7 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
         """Queue the points the molecule's window needs, or finish it."""
         state.prepared = settle(state.prepared, state.found)
         todo = [t for t in state.prepared.computed_tasks
-                if t.point.index not in state.found and not t.is_zero_field]
+                if t.key not in state.found and not _is_reference(t)]
         if not todo:
             finish_molecule(state)
             return
@@ -211,10 +211,9 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
         # does not depend on the schedule (a Dask cluster gives a serial run's
         # numbers bit for bit; a resumed campaign has no orbitals of the points
         # stored before, so its points differ in the last digits).
-        tasks = [t for t in state.prepared.computed_tasks if not t.is_zero_field]
+        tasks = [t for t in state.prepared.computed_tasks if not _is_reference(t)]
         order = predecessors(tasks)
-        state.before = {t.point.index: tuple(tasks[j].point.index for j in order[i])
-                        for i, t in enumerate(tasks)}
+        state.before = {t.key: tuple(tasks[j] for j in order[i]) for i, t in enumerate(tasks)}
         state.queue = todo
         bar.total += len(todo)
         bar.refresh()
@@ -228,14 +227,14 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
         idle; of a molecule's points, one whose predecessors are done (None
         when no point anywhere is ready: wait for one to finish)."""
         for state in states:
-            if state.queue and state.queue[0].is_zero_field:
+            if state.queue and _is_reference(state.queue[0]):
                 return state, state.queue.pop(0)
         for state in states:
             if not state.queue or state.reference is None:
                 continue
             done = set(state.found)
-            task = next((t for t in state.queue if done.issuperset(state.before.get(
-                t.point.index, ()))), None)
+            task = next((t for t in state.queue if done.issuperset(
+                p.key for p in state.before.get(t.key, ()))), None)
             if task is not None:
                 state.queue.remove(task)
                 return state, task
@@ -246,13 +245,12 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
         if chosen is None:
             return False
         state, task = chosen
-        if task.is_zero_field:
+        if _is_reference(task):
             future = pool.submit(campaign_reference, task, pool.threads)
         else:
             from fieldprop.backend_pyscf import field_key
 
-            keys = [field_key(state.prepared.tasks[j].point.field_vector_au)
-                    for j in state.before.get(task.point.index, ())]
+            keys = [field_key(p.point.field_vector_au) for p in state.before.get(task.key, ())]
             hints = {k: state.rotations[k] for k in keys if k in state.rotations}
             future = pool.submit(campaign_point, task, state.reference, hints, pool.threads)
         pending[future] = (state, task)
@@ -266,7 +264,7 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
         bar.update()
         if lines is not None:
             lines.update(outcome)
-        if task.is_zero_field:
+        if _is_reference(task):
             if isinstance(outcome, PointFailure):
                 store.put_point(task, outcome)
                 fail(state, outcome.reason, outcome.kind)
@@ -281,8 +279,8 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
                 if row is not None and row.ok:
                     outcome = row.record(task.point)
             state.reference = pool.share(extra)
-            state.found[0] = outcome
-            state.computed_now.add(0)
+            state.found[task.key] = outcome
+            state.computed_now.add(task.key)
             out.computed += 1
             out.scf_cycles += outcome.scf_cycles
             next_stage(state)
@@ -301,8 +299,8 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
             if state.running == 0:
                 finish_molecule(state)
             return
-        state.found[task.point.index] = outcome
-        state.computed_now.add(task.point.index)
+        state.found[task.key] = outcome
+        state.computed_now.add(task.key)
         from fieldprop.backend_pyscf import field_key
 
         if extra is not None:
@@ -398,6 +396,12 @@ def _optimise(states, store, pool, progress: bool) -> None:
     bar.close()
 
 
+def _is_reference(task: PointTask) -> bool:
+    """The model's zero-field point, whose computation gives the reference
+    (a tightened zero field is an ordinary point)."""
+    return task.is_zero_field and not task.tightening
+
+
 def _prepare(state: _State, store, retry_failed: bool) -> None:
     """The molecule's plan, its points found in the store, its stored
     reference; a model PySCF refuses for it fails the molecule, not the set."""
@@ -408,19 +412,19 @@ def _prepare(state: _State, store, retry_failed: bool) -> None:
         out.failure, out.kind = str(exc), type(exc).__name__
         return
     found = {}
-    stage = {t.point.index for t in prepared.computed_tasks}
-    for t in prepared.tasks:
+    stage = {t.key for t in prepared.computed_tasks}
+    for t in prepared.all_tasks():
         row = rows.get(t.key)
         if row is None or (prepared.images and prepared.images[t.point.index][1] is not None):
             continue
         if row.ok:
-            found[t.point.index] = row.record(t.point)
-        elif not retry_failed and t.point.index in stage:
+            found[t.key] = row.record(t.point)
+        elif not retry_failed and t.key in stage:
             err = failed_points_error(prepared, [row.failure(t.point)])
             out.failure, out.kind = str(err), row.fields.get("kind", "")
             return
     model = store.get_model(prepared.model_key)
-    to_compute = not prepared.settled or any(t.point.index not in found
+    to_compute = not prepared.settled or any(t.key not in found
                                              for t in prepared.computed_tasks)
     if model is not None and to_compute:
         try:
@@ -429,7 +433,7 @@ def _prepare(state: _State, store, retry_failed: bool) -> None:
             out.failure, out.kind = str(exc), type(exc).__name__
             return
     state.prepared, state.found = prepared, found
-    if model is not None and 0 in found:
+    if model is not None and prepared.tasks[0].key in found:
         state.reference = model[0]
 
 

@@ -9,7 +9,7 @@ functions, core electrons, PySCF version): any process can compute any point
 later without redoing zero field, and the analysis of stored points needs no
 PySCF at all.
 
-File format (``SCHEMA_VERSION`` 5; an older store is migrated when opened
+File format (``SCHEMA_VERSION`` 6; an older store is migrated when opened
 for writing, and read as it is otherwise), SQLite from the standard library, WAL
 journal, a busy timeout so several processes can share one file, one
 transaction per finished point:
@@ -21,10 +21,12 @@ transaction per finished point:
 - ``points(point_key, model_key, field_vector_au, origin_bohr, quantities,
   status, energy_au, scf_energy_au, dipole_au, alpha_au, scf_cycles, attempts,
   s2, occupied_overlap, gradient_norm, dipole_error_au, state_issue,
-  energy_scale_au, relaxation, failure, failure_kind, wall_time_s, host,
-  version, created_at)``: ``status`` is ``ok`` or ``failed``; ``relaxation``
-  holds a relaxed point's structure and the optimiser's remaining errors; vectors, matrices and lists are JSON text (floats round-trip
-  exactly);
+  energy_scale_au, relaxation, correlation_energy_change_au, amplitude_change,
+  failure, failure_kind, wall_time_s, host, version, created_at, tolerances)``:
+  ``status`` is ``ok`` or ``failed``; ``relaxation`` holds a relaxed point's
+  structure and the optimiser's remaining errors; ``tolerances`` a tightened
+  point's convergence targets (part of its key; NULL: the model's own);
+  vectors, matrices and lists are JSON text (floats round-trip exactly);
 - ``geometries(geometry_key, document, created_at, host, version)``: geometries
   optimised before a job's response (``[geometry] optimize``), keyed by the
   starting geometry, the optimisation's model and its criteria; ``document``
@@ -75,11 +77,14 @@ from fieldprop.records import PointFailure, PointRecord, SymmetryOperation, Zero
 logger = logging.getLogger(__name__)
 
 FORMAT = "fieldprop-store"
-SCHEMA_VERSION = 5
+SCHEMA_VERSION = 6
 #: Migrations of older schemas, applied when a store is opened for writing:
 #: schema 1 -> 2 adds points.energy_scale_au (the energy's rounding scale);
 #: 2 -> 3 adds the todo_lists table; 3 -> 4 the geometries table; 4 -> 5
-#: points.relaxation (a relaxed point's structure and optimiser errors, JSON).
+#: points.relaxation (a relaxed point's structure and optimiser errors, JSON);
+#: 5 -> 6 the amplitude solver's convergence reached
+#: (points.correlation_energy_change_au, amplitude_change) and a tightened
+#: point's targets (points.tolerances).
 #: A store of an older schema opened
 #: read-only reads a missing column as NULL, and has no to-do lists.
 _TO_DO_LISTS_TABLE = ("CREATE TABLE todo_lists (list_key TEXT PRIMARY KEY, point_keys TEXT NOT NULL, "
@@ -94,6 +99,10 @@ _MIGRATIONS = {
     3: [_GEOMETRIES_TABLE, "UPDATE meta SET value = '4' WHERE name = 'schema'"],
     4: ["ALTER TABLE points ADD COLUMN relaxation TEXT",
         "UPDATE meta SET value = '5' WHERE name = 'schema'"],
+    5: ["ALTER TABLE points ADD COLUMN correlation_energy_change_au REAL",
+        "ALTER TABLE points ADD COLUMN amplitude_change REAL",
+        "ALTER TABLE points ADD COLUMN tolerances TEXT",
+        "UPDATE meta SET value = '6' WHERE name = 'schema'"],
 }
 #: Default store file name, in the job file's folder: jobs in one folder share it.
 DEFAULT_NAME = "fieldprop-points.sqlite"
@@ -142,17 +151,21 @@ CREATE TABLE points (
     wall_time_s REAL,
     host TEXT NOT NULL,
     version TEXT NOT NULL,
-    created_at TEXT NOT NULL
+    created_at TEXT NOT NULL,
+    correlation_energy_change_au REAL,
+    amplitude_change REAL,
+    tolerances TEXT
 );
 CREATE INDEX points_by_model ON points (model_key);
 """ + _TO_DO_LISTS_TABLE + ";\n" + _GEOMETRIES_TABLE + ";\n"
 
 _RECORD_COLUMNS = ("energy_au", "scf_energy_au", "dipole_au", "alpha_au", "scf_cycles",
                    "attempts", "s2", "occupied_overlap", "gradient_norm", "dipole_error_au",
-                   "state_issue", "energy_scale_au", "relaxation")
+                   "state_issue", "energy_scale_au", "relaxation",
+                   "correlation_energy_change_au", "amplitude_change")
 _POINT_COLUMNS = ("point_key", "model_key", "field_vector_au", "origin_bohr", "quantities",
                   "status", *_RECORD_COLUMNS, "failure", "failure_kind", "wall_time_s", "host",
-                  "version", "created_at")
+                  "version", "created_at", "tolerances")
 
 
 def _now() -> str:
@@ -282,6 +295,7 @@ class PointStore:
         # Columns an older schema lacks (read-only opens are not migrated) read as NULL.
         self._record_select = ", ".join(c if c in present else f"NULL AS {c}"
                                         for c in _RECORD_COLUMNS)
+        self._tolerances = "tolerances" if "tolerances" in present else "NULL"
 
     # -- opening
 
@@ -495,8 +509,11 @@ class PointStore:
                                r.occupied_overlap, r.gradient_norm, r.dipole_error_au,
                                r.state_issue, r.energy_scale_au,
                                None if r.relaxation is None else json.dumps(r.relaxation),
+                               r.correlation_energy_change_au, r.amplitude_change,
                                None, None)
-        values += (outcome.wall_time_s, socket.gethostname(), __version__, _now())
+        tolerances = getattr(task, "tolerances", None)
+        values += (outcome.wall_time_s, socket.gethostname(), __version__, _now(),
+                   None if tolerances is None else json.dumps(tolerances, sort_keys=True))
         marks = ", ".join("?" * len(values))
         # A computed point is never replaced; a failure is, by a later success.
         self._db.execute(
@@ -552,11 +569,14 @@ class PointStore:
         rows = self._db.execute(
             "SELECT point_key, model_key, status, " + self._record_select
             + ", failure, failure_kind, wall_time_s, host, version, created_at, "
-            f"field_vector_au, origin_bohr, quantities FROM points {where}"
+            "field_vector_au, origin_bohr, quantities, " + self._tolerances
+            + f" FROM points {where}"
             "ORDER BY model_key, created_at, point_key LIMIT ?", (*values, limit)).fetchall()
-        return [(_stored_point(row[:-3]), {"field_vector_au": _decoded(row[-3]),
-                                           "origin_bohr": _decoded(row[-2]),
-                                           "quantities": _decoded(row[-1])}) for row in rows]
+        return [(_stored_point(row[:-4]), {"field_vector_au": _decoded(row[-4]),
+                                           "origin_bohr": _decoded(row[-3]),
+                                           "quantities": _decoded(row[-2]),
+                                           "tolerances": None if row[-1] is None
+                                           else _decoded(row[-1])}) for row in rows]
 
     @_damage_is_bad_input
     def _description(self, model_key: str) -> dict:
@@ -609,6 +629,8 @@ def _decoded_point(row) -> StoredPoint:
             "energy_scale_au": values["energy_scale_au"] or 0.0,
             "relaxation": (None if values["relaxation"] is None
                            else json.loads(values["relaxation"])),
+            "correlation_energy_change_au": values["correlation_energy_change_au"],
+            "amplitude_change": values["amplitude_change"],
         }
     else:
         fields = {"reason": failure, "kind": kind}

@@ -259,6 +259,19 @@ CASES = [
      ["{job}: [scf] energy_conv_tol_au must lie in"], []),
     ("scf_max_cycle_too_small", job(scf={"max_cycle": "5"}), {},
      ["{job}: [scf] max_cycle must be >= 10"], []),
+    # [correlation]
+    ("correlation_for_hf", job(correlation={"energy_change_au": "1e-12"}), {},
+     ["{job}: [correlation] energy_change_au applies to the amplitude solvers (ccsd, "
+      "ccsd(t)), not to method = 'hf'"], []),
+    ("correlation_energy_change_too_small",
+     job(model={"method": '"ccsd"'}, correlation={"energy_change_au": "1e-20"}), {},
+     ["{job}: [correlation] energy_change_au must lie in [1e-15, 1e-5] Eh, got 1e-20"], []),
+    ("correlation_amplitude_change_text",
+     job(model={"method": '"ccsd"'}, correlation={"amplitude_change": '"tight"'}), {},
+     ["{job}: [correlation] amplitude_change must be a number"], []),
+    ("correlation_unknown_key", job(model={"method": '"ccsd(t)"'}, correlation={"conv_tol": "1"}),
+     {}, ["{job}: [correlation] unknown key 'conv_tol'",
+          "valid keys: amplitude_change, energy_change_au"], []),
     # structure of the document
     ("unknown_key_in_section", job(model={"basis_set": '"sto-3g"'}), {},
      ["{job}: [model] unknown key 'basis_set'",
@@ -313,7 +326,7 @@ CASES = [
 SUBPROCESS_IDS = ["unknown_basis", "basis_missing_element", "unknown_functional",
                   "existing_result_kept_basis", "not_valid_toml", "not_utf8", "job_missing",
                   "basis_text_negative_exponent", "xyz_wrong_column_count", "result_folder_missing", "workers_zero",
-                  "default_result_not_written"]
+                  "default_result_not_written", "correlation_for_hf"]
 
 _IDS = [c[0] for c in CASES]
 assert len(_IDS) == len(set(_IDS)), "case ids must be unique"

@@ -335,11 +335,11 @@ def test_a_failed_point_gives_exit_1_and_collect_names_it(tmp_path, capsys, monk
     ids = [p["id"] for p in plan_lines(tmp_path)]
     real = backend_pyscf._converge
 
-    def stubborn(mf, context, point):
+    def stubborn(mf, context, point, *rest):
         if point.label == "L1(0,+1,0)":
             raise ScfNotConvergedError(f"SCF did not converge at field point {point.label} "
                                        "(injected)")
-        return real(mf, context, point)
+        return real(mf, context, point, *rest)
 
     monkeypatch.setattr(backend_pyscf, "_converge", stubborn)
     assert main(["point", job, *sum((["--id", i] for i in ids), [])]) == 1

@@ -64,11 +64,11 @@ def test_a_point_that_never_converges_fails_the_job(tmp_path, capsys, monkeypatc
     target = "L1(-1,0,0)"  # computed (L1(+1,0,0) is its mirror image by symmetry)
     real = backend_pyscf._converge
 
-    def stubborn(mf, context, point):
+    def stubborn(mf, context, point, *rest):
         if point.label == target:  # every strategy of the ladder fails at this point
             raise ScfNotConvergedError(f"SCF did not converge at field point {point.label} "
                                        "after diis, diis+damping+level_shift, second_order")
-        return real(mf, context, point)
+        return real(mf, context, point, *rest)
 
     monkeypatch.setattr(backend_pyscf, "_converge", stubborn)
     job = tmp_path / "water.toml"
@@ -176,10 +176,10 @@ def test_failures_are_reported_from_worker_processes(tmp_path, capsys, monkeypat
     targets = {"L0(0,-1,0)", "L2(0,0,-1)"}  # computed points, not symmetry images
     real = backend_pyscf._converge
 
-    def stubborn(mf, context, point):
+    def stubborn(mf, context, point, *rest):
         if point.label in targets:
             raise ScfNotConvergedError(f"SCF did not converge at field point {point.label}")
-        return real(mf, context, point)
+        return real(mf, context, point, *rest)
 
     monkeypatch.setattr(backend_pyscf, "_converge", stubborn)
     job = tmp_path / "water.toml"

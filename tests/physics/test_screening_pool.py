@@ -70,10 +70,10 @@ def test_a_point_that_fails_ends_its_molecule_only(tmp_path, monkeypatch):
 
     real = backend_pyscf._converge
 
-    def stubborn(mf, context, point):  # every ammonia field point along +x fails
+    def stubborn(mf, context, point, *rest):  # every ammonia field point along +x fails
         if context.molecule.formula == "H3N" and point.field_vector_au[0] > 0:
             raise ScfNotConvergedError(f"SCF did not converge at field point {point.label}")
-        return real(mf, context, point)
+        return real(mf, context, point, *rest)
 
     monkeypatch.setattr(backend_pyscf, "_converge", stubborn)
     (tmp_path / "set.toml").write_text(SET)

@@ -186,10 +186,10 @@ def test_an_exception_inside_pyscf_fails_that_point_by_name_without_a_traceback(
         tmp_path, capsys, monkeypatch):
     real = backend_pyscf._converge
 
-    def broken(mf, context, point):
+    def broken(mf, context, point, *rest):
         if point.label == "L0(-1,0,0)":  # computed (L0(+1,0,0) is its mirror image)
             raise np.linalg.LinAlgError("Eigenvalues did not converge")
-        return real(mf, context, point)
+        return real(mf, context, point, *rest)
 
     monkeypatch.setattr(backend_pyscf, "_converge", broken)
     job = _job(tmp_path, WATER, 'method = "hf"\n        basis = "6-31g"', name="water.toml")

@@ -148,10 +148,10 @@ def test_a_stored_failure_is_not_retried_unless_asked(tmp_path, capsys, monkeypa
     target = "L1(0,0,+1)"
     real = backend_pyscf._converge
 
-    def stubborn(mf, context, point):
+    def stubborn(mf, context, point, *rest):
         if point.label == target:
             raise ScfNotConvergedError(f"SCF did not converge at field point {point.label}")
-        return real(mf, context, point)
+        return real(mf, context, point, *rest)
 
     write_job(tmp_path, "lih.toml", properties='["alpha"]')
     monkeypatch.setattr(backend_pyscf, "_converge", stubborn)

@@ -61,7 +61,7 @@ def test_a_gentle_curve_settles_on_the_first_window(route, name, order):
     eps = 1e-12
     windows, est, stages = replay(plan, synthetic(plan, 2.0, eps), eps)
     assert stages == 0
-    assert all(hi - lo + 1 == START_LEVELS for (lo, hi), c in zip(windows, plan.components)
+    assert all(hi - lo + 1 == START_LEVELS for (lo, hi, _), c in zip(windows, plan.components)
                if len(c.stencils) > 1)
     e = component(plan, est, name)
     assert abs(e.value_au - A * 2.0**order) <= e.error_au
@@ -96,7 +96,7 @@ def test_noise_grows_the_window_towards_larger_fields():
     windows, est, stages = replay(plan, synthetic(plan, 2.0, eps), eps)
     i = next(i for i, c in enumerate(plan.components) if c.name == "beta_zzz")
     first = initial_windows(plan)[i]
-    assert windows[i] == (first[0], AUTO_LEVELS - 1) and stages >= 1
+    assert windows[i] == (first[0], AUTO_LEVELS - 1, 0) and stages >= 1
     e = est[i]
     assert abs(e.value_au - A * 2.0**3) <= e.error_au
 
