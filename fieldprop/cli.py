@@ -220,9 +220,7 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("job", type=Path, help="job file (TOML)")
     run.add_argument("--json", type=Path, help="result JSON path (default JOB.result.json "
                      "beside the job file; - writes it to stdout instead of the tables)")
-    run.add_argument("--workers", type=_positive_int, default=None,
-                     help="processes computing field points in parallel, one BLAS thread "
-                     "each (default: every core this process may use)")
+    _executor_options(run)
     run.add_argument("--quiet", action="store_true", help="no progress or log lines on stderr")
     run.add_argument("--log-every", type=_non_negative_float, default=DEFAULT_LOG_EVERY_S,
                      metavar="SECONDS", help="when stderr is not a terminal (a batch log), "
@@ -260,9 +258,7 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("--abs-floor-au", type=_positive_float, default=None,
                        help="absolute floor for every order, au (default 1e-6, 1e-5, 1e-3, "
                        "0.1 for mu, alpha, beta, gamma)")
-    check.add_argument("--workers", type=_positive_int, default=None,
-                     help="processes computing field points in parallel, one BLAS thread "
-                     "each (default: every core this process may use)")
+    _executor_options(check)
     check.add_argument("--quiet", action="store_true", help="no progress or log lines on stderr")
     check.add_argument("--log-every", type=_non_negative_float, default=DEFAULT_LOG_EVERY_S,
                        metavar="SECONDS", help="progress line interval when stderr is not a "
@@ -383,15 +379,7 @@ def build_parser() -> argparse.ArgumentParser:
     screen.add_argument("--results", type=Path, metavar="DIR", help="folder of the molecules' "
                         "result JSON files, NAME.result.json (default SET.results beside the "
                         "set file)")
-    screen.add_argument("--workers", type=_positive_int, default=None,
-                        help="local worker processes (default: one per core, see --threads)")
-    screen.add_argument("--threads", type=_positive_int, default=1,
-                        help="BLAS threads per worker process or Dask task (default 1)")
-    where = screen.add_mutually_exclusive_group()
-    where.add_argument("--scheduler", metavar="ADDRESS", help="send the points to the Dask "
-                       "cluster whose scheduler listens at ADDRESS (tcp://host:8786)")
-    where.add_argument("--scheduler-file", type=Path, metavar="PATH",
-                       help="the same, with the scheduler's address from its scheduler file")
+    _executor_options(screen)
     screen.add_argument("--quiet", action="store_true", help="no progress or log lines")
     screen.add_argument("--log-every", type=_non_negative_float, default=DEFAULT_LOG_EVERY_S,
                         metavar="SECONDS", help="in a batch log, a progress line at most this "
@@ -424,6 +412,31 @@ def build_parser() -> argparse.ArgumentParser:
                          "as one JSON object per line")
     inspect.set_defaults(handler=cmd_inspect)
     return parser
+
+
+def _executor_options(parser) -> None:
+    """Where the points are computed: the same options for run, check and screen."""
+    parser.add_argument("--workers", type=_positive_int, default=None,
+                        help="local processes computing field points in parallel (default: "
+                        "one per core this process may use, divided by --threads)")
+    parser.add_argument("--threads", type=_positive_int, default=1,
+                        help="BLAS threads per worker process or Dask task (default 1: small "
+                        "matrices run faster in more processes than in more threads)")
+    where = parser.add_mutually_exclusive_group()
+    where.add_argument("--scheduler", metavar="ADDRESS", help="send the points to the Dask "
+                       "cluster whose scheduler listens at ADDRESS (tcp://host:8786); this "
+                       "process stays the store's only writer")
+    where.add_argument("--scheduler-file", type=Path, metavar="PATH",
+                       help="the same, with the scheduler's address from its scheduler file")
+
+
+def _executor(args):
+    """The executor of --workers/--threads/--scheduler/--scheduler-file."""
+    from fieldprop.execute import make_executor
+
+    workers = args.workers or max(1, default_workers() // args.threads)
+    return make_executor(workers, args.threads, args.scheduler,
+                         str(args.scheduler_file) if args.scheduler_file else None)
 
 
 def _store_options(parser) -> None:
@@ -557,13 +570,16 @@ def cmd_run(args) -> int:
     if args.plot is not None and not os.access(args.plot, os.W_OK | os.X_OK):
         raise InputError(f"--plot {args.plot}: folder is not writable; give another folder")
     prepared = prepare(job)
-    workers = args.workers or default_workers()
     bar, log_every = _progress(args)
     with _open_store(args, args.job) as store:
         prepared = _at_optimised_geometry(prepared, store, args.job)
         prepared = _at_relaxation_minimum(prepared, store)
-        result = run_prepared(prepared, store, workers=workers, progress=bar,
-                              retry_failed=args.retry_failed, log_every_s=log_every)
+        executor = _executor(args)
+        try:
+            result = run_prepared(prepared, store, progress=bar, retry_failed=args.retry_failed,
+                                  log_every_s=log_every, executor=executor)
+        finally:
+            executor.close()
     # The file first: a closed stdout (``| head``) must not lose the result.
     if is_stdout(out_path):  # --json -: the JSON is the output, no tables
         _to_stdout(lambda: write_json_atomic(result_document(result), out_path))
@@ -612,19 +628,25 @@ def cmd_check(args) -> int:
                              "\"unrestricted\", or give --against FILE")
     progress, log_every = _progress(args)
     prepared = prepare(job)
-    workers = args.workers or default_workers()
     with _open_store(args, args.job) as store:
         prepared = _at_optimised_geometry(prepared, store, args.job)
         job = prepared.job
-        result = run_prepared(prepared, store, workers=workers, progress=progress,
-                              retry_failed=args.retry_failed, log_every_s=log_every)
-        if reference_file is not None:
-            m = result.molecule
-            reference = compare.align_reference(str(args.against), reference_file, m.symbols,
-                                                m.coords_bohr, m.charge, m.origin_bohr)
-        else:
-            reference = reference_tensors(job, result, workers=workers, progress=progress,
-                                          store=store, retry_failed=args.retry_failed)
+        executor = _executor(args)
+        try:
+            result = run_prepared(prepared, store, progress=progress,
+                                  retry_failed=args.retry_failed, log_every_s=log_every,
+                                  executor=executor)
+            if reference_file is not None:
+                m = result.molecule
+                reference = compare.align_reference(str(args.against), reference_file,
+                                                    m.symbols, m.coords_bohr, m.charge,
+                                                    m.origin_bohr)
+            else:
+                reference = reference_tensors(job, result, progress=progress, store=store,
+                                              retry_failed=args.retry_failed,
+                                              log_every_s=log_every, executor=executor)
+        finally:
+            executor.close()
     comparisons = compare.compare_tensors(result.tensors, reference, rule)
     if not comparisons:
         raise InputError(f"{args.against or job.path}: no tensor in common between the job's "
@@ -708,16 +730,11 @@ def _read_point_lines(paths: list[Path] | None):
     return out
 
 
-def _to_do(prepared, rows, retry_failed: bool) -> list:
-    """The planned tasks still to compute: not found, or failed with retry_failed."""
-    return [t for t in prepared.computed_tasks if t.key not in rows
-            or (retry_failed and not rows[t.key].ok)]
-
-
 def cmd_plan(args) -> int:
     from fieldprop.engine import gather, make_plan, to_compute, todo_list_key
     from fieldprop.job import load_job
     from fieldprop.report import write_plan
+    from fieldprop.stages import JobWork
     from fieldprop.store import PointStore, default_store_path
 
     job = load_job(args.job)
@@ -736,7 +753,7 @@ def cmd_plan(args) -> int:
         # The model is checked with the backend unless the store knows it (a
         # basis it lacks is bad input here, not in every point that follows).
         prepared, rows = gather(job, store, lines)
-        todo = _to_do(prepared, rows, args.retry_failed)
+        todo = JobWork.at_hand(prepared, rows, args.retry_failed).todo()
         if args.count:
             when = store.put_todo(todo_list_key(prepared), [t.key for t in todo])
             logger.info("%d of the %s still missing; the list for point --index fixed in "
@@ -836,10 +853,11 @@ def cmd_point(args) -> int:
     from threadpoolctl import threadpool_limits
 
     from fieldprop.engine import prepare
-    from fieldprop.execute import compute_points
+    from fieldprop.execute import InProcess
     from fieldprop.job import load_job
     from fieldprop.keys import short_id
     from fieldprop.pointlines import line_document, write_line
+    from fieldprop.stages import JobWork, compute_jobs
     from fieldprop.store import PointStore, default_store_path
 
     job = load_job(args.job)
@@ -858,59 +876,58 @@ def cmd_point(args) -> int:
             prepared = prepare(job, facts=prepared.facts)
         targets = _targets(args, prepared, real)
         rows = real.get_points(t.key for t in targets) if real is not None else {}
-        todo = []
+        # The stage engine's policy: a stored point is not computed again, a
+        # stored failure only with --retry-failed.
+        work = JobWork.at_hand(prepared, rows, args.retry_failed, only=tuple(targets))
         for t in targets:
-            row = rows.get(t.key)
-            if row is not None and (row.ok or not (args.retry_failed or args.index is not None)):
-                logger.info("point %s (%s) is stored already as %s: not computed again",
-                            short_id(t.key), t.point.label, "computed" if row.ok else "failed")
-            else:
-                todo.append(t)
-        work = real
-        if args.stdout:
-            work = PointStore.in_memory("memory (point --stdout)")
+            if not work.wanted(t):
+                logger.info("point %s (%s) is stored already as %s: not computed again%s",
+                            short_id(t.key), t.point.label,
+                            "computed" if t.key in work.found else "failed",
+                            "" if t.key in work.found else " (--retry-failed computes it)")
+        store = real
+        if args.stdout:  # the store is only read: the points go to a store in memory
+            store = PointStore.in_memory("memory (point --stdout)")
             found = real.get_model(prepared.model_key) if real is not None else None
             if found is not None:  # the stored reference: zero field is not recomputed
                 zero = prepared.tasks[0]
                 zero_row = real.get_points([zero.key]).get(zero.key)
-                work.put_model(prepared.model_key, prepared.description(), found[1], found[0],
-                               (zero, zero_row.record(zero.point)) if zero_row is not None
-                               and zero_row.ok else None)
+                store.put_model(prepared.model_key, prepared.description(), found[1], found[0],
+                                (zero, zero_row.record(zero.point)) if zero_row is not None
+                                and zero_row.ok else None)
+        todo = work.todo()
         if todo:
             threads = args.threads or _env_threads()
             from pyscf import lib
 
             lib.num_threads(threads)
             with threadpool_limits(threads):
-                compute_points([prepared.tasks[0], *(t for t in todo
-                                                     if t.key != prepared.tasks[0].key)],
-                               work, prepared.facts, prepared.description(), workers=1,
-                               progress=False, retry_failed=True)
-        done = work.get_points(t.key for t in todo) if todo else {}
+                compute_jobs([work], store, InProcess())
         failed = []
         for t in targets:
-            row = done.get(t.key) or rows.get(t.key)
-            if row is None:  # cannot happen: compute_points stores every outcome
-                raise RuntimeError(f"point {short_id(t.key)} was neither stored nor computed")
             if t in todo:
-                if row.ok:
+                if t.key in work.found:
+                    record = work.found[t.key]
                     logger.info("point %s (%s): %d SCF cycles, %.1f s", short_id(t.key),
-                                t.point.label, row.fields["scf_cycles"], row.wall_time_s)
+                                t.point.label, record.scf_cycles, record.wall_time_s)
                 else:
                     logger.error("point %s (%s) failed: %s", short_id(t.key), t.point.label,
-                                 row.fields["reason"])
-            if not row.ok:
-                failed.append(row.failure(t.point))
+                                 work.failed[t.key].reason)
+            if t.key not in work.found:
+                failed.append(work.failed[t.key])
             if args.stdout:
+                row = store.get_points([t.key]).get(t.key) or rows.get(t.key)
                 doc = line_document(row, t.point.field_vector_au, t.molecule.origin_bohr,
                                     t.quantities.canonical(), prepared.facts,
                                     prepared.description(), t.tolerances)
                 _to_stdout(lambda: write_line(doc, sys.stdout))
-        if work is not real:
-            work.close()
+        if store is not real:
+            store.close()
     finally:
         if real is not None:
             real.close()
+    if work.failure is not None:
+        raise work.failure
     if failed:
         from fieldprop.engine import failed_points_error
 
@@ -970,7 +987,7 @@ def cmd_screen(args) -> int:
     from fieldprop.campaign import load_set
     from fieldprop.report import check_output_path, is_stdout, result_document, \
         write_json_atomic
-    from fieldprop.screening import DaskPool, LocalPool, run_campaign
+    from fieldprop.screening import run_campaign
 
     campaign = load_set(args.set)
     stem = args.set.with_suffix("")
@@ -989,12 +1006,7 @@ def cmd_screen(args) -> int:
     if needed not in props:
         raise InputError(f"--rank-by {key}: needs {needed}, which the set's [response] "
                          f"properties ({', '.join(props)}) do not compute")
-    if args.scheduler or args.scheduler_file:
-        pool = DaskPool(args.scheduler, str(args.scheduler_file) if args.scheduler_file else None,
-                        threads=args.threads)
-    else:
-        workers = args.workers or max(1, default_workers() // args.threads)
-        pool = LocalPool(workers, args.threads)
+    pool = _executor(args)
     logger.info("%s: %d molecules, %s/%s; %s", campaign.path, len(campaign.candidates),
                 campaign.candidates[0].job.model.method, campaign.candidates[0].job.model.basis,
                 pool.label)

@@ -3,7 +3,8 @@
 1. :func:`prepare`: job -> molecule, backend facts, field plan, point tasks with
    their store keys (PySCF only to validate the basis and functional, or not at
    all when the facts come from a store).
-2. computing points: :func:`fieldprop.execute.compute_points` over a
+2. computing points: :func:`fieldprop.stages.compute_jobs` (the one stage
+   and to-do engine) on an executor of :mod:`fieldprop.execute`, over a
    :class:`~fieldprop.store.PointStore` (stored points are reused).
 3. :func:`analyse`: records -> Taylor continuity -> Richardson extrapolation ->
    tensors -> invariants and warnings; pure, no PySCF (:func:`collect` runs it on
@@ -475,9 +476,11 @@ def geometry_key(job: Job) -> str:
 
 def with_geometry(job: Job, document: dict) -> Job:
     """``job`` with the optimised coordinates of ``document`` (the stored
-    optimisation) and the document itself as ``job.optimisation``."""
+    optimisation), moved onto their point group (:func:`symmetrised_optimum`),
+    and the document itself as ``job.optimisation``."""
     from fieldprop.job import Atom
 
+    document = symmetrised_optimum(job, document)
     coords = document["coords_bohr"]
     if len(coords) != len(job.molecule.atoms):
         raise ValueError(f"{job.path}: a stored optimised geometry has {len(coords)} atoms, "
@@ -519,7 +522,7 @@ def optimised(job: Job, store=None, compute: bool = True) -> Job:
                     document["largest_gradient_au"])
     else:
         logger.info("%s: the optimised geometry from %s", job.path, store.label)
-    return with_geometry(job, symmetrised_optimum(job, document))
+    return with_geometry(job, document)
 
 
 def symmetrised_optimum(job: Job, document: dict) -> dict:
@@ -994,79 +997,45 @@ def compute(job: Job, workers: int = 1, progress: bool | None = None,
 
 def run_prepared(prepared: Prepared, store=None, workers: int = 1,
                  progress: bool | None = None, retry_failed: bool = False,
-                 log_every_s: float | None = None) -> RunResult:
+                 log_every_s: float | None = None, executor=None) -> RunResult:
     """:func:`compute` for a job already prepared (the CLI opens its store only
-    once the job has passed every check). ``progress``: a bar; ``log_every_s``:
-    progress log lines at most that often instead (batch logs)."""
-    from fieldprop.execute import compute_points
+    once the job has passed every check): the points through the stage engine
+    (:func:`fieldprop.stages.run_job`) on ``executor`` (default: ``workers``
+    local processes, or this process for one), then the analysis.
+    ``progress``: a bar; ``log_every_s``: progress log lines at most that
+    often instead (batch logs)."""
+    from fieldprop.execute import make_executor
+    from fieldprop.progress import Progress
+    from fieldprop.stages import JobWork, run_job
     from fieldprop.store import PointStore
 
-    start = time.perf_counter()
     job, plan = prepared.job, prepared.plan
-    own_store = store is None
+    own_store, own_executor = store is None, executor is None
     store = PointStore.in_memory() if own_store else store
+    executor = make_executor(workers) if own_executor else executor
     ladder = ("1 point, zero field only (no derivative)" if len(plan.points) == 1 else
               f"{len(plan.points)} field points on {plan.levels} levels (h0 = {plan.field_au:g} "
               f"au, ratio {plan.ratio:g}), differentiating "
               f"{'E(F)' if plan.route == 'energy' else 'the SCF dipole'}")
     logger.info("%s: %s/%s%s, %s, SCF energy tolerance %g Eh, orbital "
-                "gradient %g (accepted up to %g), solver %s; store %s; %d worker process%s, one "
-                "BLAS thread each", job.path, job.model.method, job.model.basis,
+                "gradient %g (accepted up to %g), solver %s; store %s; %s", job.path,
+                job.model.method, job.model.basis,
                 f"/{job.model.functional}" if job.model.functional else "", ladder,
-                job.scf.energy_conv_tol_au,
-                job.scf.gradient_conv_tol, job.scf.gradient_accepted, job.scf.solver,
-                store.label, workers, "" if workers == 1 else "es")
+                job.scf.energy_conv_tol_au, job.scf.gradient_conv_tol,
+                job.scf.gradient_accepted, job.scf.solver, store.label, executor.label)
     if progress is None:
         progress = sys.stderr.isatty()
-    found: dict[str, PointRecord] = {}  # by task key
-    computed = reused = 0
-    prepared = settle(prepared, found)
+    rows = store.get_points(t.key for t in prepared.all_tasks())
+    work = JobWork.at_hand(prepared, rows, retry_failed)
+    if rows:
+        logger.info("%d of the job's field points found in %s", len(work.found), store.label)
     try:
-        while True:  # one pass per stage of the adaptive window (else one pass)
-            todo = [t for t in prepared.computed_tasks if t.key not in found]
-            if not todo:
-                break
-            if found:
-                tighter = sum(1 for t in todo if t.tightening)
-                logger.info("adaptive window: %d more field point%s for the components whose "
-                            "tables have not settled%s", len(todo), "" if len(todo) == 1 else "s",
-                            f" ({tighter} of them again with tighter convergence, to lower a "
-                            "noise floor)" if tighter else "")
-            zero = prepared.tasks[0]
-            again = 0 if todo[0] is zero else 1  # a later stage: zero field found already
-            batch = todo if not again else [zero, *todo]
-            outcome = compute_points(batch, store, prepared.facts, prepared.description(),
-                                     workers=workers, progress=progress,
-                                     retry_failed=retry_failed, log_every_s=log_every_s)
-            computed, reused = computed + outcome.computed, reused + outcome.reused - again
-            if outcome.failures:
-                _log_counts(prepared, point_counts(prepared, computed, reused), store.label)
-                raise failed_points_error(prepared, outcome.failures, retry_failed)
-            # Without failures the records follow the tasks one for one.
-            found.update((t.key, r) for t, r in zip(batch, outcome.records))
-            prepared = settle(prepared, found)
-        counts = point_counts(prepared, computed, reused)
-        _log_counts(prepared, counts, store.label)
-        relaxed = None
-        if job.response.nuclear_relaxation:
-            tasks = relaxed_tasks(prepared)
-            logger.info("nuclear relaxation: %d field point%s with the nuclei relaxed",
-                        len(tasks) - 1, "" if len(tasks) == 2 else "s")
-            outcome = compute_points(tasks, store, prepared.facts, prepared.description(),
-                                     workers=workers, progress=progress,
-                                     retry_failed=retry_failed, log_every_s=log_every_s)
-            if outcome.failures:
-                raise failed_points_error(prepared, outcome.failures, retry_failed)
-            relaxed = ({r.point.index: r for r in outcome.records},
-                       point_counts(prepared, outcome.computed, outcome.reused - 1))
+        return run_job(work, store, executor, Progress(progress, log_every_s))
     finally:
+        if own_executor:
+            executor.close()
         if own_store:
             store.close()
-    result = analyse(prepared, prepared.records(found), counts, store.label,
-                     time.perf_counter() - start)
-    if relaxed is not None:
-        result = with_relaxation(result, prepared, *relaxed)
-    return result
 
 
 def with_relaxation(result: RunResult, prepared: Prepared, relaxed: dict,
@@ -1084,7 +1053,7 @@ def with_relaxation(result: RunResult, prepared: Prepared, relaxed: dict,
                                warnings=result.warnings + total.warnings)
 
 
-def _log_counts(prepared: Prepared, counts: PointCounts, label: str) -> None:
+def log_counts(prepared: Prepared, counts: PointCounts, label: str) -> None:
     """The closing line of the points' work."""
     tightened = len(prepared.tightening or {})
     logger.info("%d field point%s: %d computed, %d reused from %s%s%s%s", counts.planned,
@@ -1440,7 +1409,8 @@ def require_stable(result: RunResult) -> None:
 
 
 def reference_tensors(job: Job, result: RunResult, workers: int = 1, progress: bool = False,
-                      store=None, retry_failed: bool = False):
+                      store=None, retry_failed: bool = False, log_every_s: float | None = None,
+                      executor=None):
     """fieldprop's analytic references for ``fieldprop check`` (SCF methods only).
 
     The dipole is the analytic SCF dipole and alpha the CPHF/CPKS polarizability,
@@ -1452,8 +1422,10 @@ def reference_tensors(job: Job, result: RunResult, workers: int = 1, progress: b
     """
     from fieldprop.compare import ReferenceTensors
 
-    analytic = compute(job, workers=workers, progress=progress, route=Route.ALPHA, store=store,
-                       retry_failed=retry_failed)
+    logger.info("%s: the analytic reference route (CPHF/CPKS alpha at each field point)",
+                job.path)
+    analytic = run_prepared(prepare(job, Route.ALPHA), store, workers, progress, retry_failed,
+                            log_every_s, executor)
     values = {n: t.value_au for n, t in analytic.tensors.items()}
     errors = {n: t.error_au for n, t in analytic.tensors.items()}
     note = "analytic SCF dipole, CPHF/CPKS alpha, beta and gamma from field derivatives of it"

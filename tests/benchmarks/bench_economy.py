@@ -285,7 +285,7 @@ def density_fitting(folder: Path) -> None:
 def overhead(folder: Path) -> None:
     """Whole-process wall time of `fieldprop run`, split by a profile of it
     (cProfile, which adds a few per cent of its own) into the backend's work
-    (execute.compute_points: integrals, zero-field reference, field points)
+    (stages.compute_jobs: integrals, zero-field reference, field points)
     and fieldprop's own (planning, store, extrapolation, reports) plus
     process start and imports."""
     import pstats
@@ -310,8 +310,8 @@ def overhead(folder: Path) -> None:
         return sum(v[3] for (f, _, n), v in stats.items()
                    if n == name and f.replace(os.sep, "/").endswith(module))
 
-    backend = cumulative("fieldprop/execute.py", "compute_points")
-    reference = cumulative("fieldprop/execute.py", "_reference")
+    backend = cumulative("fieldprop/stages.py", "compute_jobs")
+    reference = cumulative("fieldprop/execute.py", "reference_task")
     context = cumulative("fieldprop/backend_pyscf.py", "__init__")
     rows = [["whole process (profiled)", f"{wall:.1f}", "1.000"],
             ["backend: integrals, zero-field reference, field points", f"{backend:.1f}",

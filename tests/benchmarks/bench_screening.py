@@ -21,7 +21,8 @@ from pathlib import Path  # noqa: E402
 from tabulate import tabulate  # noqa: E402
 
 from fieldprop.campaign import load_set  # noqa: E402
-from fieldprop.screening import DaskPool, LocalPool, run_campaign  # noqa: E402
+from fieldprop.execute import DaskPool, LocalPool
+from fieldprop.screening import run_campaign  # noqa: E402
 from fieldprop.store import PointStore  # noqa: E402
 
 #: Ten small molecules, as a campaign would list them.

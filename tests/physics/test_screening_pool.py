@@ -8,7 +8,8 @@ import numpy as np
 import pytest
 
 from fieldprop.campaign import load_set
-from fieldprop.screening import DaskPool, LocalPool, run_campaign
+from fieldprop.execute import DaskPool, LocalPool
+from fieldprop.screening import run_campaign
 from fieldprop.store import PointStore
 
 pytest.importorskip("pyscf")
