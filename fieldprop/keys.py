@@ -38,7 +38,7 @@ from dataclasses import dataclass
 #: Bumped whenever the backend's numbers change for the same inputs (a new field
 #: term, another SCF finish, another state check): stored points of an older
 #: numerics version are then not reused.
-NUMERICS_VERSION = 3
+NUMERICS_VERSION = 4
 
 #: Coordinates and origins enter keys rounded to this many decimals of a bohr:
 #: far below any geometric difference that matters (1e-10 bohr moves an energy

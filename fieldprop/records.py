@@ -26,10 +26,12 @@ from fieldprop.relaxation import Frame
 CPHF_RTOL = 1e-11
 
 #: The SCF strategies a point takes when nothing goes wrong: a field point's
-#: response start and Newton steps, zero field's DIIS and Newton steps, or DIIS
-#: alone ([scf] solver = "diis", restricted open shells); one electron: exact.
-PRIMARY_PATHS = (("response_start", "newton"), ("diis", "newton"), ("diis",),
-                 ("one_electron",))
+#: response, mirror or line start and Newton steps, zero field's DIIS (the state
+#: turned to its orientation: a degenerate open shell) and Newton steps, or DIIS
+#: alone ([scf] solver = "diis"); one electron: exact.
+PRIMARY_PATHS = (("response_start", "newton"), ("mirror_start", "newton"),
+                 ("line_start", "newton"), ("diis", "newton"), ("diis", "orientation", "newton"),
+                 ("diis",), ("one_electron",))
 
 
 @dataclass(frozen=True, eq=False)
@@ -63,7 +65,7 @@ class ZeroFieldReference:
     ``field_rotations`` (3, n) their linear response to a field along x, y, z:
     the occupied-virtual rotations kappa = -(A + B)^-1 r_vo (CPHF/CPKS), in the
     block order of the backend's orbital Hessian; empty where there is none
-    (restricted open shells, one electron). A point at field F starts from the
+    (one electron). A point at field F starts from the
     zero-field orbitals rotated by sum_j F_j kappa_j: exact to first order in F.
     """
 
