@@ -1220,8 +1220,10 @@ class _OrbitalHessian(_HessianSolver):
 #: Smallest preconditioner entry (Eh) of the restricted open-shell Hessian: its
 #: diagonal is built from the alpha and beta Fock matrices, not from the
 #: orbital energies of the Roothaan matrix the orbitals diagonalise, and need
-#: not be positive far from convergence (measured: 0.1-1 Eh at OH's points).
-MIN_PRECONDITIONER = 0.05
+#: not be positive far from convergence; the floor keeps the preconditioner
+#: positive definite. Below every entry measured (smallest at OH's points:
+#: 0.67 Eh at ROHF, 0.024 Eh at ROKS/PBE, the pair of the two pi orbitals).
+MIN_PRECONDITIONER = 1e-3
 
 
 class _RestrictedOpenHessian(_HessianSolver):
