@@ -29,8 +29,8 @@ import numpy as np
 from fieldprop.errors import InputError, ScfNotConvergedError
 from fieldprop.job import Job
 from fieldprop.methods import METHODS
-from fieldprop.records import (CPHF_RTOL, PointRecord, PointTask, SymmetryOperation,
-                               ZeroFieldReference)
+from fieldprop.records import (CPHF_RTOL, Orientation, PointRecord, PointTask,
+                               SymmetryOperation, ZeroFieldReference)
 from fieldprop.units import ANGSTROM_TO_BOHR
 
 logger = logging.getLogger(__name__)
@@ -474,34 +474,37 @@ def _constraint_values(constraints, dm) -> np.ndarray:
     return np.array([float(np.sum(w * np.swapaxes(dm, -1, -2))) for w in constraints])
 
 
-def _orientation(context, mf) -> np.ndarray | None:
-    """The active rotation (3x3) that takes the unpaired density's principal
-    axes to the frame's: for a linear molecule, the in-plane axis of its
-    largest second moment onto the Cartesian axis most perpendicular to the
-    molecule; for an atom, the three axes onto x, y, z (largest moment first).
-    None when the molecule has no rotation axis, the state breaks none, or the
-    density is too isotropic to tell."""
-    from scipy.spatial.transform import Rotation
-
-    centre, axes = context.molecule.rotation_axes()
-    if not len(axes) or not orientation_constraints(context, mf.mo_coeff, mf.mo_occ):
-        return None
+def _unpaired_second_moment(context, mf) -> np.ndarray:
+    """int (r - c)(r - c)^T (rho_alpha - rho_beta) (3, 3; e bohr^2) about the
+    point c of the molecule's rotation axes (rotation_axes)."""
+    centre, _ = context.molecule.rotation_axes()
     dm = np.asarray(mf.make_rdm1())
     unpaired = dm[0] - dm[1] if dm.ndim == 3 else dm
     with context.mol.with_common_orig(centre):
-        second = np.einsum("xij,ji->x", context.mol.intor_symmetric("int1e_rr", comp=9),
-                           unpaired).reshape(3, 3)
+        return np.einsum("xij,ji->x", context.mol.intor_symmetric("int1e_rr", comp=9),
+                         unpaired).reshape(3, 3)
+
+
+def _orientation(context, mf) -> np.ndarray | None:
+    """The active rotation (3x3) that takes the unpaired density's principal
+    axes to the molecule's orientation frame (MoleculeSpec.orientation_frame):
+    for a linear molecule, the in-plane axis of its largest second moment onto
+    u; for an atom, the three axes onto x, y, z (largest moment first). None
+    when the molecule has no rotation axis, the state breaks none, or the
+    density is too isotropic to tell."""
+    from scipy.spatial.transform import Rotation
+
+    _, axes = context.molecule.rotation_axes()
+    if not len(axes) or not orientation_constraints(context, mf.mo_coeff, mf.mo_occ):
+        return None
+    second = _unpaired_second_moment(context, mf)
     if len(axes) == 1:
-        u = axes[0]
-        e1 = np.eye(3)[int(np.argmin(np.abs(u)))]
-        e1 = e1 - (e1 @ u) * u
-        e1 /= np.linalg.norm(e1)
-        e2 = np.cross(u, e1)
+        e1, e2, n = context.molecule.orientation_frame()
         q11, q22, q12 = e1 @ second @ e1, e2 @ second @ e2, e1 @ second @ e2
         if np.hypot(q11 - q22, 2 * q12) < ORIENTATION_MIN_ANISOTROPY:
             return None
         phi = 0.5 * np.arctan2(2 * q12, q11 - q22)  # principal axis, from e1 towards e2
-        return Rotation.from_rotvec(-phi * u).as_matrix()
+        return Rotation.from_rotvec(-phi * n).as_matrix()
     values, vectors = np.linalg.eigh(second)
     if np.ptp(values) < ORIENTATION_MIN_ANISOTROPY:
         return None
@@ -509,6 +512,21 @@ def _orientation(context, mf) -> np.ndarray | None:
     if np.linalg.det(vectors) < 0:
         vectors[:, 2] *= -1
     return vectors.T
+
+
+def orientation_record(context, mf) -> Orientation | None:
+    """The orientation a degenerate open shell's aligned zero-field state
+    ``mf`` has (None when it breaks no rotational symmetry): the molecule's
+    orientation frame and the unpaired density's second moments along it,
+    measured on the state."""
+    if not context.constraints:
+        return None
+    centre, axes = context.molecule.rotation_axes()
+    frame = context.molecule.orientation_frame()
+    moments = np.diag(frame @ _unpaired_second_moment(context, mf) @ frame.T)
+    return Orientation("linear" if len(axes) == 1 else "atom",
+                       tuple(tuple(float(v) for v in row) for row in frame),
+                       tuple(float(v) for v in moments), tuple(float(v) for v in centre))
 
 
 def _align(mf, context) -> bool:
@@ -1417,7 +1435,8 @@ def compute_reference(context: ModelContext,
         work = hessian.products
         reference = dataclasses.replace(reference, field_rotations=rotations)
         context.reference = reference  # the same orbitals: the response stays valid
-    record = dataclasses.replace(record, scf_cycles=record.scf_cycles + work)
+    record = dataclasses.replace(record, scf_cycles=record.scf_cycles + work,
+                                 orientation=orientation_record(context, mf))
     return record, reference
 
 

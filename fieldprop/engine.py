@@ -31,8 +31,9 @@ from fieldprop.keys import Quantities, model_document, model_key, point_key, sho
 from fieldprop.methods import METHODS, Route
 from fieldprop.molecule import MoleculeSpec, build_molecule
 from fieldprop.plan import FieldPlan, plan_fields, stencil_estimate
-from fieldprop.records import CPHF_RTOL, PointRecord, PointTask
-from fieldprop.tensors import Invariant, TensorResult, assemble, invariants, turn_tensors
+from fieldprop.records import CPHF_RTOL, Orientation, PointRecord, PointTask
+from fieldprop.tensors import (Invariant, RotationalAverage, TensorResult, assemble, invariants,
+                               rotational_average, turn_tensors)
 
 if TYPE_CHECKING:
     from fieldprop.symmetry import Symmetry
@@ -198,6 +199,10 @@ class RunResult:
     active: frozenset | None = None
     #: With [response] nuclear_relaxation: the relaxed points' analysis (None: none).
     relaxation: "NuclearRelaxation | None" = None
+    #: A degenerate open shell: the orientation of its determinant (the zero-field
+    #: record's) and each tensor's rotational average beside it ({} otherwise).
+    orientation: Orientation | None = None
+    averages: dict[str, RotationalAverage] = dataclasses.field(default_factory=dict)
 
     @property
     def energy_au(self) -> float:
@@ -907,6 +912,10 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
     tensors = assemble(plan.components, estimates)
     if plan.frame is not None:  # back into the input frame, where every name points
         tensors = turn_tensors(tensors, plan.frame, sym.forced_zero)
+    orientation = records[0].orientation
+    averages = {} if orientation is None else {
+        name: rotational_average(t, orientation.average, orientation.axes, orientation.labels)
+        for name, t in tensors.items()}
     warnings = departure_warnings(job, plan, smooth) + window_warnings(job, plan, tensors)
     if missing:
         ids = list(dict.fromkeys(missing.values()))
@@ -922,7 +931,8 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
                      tuple(invariants(tensors)), prepared.facts, wall_time_s, warnings, smooth,
                      counts, store_label,
                      tuple(sorted({(source[i], k) for i, k in missing.items()})),
-                     prepared.symmetry, prepared.images, prepared.windows, prepared.active)
+                     prepared.symmetry, prepared.images, prepared.windows, prepared.active,
+                     orientation=orientation, averages=averages)
 
 
 def gather(job: Job, store=None, lines=None, route: Route | str | None = None,

@@ -29,6 +29,7 @@ from typing import Iterable, TextIO
 
 from fieldprop.errors import InputError
 from fieldprop.keys import point_key, short_id
+from fieldprop.records import Orientation
 from fieldprop.store import StoredPoint
 
 #: The kind mark of a point line.
@@ -37,7 +38,7 @@ _REQUIRED = ("key", "model_key", "field_vector_au", "origin_bohr", "quantities",
 _RECORD = {"energy_au": float, "scf_energy_au": float, "scf_cycles": int, "attempts": list,
            "s2": float, "occupied_overlap": float, "gradient_norm": float}
 _OPTIONAL = {"dipole_au": list, "alpha_au": list, "dipole_error_au": float, "state_issue": str,
-             "energy_scale_au": float, "relaxation": dict}
+             "energy_scale_au": float, "relaxation": dict, "orientation": dict}
 _KIND_NAMES = {list: "list", str: "string", dict: "JSON object"}
 
 
@@ -56,6 +57,8 @@ def line_document(row: StoredPoint, field_vector_au, origin_bohr, quantities,
     for name in ("dipole_au", "alpha_au", "attempts"):
         if fields.get(name) is not None:
             fields[name] = json.loads(json.dumps(fields[name]))  # tuples -> lists
+    if fields.get("orientation") is not None:
+        fields["orientation"] = fields["orientation"].document()
     doc.update(fields)
     doc.update({"wall_time_s": row.wall_time_s, "host": row.host, "version": row.version,
                 "created_at": row.created_at})
@@ -104,6 +107,12 @@ def parse_line(text: str, source: str, number: int) -> dict:
                 raise InputError(f"{where}: {name} is missing or not a "
                                  f"{_KIND_NAMES.get(kind, 'number')}"
                                  " (a damaged point line)")
+        if doc.get("orientation") is not None:
+            try:
+                Orientation.from_document(doc["orientation"])
+            except ValueError:
+                raise InputError(f"{where}: orientation is not an orientation document (a "
+                                 "damaged point line)") from None
     elif not isinstance(doc.get("reason"), str):
         raise InputError(f"{where}: a failed point without its reason (a damaged point line)")
     return doc
@@ -125,6 +134,8 @@ def stored_point(doc: dict) -> StoredPoint:
             "state_issue": doc.get("state_issue") or "",
             "energy_scale_au": float(doc.get("energy_scale_au") or 0.0),
             "relaxation": doc.get("relaxation"),
+            "orientation": (None if doc.get("orientation") is None
+                            else Orientation.from_document(doc["orientation"])),
         }
     else:
         fields = {"reason": doc["reason"], "kind": doc.get("kind") or "FieldpropError"}

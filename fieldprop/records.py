@@ -78,6 +78,64 @@ class ZeroFieldReference:
     field_rotations: np.ndarray | None = None
 
 
+@dataclass(frozen=True)
+class Orientation:
+    """The orientation of a degenerate open shell's zero-field determinant (an
+    atom, or a linear molecule, whose unpaired density breaks its rotational
+    symmetry), which the backend turned it to and every field point keeps.
+
+    ``kind``: "linear" or "atom". ``axes``: rows, unit vectors in the input
+    frame (MoleculeSpec.orientation_frame): linear (u, v, n), the unpaired
+    density along u, n the molecular axis; atom (x, y, z), the unpaired
+    density's principal axes, largest second moment first.
+    ``unpaired_second_moments_bohr2``: the unpaired (alpha minus beta)
+    density's second moments along those axes about ``centre_bohr`` (the
+    atom's nucleus, or the first atom on the axis), in e bohr^2.
+
+    >>> o = Orientation("linear", ((1.0, 0.0, 0.0), (0.0, 1.0, 0.0), (0.0, 0.0, 1.0)),
+    ...                 (2.1, 0.6, 0.7), (0.0, 0.0, 0.0))
+    >>> o.labels, o.average, Orientation.from_document(o.document()) == o
+    (('u', 'v', 'n'), 'cylindrical', True)
+    """
+
+    kind: str
+    axes: tuple[tuple[float, float, float], ...]
+    unpaired_second_moments_bohr2: tuple[float, float, float]
+    centre_bohr: tuple[float, float, float]
+
+    @property
+    def labels(self) -> tuple[str, str, str]:
+        """The names of ``axes`` in tables and component names."""
+        return ("u", "v", "n") if self.kind == "linear" else ("x", "y", "z")
+
+    @property
+    def average(self) -> str:
+        """What a freely turning molecule shows: the average over turns about
+        the axis ("cylindrical") or over all turns ("spherical", an atom)."""
+        return "cylindrical" if self.kind == "linear" else "spherical"
+
+    def document(self) -> dict:
+        """As stored (JSON)."""
+        return {"kind": self.kind, "axes": [list(a) for a in self.axes],
+                "unpaired_second_moments_bohr2": list(self.unpaired_second_moments_bohr2),
+                "centre_bohr": list(self.centre_bohr)}
+
+    @classmethod
+    def from_document(cls, doc: dict) -> "Orientation":
+        """The inverse of :meth:`document`; ValueError for anything else."""
+        try:
+            kind = doc["kind"]
+            axes = tuple(tuple(float(v) for v in row) for row in doc["axes"])
+            moments = tuple(float(v) for v in doc["unpaired_second_moments_bohr2"])
+            centre = tuple(float(v) for v in doc["centre_bohr"])
+        except (KeyError, TypeError, ValueError):
+            raise ValueError("not an orientation document") from None
+        if kind not in ("linear", "atom") or len(axes) != 3 or any(len(a) != 3 for a in axes) \
+                or len(moments) != 3 or len(centre) != 3:
+            raise ValueError("not an orientation document")
+        return cls(kind, axes, moments, centre)
+
+
 @dataclass(frozen=True, eq=False)
 class RelaxTarget:
     """What makes a field point a relaxed one: the nuclei move to the minimum
@@ -156,6 +214,9 @@ class PointRecord:
     #: coords_bohr, steps, energy_change_au, dipole_change_au,
     #: largest_gradient_au, gradients); None for clamped nuclei.
     relaxation: dict | None = None
+    #: Zero field of a degenerate open shell: the orientation its determinant
+    #: was turned to, which every point keeps (None otherwise).
+    orientation: Orientation | None = None
 
     @property
     def retried(self) -> bool:

@@ -9,7 +9,7 @@ functions, core electrons, PySCF version): any process can compute any point
 later without redoing zero field, and the analysis of stored points needs no
 PySCF at all.
 
-File format (``SCHEMA_VERSION`` 5; an older store is migrated when opened
+File format (``SCHEMA_VERSION`` 6; an older store is migrated when opened
 for writing, and read as it is otherwise), SQLite from the standard library, WAL
 journal, a busy timeout so several processes can share one file, one
 transaction per finished point:
@@ -21,10 +21,12 @@ transaction per finished point:
 - ``points(point_key, model_key, field_vector_au, origin_bohr, quantities,
   status, energy_au, scf_energy_au, dipole_au, alpha_au, scf_cycles, attempts,
   s2, occupied_overlap, gradient_norm, dipole_error_au, state_issue,
-  energy_scale_au, relaxation, failure, failure_kind, wall_time_s, host,
-  version, created_at)``: ``status`` is ``ok`` or ``failed``; ``relaxation``
-  holds a relaxed point's structure and the optimiser's remaining errors; vectors, matrices and lists are JSON text (floats round-trip
-  exactly);
+  energy_scale_au, relaxation, orientation, failure, failure_kind,
+  wall_time_s, host, version, created_at)``: ``status`` is ``ok`` or
+  ``failed``; ``relaxation`` holds a relaxed point's structure and the
+  optimiser's remaining errors, ``orientation`` the zero-field point's of a
+  degenerate open shell (records.Orientation); vectors, matrices, lists and
+  documents are JSON text (floats round-trip exactly);
 - ``geometries(geometry_key, document, created_at, host, version)``: geometries
   optimised before a job's response (``[geometry] optimize``), keyed by the
   starting geometry, the optimisation's model and its criteria; ``document``
@@ -64,16 +66,18 @@ import numpy as np
 
 from fieldprop import __version__
 from fieldprop.errors import InputError
-from fieldprop.records import PointFailure, PointRecord, SymmetryOperation, ZeroFieldReference
+from fieldprop.records import (Orientation, PointFailure, PointRecord, SymmetryOperation,
+                               ZeroFieldReference)
 
 logger = logging.getLogger(__name__)
 
 FORMAT = "fieldprop-store"
-SCHEMA_VERSION = 5
+SCHEMA_VERSION = 6
 #: Migrations of older schemas, applied when a store is opened for writing:
 #: schema 1 -> 2 adds points.energy_scale_au (the energy's rounding scale);
 #: 2 -> 3 adds the todo_lists table; 3 -> 4 the geometries table; 4 -> 5
-#: points.relaxation (a relaxed point's structure and optimiser errors, JSON).
+#: points.relaxation (a relaxed point's structure and optimiser errors, JSON);
+#: 5 -> 6 points.orientation (a degenerate open shell's, JSON).
 #: A store of an older schema opened
 #: read-only reads a missing column as NULL, and has no to-do lists.
 _TO_DO_LISTS_TABLE = ("CREATE TABLE todo_lists (list_key TEXT PRIMARY KEY, point_keys TEXT NOT NULL, "
@@ -88,6 +92,8 @@ _MIGRATIONS = {
     3: [_GEOMETRIES_TABLE, "UPDATE meta SET value = '4' WHERE name = 'schema'"],
     4: ["ALTER TABLE points ADD COLUMN relaxation TEXT",
         "UPDATE meta SET value = '5' WHERE name = 'schema'"],
+    5: ["ALTER TABLE points ADD COLUMN orientation TEXT",
+        "UPDATE meta SET value = '6' WHERE name = 'schema'"],
 }
 #: Default store file name, in the job file's folder: jobs in one folder share it.
 DEFAULT_NAME = "fieldprop-points.sqlite"
@@ -126,6 +132,7 @@ CREATE TABLE points (
     state_issue TEXT,
     energy_scale_au REAL,
     relaxation TEXT,
+    orientation TEXT,
     failure TEXT,
     failure_kind TEXT,
     wall_time_s REAL,
@@ -138,7 +145,7 @@ CREATE INDEX points_by_model ON points (model_key);
 
 _RECORD_COLUMNS = ("energy_au", "scf_energy_au", "dipole_au", "alpha_au", "scf_cycles",
                    "attempts", "s2", "occupied_overlap", "gradient_norm", "dipole_error_au",
-                   "state_issue", "energy_scale_au", "relaxation")
+                   "state_issue", "energy_scale_au", "relaxation", "orientation")
 _POINT_COLUMNS = ("point_key", "model_key", "field_vector_au", "origin_bohr", "quantities",
                   "status", *_RECORD_COLUMNS, "failure", "failure_kind", "wall_time_s", "host",
                   "version", "created_at")
@@ -428,6 +435,8 @@ class PointStore:
                                r.occupied_overlap, r.gradient_norm, r.dipole_error_au,
                                r.state_issue, r.energy_scale_au,
                                None if r.relaxation is None else json.dumps(r.relaxation),
+                               None if r.orientation is None
+                               else json.dumps(r.orientation.document()),
                                None, None)
         values += (outcome.wall_time_s, socket.gethostname(), __version__, _now())
         marks = ", ".join("?" * len(values))
@@ -503,6 +512,8 @@ def _stored_point(row) -> StoredPoint:
             "energy_scale_au": values["energy_scale_au"] or 0.0,
             "relaxation": (None if values["relaxation"] is None
                            else json.loads(values["relaxation"])),
+            "orientation": (None if values["orientation"] is None
+                            else Orientation.from_document(json.loads(values["orientation"]))),
         }
     else:
         fields = {"reason": failure, "kind": kind}

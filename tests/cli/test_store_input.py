@@ -479,11 +479,12 @@ def test_a_schema_1_store_is_read_as_it_is_and_migrated_when_written(tmp_path):
 
     path = tmp_path / "points.sqlite"
     old_schema = store_module._SCHEMA.replace("    energy_scale_au REAL,\n", "").replace(
-        "    relaxation TEXT,\n", "").replace(
+        "    relaxation TEXT,\n", "").replace("    orientation TEXT,\n", "").replace(
         store_module._TO_DO_LISTS_TABLE + ";", "").replace(
         store_module._GEOMETRIES_TABLE + ";", "")
     assert "energy_scale_au" not in old_schema and "todo_lists" not in old_schema
     assert "geometries" not in old_schema and "relaxation" not in old_schema
+    assert "orientation" not in old_schema
     with sqlite3.connect(path) as db:
         db.executescript(old_schema)
         db.executemany("INSERT INTO meta VALUES (?, ?)", [
@@ -502,6 +503,7 @@ def test_a_schema_1_store_is_read_as_it_is_and_migrated_when_written(tmp_path):
         assert store.get_geometry("any") is None  # nor geometries
     assert row.fields["energy_au"] == -1.5 and row.fields["energy_scale_au"] == 0.0
     assert row.fields["relaxation"] is None  # a column schema 1 lacks reads as NULL
+    assert row.fields["orientation"] is None
     assert path.read_bytes() == before and not journal_files(path)
     with PointStore.open(path) as store:
         row = store.get_points(["k1"])["k1"]
@@ -514,5 +516,6 @@ def test_a_schema_1_store_is_read_as_it_is_and_migrated_when_written(tmp_path):
         schema = db.execute("SELECT value FROM meta WHERE name = 'schema'").fetchone()[0]
         columns = {r[1] for r in db.execute("PRAGMA table_info(points)")}
     db.close()
-    assert schema == str(store_module.SCHEMA_VERSION) == "5"
+    assert schema == str(store_module.SCHEMA_VERSION) == "6"
     assert "energy_scale_au" in columns and "relaxation" in columns
+    assert "orientation" in columns
