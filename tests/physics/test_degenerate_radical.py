@@ -249,8 +249,9 @@ def _rohf_polarizability(job, origin):
 
 
 #: SCF cycles (Fock builds and Hessian products) a field point of OH may take
-#: at ROHF: measured 9-17 (dipole route) and 9-11 (energy route) at 6-31G with
-#: the orientation kept, where PySCF's ladder without it ran 600 and failed.
+#: at ROHF: measured 9-17 (dipole route) and 1-10 (energy route) at 6-31G, 8-19
+#: and 5-15 at 6-31+G*, with the orientation kept; PySCF's ladder without it
+#: ran 600 and failed.
 MAX_POINT_CYCLES = 30
 
 
