@@ -514,19 +514,38 @@ def _orientation(context, mf) -> np.ndarray | None:
     return vectors.T
 
 
+#: A zero-field state lies in its orientation frame when its unpaired density's
+#: second moments there have off-diagonal elements below this fraction of their
+#: spread (about the angle, in radians, by which it is off; the alignment leaves
+#: ~1e-12 at HF and ~1e-6 at DFT).
+ORIENTATION_ALIGNED = 1e-4
+
+
 def orientation_record(context, mf) -> Orientation | None:
-    """The orientation a degenerate open shell's aligned zero-field state
-    ``mf`` has (None when it breaks no rotational symmetry): the molecule's
-    orientation frame and the unpaired density's second moments along it,
+    """The orientation a degenerate open shell's zero-field state ``mf`` has
+    (None when it breaks no rotational symmetry): the molecule's orientation
+    frame, where _align put it, or, for a state not turned there (PySCF's
+    ladder alone, ``[scf] solver = "diis"``), the unpaired density's own
+    principal axes in the same order; and its second moments along them,
     measured on the state."""
     if not context.constraints:
         return None
     centre, axes = context.molecule.rotation_axes()
+    linear = len(axes) == 1
     frame = context.molecule.orientation_frame()
-    moments = np.diag(frame @ _unpaired_second_moment(context, mf) @ frame.T)
-    return Orientation("linear" if len(axes) == 1 else "atom",
+    second = _unpaired_second_moment(context, mf)
+    moments = frame @ second @ frame.T
+    diagonal = np.diag(moments)
+    spread = np.ptp(diagonal[:2] if linear else diagonal)
+    ordered = diagonal[0] >= diagonal[1] if linear else bool(np.all(np.diff(diagonal) <= 0))
+    if not (ordered and np.abs(moments - np.diag(diagonal)).max() <= ORIENTATION_ALIGNED * spread):
+        rotation = _orientation(context, mf)  # principal axes -> frame: the axes are its rows
+        frame = frame @ rotation
+        moments = frame @ second @ frame.T
+    return Orientation("linear" if linear else "atom",
                        tuple(tuple(float(v) for v in row) for row in frame),
-                       tuple(float(v) for v in moments), tuple(float(v) for v in centre))
+                       tuple(float(v) for v in np.diag(moments)),
+                       tuple(float(v) for v in centre))
 
 
 def _align(mf, context) -> bool:
