@@ -30,8 +30,8 @@ from fieldprop.errors import FieldpropError, InputError, ScfNotConvergedError
 from fieldprop.job import Job
 from fieldprop.methods import METHODS
 from fieldprop.records import (CPHF_RTOL, DIIS, LINE_START, MIRROR_START, NEWTON, ONE_ELECTRON,
-                               ORIENTATION, REFERENCE_START, RESPONSE_START, PointRecord,
-                               PointTask, SymmetryOperation, ZeroFieldReference)
+                               ORIENTATION, REFERENCE_START, RESPONSE_START, Orientation,
+                               PointRecord, PointTask, SymmetryOperation, ZeroFieldReference)
 from fieldprop.units import BACKEND_BOHR_ANGSTROM
 
 logger = logging.getLogger(__name__)
@@ -405,12 +405,55 @@ def _angular_momentum(mol, centre) -> np.ndarray:
         return mol.intor("int1e_cg_irxp", comp=3)
 
 
+def _restricted_open(mo_occ) -> bool:
+    """Occupations of a restricted open shell (ROHF, ROKS): one orbital set with
+    doubly and singly occupied orbitals."""
+    occ = np.asarray(mo_occ)
+    return occ.ndim == 1 and bool(np.any(occ == 1))
+
+
 def _set_blocks(mo_coeff, mo_occ):
-    """(occupied, virtual) coefficients per orbital set and the density weight."""
+    """(occupied, virtual) coefficients per spin density and the density weight:
+    alpha and beta (unrestricted; a restricted open shell, whose alpha electrons
+    occupy the doubly and singly occupied orbitals and beta the doubly occupied
+    ones), or the one closed-shell set (two electrons per orbital)."""
     occ = np.asarray(mo_occ)
     if occ.ndim == 2:
         return [(c[:, o > 0], c[:, o == 0]) for c, o in zip(mo_coeff, occ)], 1.0
+    if _restricted_open(occ):
+        return [(mo_coeff[:, occ > 0], mo_coeff[:, occ == 0]),
+                (mo_coeff[:, occ == 2], mo_coeff[:, occ < 2])], 1.0
     return [(mo_coeff[:, occ > 0], mo_coeff[:, occ == 0])], 2.0
+
+
+def _pairs(mo_occ) -> np.ndarray:
+    """The non-redundant rotations of one orbital set, (nmo, nmo) bool: p (row)
+    less occupied than q (column). For a closed shell the virtual-occupied
+    block; for a restricted open shell also open-core and virtual-open (PySCF's
+    ROHF gradient has this layout, row by row)."""
+    occ = np.asarray(mo_occ)
+    return occ[:, None] < occ[None, :]
+
+
+def _spin_occupations(mo_occ) -> np.ndarray:
+    """(2, nmo) alpha and beta occupations of a restricted open shell."""
+    occ = np.asarray(mo_occ)
+    return np.array([occ > 0, occ == 2], dtype=float)
+
+
+def _restricted_open_layout(c, mo_occ, matrices) -> np.ndarray:
+    """sum_s (n_q^s - n_p^s) [C^T M_s C]_pq over the non-redundant pairs (p, q)
+    (_pairs) of a restricted open shell: PySCF's ROHF gradient for the alpha and
+    beta Fock matrices M_s (one AO matrix ``matrices`` serves both spins; a
+    Roothaan Fock matrix gives its alpha and beta ones)."""
+    if getattr(matrices, "focka", None) is not None:
+        matrices = (matrices.focka, matrices.fockb)
+    elif np.ndim(matrices) == 2:
+        matrices = (matrices, matrices)
+    out = 0.0
+    for n, m in zip(_spin_occupations(mo_occ), matrices):
+        out = out + (n[None, :] - n[:, None]) * (c.T @ m @ c)
+    return out[_pairs(mo_occ)]
 
 
 def orientation_constraints(context, mo_coeff, mo_occ) -> tuple[np.ndarray, ...]:
@@ -455,34 +498,37 @@ def _constraint_values(constraints, dm) -> np.ndarray:
     return np.array([float(np.sum(w * np.swapaxes(dm, -1, -2))) for w in constraints])
 
 
-def _orientation(context, mf) -> np.ndarray | None:
-    """The active rotation (3x3) that takes the unpaired density's principal
-    axes to the frame's: for a linear molecule, the in-plane axis of its
-    largest second moment onto the Cartesian axis most perpendicular to the
-    molecule; for an atom, the three axes onto x, y, z (largest moment first).
-    None when the molecule has no rotation axis, the state breaks none, or the
-    density is too isotropic to tell."""
-    from scipy.spatial.transform import Rotation
-
-    centre, axes = context.molecule.rotation_axes()
-    if not len(axes) or not orientation_constraints(context, mf.mo_coeff, mf.mo_occ):
-        return None
+def _unpaired_second_moment(context, mf) -> np.ndarray:
+    """int (r - c)(r - c)^T (rho_alpha - rho_beta) (3, 3; e bohr^2) about the
+    point c of the molecule's rotation axes (rotation_axes)."""
+    centre, _ = context.molecule.rotation_axes()
     dm = np.asarray(mf.make_rdm1())
     unpaired = dm[0] - dm[1] if dm.ndim == 3 else dm
     with context.mol.with_common_orig(centre):
-        second = np.einsum("xij,ji->x", context.mol.intor_symmetric("int1e_rr", comp=9),
-                           unpaired).reshape(3, 3)
+        return np.einsum("xij,ji->x", context.mol.intor_symmetric("int1e_rr", comp=9),
+                         unpaired).reshape(3, 3)
+
+
+def _orientation(context, mf) -> np.ndarray | None:
+    """The active rotation (3x3) that takes the unpaired density's principal
+    axes to the molecule's orientation frame (MoleculeSpec.orientation_frame):
+    for a linear molecule, the in-plane axis of its largest second moment onto
+    u; for an atom, the three axes onto x, y, z (largest moment first). None
+    when the molecule has no rotation axis, the state breaks none, or the
+    density is too isotropic to tell."""
+    from scipy.spatial.transform import Rotation
+
+    _, axes = context.molecule.rotation_axes()
+    if not len(axes) or not orientation_constraints(context, mf.mo_coeff, mf.mo_occ):
+        return None
+    second = _unpaired_second_moment(context, mf)
     if len(axes) == 1:
-        u = axes[0]
-        e1 = np.eye(3)[int(np.argmin(np.abs(u)))]
-        e1 = e1 - (e1 @ u) * u
-        e1 /= np.linalg.norm(e1)
-        e2 = np.cross(u, e1)
+        e1, e2, n = context.molecule.orientation_frame()
         q11, q22, q12 = e1 @ second @ e1, e2 @ second @ e2, e1 @ second @ e2
         if np.hypot(q11 - q22, 2 * q12) < ORIENTATION_MIN_ANISOTROPY:
             return None
         phi = 0.5 * np.arctan2(2 * q12, q11 - q22)  # principal axis, from e1 towards e2
-        return Rotation.from_rotvec(-phi * u).as_matrix()
+        return Rotation.from_rotvec(-phi * n).as_matrix()
     values, vectors = np.linalg.eigh(second)
     if np.ptp(values) < ORIENTATION_MIN_ANISOTROPY:
         return None
@@ -490,6 +536,40 @@ def _orientation(context, mf) -> np.ndarray | None:
     if np.linalg.det(vectors) < 0:
         vectors[:, 2] *= -1
     return vectors.T
+
+
+#: A zero-field state lies in its orientation frame when its unpaired density's
+#: second moments there have off-diagonal elements below this fraction of their
+#: spread (about the angle, in radians, by which it is off; the alignment leaves
+#: ~1e-12 at HF and ~1e-6 at DFT).
+ORIENTATION_ALIGNED = 1e-4
+
+
+def orientation_record(context, mf) -> Orientation | None:
+    """The orientation a degenerate open shell's zero-field state ``mf`` has
+    (None when it breaks no rotational symmetry): the molecule's orientation
+    frame, where _align put it, or, for a state not turned there (PySCF's
+    ladder alone, ``[scf] solver = "diis"``), the unpaired density's own
+    principal axes in the same order; and its second moments along them,
+    measured on the state."""
+    if not context.constraints:
+        return None
+    centre, axes = context.molecule.rotation_axes()
+    linear = len(axes) == 1
+    frame = context.molecule.orientation_frame()
+    second = _unpaired_second_moment(context, mf)
+    moments = frame @ second @ frame.T
+    diagonal = np.diag(moments)
+    spread = np.ptp(diagonal[:2] if linear else diagonal)
+    ordered = diagonal[0] >= diagonal[1] if linear else bool(np.all(np.diff(diagonal) <= 0))
+    if not (ordered and np.abs(moments - np.diag(diagonal)).max() <= ORIENTATION_ALIGNED * spread):
+        rotation = _orientation(context, mf)  # principal axes -> frame: the axes are its rows
+        frame = frame @ rotation
+        moments = frame @ second @ frame.T
+    return Orientation("linear" if linear else "atom",
+                       tuple(tuple(float(v) for v in row) for row in frame),
+                       tuple(float(v) for v in np.diag(moments)),
+                       tuple(float(v) for v in centre))
 
 
 def _align(mf, context) -> bool:
@@ -521,25 +601,23 @@ def _scf_dipole(mf, r, molecule) -> np.ndarray:
     return molecule.nuclear_dipole_au() - np.einsum("xij,ji->x", r, dm).real
 
 
-def _dipole_error(mf, r, fock, gradient: float, dipole_route: bool, constraints=(),
-                  response=None) -> float:
+def _dipole_error(mf, r, fock, dipole_route: bool, constraints=(), response=None) -> float:
     """|d mu| the remaining orbital gradient leaves in the SCF dipole.
 
     Closed shells: the diagonal estimate (diagonal_dipole_step). Open shells
-    (UHF, UKS): the diagonal misses ~8x, so on the dipole route, where the
-    dipole is differentiated, the full-Hessian Newton step (newton_dipole_step,
-    0.98-1.01 of the true error measured on NH2 and H2O+, HF and DFT); on the
-    energy route the dipole is only reported, and the diagonal estimate will do.
-    ROHF: |g|. ``response`` is the Newton steps' (ModelContext.response: for DFT
-    a coarse-grid kernel, which changes an estimate of ~1e-10 au by far less
-    than it matters and saves two thirds of an open-shell DFT point's time).
+    (UHF, UKS, ROHF, ROKS): the diagonal misses ~8x, so on the dipole route,
+    where the dipole is differentiated, the full-Hessian Newton step
+    (newton_dipole_step, 0.98-1.01 of the true error measured on NH2 and H2O+,
+    HF and DFT); on the energy route the dipole is only reported, and the
+    diagonal estimate will do. ``response`` is the Newton steps'
+    (ModelContext.response: for DFT a coarse-grid kernel, which changes an
+    estimate of ~1e-10 au by far less than it matters and saves two thirds of
+    an open-shell DFT point's time).
     """
-    try:
-        if dipole_route and np.asarray(mf.mo_occ).ndim == 2:
-            return float(np.linalg.norm(newton_dipole_step(mf, r, fock, constraints, response)))
-        return float(np.linalg.norm(diagonal_dipole_step(mf, r, fock, constraints)))
-    except TypeError:  # no orbital Hessian here (ROHF)
-        return gradient
+    occ = np.asarray(mf.mo_occ)
+    if dipole_route and (occ.ndim == 2 or _restricted_open(occ)):
+        return float(np.linalg.norm(newton_dipole_step(mf, r, fock, constraints, response)))
+    return float(np.linalg.norm(diagonal_dipole_step(mf, r, fock, constraints)))
 
 
 def _orbital_sets(mf) -> tuple[np.ndarray, ...]:
@@ -659,10 +737,12 @@ def _s2(mf) -> float:
 
 
 def _has_hessian(mf) -> bool:
-    """RHF, UHF, RKS and UKS have the real orbital Hessian of _OrbitalHessian."""
-    from pyscf.scf import hf, rohf, uhf
+    """RHF, UHF, RKS and UKS have the orbital Hessian of _OrbitalHessian,
+    ROHF and ROKS that of _RestrictedOpenHessian (every mean field fieldprop
+    builds; not PySCF's generalised or relativistic ones)."""
+    from pyscf.scf import hf, uhf
 
-    return isinstance(mf, uhf.UHF) or (isinstance(mf, hf.RHF) and not isinstance(mf, rohf.ROHF))
+    return isinstance(mf, (hf.RHF, uhf.UHF))
 
 
 def _gradient_norm(mf, fock=None, constraints=(), c=None, occ=None) -> float:
@@ -681,7 +761,9 @@ def _gradient_norm(mf, fock=None, constraints=(), c=None, occ=None) -> float:
 
 def _constraint_gradients(c, occ, constraints) -> np.ndarray:
     """d c_k / d x for the occupied-virtual rotations x of orbitals ``c`` (columns),
-    in the layout of PySCF's gradient and of _OrbitalHessian."""
+    in the layout of PySCF's gradient and of the orbital Hessians."""
+    if _restricted_open(occ):
+        return np.array([2.0 * _restricted_open_layout(c, occ, w) for w in constraints]).T
     blocks, weight = _set_blocks(c, occ)
     columns = []
     for w in constraints:
@@ -693,13 +775,16 @@ def _constraint_gradients(c, occ, constraints) -> np.ndarray:
 
 def _semicanonical(c, occ, fock):
     """Orbitals that diagonalise the Fock matrix within the occupied and within
-    the virtual space (the density is unchanged), and those diagonal values."""
+    the virtual space (for a restricted open shell: within the doubly, singly
+    and unoccupied spaces, with Roothaan's Fock matrix; the densities are
+    unchanged), and those diagonal values."""
     if np.asarray(occ).ndim == 2:
         pairs = [_semicanonical(c[k], occ[k], fock[k]) for k in range(2)]
         return np.array([p[0] for p in pairs]), np.array([p[1] for p in pairs])
     c = np.array(c, copy=True)
     energies = np.zeros(c.shape[1])
-    for mask in (occ > 0, occ == 0):
+    for value in np.unique(occ):  # doubly, singly (restricted open shell) and unoccupied
+        mask = occ == value
         block = c[:, mask]
         values, vectors = np.linalg.eigh(block.T @ fock @ block)
         c[:, mask] = block @ vectors
@@ -709,10 +794,15 @@ def _semicanonical(c, occ, fock):
 
 def _rotate(c, occ, x):
     """c exp(K) with K_vo = x, K_ov = -x^T per orbital set (x: the sets' virtual x
-    occupied blocks, concatenated): the rotation whose density change
-    _OrbitalHessian's matvec assumes."""
+    occupied blocks, concatenated; for a restricted open shell K = x on the
+    pairs of _pairs): the rotation whose density change the orbital Hessians'
+    matvec assumes."""
     from scipy.linalg import expm
 
+    if _restricted_open(occ):  # one set, the pairs of _pairs
+        k = np.zeros((c.shape[1], c.shape[1]))
+        k[_pairs(occ)] = x
+        return c @ expm(k - k.T)
     sets = [c] if np.asarray(occ).ndim == 1 else list(c)
     occs = [occ] if np.asarray(occ).ndim == 1 else list(occ)
     out, start = [], 0
@@ -785,7 +875,7 @@ def _newton(mf, context, c, occ, target: float,
         if g <= target or stalled >= MAX_STALLED_STEPS or steps >= MAX_NEWTON_STEPS:
             break
         mf.mo_coeff, mf.mo_occ, mf.mo_energy = c, occ, energies
-        hessian = _OrbitalHessian(mf, response=context.response, constraints=constraints)
+        hessian = _orbital_hessian(mf, context.response, constraints, fock)
         # The step's linear-solve error (rtol g) need not beat the quadratic
         # error of an exact step (~g^2 per Eh, measured 0.5-1 for water), nor
         # a third of the target.
@@ -856,7 +946,10 @@ def _rotation_from_reference(ref_c, ref_occ, c, overlap) -> np.ndarray:
     reference orbitals to the occupied space of ``c``, exactly: per set
     M = X Y^-1 with X = C0_v^T S C_o, Y = C0_o^T S C_o (independent of rotations
     within the occupied space) is x Sigma^-1 tan(Sigma), Sigma = (x^T x)^(1/2),
-    so M^T M = tan(Sigma)^2 and x = M f(M^T M), f(T) = arctan(T^1/2) / T^1/2."""
+    so M^T M = tan(Sigma)^2 and x = M f(M^T M), f(T) = arctan(T^1/2) / T^1/2.
+    A restricted open shell: _restricted_open_rotation."""
+    if _restricted_open(ref_occ):
+        return _restricted_open_rotation(ref_c, ref_occ, c, overlap)
     sets = [ref_c] if np.asarray(ref_occ).ndim == 1 else list(ref_c)
     occs = [ref_occ] if np.asarray(ref_occ).ndim == 1 else list(ref_occ)
     new = [c] if np.asarray(ref_occ).ndim == 1 else list(c)
@@ -874,6 +967,41 @@ def _rotation_from_reference(ref_c, ref_occ, c, overlap) -> np.ndarray:
         f[big] = np.arctan(root[big]) / root[big]
         parts.append((m @ (v * f) @ v.T).ravel())
     return np.concatenate(parts)
+
+
+#: Passes of _restricted_open_rotation at most, and the size of a correction
+#: (radians) below which it has converged: the first pass errs by O(K^3), each
+#: further one shrinks that by about |K| (random rotations of 1e-2 radians:
+#: corrections 7e-10, 8e-12, 7e-14), so four leave a start far closer than the
+#: Newton steps need.
+ROTATION_PASSES = 4
+ROTATION_CONVERGED = 1e-12
+
+
+def _restricted_open_rotation(ref_c, ref_occ, c, overlap) -> np.ndarray:
+    """The rotation x on the pairs of _pairs that takes the reference orbitals
+    of a restricted open shell to the doubly and singly occupied spaces of
+    ``c``: U = C0^T S C1 is exp(K) times a rotation within each space; turning
+    U's diagonal blocks symmetric (their polar factors) leaves exp(K) but for
+    O(K^3) (the antisymmetric part of K^3's diagonal blocks), whose logarithm's
+    non-redundant part is K to that order; passes on the remainder exp(-x) U
+    refine it (ROTATION_PASSES)."""
+    from scipy.linalg import logm
+
+    u = ref_c.T @ overlap @ c
+    pairs = _pairs(ref_occ)
+    spaces = [ref_occ == value for value in np.unique(ref_occ)]
+    x = np.zeros(int(pairs.sum()))
+    for _ in range(ROTATION_PASSES):
+        rest = _rotate(np.eye(len(ref_occ)), ref_occ, -x) @ u
+        for space in spaces:
+            w, _, vt = np.linalg.svd(rest[np.ix_(space, space)])
+            rest[:, space] = rest[:, space] @ (vt.T @ w.T)
+        step = np.real(logm(rest))[pairs]
+        x = x + step
+        if np.abs(step).max(initial=0.0) < ROTATION_CONVERGED:
+            break
+    return x
 
 
 def _ladder(mf, dm0, target: float, attempts: list[str]) -> int:
@@ -923,8 +1051,8 @@ def _converge(mf, context, point, scf=None) -> tuple[list[str], int, np.ndarray 
     cycles (Fock builds and Hessian products) and the Fock matrix of the final
     state when the Newton steps built it (None otherwise).
 
-    With ``[scf] solver = "newton"`` (and a real orbital Hessian: RHF, UHF, RKS,
-    UKS): a field point starts from the zero-field orbitals rotated by their
+    With ``[scf] solver = "newton"`` (every mean field: RHF, UHF, ROHF, RKS,
+    UKS, ROKS): a field point starts from the zero-field orbitals rotated by their
     linear response to the field ("response start", exact to first order) and
     takes Newton steps to the target; zero field itself takes DIIS to
     DIIS_HANDOVER from PySCF's initial guess, then Newton steps. Anything that
@@ -1041,7 +1169,72 @@ CG_MAX_ITERATIONS = 150
 SINGULAR_SHIFT = 1e-4
 
 
-class _OrbitalHessian:
+class _HessianSolver:
+    """What the orbital Hessians share: the orientation constraints, the
+    projected, preconditioned conjugate-gradient solve and the dipole change of
+    a rotation. A subclass sets ``weight`` (electrons per orbital and spin
+    density), ``diagonal`` (the preconditioner, positive) and ``products``, and
+    defines ``matvec`` and ``vo`` (the layout of rotations, gradients and
+    perturbations: a perturbation M enters the gradient as vo(M))."""
+
+    def _constrain(self, constraints) -> None:
+        #: The constraints' gradients (columns: d c_k / d x) and an orthonormal
+        #: basis of them; the solver works in the space orthogonal to them.
+        self.constraint_gradients = np.zeros((self.diagonal.size, 0))
+        if constraints:
+            self.constraint_gradients = np.array(
+                [2.0 * self.weight * self.vo(w) for w in constraints]).T
+        self._q = np.linalg.qr(self.constraint_gradients)[0]
+
+    def project(self, x) -> np.ndarray:
+        """x without its part along the constraints' gradients."""
+        x = np.asarray(x).ravel()
+        return x - self._q @ (self._q.T @ x) if self._q.shape[1] else x
+
+    def solve(self, rhs, rtol: float, what: str) -> np.ndarray:
+        """x with H x = rhs, to relative residual ``rtol``.
+
+        Preconditioned conjugate gradients (the Hessian of a stable SCF is
+        positive definite), in the space orthogonal to the constraints'
+        gradients (an orientation constraint: orientation_constraints). A
+        Hessian with a (near-)zero mode, such as the rotation of a degenerate
+        open shell's unpaired orbital about the axis of a linear molecule (OH,
+        2Pi), stalls them; then the system is solved again with the Hessian
+        shifted by SINGULAR_SHIFT, which leaves the other modes' share of x
+        changed by a relative SINGULAR_SHIFT / their eigenvalue (~1e-4 for
+        eigenvalues ~ the orbital-energy gaps).
+        """
+        from scipy.sparse.linalg import LinearOperator, cg
+
+        rhs = self.project(rhs)
+        norm = np.linalg.norm(rhs)
+        if norm == 0.0:
+            return np.zeros_like(rhs)
+        n = self.diagonal.size
+        b = rhs / norm
+        residual = np.inf
+        project = self.project
+        for sigma in (0.0, SINGULAR_SHIFT):
+            operator = LinearOperator(
+                (n, n), matvec=lambda v, s=sigma: project(self.matvec(project(v))) + s * v,
+                dtype=float)
+            precondition = LinearOperator(
+                (n, n), matvec=lambda v, s=sigma: project(project(v) / (self.diagonal + s)),
+                dtype=float)
+            x, info = cg(operator, b, rtol=rtol, atol=0.0, M=precondition,
+                         maxiter=CG_MAX_ITERATIONS)
+            residual = np.linalg.norm(operator.matvec(x) - b)
+            if info == 0 and residual <= 10 * rtol:
+                return x * norm
+        raise ScfNotConvergedError(f"{what} did not converge (residual {residual:.1e}); "
+                                   "the SCF may be unstable")
+
+    def density_trace(self, rmo, x) -> float:
+        """-tr(r dD) for the rotation x: the dipole change it causes (one component)."""
+        return float(-2.0 * self.weight * (rmo @ x))
+
+
+class _OrbitalHessian(_HessianSolver):
     """The real orbital Hessian A + B of a converged RHF, UHF, RKS or UKS object,
     as a preconditioned conjugate-gradient solver over occupied-virtual blocks.
 
@@ -1056,8 +1249,6 @@ class _OrbitalHessian:
     def __init__(self, mf, response=None, constraints=()):
         from pyscf.scf import uhf
 
-        if not _has_hessian(mf):
-            raise TypeError(f"no orbital Hessian for {type(mf).__name__}")
         if isinstance(mf, uhf.UHF):
             coeffs, energies, occs, self.weight = mf.mo_coeff, mf.mo_energy, mf.mo_occ, 1.0
         else:
@@ -1073,18 +1264,7 @@ class _OrbitalHessian:
         self.products = 0  # Hessian-vector products so far (each ~ one Fock build)
         if response is not None:
             self.__dict__["response"] = response  # shared: see ModelContext.response
-        #: The constraints' gradients (columns: d c_k / d x) and an orthonormal
-        #: basis of them; the solver works in the space orthogonal to them.
-        self.constraint_gradients = np.zeros((self.diagonal.size, 0))
-        if constraints:
-            self.constraint_gradients = np.array(
-                [2.0 * self.weight * self.vo(w) for w in constraints]).T
-        self._q = np.linalg.qr(self.constraint_gradients)[0]
-
-    def project(self, x) -> np.ndarray:
-        """x without its part along the constraints' gradients."""
-        x = np.asarray(x).ravel()
-        return x - self._q @ (self._q.T @ x) if self._q.shape[1] else x
+        self._constrain(constraints)
 
     @functools.cached_property
     def response(self):
@@ -1118,54 +1298,110 @@ class _OrbitalHessian:
         return np.concatenate([(cv.T @ m @ co).ravel()
                                for m, (co, cv, de) in zip(matrices, self.blocks)])
 
-    def solve(self, rhs, rtol: float, what: str) -> np.ndarray:
-        """x with (A + B) x = rhs, to relative residual ``rtol``.
 
-        Preconditioned conjugate gradients (the Hessian of a stable SCF is
-        positive definite), in the space orthogonal to the constraints'
-        gradients (an orientation constraint: orientation_constraints). A Hessian with a (near-)zero mode, such as the
-        rotation of a degenerate open shell's unpaired orbital about the axis
-        of a linear molecule (OH, 2Pi), stalls them; then the system is solved
-        again with the Hessian shifted by SINGULAR_SHIFT, which leaves the
-        other modes' share of x changed by a relative SINGULAR_SHIFT / their
-        eigenvalue (~1e-4 for eigenvalues ~ the orbital-energy gaps).
-        """
-        from scipy.sparse.linalg import LinearOperator, cg
+#: Smallest preconditioner entry (Eh) of the restricted open-shell Hessian: its
+#: diagonal is built from the alpha and beta Fock matrices, not from the
+#: orbital energies of the Roothaan matrix the orbitals diagonalise, and need
+#: not be positive far from convergence; the floor keeps the preconditioner
+#: positive definite. Below every entry measured (smallest at OH's points:
+#: 0.67 Eh at ROHF, 0.024 Eh at ROKS/PBE, the pair of the two pi orbitals).
+MIN_PRECONDITIONER = 1e-3
 
-        rhs = self.project(rhs)
-        norm = np.linalg.norm(rhs)
-        if norm == 0.0:
-            return np.zeros_like(rhs)
-        n = sum(self.sizes)
-        b = rhs / norm
-        residual = np.inf
-        project = self.project
-        for sigma in (0.0, SINGULAR_SHIFT):
-            operator = LinearOperator(
-                (n, n), matvec=lambda v, s=sigma: project(self.matvec(project(v))) + s * v,
-                dtype=float)
-            precondition = LinearOperator(
-                (n, n), matvec=lambda v, s=sigma: project(project(v) / (self.diagonal + s)),
-                dtype=float)
-            x, info = cg(operator, b, rtol=rtol, atol=0.0, M=precondition,
-                         maxiter=CG_MAX_ITERATIONS)
-            residual = np.linalg.norm(operator.matvec(x) - b)
-            if info == 0 and residual <= 10 * rtol:
-                return x * norm
-        raise ScfNotConvergedError(f"{what} did not converge (residual {residual:.1e}); "
-                                   "the SCF may be unstable")
 
-    def density_trace(self, rmo, x) -> float:
-        """-tr(r dD) for the rotation x: the dipole change it causes (one component)."""
-        return float(-2.0 * self.weight * (rmo @ x))
+class _RestrictedOpenHessian(_HessianSolver):
+    """The exact orbital Hessian of a restricted open shell (ROHF, ROKS).
+
+    One set of orbitals C carries the alpha density (doubly and singly occupied
+    orbitals, occupations n^a) and the beta one (doubly occupied, n^b). Turning
+    them by exp(K), K antisymmetric with the non-redundant pairs of _pairs
+    (open-core, virtual-core, virtual-open), gives to second order
+
+        E(K) = E + sum_s tr(F^s [K, n^s]) + 1/2 sum_s tr(F^s [K, [K, n^s]])
+                 + 1/2 sum_s tr(dD^s V^s(dD)),   dD^s = [K, n^s]
+
+    (MO basis; F^s the spin Fock matrices, V PySCF's UHF response function,
+    which ROHF and ROKS share). Its gradient over the pairs is twice PySCF's
+    ROHF gradient; the operator here is half its Hessian, so that H x = -g
+    with PySCF's g is the Newton step. The Fock terms are kept whole (the
+    orbital energies of the Roothaan matrix do not give them), so the Hessian
+    is exact at any orbitals, converged or not: 7e-8 relative from central
+    differences of PySCF's ROHF gradient for OH (PySCF's own second-order
+    solver's ROHF Hessian, which drops some of them, differed by 2.5e-4).
+    """
+
+    weight = 1.0
+
+    def __init__(self, mf, response=None, constraints=(), fock=None):
+        self.c, self.occ = np.asarray(mf.mo_coeff), np.asarray(mf.mo_occ)
+        self.pairs = _pairs(self.occ)
+        self.spins = _spin_occupations(self.occ)
+        if fock is None:
+            fock = mf.get_fock()
+        self.fock_mo = [self.c.T @ f @ self.c for f in (fock.focka, fock.fockb)]
+        diagonal = sum((n[None, :] - n[:, None]) * (np.diag(f)[:, None] - np.diag(f)[None, :])
+                       for n, f in zip(self.spins, self.fock_mo))
+        self.diagonal = np.maximum(diagonal[self.pairs], MIN_PRECONDITIONER)
+        self._mf = mf
+        self.products = 0
+        if response is not None:
+            self.__dict__["response"] = response
+        self._constrain(constraints)
+
+    @functools.cached_property
+    def response(self):
+        """PySCF's response function of the alpha and beta densities (for ROKS
+        the exchange-correlation kernel at this one's)."""
+        return response_function(self._mf)
+
+    def matvec(self, x):
+        self.products += 1
+        k = np.zeros(self.pairs.shape)
+        k[self.pairs] = np.asarray(x).ravel()
+        k = k - k.T
+        out = np.zeros_like(k)
+        dms = []
+        for n, f in zip(self.spins, self.fock_mo):
+            first = k * (n[None, :] - n[:, None])  # [K, n]
+            fk = f @ k - k @ f  # [F, K]
+            # The derivative of 1/2 tr(F [K, [K, n]]) along a pair:
+            # M = 1/2 ([[K, n], F] + [n, [F, K]]), entry (p, q) gets M_qp - M_pq.
+            m = 0.5 * (first @ f - f @ first + n[:, None] * fk - fk * n[None, :])
+            out += m.T - m
+            dms.append(self.c @ first @ self.c.T)
+        for n, v in zip(self.spins, self.response(np.array(dms))):
+            g = (n[:, None] - n[None, :]) * (self.c.T @ v @ self.c)  # [n, V]
+            out += g.T - g
+        return 0.5 * out[self.pairs]
+
+    def vo(self, matrices) -> np.ndarray:
+        """A perturbation's (or Fock matrix's) gradient over the pairs: AO
+        matrices for alpha and beta, or one for both (_restricted_open_layout)."""
+        return _restricted_open_layout(self.c, self.occ, matrices)
+
+
+def _orbital_hessian(mf, response=None, constraints=(), fock=None) -> _HessianSolver:
+    """The orbital Hessian of a converged (or nearly converged) mean field:
+    _RestrictedOpenHessian for ROHF and ROKS (``fock``: its Roothaan Fock
+    matrix at these orbitals when at hand, else built), _OrbitalHessian for the
+    others."""
+    if not _has_hessian(mf):
+        raise TypeError(f"no orbital Hessian for {type(mf).__name__}")
+    if _restricted_open(mf.mo_occ):
+        return _RestrictedOpenHessian(mf, response, constraints, fock)
+    return _OrbitalHessian(mf, response, constraints)
 
 
 def response_function(mf):
     """PySCF's density-response function of a converged RHF, UHF, RKS or UKS
-    object (J, K and the exchange-correlation kernel at its density); None for
+    object (J, K and the exchange-correlation kernel at its density); for ROHF
+    and ROKS the unrestricted one of its alpha and beta densities; None for
     one electron, which has no electron-electron terms."""
     if mf.mol.nelectron == 1:
         return None
+    if _restricted_open(mf.mo_occ):
+        c = np.asarray(mf.mo_coeff)
+        return mf.gen_response(mo_coeff=(c, c), mo_occ=tuple(_spin_occupations(mf.mo_occ)),
+                               hermi=1)
     return (mf.gen_response(hermi=1) if np.asarray(mf.mo_occ).ndim == 2
             else mf.gen_response(singlet=None, hermi=1))
 
@@ -1173,16 +1409,17 @@ def response_function(mf):
 def analytic_polarizability(mf, r, constraints=()) -> np.ndarray:
     """Static alpha_ij = d mu_i / dF_j (au) from the coupled-perturbed equations.
 
-    For a converged RHF, UHF, RKS or UKS object ``mf`` and dipole integrals ``r``
+    For a converged mean-field object ``mf`` and dipole integrals ``r``
     (3, nao, nao) about the job's origin. The perturbation +F_j r_j enters the
     one-electron Hamiltonian; the first-order orbital rotations x_ai solve the
     symmetric positive definite system (A + B) x = -r_ai (:class:`_OrbitalHessian`,
     stable real SCF), by preconditioned conjugate gradients to CPHF_RTOL; then
     alpha_ij = -n sum_ai r_i,ai x^(j)_ai with n = 4 for closed shells (two
-    electrons per orbital, dD = 2(x + x^T)) and n = 2 per spin otherwise. With
-    orientation ``constraints`` the rotations keep the orientation.
+    electrons per orbital, dD = 2(x + x^T)) and n = 2 per spin otherwise (a
+    restricted open shell: _RestrictedOpenHessian, n = 2). With orientation
+    ``constraints`` the rotations keep the orientation.
     """
-    hessian = _OrbitalHessian(mf, constraints=constraints)
+    hessian = _orbital_hessian(mf, constraints=constraints)
     rmo = np.array([hessian.vo(r[j]) for j in range(3)])
     alpha = np.zeros((3, 3))
     for j in range(3):
@@ -1203,7 +1440,7 @@ def diagonal_dipole_step(mf, r, fock, constraints=()) -> np.ndarray:
     Enough for closed shells (0.5-0.65 of the true error for water, measured);
     small gaps amplify the error well beyond |g|, which this follows.
     """
-    hessian = _OrbitalHessian(mf, constraints=constraints)
+    hessian = _orbital_hessian(mf, constraints=constraints, fock=fock)
     x = hessian.project(-hessian.project(hessian.vo(fock)) / hessian.diagonal)
     return np.array([hessian.density_trace(hessian.vo(r[i]), x) for i in range(3)])
 
@@ -1221,9 +1458,9 @@ def newton_dipole_step(mf, r, fock=None, constraints=(), response=None) -> np.nd
     error on the dipole route for open shells; it does not add the step (the
     error bars of a corrected dipole could not be made as sharp as it is accurate).
     """
-    hessian = _OrbitalHessian(mf, response=response, constraints=constraints)
     if fock is None:
         fock = mf.get_fock()
+    hessian = _orbital_hessian(mf, response, constraints, fock)
     f_vo = hessian.vo(fock)
     x = hessian.solve(-f_vo, NEWTON_RTOL, "Newton step of the dipole")
     return np.array([hessian.density_trace(hessian.vo(r[i]), x) for i in range(3)])
@@ -1256,14 +1493,14 @@ def compute_reference(context: ModelContext,
     if _has_hessian(mf):
         # The start needs the rotations to a small fraction of a first-order
         # term only: the Newton steps' (coarse-grid) response serves.
-        hessian = _OrbitalHessian(mf, response=context.response,
-                                  constraints=context.constraints)
+        hessian = _orbital_hessian(mf, context.response, context.constraints)
         rotations = np.array([hessian.solve(-hessian.vo(context.r[j]), START_RTOL,
                                             "zero-field response") for j in range(3)])
         work = hessian.products
         reference = dataclasses.replace(reference, field_rotations=rotations)
         context.reference = reference  # the same orbitals: the response stays valid
-    record = dataclasses.replace(record, scf_cycles=record.scf_cycles + work)
+    record = dataclasses.replace(record, scf_cycles=record.scf_cycles + work,
+                                 orientation=orientation_record(context, mf))
     return record, reference
 
 
@@ -1340,7 +1577,7 @@ def _evaluate(context: ModelContext, task: PointTask):
     gradient = _gradient_norm(mf, fock, constraints)
     dipole_error = 0.0
     if want.dipole:
-        dipole_error = _dipole_error(mf, r, fock, gradient, want.newton_dipole_error,
+        dipole_error = _dipole_error(mf, r, fock, want.newton_dipole_error,
                                      constraints, context.response)
     alpha = None
     if want.alpha:
@@ -1771,7 +2008,7 @@ def compute_relaxed_point(context: ModelContext, task: PointTask) -> PointRecord
     dipole = tuple(float(v) for v in relaxed.evaluation.dipole_au) if want.dipole else None
     dipole_error = 0.0
     if want.dipole:
-        dipole_error = _dipole_error(mf, r, mf.get_fock(), g, want.newton_dipole_error)
+        dipole_error = _dipole_error(mf, r, mf.get_fock(), want.newton_dipole_error)
     document = relaxed.document()
     document["gradients"] = evaluate.gradients
     return PointRecord(point, float(relaxed.evaluation.energy_au), float(mf.e_tot), dipole,

@@ -33,9 +33,10 @@ from fieldprop.keys import (Quantities, backend_version_conflict, model_document
 from fieldprop.methods import METHODS, Route
 from fieldprop.molecule import MoleculeSpec, build_molecule
 from fieldprop.plan import FieldPlan, plan_fields, stencil_estimate
-from fieldprop.records import CPHF_RTOL, PointRecord, PointTask
+from fieldprop.records import CPHF_RTOL, Orientation, PointRecord, PointTask
 from fieldprop.symmetry import FRAME_ERROR
-from fieldprop.tensors import Invariant, TensorResult, assemble, invariants, turn_tensors
+from fieldprop.tensors import (Invariant, RotationalAverage, TensorResult, assemble, invariants,
+                               rotational_average, turn_tensors)
 
 if TYPE_CHECKING:
     from fieldprop.symmetry import Symmetry
@@ -300,6 +301,10 @@ class RunResult:
     near_symmetry: "NearSymmetry | None" = None
     #: As ``Prepared.tightening``: the computed points with tighter convergence.
     tightening: dict | None = None
+    #: A degenerate open shell: the orientation of its determinant (the zero-field
+    #: record's) and each tensor's rotational average beside it ({} otherwise).
+    orientation: Orientation | None = None
+    averages: dict[str, RotationalAverage] = dataclasses.field(default_factory=dict)
 
     @property
     def energy_au(self) -> float:
@@ -1140,6 +1145,10 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
     tensors = assemble(plan.components, estimates)
     if plan.frame is not None:  # back into the input frame, where every name points
         tensors = turn_tensors(tensors, plan.frame, sym.forced_zero, FRAME_ERROR)
+    orientation = records[0].orientation
+    averages = {} if orientation is None else {
+        name: rotational_average(t, orientation.average, orientation.axes, orientation.labels)
+        for name, t in tensors.items()}
     warnings = departure_warnings(job, plan, smooth) + window_warnings(job, plan, tensors)
     if sym is not None and job.response.symmetry == SYMMETRISE and not sym.exact:
         warnings = (f"{job.path}: [response] symmetry = \"{SYMMETRISE}\": the nuclei were "
@@ -1161,7 +1170,8 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
                      counts, store_label,
                      tuple(sorted({(source[i], k) for i, k in missing.items()})),
                      prepared.symmetry, prepared.images, prepared.windows, prepared.active,
-                     near_symmetry=prepared.near_symmetry, tightening=prepared.tightening)
+                     near_symmetry=prepared.near_symmetry, tightening=prepared.tightening,
+                     orientation=orientation, averages=averages)
 
 
 def gather(job: Job, store=None, lines=None, route: Route | str | None = None,

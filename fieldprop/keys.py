@@ -51,7 +51,7 @@ from dataclasses import dataclass
 #: Bumped whenever the backend's numbers change for the same inputs (a new field
 #: term, another SCF finish, another state check): stored points of an older
 #: numerics version are then not reused.
-NUMERICS_VERSION = 3
+NUMERICS_VERSION = 4
 
 #: The backend facts that name the backend's version and their names for
 #: people: PySCF's, and libxc's (whose functionals a DFT model evaluates;

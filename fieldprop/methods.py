@@ -42,9 +42,10 @@ class MethodTraits:
 
     ``mean_field``: the method's energy is the SCF energy itself (variational in
     the orbitals: its error is ~g^2 in the orbital gradient g; post-SCF energies
-    err by ~g). ``routes``: the routes available. ``alpha_open_shell_restricted``:
-    whether the alpha route works for a restricted open shell (ROHF/ROKS have no
-    real orbital Hessian in fieldprop). ``restricted_open_shell``: whether the
+    err by ~g). ``routes``: the routes available (the alpha route not for a
+    restricted open shell: alpha_route_for; ROHF/ROKS have an orbital Hessian
+    in fieldprop for their Newton steps, but no analytic alpha is offered for
+    them). ``restricted_open_shell``: whether the
     method runs on a restricted open-shell reference at all. ``amplitude_solver``:
     a coupled-cluster solver, whose amplitude tolerance adds to the energy noise.
     ``nuclear_gradient``: nuclear relaxation in a field is available.

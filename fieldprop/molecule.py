@@ -106,6 +106,30 @@ class MoleculeSpec:
             return centre, np.zeros((0, 3))
         return centre, axis[None, :]
 
+    def orientation_frame(self) -> np.ndarray | None:
+        """The frame (rows: unit vectors in the input frame, right-handed) to
+        which a degenerate open shell's unpaired density is turned: for a
+        linear molecule (u, v, n), n its axis (rotation_axes), u the Cartesian
+        axis most perpendicular to n projected onto the plane normal to it,
+        v = n x u; for an atom x, y, z. None for anything else.
+
+        >>> from fieldprop.job import Atom, MoleculeInput
+        >>> m = MoleculeInput((Atom("O", (0.0, 0.0, 0.0)), Atom("H", (0.0, 0.0, 1.8))), 0, 2,
+        ...                   "bohr", "inline")
+        >>> build_molecule(m, "zero").orientation_frame().round(12).tolist()
+        [[1.0, 0.0, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]]
+        """
+        _, axes = self.rotation_axes()
+        if len(axes) == 3:
+            return np.eye(3)
+        if len(axes) != 1:
+            return None
+        n = axes[0]
+        u = np.eye(3)[int(np.argmin(np.abs(n)))]
+        u = u - (u @ n) * n
+        u /= np.linalg.norm(u)
+        return np.array([u, np.cross(n, u), n])
+
 
 def centre_of_nuclear_charge(charges, coords_bohr) -> tuple[float, float, float]:
     """sum_A Z_A R_A / sum_A Z_A in bohr."""

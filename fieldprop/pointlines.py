@@ -29,6 +29,7 @@ from typing import Iterable, TextIO
 
 from fieldprop.errors import InputError
 from fieldprop.keys import backend_version_conflict, point_key, short_id
+from fieldprop.records import Orientation
 from fieldprop.store import StoredPoint
 
 #: The kind mark of a point line.
@@ -38,7 +39,8 @@ _RECORD = {"energy_au": float, "scf_energy_au": float, "scf_cycles": int, "attem
            "s2": float, "occupied_overlap": float, "gradient_norm": float}
 _OPTIONAL = {"dipole_au": list, "alpha_au": list, "dipole_error_au": float, "state_issue": str,
              "energy_scale_au": float, "relaxation": dict,
-             "correlation_energy_change_au": float, "amplitude_change": float}
+             "correlation_energy_change_au": float, "amplitude_change": float,
+             "orientation": dict}
 _KIND_NAMES = {list: "list", str: "string", dict: "JSON object"}
 
 
@@ -61,6 +63,8 @@ def line_document(row: StoredPoint, field_vector_au, origin_bohr, quantities,
     for name in ("dipole_au", "alpha_au", "attempts"):
         if fields.get(name) is not None:
             fields[name] = json.loads(json.dumps(fields[name]))  # tuples -> lists
+    if fields.get("orientation") is not None:
+        fields["orientation"] = fields["orientation"].document()
     doc.update(fields)
     doc.update({"wall_time_s": row.wall_time_s, "host": row.host, "version": row.version,
                 "created_at": row.created_at})
@@ -109,6 +113,12 @@ def parse_line(text: str, source: str, number: int) -> dict:
                 raise InputError(f"{where}: {name} is missing or not a "
                                  f"{_KIND_NAMES.get(kind, 'number')}"
                                  " (a damaged point line)")
+        if doc.get("orientation") is not None:
+            try:
+                Orientation.from_document(doc["orientation"])
+            except ValueError:
+                raise InputError(f"{where}: orientation is not an orientation document (a "
+                                 "damaged point line)") from None
     elif not isinstance(doc.get("reason"), str):
         raise InputError(f"{where}: a failed point without its reason (a damaged point line)")
     return doc
@@ -132,6 +142,8 @@ def stored_point(doc: dict) -> StoredPoint:
             "relaxation": doc.get("relaxation"),
             **{name: None if doc.get(name) is None else float(doc[name])
                for name in ("correlation_energy_change_au", "amplitude_change")},
+            "orientation": (None if doc.get("orientation") is None
+                            else Orientation.from_document(doc["orientation"])),
         }
     else:
         fields = {"reason": doc["reason"], "kind": doc.get("kind") or "FieldpropError"}

@@ -44,7 +44,7 @@ ONE_ELECTRON = "one_electron"
 
 #: The SCF strategies a point takes when nothing goes wrong: a field point's
 #: start and Newton steps; zero field's DIIS (and turn) and Newton steps; DIIS
-#: alone ([scf] solver = "diis", restricted open shells, a relaxed structure);
+#: alone ([scf] solver = "diis", a relaxed structure);
 #: one electron: exact. Anything else went down PySCF's ladder (a retry).
 PRIMARY_PATHS = frozenset({(start, NEWTON) for start in FIELD_STARTS}
                           | {(DIIS, NEWTON), (DIIS, ORIENTATION, NEWTON), (DIIS,),
@@ -82,7 +82,7 @@ class ZeroFieldReference:
     ``field_rotations`` (3, n) their linear response to a field along x, y, z:
     the occupied-virtual rotations kappa = -(A + B)^-1 r_vo (CPHF/CPKS), in the
     block order of the backend's orbital Hessian; empty where there is none
-    (restricted open shells, one electron). A point at field F starts from the
+    (one electron). A point at field F starts from the
     zero-field orbitals rotated by sum_j F_j kappa_j: exact to first order in F.
     """
 
@@ -93,6 +93,64 @@ class ZeroFieldReference:
     mo_coeff: np.ndarray | None = None
     mo_occ: np.ndarray | None = None
     field_rotations: np.ndarray | None = None
+
+
+@dataclass(frozen=True)
+class Orientation:
+    """The orientation of a degenerate open shell's zero-field determinant (an
+    atom, or a linear molecule, whose unpaired density breaks its rotational
+    symmetry), which the backend turned it to and every field point keeps.
+
+    ``kind``: "linear" or "atom". ``axes``: rows, unit vectors in the input
+    frame (MoleculeSpec.orientation_frame): linear (u, v, n), the unpaired
+    density along u, n the molecular axis; atom (x, y, z), the unpaired
+    density's principal axes, largest second moment first.
+    ``unpaired_second_moments_bohr2``: the unpaired (alpha minus beta)
+    density's second moments along those axes about ``centre_bohr`` (the
+    atom's nucleus, or the first atom on the axis), in e bohr^2.
+
+    >>> o = Orientation("linear", ((1.0, 0.0, 0.0), (0.0, 1.0, 0.0), (0.0, 0.0, 1.0)),
+    ...                 (2.1, 0.6, 0.7), (0.0, 0.0, 0.0))
+    >>> o.labels, o.average, Orientation.from_document(o.document()) == o
+    (('u', 'v', 'n'), 'cylindrical', True)
+    """
+
+    kind: str
+    axes: tuple[tuple[float, float, float], ...]
+    unpaired_second_moments_bohr2: tuple[float, float, float]
+    centre_bohr: tuple[float, float, float]
+
+    @property
+    def labels(self) -> tuple[str, str, str]:
+        """The names of ``axes`` in tables and component names."""
+        return ("u", "v", "n") if self.kind == "linear" else ("x", "y", "z")
+
+    @property
+    def average(self) -> str:
+        """What a freely turning molecule shows: the average over turns about
+        the axis ("cylindrical") or over all turns ("spherical", an atom)."""
+        return "cylindrical" if self.kind == "linear" else "spherical"
+
+    def document(self) -> dict:
+        """As stored (JSON)."""
+        return {"kind": self.kind, "axes": [list(a) for a in self.axes],
+                "unpaired_second_moments_bohr2": list(self.unpaired_second_moments_bohr2),
+                "centre_bohr": list(self.centre_bohr)}
+
+    @classmethod
+    def from_document(cls, doc: dict) -> "Orientation":
+        """The inverse of :meth:`document`; ValueError for anything else."""
+        try:
+            kind = doc["kind"]
+            axes = tuple(tuple(float(v) for v in row) for row in doc["axes"])
+            moments = tuple(float(v) for v in doc["unpaired_second_moments_bohr2"])
+            centre = tuple(float(v) for v in doc["centre_bohr"])
+        except (KeyError, TypeError, ValueError):
+            raise ValueError("not an orientation document") from None
+        if kind not in ("linear", "atom") or len(axes) != 3 or any(len(a) != 3 for a in axes) \
+                or len(moments) != 3 or len(centre) != 3:
+            raise ValueError("not an orientation document")
+        return cls(kind, axes, moments, centre)
 
 
 @dataclass(frozen=True, eq=False)
@@ -191,6 +249,9 @@ class PointRecord:
     #: stored before they were recorded.
     correlation_energy_change_au: float | None = None
     amplitude_change: float | None = None
+    #: Zero field of a degenerate open shell: the orientation its determinant
+    #: was turned to, which every point keeps (None otherwise).
+    orientation: Orientation | None = None
 
     @property
     def retried(self) -> bool:

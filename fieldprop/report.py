@@ -161,6 +161,43 @@ def symmetry_note(result: RunResult) -> str:
     return ""
 
 
+def _vector_text(v) -> str:
+    return "(" + ", ".join(f"{x:.6f}" for x in v) + ")"
+
+
+def orientation_note(o) -> str:
+    """What a degenerate open shell's tensors are (records.Orientation ``o``):
+    the orientation chosen, in the input frame, and what its average means."""
+    m = o.unpaired_second_moments_bohr2
+    moments = ", ".join(f"{name} {value:.6f}" for name, value in zip(o.labels, m))
+    if o.kind == "linear":
+        u, v, n = o.axes
+        where = (f"its unpaired density lies along u = {_vector_text(u)}, perpendicular to the "
+                 f"molecular axis n = {_vector_text(n)} (v = n x u = {_vector_text(v)}; the "
+                 f"unpaired density's second moments along u, v, n: {moments} e bohr^2)")
+        turns, average = "about n", "a molecule turning freely about its axis"
+    else:
+        where = ("its unpaired density's principal axes lie along x, y, z, the largest second "
+                 f"moment first ({moments} e bohr^2)")
+        turns, average = "of the atom", "a freely turning atom"
+    return (f"degenerate open shell ({o.kind}): {where}. Every turn {turns} gives an equally "
+            "good determinant; fieldprop turned the zero-field one to this orientation and "
+            "every field point keeps it, so the tensors are this determinant's (as an "
+            f"analytic response of it gives them), not an average; {average} shows their "
+            f"{o.average} average, given beside each tensor")
+
+
+def _average_rows(average, factor: float) -> list[list[str]]:
+    """A tensor's components in the orientation frame and their average."""
+    rows = []
+    for c in average.in_frame:
+        pairs = [format_pair(None if v is None else v * factor,
+                             None if e is None else e * factor)
+                 for v, e in ((c.value_au, c.error_au), (c.average_au, c.average_error_au))]
+        rows.append([c.name, *pairs[0], *pairs[1]])
+    return rows
+
+
 def _write_geometry(job, out: TextIO) -> None:
     """The structure used, in the job's units, and its shortest distance."""
     mol = job.molecule
@@ -236,7 +273,10 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
               "angstrom^3)", "si": "tensors in SI units"}[units]
     out.write(f"  {system}, Taylor convention E = E0 - mu F - alpha F^2/2 - beta F^3/6 - "
               "gamma F^4/24; error bars are estimates (Richardson table spread plus round-off "
-              "floor), not bounds\n\n")
+              "floor), not bounds\n")
+    if result.orientation is not None:
+        out.write(f"  {orientation_note(result.orientation)}\n")
+    out.write("\n")
     for name, tensor in result.tensors.items():
         label, factor = TABLE_UNITS[units][name]
         rows = []
@@ -252,6 +292,14 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
                                           "status"], disable_numparse=True) + "\n")
         if name == "dipole" and result.molecule.charge != 0:
             out.write(f"  {_origin_note(result)}\n")
+        if name in result.averages:
+            o = result.orientation
+            about = "about n" if o.kind == "linear" else "over all turns"
+            out.write(f"\n{name} in the orientation frame ({', '.join(o.labels)}) and its "
+                      f"{o.average} average {about} ({label})\n")
+            out.write(tabulate(_average_rows(result.averages[name], factor),
+                               headers=["component", "value", "+- error", f"{o.average} average",
+                                        "+- error"], disable_numparse=True) + "\n")
         out.write("\n")
     rows = []
     for inv in result.invariants:
@@ -361,10 +409,34 @@ def _finite(x: float) -> float | None:
     return float(x) if math.isfinite(x) else None
 
 
-def _tensors_document(result: RunResult, tensors_in: dict, tables: bool = True) -> dict:
+def _average_document(average, orientation) -> dict:
+    """A tensor's ``rotational_average`` in the result JSON."""
+    doc = {
+        "kind": average.kind,
+        "axis": list(orientation.axes[2]) if average.kind == "cylindrical" else None,
+        "value": _nested(average.value_au, average.stable),
+        "error": _nested(average.error_au, average.stable),
+        "in_orientation_frame": [{
+            "name": c.name, "indices": list(c.indices), "value": c.value_au,
+            "error": c.error_au, "average": c.average_au, "average_error": c.average_error_au,
+        } for c in average.in_frame],
+    }
+    if average.name == "alpha":
+        named = {c.indices: c for c in average.in_frame}
+        wanted = ({"perpendicular": (0, 0), "parallel": (2, 2)}
+                  if average.kind == "cylindrical" else {"isotropic": (0, 0)})
+        for key, idx in wanted.items():
+            c = named[idx]
+            doc[key] = {"value": c.average_au, "error": c.average_error_au}
+    return doc
+
+
+def _tensors_document(result: RunResult, tensors_in: dict, tables: bool = True,
+                      averages: dict | None = None) -> dict:
     """The ``tensors`` layout of the result JSON for ``tensors_in`` (without
     Richardson entries and tables when ``tables`` is False: a difference of
-    two tensors has none of its own)."""
+    two tensors has none of its own), with their rotational ``averages``
+    (a degenerate open shell)."""
     tensors = {}
     for name, t in tensors_in.items():
         status = np.empty(t.value_au.shape, dtype=object)
@@ -395,6 +467,9 @@ def _tensors_document(result: RunResult, tensors_in: dict, tables: bool = True) 
                                          for col in c.estimate.table]}),
             } for c in t.components],
         }
+        if averages and name in averages:
+            tensors[name]["rotational_average"] = _average_document(averages[name],
+                                                                    result.orientation)
     return tensors
 
 
@@ -444,7 +519,7 @@ def _relaxation_document(part) -> dict:
 
 def result_document(result: RunResult) -> dict[str, Any]:
     """The result JSON of the contract (schema fieldprop-result-1), with extensions."""
-    tensors = _tensors_document(result, result.tensors)
+    tensors = _tensors_document(result, result.tensors, averages=result.averages)
     invariants = _invariants_document(result.invariants)
     plan = result.plan
     document = {
@@ -460,12 +535,22 @@ def result_document(result: RunResult) -> dict[str, Any]:
         "energy_au": result.energy_au,
         "tensors": tensors,
         "invariants": invariants,
+        "orientation": None if result.orientation is None else {
+            "kind": result.orientation.kind,
+            "axes": dict(zip(result.orientation.labels,
+                             (list(a) for a in result.orientation.axes))),
+            "unpaired_second_moments_bohr2": dict(zip(
+                result.orientation.labels, result.orientation.unpaired_second_moments_bohr2)),
+            "centre_bohr": list(result.orientation.centre_bohr),
+            "average": result.orientation.average,
+            "note": orientation_note(result.orientation)},
     }
     if result.relaxation is not None:
         part = result.relaxation
         document["tensors_nuclear_relaxation"] = _tensors_document(result, part.nuclear,
                                                                    tables=False)
-        document["tensors_total"] = _tensors_document(part.total, part.total.tensors)
+        document["tensors_total"] = _tensors_document(part.total, part.total.tensors,
+                                                      averages=part.total.averages)
         document["invariants_total"] = _invariants_document(part.total.invariants)
         document["nuclear_relaxation"] = _relaxation_document(part)
     return document | {

@@ -21,12 +21,14 @@ transaction per finished point:
 - ``points(point_key, model_key, field_vector_au, origin_bohr, quantities,
   status, energy_au, scf_energy_au, dipole_au, alpha_au, scf_cycles, attempts,
   s2, occupied_overlap, gradient_norm, dipole_error_au, state_issue,
-  energy_scale_au, relaxation, correlation_energy_change_au, amplitude_change,
-  failure, failure_kind, wall_time_s, host, version, created_at, tolerances)``:
-  ``status`` is ``ok`` or ``failed``; ``relaxation`` holds a relaxed point's
-  structure and the optimiser's remaining errors; ``tolerances`` a tightened
-  point's convergence targets (part of its key; NULL: the model's own);
-  vectors, matrices and lists are JSON text (floats round-trip exactly);
+  energy_scale_au, relaxation, orientation, failure, failure_kind,
+  wall_time_s, host, version, created_at, correlation_energy_change_au,
+  amplitude_change, tolerances)``: ``status`` is ``ok`` or ``failed``;
+  ``relaxation`` holds a relaxed point's structure and the optimiser's
+  remaining errors, ``orientation`` the zero-field point's of a degenerate
+  open shell (records.Orientation), ``tolerances`` a tightened point's
+  convergence targets (part of its key; NULL: the model's own); vectors,
+  matrices, lists and documents are JSON text (floats round-trip exactly);
 - ``geometries(geometry_key, document, created_at, host, version)``: geometries
   optimised before a job's response (``[geometry] optimize``), keyed by the
   starting geometry, the optimisation's model and its criteria; ``document``
@@ -72,7 +74,8 @@ import numpy as np
 
 from fieldprop import __version__
 from fieldprop.errors import InputError
-from fieldprop.records import PointFailure, PointRecord, SymmetryOperation, ZeroFieldReference
+from fieldprop.records import (Orientation, PointFailure, PointRecord, SymmetryOperation,
+                               ZeroFieldReference)
 
 logger = logging.getLogger(__name__)
 
@@ -83,8 +86,9 @@ SCHEMA_VERSION = 6
 #: 2 -> 3 adds the todo_lists table; 3 -> 4 the geometries table; 4 -> 5
 #: points.relaxation (a relaxed point's structure and optimiser errors, JSON);
 #: 5 -> 6 the amplitude solver's convergence reached
-#: (points.correlation_energy_change_au, amplitude_change) and a tightened
-#: point's targets (points.tolerances).
+#: (points.correlation_energy_change_au, amplitude_change), a tightened
+#: point's targets (points.tolerances) and a degenerate open shell's
+#: orientation (points.orientation, JSON).
 #: A store of an older schema opened
 #: read-only reads a missing column as NULL, and has no to-do lists.
 _TO_DO_LISTS_TABLE = ("CREATE TABLE todo_lists (list_key TEXT PRIMARY KEY, point_keys TEXT NOT NULL, "
@@ -102,6 +106,7 @@ _MIGRATIONS = {
     5: ["ALTER TABLE points ADD COLUMN correlation_energy_change_au REAL",
         "ALTER TABLE points ADD COLUMN amplitude_change REAL",
         "ALTER TABLE points ADD COLUMN tolerances TEXT",
+        "ALTER TABLE points ADD COLUMN orientation TEXT",
         "UPDATE meta SET value = '6' WHERE name = 'schema'"],
 }
 #: Default store file name, in the job file's folder: jobs in one folder share it.
@@ -146,6 +151,7 @@ CREATE TABLE points (
     state_issue TEXT,
     energy_scale_au REAL,
     relaxation TEXT,
+    orientation TEXT,
     failure TEXT,
     failure_kind TEXT,
     wall_time_s REAL,
@@ -162,7 +168,7 @@ CREATE INDEX points_by_model ON points (model_key);
 _RECORD_COLUMNS = ("energy_au", "scf_energy_au", "dipole_au", "alpha_au", "scf_cycles",
                    "attempts", "s2", "occupied_overlap", "gradient_norm", "dipole_error_au",
                    "state_issue", "energy_scale_au", "relaxation",
-                   "correlation_energy_change_au", "amplitude_change")
+                   "correlation_energy_change_au", "amplitude_change", "orientation")
 _POINT_COLUMNS = ("point_key", "model_key", "field_vector_au", "origin_bohr", "quantities",
                   "status", *_RECORD_COLUMNS, "failure", "failure_kind", "wall_time_s", "host",
                   "version", "created_at", "tolerances")
@@ -510,6 +516,8 @@ class PointStore:
                                r.state_issue, r.energy_scale_au,
                                None if r.relaxation is None else json.dumps(r.relaxation),
                                r.correlation_energy_change_au, r.amplitude_change,
+                               None if r.orientation is None
+                               else json.dumps(r.orientation.document()),
                                None, None)
         tolerances = getattr(task, "tolerances", None)
         values += (outcome.wall_time_s, socket.gethostname(), __version__, _now(),
@@ -631,6 +639,8 @@ def _decoded_point(row) -> StoredPoint:
                            else json.loads(values["relaxation"])),
             "correlation_energy_change_au": values["correlation_energy_change_au"],
             "amplitude_change": values["amplitude_change"],
+            "orientation": (None if values["orientation"] is None
+                            else Orientation.from_document(json.loads(values["orientation"]))),
         }
     else:
         fields = {"reason": failure, "kind": kind}

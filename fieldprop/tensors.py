@@ -397,6 +397,126 @@ def invariants(tensors: dict[str, TensorResult]) -> list[Invariant]:
     return out
 
 
+#: Turns about the axis in the cylindrical average: an entry of a rank-r tensor
+#: turned by phi is a trigonometric polynomial of degree <= r in phi, whose mean
+#: over N equally spaced angles is its exact mean for N > r (ranks up to 7 here).
+CYLINDER_TURNS = 8
+
+
+def _turns(kind: str, axis=None) -> np.ndarray:
+    """The rotations (k, 3, 3) whose mean is the average of ``kind``:
+    "cylindrical" about ``axis`` (CYLINDER_TURNS equal turns), or "spherical":
+    the 60 rotations of the icosahedron, a group with no invariant tensors of
+    rank 1 to 5 beside those of all rotations, so their mean is the exact
+    spherical average of any tensor here (rank <= 4)."""
+    from scipy.spatial.transform import Rotation
+
+    if kind == "spherical":
+        return Rotation.create_group("I").as_matrix()
+    if kind != "cylindrical":
+        raise ValueError(f"no rotational average {kind!r}")
+    angles = 2.0 * np.pi * np.arange(CYLINDER_TURNS) / CYLINDER_TURNS
+    return Rotation.from_rotvec(np.outer(angles, np.asarray(axis, dtype=float))).as_matrix()
+
+
+@dataclass(frozen=True)
+class FrameComponent:
+    """One component in the orientation frame of a degenerate open shell:
+    ``value_au``/``error_au`` of the tensor turned into that frame, and
+    ``average_au``/``average_error_au`` of its rotational average there.
+    ``indices`` count the frame's axes (as a component plan counts x, y, z).
+    None: a component it draws on has no number."""
+
+    name: str
+    indices: tuple[int, ...]
+    value_au: float | None
+    error_au: float | None
+    average_au: float | None
+    average_error_au: float | None
+
+
+@dataclass(frozen=True)
+class RotationalAverage:
+    """A tensor averaged over the orientations its molecule takes when it turns
+    freely (``kind``: "cylindrical", about a linear molecule's axis, or
+    "spherical", an atom): arrays of shape (3,)*order in the input frame, with
+    ``stable`` False where a component it draws on has no number; and the
+    components in the orientation frame (``in_frame``)."""
+
+    name: str
+    kind: str
+    value_au: np.ndarray
+    error_au: np.ndarray
+    stable: np.ndarray
+    in_frame: tuple[FrameComponent, ...]
+
+
+def _linear_image(t: TensorResult, fn) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """fn(T) for a linear map ``fn`` of full tensors, as (value, error, stable):
+    T = sum_c v_c U_c over the components (U_c: 1 in the entries c fills), so
+    fn(T) = sum_c v_c fn(U_c) and its error bar sum_c err_c |fn(U_c)| (linear,
+    as for invariants: components share points). Coefficients below 1e-12 are
+    rounding of an exact zero (direction cosines of unit axes, exact averages),
+    and are made zero."""
+    value = np.zeros((3,) * t.order)
+    error = np.zeros_like(value)
+    unknown = np.zeros(value.shape, dtype=bool)
+    for c in t.components:
+        unit = np.zeros_like(value)
+        for e in c.entries:
+            unit[e] = 1.0
+        image = fn(unit)
+        image[np.abs(image) < 1e-12] = 0.0
+        if c.stable:
+            value += c.estimate.value_au * image
+            error += c.estimate.error_au * np.abs(image)
+        else:
+            unknown |= image != 0.0
+    value[unknown] = np.nan
+    error[unknown] = np.nan
+    return value, error, ~unknown
+
+
+def rotational_average(t: TensorResult, kind: str, frame, labels) -> RotationalAverage:
+    """``t`` averaged over turns about the last axis of ``frame`` ("cylindrical")
+    or over all turns ("spherical"), and both in ``frame``.
+
+    ``frame`` (rows: unit vectors in the input frame) is the orientation frame
+    of a degenerate open shell, ``labels`` its axes' names (component names:
+    the plan's indices relabelled). The averages are exact (_turns) and linear
+    in the components, whose error bars they carry linearly.
+
+    >>> from fieldprop.extrapolate import ComponentEstimate, ComponentStatus
+    >>> from fieldprop.methods import Route
+    >>> from fieldprop.plan import ComponentPlan
+    >>> plans = [ComponentPlan("alpha", (i, i), Route.ENERGY, (), d, -1.0, ())
+    ...          for i, d in enumerate(((2, 0, 0), (0, 2, 0), (0, 0, 2)))]
+    >>> ests = [ComponentEstimate(v, 0.01, (0, 1), ComponentStatus.OK, 0.0, ())
+    ...         for v in (2.0, 1.0, 4.0)]
+    >>> avg = rotational_average(assemble(plans, ests)["alpha"], "cylindrical", np.eye(3),
+    ...                          ("u", "v", "n"))
+    >>> [(c.name, round(c.average_au, 12), round(c.average_error_au, 12)) for c in avg.in_frame]
+    [('alpha_uu', 1.5, 0.01), ('alpha_vv', 1.5, 0.01), ('alpha_nn', 4.0, 0.01)]
+    """
+    q = np.asarray(frame, dtype=float)
+    turns = _turns(kind, q[2])
+
+    def average(x):
+        return sum(_turn(x, r) for r in turns) / len(turns)
+
+    value, error, stable = _linear_image(t, average)
+    in_frame = _linear_image(t, lambda x: _turn(x, q))
+    averaged = _linear_image(t, lambda x: _turn(average(x), q))
+    rows = []
+    for c in t.components:
+        idx = c.plan.indices
+        pair = [(None, None) if not part[2][idx] else (float(part[0][idx]), float(part[1][idx]))
+                for part in (in_frame, averaged)]
+        rows.append(FrameComponent(f"{t.name}_{''.join(labels[i] for i in idx)}", idx,
+                                   *pair[0], *pair[1]))
+    return RotationalAverage(t.name, kind, value, error, stable, tuple(rows))
+
+
 def difference(total: dict[str, TensorResult],
                part: dict[str, TensorResult]) -> dict[str, TensorResult]:
     """``total`` minus ``part``, tensor by tensor and component by component

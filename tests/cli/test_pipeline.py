@@ -323,6 +323,70 @@ def test_bad_point_lines_are_refused_with_one_line(tmp_path):
     one_error_line(done, 2, "no to-do list", "plan lih.toml --count")
 
 
+#: The OH radical (X 2Pi) at ROHF on a tilted axis: a degenerate open shell,
+#: whose zero-field point carries the orientation of its determinant.
+RADICAL_JOB = textwrap.dedent("""
+    [molecule]
+    geometry = \"\"\"
+    O 0.2 -0.1 0.3
+    H 0.5233333333 0.5466666667 0.9466666667
+    \"\"\"
+    units = "angstrom"
+    multiplicity = 2
+    [model]
+    method = "hf"
+    basis = "6-31g"
+    reference = "restricted"
+    [response]
+    properties = ["dipole", "alpha"]
+    field_au = 0.001
+    levels = 2
+    """)
+
+
+def test_a_degenerate_open_shells_orientation_travels_with_its_zero_field_point(tmp_path):
+    """The orientation and the averages reach every result: run (tables and
+    JSON), collect from the store, collect from point lines alone; a point
+    line whose orientation is damaged is refused in one line."""
+    (tmp_path / "oh.toml").write_text(RADICAL_JOB)
+    done = fieldprop("run", "oh.toml", "--json", "run.json", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    assert "degenerate open shell (linear): its unpaired density lies along u" in done.stdout
+    assert "alpha in the orientation frame (u, v, n) and its cylindrical average" in done.stdout
+    run = json.loads((tmp_path / "run.json").read_text())
+    orientation = run["orientation"]
+    assert orientation["kind"] == "linear" and orientation["average"] == "cylindrical"
+    assert np.allclose(orientation["axes"]["n"], np.array([1.0, 2.0, 2.0]) / 3.0, atol=1e-8)
+    average = run["tensors"]["alpha"]["rotational_average"]
+    collected = fieldprop("collect", "oh.toml", "--json", "-", cwd=tmp_path)
+    assert collected.returncode == 0, collected.stderr
+    collected = json.loads(collected.stdout)
+    assert collected["orientation"] == orientation
+    assert collected["tensors"]["alpha"]["rotational_average"] == average
+
+    folder = tmp_path / "lines"
+    folder.mkdir()
+    (folder / "oh.toml").write_text(RADICAL_JOB)
+    ids = fieldprop("plan", "oh.toml", "--ids", cwd=folder).stdout
+    done = fieldprop("point", "oh.toml", "--id", "-", "--stdout", cwd=folder, stdin=ids)
+    assert done.returncode == 0, done.stderr
+    lines = done.stdout.splitlines()
+    zero = next(json.loads(x) for x in lines if not any(json.loads(x)["field_vector_au"]))
+    assert zero["orientation"]["kind"] == "linear"
+    assert all(json.loads(x).get("orientation") is None for x in lines
+               if any(json.loads(x)["field_vector_au"]))
+    done = fieldprop("collect", "oh.toml", "--points", "-", "--json", "-", cwd=folder,
+                     stdin=done.stdout)
+    assert done.returncode == 0, done.stderr
+    from_lines = json.loads(done.stdout)
+    assert from_lines["orientation"]["axes"] == orientation["axes"]
+    assert_same_result(from_lines, run, exact=False)
+    damaged = dict(zero, orientation={"kind": "planar"})
+    done = fieldprop("collect", "oh.toml", "--points", "-", cwd=folder,
+                     stdin=json.dumps(damaged) + "\n")
+    one_error_line(done, 2, "bad input", "stdin line 1", "orientation")
+
+
 def test_a_failed_point_gives_exit_1_and_collect_names_it(tmp_path, capsys, monkeypatch):
     """A point whose SCF never converges: point exits 1 naming it, the failure
     is stored, and collect exits 1 with the same reason."""

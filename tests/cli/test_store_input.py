@@ -479,7 +479,7 @@ def test_a_schema_1_store_is_read_as_it_is_and_migrated_when_written(tmp_path):
 
     path = tmp_path / "points.sqlite"
     old_schema = store_module._SCHEMA.replace("    energy_scale_au REAL,\n", "").replace(
-        "    relaxation TEXT,\n", "").replace(
+        "    relaxation TEXT,\n", "").replace("    orientation TEXT,\n", "").replace(
         ",\n    correlation_energy_change_au REAL,\n    amplitude_change REAL,\n"
         "    tolerances TEXT\n", "\n").replace(
         store_module._TO_DO_LISTS_TABLE + ";", "").replace(
@@ -487,6 +487,7 @@ def test_a_schema_1_store_is_read_as_it_is_and_migrated_when_written(tmp_path):
     assert "energy_scale_au" not in old_schema and "todo_lists" not in old_schema
     assert "geometries" not in old_schema and "relaxation" not in old_schema
     assert "tolerances" not in old_schema and "amplitude_change" not in old_schema
+    assert "orientation" not in old_schema
     with sqlite3.connect(path) as db:
         db.executescript(old_schema)
         db.executemany("INSERT INTO meta VALUES (?, ?)", [
@@ -506,6 +507,7 @@ def test_a_schema_1_store_is_read_as_it_is_and_migrated_when_written(tmp_path):
     assert row.fields["energy_au"] == -1.5 and row.fields["energy_scale_au"] == 0.0
     assert row.fields["relaxation"] is None  # a column schema 1 lacks reads as NULL
     assert row.fields["correlation_energy_change_au"] is None
+    assert row.fields["orientation"] is None
     assert path.read_bytes() == before and not journal_files(path)
     with PointStore.open(path) as store:
         row = store.get_points(["k1"])["k1"]
@@ -520,7 +522,8 @@ def test_a_schema_1_store_is_read_as_it_is_and_migrated_when_written(tmp_path):
     db.close()
     assert schema == str(store_module.SCHEMA_VERSION) == "6"
     assert "energy_scale_au" in columns and "relaxation" in columns
-    assert {"correlation_energy_change_au", "amplitude_change", "tolerances"} <= columns
+    assert {"correlation_energy_change_au", "amplitude_change", "tolerances",
+            "orientation"} <= columns
 
 
 def test_point_refuses_a_corrupt_store_without_the_full_check(tmp_path, request):

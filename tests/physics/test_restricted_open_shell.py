@@ -1,8 +1,8 @@
 """A restricted open shell through the field-point solver: the NH2 radical at
-ROHF (no orbital Hessian in fieldprop: PySCF's ladder, without the damping that
-fails for ROHF), against central differences of ROHF energies from PySCF with
-the field added to its core Hamiltonian in the test. (UHF and UKS radicals:
-test_scf_references and test_check.)
+ROHF (Newton steps with the restricted open-shell orbital Hessian), against
+central differences of ROHF energies from PySCF with the field added to its
+core Hamiltonian in the test. (UHF and UKS radicals: test_scf_references and
+test_check; a degenerate ROHF radical: test_degenerate_radical.)
 """
 
 import numpy as np
