@@ -392,12 +392,12 @@ def _check(rc: int, out: str, err: str, expected: list[str], job_path: Path,
 @pytest.fixture(autouse=True)
 def _no_scf(monkeypatch):
     """Bad input must be refused before any field point is computed."""
-    import fieldprop.execute
+    import fieldprop.backend_pyscf
 
     def tripwire(*args):
         raise AssertionError("a model context was built for an SCF")
 
-    monkeypatch.setattr(fieldprop.execute, "ModelContext", tripwire)
+    monkeypatch.setattr(fieldprop.backend_pyscf, "ModelContext", tripwire)
 
 
 # --------------------------------------------------------------------------- tests

@@ -8,6 +8,8 @@ import textwrap
 
 import pytest
 
+from cli_support import fieldprop  # noqa: E402
+
 JOB = textwrap.dedent("""
     [molecule]
     geometry = \"\"\"
@@ -23,9 +25,6 @@ JOB = textwrap.dedent("""
     """)
 
 
-def fieldprop(*args, cwd):
-    return subprocess.run([sys.executable, "-m", "fieldprop", *args], capture_output=True,
-                          text=True, cwd=cwd, timeout=600)
 
 
 def test_plan_json_lines_parse_and_match_the_run(tmp_path):

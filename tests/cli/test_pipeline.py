@@ -6,14 +6,14 @@ Every point is computed in its own process, as a job-array element or an
 
 import json
 import random
-import subprocess
-import sys
 import textwrap
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import pytest
 from scipy import constants
+
+from cli_support import fieldprop  # noqa: E402
 
 pytest.importorskip("pyscf")
 
@@ -38,9 +38,6 @@ JOB = textwrap.dedent("""
 SYMMETRIC_JOB = JOB.replace("symmetry = false", "symmetry = true")
 
 
-def fieldprop(*args, cwd, stdin=None):
-    return subprocess.run([sys.executable, "-m", "fieldprop", *args], capture_output=True,
-                          text=True, cwd=cwd, timeout=600, input=stdin)
 
 
 def one_error_line(proc, code, *words):

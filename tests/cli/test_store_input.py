@@ -21,10 +21,11 @@ import random
 import re
 import sqlite3
 import subprocess
-import sys
 from pathlib import Path
 
 import pytest
+
+from cli_support import fieldprop as run_fieldprop  # noqa: E402
 
 H2_JOB = '''[molecule]
 geometry = """
@@ -52,10 +53,7 @@ needs_permissions = pytest.mark.skipif(IS_ROOT, reason="root ignores file permis
 
 
 def fieldprop(cwd: Path, *args: str) -> subprocess.CompletedProcess:
-    env = {k: v for k, v in os.environ.items() if not k.startswith("PYTHONWARNINGS")}
-    env["OMP_NUM_THREADS"] = "1"
-    return subprocess.run([sys.executable, "-m", "fieldprop", *args], cwd=cwd,
-                          capture_output=True, text=True, env=env, timeout=300)
+    return run_fieldprop(*args, cwd=cwd, timeout=300)
 
 
 def snapshot(root: Path) -> dict[str, bytes | None]:

@@ -16,6 +16,9 @@ import time
 
 import pytest
 
+from cli_support import environment as _env  # noqa: E402
+from cli_support import fieldprop  # noqa: E402
+
 pytest.importorskip("pyscf")
 
 #: Water in 6-31+G* (our geometry, as in the physics tests), mu to gamma on the
@@ -40,15 +43,6 @@ WATER = textwrap.dedent("""
 WATER_EVERY_POINT = WATER + "symmetry = false\n"
 
 
-def _env():
-    env = {k: v for k, v in os.environ.items() if not k.startswith("PYTHONWARNINGS")}
-    env["OMP_NUM_THREADS"] = "1"
-    return env
-
-
-def fieldprop(*args, cwd, **kwargs):
-    return subprocess.run([sys.executable, "-m", "fieldprop", *args], capture_output=True,
-                          text=True, cwd=cwd, env=_env(), timeout=600, **kwargs)
 
 
 def stored_points(path) -> int:
@@ -246,3 +240,33 @@ def test_the_analysis_of_stored_points_needs_no_pyscf_and_gives_the_same_json(tm
     # The tables too, but for the header's note that every point came from the store.
     assert collected.stdout.replace(f" ({planned} reused from fieldprop-points.sqlite)",
                                     "") == done.stdout
+
+
+def test_a_killed_worker_costs_its_point_one_more_try(tmp_path):
+    """A worker process killed while the run goes on (the out-of-memory
+    killer's way): one line names the point, it is computed again in a new
+    worker, and the run ends with the numbers of a run nobody disturbed, bit
+    for bit (the point is sent again with the same starting orbitals)."""
+    (tmp_path / "water.toml").write_text(WATER_EVERY_POINT)
+    store = tmp_path / "fieldprop-points.sqlite"
+    proc = subprocess.Popen([sys.executable, "-m", "fieldprop", "run", "water.toml",
+                             "--workers", "2", "--log-every", "1000"],
+                            cwd=tmp_path, env=_env(), stdout=subprocess.DEVNULL,
+                            stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 300
+    while stored_points(store) < 8 and proc.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.02)
+    workers = [p for p in processes_in(tmp_path) if p != proc.pid]
+    assert workers and proc.poll() is None, "the run ended before a worker could be killed"
+    os.kill(workers[0], signal.SIGKILL)
+    _, stderr = proc.communicate(timeout=600)
+    assert proc.returncode == 0, stderr
+    lost = [line for line in stderr.splitlines() if "worker process died" in line]
+    assert len(lost) >= 1 and "computed again" in lost[0]
+    assert "Traceback" not in stderr
+    doc = json.loads((tmp_path / "water.result.json").read_text())
+    fresh = fieldprop("run", "water.toml", "--no-store", "--json", "fresh.json", "--quiet",
+                      "--workers", "2", cwd=tmp_path)
+    assert fresh.returncode == 0, fresh.stderr
+    other = json.loads((tmp_path / "fresh.json").read_text())
+    assert doc["tensors"] == other["tensors"]
