@@ -24,9 +24,9 @@ from tabulate import tabulate  # noqa: E402
 
 from calibration import VALIDATION_SET, job_text  # noqa: E402
 
-from fieldprop.continuity import RELATIVE_DEPARTURE  # noqa: E402
-from fieldprop.engine import compute  # noqa: E402
-from fieldprop.job import load_job  # noqa: E402
+from fieldprop.numerics.continuity import RELATIVE_DEPARTURE  # noqa: E402
+from fieldprop.engine.core import compute  # noqa: E402
+from fieldprop.inputs.job import load_job  # noqa: E402
 
 
 def main(selected) -> None:

@@ -46,8 +46,8 @@ import numpy as np  # noqa: E402
 from scipy.spatial.transform import Rotation  # noqa: E402
 from tabulate import tabulate  # noqa: E402
 
-from fieldprop.engine import compute, prepare  # noqa: E402
-from fieldprop.job import load_job  # noqa: E402
+from fieldprop.engine.core import compute, prepare  # noqa: E402
+from fieldprop.inputs.job import load_job  # noqa: E402
 
 
 def _pyramid(bond, height):
@@ -294,7 +294,7 @@ def overhead(folder: Path) -> None:
                            "field_au = 0.001")
     env = {**os.environ, "OMP_NUM_THREADS": "1"}
     start = time.perf_counter()
-    subprocess.run([sys.executable, "-c", "import fieldprop.cli, pyscf.scf, pyscf.dft"],
+    subprocess.run([sys.executable, "-c", "import fieldprop.cli.commands, pyscf.scf, pyscf.dft"],
                    check=True, env=env)
     imports = time.perf_counter() - start
     profile = folder / "run.prof"
@@ -310,9 +310,9 @@ def overhead(folder: Path) -> None:
         return sum(v[3] for (f, _, n), v in stats.items()
                    if n == name and f.replace(os.sep, "/").endswith(module))
 
-    backend = cumulative("fieldprop/stages.py", "compute_jobs")
-    reference = cumulative("fieldprop/execute.py", "reference_task")
-    context = cumulative("fieldprop/backend_pyscf.py", "__init__")
+    backend = cumulative("fieldprop/engine/stages.py", "compute_jobs")
+    reference = cumulative("fieldprop/points/executors.py", "reference_task")
+    context = cumulative("fieldprop/backend/compute.py", "__init__")
     rows = [["whole process (profiled)", f"{wall:.1f}", "1.000"],
             ["backend: integrals, zero-field reference, field points", f"{backend:.1f}",
              f"{backend / wall:.3f}"],

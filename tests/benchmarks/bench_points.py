@@ -36,8 +36,8 @@ from tabulate import tabulate  # noqa: E402
 ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 
-from fieldprop.engine import compute  # noqa: E402
-from fieldprop.job import load_job  # noqa: E402
+from fieldprop.engine.core import compute  # noqa: E402
+from fieldprop.inputs.job import load_job  # noqa: E402
 
 WATER = """O 0.000000 0.000000 0.117300
 H 0.000000 0.757200 -0.469200
@@ -79,7 +79,7 @@ solver = "{solver}"
 
 def cold_scf(job):
     """PySCF's DIIS from its initial guess to the job's orbital-gradient target."""
-    from fieldprop.backend_pyscf import ModelContext
+    from fieldprop.backend.compute import ModelContext
 
     context = ModelContext(_molecule(job), job.model, job.scf)
     mf = context.mean_field((0.0, 0.0, 0.0))
@@ -91,7 +91,7 @@ def cold_scf(job):
 
 def analytic_alpha_seconds(job) -> float:
     """A cold SCF with PySCF's default tolerances plus the CPHF/CPKS solve."""
-    from fieldprop.backend_pyscf import ModelContext, analytic_polarizability
+    from fieldprop.backend.compute import ModelContext, analytic_polarizability
 
     start = time.perf_counter()
     context = ModelContext(_molecule(job), job.model, job.scf)
@@ -103,7 +103,7 @@ def analytic_alpha_seconds(job) -> float:
 
 
 def _molecule(job):
-    from fieldprop.molecule import build_molecule
+    from fieldprop.inputs.molecule import build_molecule
 
     return build_molecule(job.molecule, job.response.origin)
 

@@ -15,8 +15,8 @@ from pathlib import Path  # noqa: E402
 
 from tabulate import tabulate  # noqa: E402
 
-from fieldprop.engine import compute  # noqa: E402
-from fieldprop.job import load_job  # noqa: E402
+from fieldprop.engine.core import compute  # noqa: E402
+from fieldprop.inputs.job import load_job  # noqa: E402
 
 JOB = textwrap.dedent("""
     [molecule]

@@ -20,10 +20,11 @@ from pathlib import Path  # noqa: E402
 
 from tabulate import tabulate  # noqa: E402
 
-from fieldprop.campaign import load_set  # noqa: E402
-from fieldprop.execute import DaskPool, LocalPool
-from fieldprop.screening import run_campaign  # noqa: E402
-from fieldprop.store import PointStore  # noqa: E402
+from fieldprop.inputs.campaign import load_set  # noqa: E402
+from fieldprop.engine.stages import make_executor
+from fieldprop.points.executors import DaskPool
+from fieldprop.engine.screening import run_campaign  # noqa: E402
+from fieldprop.points.store import PointStore  # noqa: E402
 
 #: Ten small molecules, as a campaign would list them.
 SMILES = {"water": "O", "ammonia": "N", "hydrogen-fluoride": "F", "formaldehyde": "C=O",
@@ -58,9 +59,9 @@ def main() -> None:
         path.write_text(set_text())
         campaign = load_set(path)
         rows = []
-        runs = [("1 local worker x 1 thread", lambda: LocalPool(1, 1), 1),
-                ("1 local worker x 2 threads", lambda: LocalPool(1, 2), 2),
-                ("2 local workers x 1 thread", lambda: LocalPool(2, 1), 2)]
+        runs = [("1 local worker x 1 thread", lambda: make_executor(1, 1), 1),
+                ("1 local worker x 2 threads", lambda: make_executor(1, 2), 2),
+                ("2 local workers x 1 thread", lambda: make_executor(2, 1), 2)]
         results = {}
         for label, make, cores in runs:
             with PointStore.in_memory() as store:
@@ -88,9 +89,9 @@ def main() -> None:
         # fresh SQLite file, one transaction per point, as the campaign does.
         file_store = Path(folder) / "points.sqlite"
         with PointStore.in_memory() as memory:
-            outcomes, _ = run_campaign(campaign, memory, LocalPool(2, 1))
+            outcomes, _ = run_campaign(campaign, memory, make_executor(2, 1))
         pairs = []
-        from fieldprop.engine import prepare
+        from fieldprop.engine.core import prepare
 
         for o in outcomes:
             tasks = prepare(o.result.job, facts=o.result.backend_facts).tasks

@@ -392,12 +392,12 @@ def _check(rc: int, out: str, err: str, expected: list[str], job_path: Path,
 @pytest.fixture(autouse=True)
 def _no_scf(monkeypatch):
     """Bad input must be refused before any field point is computed."""
-    import fieldprop.backend_pyscf
+    import fieldprop.backend.compute
 
     def tripwire(*args):
         raise AssertionError("a model context was built for an SCF")
 
-    monkeypatch.setattr(fieldprop.backend_pyscf, "ModelContext", tripwire)
+    monkeypatch.setattr(fieldprop.backend.compute, "ModelContext", tripwire)
 
 
 # --------------------------------------------------------------------------- tests
@@ -450,8 +450,8 @@ def test_good_job_passes_the_same_gate(tmp_path, capsys, monkeypatch):
 def test_close_atoms_pass_when_the_job_allows_them(tmp_path):
     """The refused unit-mistake geometry passes validation with allow_close_atoms."""
     pytest.importorskip("pyscf")
-    from fieldprop.engine import prepare
-    from fieldprop.job import load_job
+    from fieldprop.engine.core import prepare
+    from fieldprop.inputs.job import load_job
 
     path = tmp_path / "job.toml"
     path.write_text(job(WATER_ANGSTROM_LINES, molecule={"units": '"bohr"',

@@ -98,9 +98,9 @@ def test_run_plot_writes_one_png_per_property_with_every_component(tmp_path):
         assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 10_000
 
     # The panels are the computed components (9 for alpha, 18 for beta on this route).
-    from fieldprop.engine import compute
-    from fieldprop.job import load_job
-    from fieldprop.plots import write_plots
+    from fieldprop.engine.core import compute
+    from fieldprop.inputs.job import load_job
+    from fieldprop.outputs.plots import write_plots
 
     result = compute(load_job(tmp_path / "lih.toml"), progress=False)
     written = write_plots(result.tensors, result.plan, tmp_path / "pictures")
@@ -119,7 +119,7 @@ def test_run_plot_into_an_unwritable_folder_is_refused_before_work(tmp_path, cap
                                                                   monkeypatch):
     """A folder the process may not write (simulated: this may run as root, who
     may write anywhere) is refused before any work, not after it."""
-    import fieldprop.cli
+    import fieldprop.cli.commands
     from fieldprop.cli import main
 
     (tmp_path / "lih.toml").write_text(JOB)
@@ -210,7 +210,7 @@ def test_error_vocabulary_is_the_documented_one():
     from pathlib import Path
 
     from fieldprop import errors
-    from fieldprop.cli import CHECK_DISAGREES
+    from fieldprop.cli.commands import CHECK_DISAGREES
 
     readme = (Path(__file__).resolve().parents[2] / "README.md").read_text()
     kinds = {cls.kind for cls in vars(errors).values()
@@ -238,13 +238,13 @@ def test_batch_logs_get_progress_lines_and_quiet_silences_them(tmp_path):
 def test_a_zero_field_failure_inside_the_backend_is_named_not_a_traceback(tmp_path, capsys,
                                                                           monkeypatch):
     pytest.importorskip("pyscf")
-    import fieldprop.execute
+    import fieldprop.points.executors
     from fieldprop.cli import main
 
     def broken(context, task):
         raise RuntimeError("injected inside PySCF")
 
-    monkeypatch.setattr(fieldprop.execute, "compute_reference", broken)
+    monkeypatch.setattr(fieldprop.points.executors, "compute_reference", broken)
     (tmp_path / "lih.toml").write_text(JOB)
     assert main(["run", str(tmp_path / "lih.toml"), "--quiet", "--no-store"]) == 1
     err = capsys.readouterr().err
@@ -258,7 +258,7 @@ def test_status_words_agree_with_the_readme_and_help(tmp_path):
     import re
     from pathlib import Path
 
-    from fieldprop.extrapolate import ComponentStatus
+    from fieldprop.numerics.extrapolate import ComponentStatus
 
     words = {s.value for s in ComponentStatus}
     readme = (Path(__file__).resolve().parents[2] / "README.md").read_text()
@@ -276,7 +276,7 @@ def test_tables_in_esu_or_si_convert_every_component(tmp_path, system, label, fa
     """--units: the tables' components are the JSON's atomic units times the
     CODATA factor (the JSON stays in au)."""
     pytest.importorskip("pyscf")
-    from fieldprop import units
+    from fieldprop.numerics import units
 
     (tmp_path / "lih.toml").write_text(JOB)
     done = fieldprop("run", "lih.toml", "--quiet", "--units", system, cwd=tmp_path)
@@ -292,7 +292,7 @@ def test_tables_in_esu_or_si_convert_every_component(tmp_path, system, label, fa
 def test_every_command_has_worked_examples_and_the_exit_codes_are_listed():
     import argparse
 
-    from fieldprop.cli import build_parser
+    from fieldprop.cli.commands import build_parser
 
     parser = build_parser()
     for word in ("0    success", "2    bad input", "3    incomplete", "130"):

@@ -387,7 +387,7 @@ def test_a_degenerate_open_shells_orientation_travels_with_its_zero_field_point(
 def test_a_failed_point_gives_exit_1_and_collect_names_it(tmp_path, capsys, monkeypatch):
     """A point whose SCF never converges: point exits 1 naming it, the failure
     is stored, and collect exits 1 with the same reason."""
-    from fieldprop import backend_pyscf
+    from fieldprop.backend import compute as backend_pyscf
     from fieldprop.cli import main
     from fieldprop.errors import ScfNotConvergedError
 

@@ -128,7 +128,7 @@ def test_three_molecules_give_a_ranked_csv_in_the_units_asked(three):
     assert all(r["status"] == "ok" and r["model"] == "HF/sto-3g" for r in rows)
     # Every molecule has its result file, as run writes it; the CSV carries its
     # numbers converted (esu: angstrom^3 for alpha, by scipy.constants' CODATA).
-    from fieldprop.units import ALPHA_AU_TO_ANGSTROM3
+    from fieldprop.numerics.units import ALPHA_AU_TO_ANGSTROM3
 
     for r in rows:
         doc = json.loads((folder / "set.results" / f"{r['name']}.result.json").read_text())
@@ -182,7 +182,7 @@ def test_a_failed_molecule_is_named_and_the_others_are_kept(tmp_path):
 
 def test_a_smiles_structure_is_the_same_on_every_run(tmp_path):
     # Two separate processes: nothing of RDKit's state is shared.
-    code = ("from fieldprop.structures import from_smiles; import json; "
+    code = ("from fieldprop.inputs.structures import from_smiles; import json; "
             "s = from_smiles('Nc1ccc(cc1)[N+](=O)[O-]'); "
             "print(json.dumps([s.symbols, s.coords_angstrom]))")
     runs = [json.loads(subprocess.run([sys.executable, "-c", code], capture_output=True,
@@ -228,7 +228,7 @@ def test_a_killed_campaign_resumes_without_recomputing_finished_points(tmp_path)
 
 
 def test_the_example_set_is_a_valid_set():
-    from fieldprop.campaign import load_set
+    from fieldprop.inputs.campaign import load_set
 
     path = Path(__file__).resolve().parents[2] / "configs" / "chromophores.toml"
     campaign = load_set(path)

@@ -99,7 +99,7 @@ def computed_store(tmp_path_factory) -> bytes:
 
 
 def _fresh_store(path: Path, schema: str | None = None) -> None:
-    from fieldprop.store import PointStore
+    from fieldprop.points.store import PointStore
 
     PointStore.open(path).close()
     if schema is not None:
@@ -401,10 +401,10 @@ _ID = re.compile(r"\b[0-9a-f]{12}\b")
 def test_collect_names_the_points_the_store_lacks(tmp_path, computed_store):
     """The store holds the 2-level job; the 3-level one of the same model needs
     the 0.004 au points too: exit 3, naming exactly those (short ids)."""
-    from fieldprop.engine import prepare
-    from fieldprop.job import load_job
-    from fieldprop.keys import short_id
-    from fieldprop.store import PointStore
+    from fieldprop.engine.core import prepare
+    from fieldprop.inputs.job import load_job
+    from fieldprop.points.keys import short_id
+    from fieldprop.points.store import PointStore
 
     store = tmp_path / "points.sqlite"
     store.write_bytes(computed_store)
@@ -472,8 +472,8 @@ def test_a_schema_1_store_is_read_as_it_is_and_migrated_when_written(tmp_path):
     place, through every later schema: the column and the to-do lists' table are
     added, the schema mark becomes the current one, old rows keep their values
     (the new column reads as 0: unknown)."""
-    from fieldprop import store as store_module
-    from fieldprop.store import PointStore
+    from fieldprop.points import store as store_module
+    from fieldprop.points.store import PointStore
 
     path = tmp_path / "points.sqlite"
     old_schema = store_module._SCHEMA.replace("    energy_scale_au REAL,\n", "").replace(

@@ -23,8 +23,8 @@ import numpy as np
 from analytic_reference import cphf_polarizability
 from support import NH2_ANGSTROM, bent_triatomic, geometry_text, mean_field, rotation
 
-from fieldprop.engine import compute
-from fieldprop.job import load_job
+from fieldprop.engine.core import compute
+from fieldprop.inputs.job import load_job
 
 
 def _tilted(symbols, local_angstrom):

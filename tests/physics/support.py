@@ -7,8 +7,8 @@ import pytest
 
 pytest.importorskip("pyscf")
 
-from fieldprop.engine import compute  # noqa: E402
-from fieldprop.job import load_job  # noqa: E402
+from fieldprop.engine.core import compute  # noqa: E402
+from fieldprop.inputs.job import load_job  # noqa: E402
 
 #: Water built by us (O-H 0.958 A, H-O-H 104.4 deg, roughly the experimental
 #: equilibrium, a fact of the trade), in angstrom.

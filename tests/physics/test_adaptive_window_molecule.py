@@ -16,10 +16,10 @@ import textwrap
 import numpy as np
 import pytest
 
-from fieldprop.engine import collect, compute
-from fieldprop.job import load_job
-from fieldprop.store import PointStore
-from fieldprop.window import initial_windows
+from fieldprop.engine.core import collect, compute
+from fieldprop.inputs.job import load_job
+from fieldprop.points.store import PointStore
+from fieldprop.numerics.window import initial_windows
 
 pytest.importorskip("pyscf")
 

@@ -7,8 +7,8 @@ import pytest
 
 pytest.importorskip("pyscf")
 
-from fieldprop.atomic_weights import ATOMIC_WEIGHTS  # noqa: E402
-from fieldprop.job import ELEMENTS  # noqa: E402
+from fieldprop.inputs.atomic_weights import ATOMIC_WEIGHTS  # noqa: E402
+from fieldprop.inputs.job import ELEMENTS  # noqa: E402
 
 
 def test_every_atomic_weight_is_pyscfs():
@@ -25,7 +25,7 @@ def test_the_centre_of_mass_is_pyscfs():
     atoms (gto.Mole.atom_mass_list: the same standard weights)."""
     from pyscf import gto
 
-    from fieldprop.molecule import centre_of_mass
+    from fieldprop.inputs.molecule import centre_of_mass
 
     symbols = ("Br", "C", "H", "H", "H")
     coords = np.array([[0.0, 0.0, 1.94], [0.0, 0.0, 0.0], [1.03, 0.0, -0.36],

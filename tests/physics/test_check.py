@@ -82,11 +82,11 @@ def test_check_agrees_with_analytic_references(tmp_path, capsys, geometry, model
     # fieldprop's own CPHF/CPKS alpha (the reference of the check) against the
     # independent solver of analytic_reference.py: ~1e-9 relative (both converge
     # the linear equations to <= 1e-10 relative residual).
-    from fieldprop.job import load_job
+    from fieldprop.inputs.job import load_job
 
     job = load_job(tmp_path / "job.toml")
     mf = mean_field(job)
-    from fieldprop.molecule import build_molecule
+    from fieldprop.inputs.molecule import build_molecule
 
     origin = build_molecule(job.molecule, job.response.origin).origin_bohr
     independent = cphf_polarizability(mf, origin)
@@ -100,7 +100,7 @@ def test_check_names_a_component_off_by_one_percent_and_accepts_a_rotated_file(t
     text = job_text(rotated_water(), 'method = "hf"', props='["dipole", "alpha"]',
                     extra='differentiate = "energy"')
     (tmp_path / "job.toml").write_text(text)
-    from fieldprop.job import load_job
+    from fieldprop.inputs.job import load_job
 
     job = load_job(tmp_path / "job.toml")
     mf = mean_field(job)
@@ -214,7 +214,7 @@ def water_reference(tmp_path_factory):
     correct reference file: PySCF's SCF dipole, fieldprop's analytic alpha and its
     field derivatives (beta, gamma) with their error bars, read from check's own
     JSON, and the job's geometry in bohr. Returns (folder, job path, document)."""
-    from fieldprop.job import load_job
+    from fieldprop.inputs.job import load_job
 
     folder = tmp_path_factory.mktemp("mistakes")
     job_path = folder / "water.toml"

@@ -129,12 +129,12 @@ def test_tightened_points_have_their_own_keys_and_are_reused(tmp_path):
     keys that hold their targets; a second run computes nothing, collect
     replays the same stages from the store alone, and point lines carry the
     targets (a collect from lines alone agrees)."""
-    from fieldprop.engine import collect, prepare, run_prepared
-    from fieldprop.job import load_job
-    from fieldprop.keys import point_key
-    from fieldprop.pointlines import _Quantities
-    from fieldprop.report import write_store_lines
-    from fieldprop.store import PointStore
+    from fieldprop.engine.core import collect, prepare, run_prepared
+    from fieldprop.inputs.job import load_job
+    from fieldprop.points.keys import point_key
+    from fieldprop.points.pointlines import _Quantities
+    from fieldprop.outputs.report import write_store_lines
+    from fieldprop.points.store import PointStore
 
     path = tmp_path / "he.toml"
     path.write_text(HELIUM_CCSD)

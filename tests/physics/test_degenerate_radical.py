@@ -27,10 +27,10 @@ pytest.importorskip("pyscf")
 from analytic_reference import cphf_polarizability  # noqa: E402
 from support import agree, geometry_text  # noqa: E402
 
-from fieldprop.engine import compute  # noqa: E402
-from fieldprop.job import load_job  # noqa: E402
-from fieldprop.report import result_document  # noqa: E402
-from fieldprop.store import PointStore  # noqa: E402
+from fieldprop.engine.core import compute  # noqa: E402
+from fieldprop.inputs.job import load_job  # noqa: E402
+from fieldprop.outputs.report import result_document  # noqa: E402
+from fieldprop.points.store import PointStore  # noqa: E402
 
 #: Our OH: 0.97 angstrom (about the radical's equilibrium bond, from memory), on
 #: a tilted axis away from the origin, so that no Cartesian axis is special.
@@ -303,8 +303,8 @@ def test_a_state_not_turned_to_the_frame_reports_its_own_axes(tmp_path):
     the frame (u the Cartesian axis most perpendicular to the bond)."""
     from pyscf import scf
 
-    from fieldprop import backend_pyscf
-    from fieldprop.engine import prepare
+    from fieldprop.backend import compute as backend_pyscf
+    from fieldprop.engine.core import prepare
 
     prepared = prepare(_job(tmp_path, "rohf", "dipole"))
     context = backend_pyscf.ModelContext(prepared.molecule, prepared.job.model,

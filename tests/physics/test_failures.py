@@ -9,7 +9,7 @@ import pytest
 
 pytest.importorskip("pyscf")
 
-from fieldprop import backend_pyscf  # noqa: E402
+from fieldprop.backend import compute as backend_pyscf  # noqa: E402
 from fieldprop.cli import main  # noqa: E402
 from fieldprop.errors import ScfNotConvergedError  # noqa: E402
 

@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 
 from fieldprop.cli import main
-from fieldprop.job import GEOMETRY_CRITERIA
+from fieldprop.inputs.job import GEOMETRY_CRITERIA
 
 pytest.importorskip("pyscf")
 
@@ -68,7 +68,7 @@ def test_optimised_water_has_the_hf_631g_shape_and_no_gradient(tmp_path, capsys)
 
 
 def test_a_rerun_takes_the_optimised_geometry_from_the_store(tmp_path, capsys, monkeypatch):
-    from fieldprop import backend_pyscf
+    from fieldprop.backend import compute as backend_pyscf
 
     path = tmp_path / "water.toml"
     path.write_text(JOB)

@@ -24,9 +24,9 @@ from analytic_reference import cphf_polarizability, scf_dipole  # noqa: E402
 from support import rotation  # noqa: E402
 
 from fieldprop.cli import main  # noqa: E402
-from fieldprop.job import load_job  # noqa: E402
-from fieldprop.symmetry import detect  # noqa: E402
-from fieldprop.units import BACKEND_BOHR_ANGSTROM, BOHR_TO_ANGSTROM  # noqa: E402
+from fieldprop.inputs.job import load_job  # noqa: E402
+from fieldprop.numerics.symmetry import detect  # noqa: E402
+from fieldprop.numerics.units import BACKEND_BOHR_ANGSTROM, BOHR_TO_ANGSTROM  # noqa: E402
 
 #: Water (our idealised shape, angstrom) turned off every axis and moved, then
 #: typed to six decimals as XYZ files usually are: C2v only to ~1e-6 bohr.

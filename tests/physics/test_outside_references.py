@@ -21,9 +21,9 @@ pytest.importorskip("pyscf")
 from support import (WATER_ANGSTROM, agree, geometry_text, rotated_water,  # noqa: E402
                      run_job)
 
-from fieldprop.backend_pyscf import ModelContext, compute_point, compute_reference  # noqa: E402
-from fieldprop.engine import prepare  # noqa: E402
-from fieldprop.plan import FieldPoint  # noqa: E402
+from fieldprop.backend.compute import ModelContext, compute_point, compute_reference  # noqa: E402
+from fieldprop.engine.core import prepare  # noqa: E402
+from fieldprop.numerics.plan import FieldPoint  # noqa: E402
 
 
 def _pyscf_mol(job, basis):
@@ -139,7 +139,7 @@ frozen_core = false
 [response]
 properties = ["alpha"]
 """)
-    from fieldprop.job import load_job
+    from fieldprop.inputs.job import load_job
 
     job = load_job(path)
     prepared = prepare(job)

@@ -7,10 +7,11 @@ import textwrap
 import numpy as np
 import pytest
 
-from fieldprop.campaign import load_set
-from fieldprop.execute import DaskPool, LocalPool
-from fieldprop.screening import run_campaign
-from fieldprop.store import PointStore
+from fieldprop.inputs.campaign import load_set
+from fieldprop.engine.stages import make_executor
+from fieldprop.points.executors import DaskPool
+from fieldprop.engine.screening import run_campaign
+from fieldprop.points.store import PointStore
 
 pytest.importorskip("pyscf")
 
@@ -50,7 +51,7 @@ def test_a_dask_cluster_gives_the_numbers_of_a_serial_run(tmp_path):
     (tmp_path / "set.toml").write_text(SET)
     campaign = load_set(tmp_path / "set.toml")
     with PointStore.in_memory() as store:
-        serial, _ = run_campaign(campaign, store, LocalPool(1, 1))
+        serial, _ = run_campaign(campaign, store, make_executor(1, 1))
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
                       dashboard_address=None) as cluster, Client(cluster) as client:
         with PointStore.in_memory() as store:
@@ -66,7 +67,7 @@ def test_a_dask_cluster_gives_the_numbers_of_a_serial_run(tmp_path):
 
 
 def test_a_point_that_fails_ends_its_molecule_only(tmp_path, monkeypatch):
-    from fieldprop import backend_pyscf
+    from fieldprop.backend import compute as backend_pyscf
     from fieldprop.errors import ScfNotConvergedError
 
     real = backend_pyscf._converge
@@ -80,7 +81,7 @@ def test_a_point_that_fails_ends_its_molecule_only(tmp_path, monkeypatch):
     (tmp_path / "set.toml").write_text(SET)
     campaign = load_set(tmp_path / "set.toml")
     with PointStore.in_memory() as store:
-        outcomes, counts = run_campaign(campaign, store, LocalPool(2, 1))
+        outcomes, counts = run_campaign(campaign, store, make_executor(2, 1))
     by_name = {o.candidate.name: o for o in outcomes}
     assert counts.failed == 1
     assert by_name["ammonia"].result is None
@@ -137,13 +138,13 @@ def test_a_campaign_does_not_mix_points_of_another_backend_version(tmp_path, mon
     (tmp_path / "two.toml").write_text(small.format(levels=2))
     (tmp_path / "three.toml").write_text(small.format(levels=3))
     with PointStore.open(tmp_path / "points.sqlite") as store:
-        first, counts = run_campaign(load_set(tmp_path / "two.toml"), store, LocalPool(1, 1))
+        first, counts = run_campaign(load_set(tmp_path / "two.toml"), store, make_executor(1, 1))
         assert counts.failed == 0 and counts.computed > 0
         installed = pyscf.__version__
         monkeypatch.setattr(pyscf, "__version__", "0.0.1")
-        again, counts = run_campaign(load_set(tmp_path / "two.toml"), store, LocalPool(1, 1))
+        again, counts = run_campaign(load_set(tmp_path / "two.toml"), store, make_executor(1, 1))
         assert counts.failed == 0 and counts.computed == 0
-        more, counts = run_campaign(load_set(tmp_path / "three.toml"), store, LocalPool(1, 1))
+        more, counts = run_campaign(load_set(tmp_path / "three.toml"), store, make_executor(1, 1))
     assert counts.failed == 1 and counts.computed == 0
     (outcome,) = more
     assert outcome.result is None and outcome.kind == "InputError"

@@ -11,10 +11,10 @@ import pytest
 
 pytest.importorskip("pyscf")
 
-from fieldprop import backend_pyscf  # noqa: E402
+from fieldprop.backend import compute as backend_pyscf  # noqa: E402
 from fieldprop.cli import main  # noqa: E402
-from fieldprop.engine import prepare  # noqa: E402
-from fieldprop.job import load_job  # noqa: E402
+from fieldprop.engine.core import prepare  # noqa: E402
+from fieldprop.inputs.job import load_job  # noqa: E402
 from support import WATER_ANGSTROM, agree, geometry_text, nh2_geometry, run_job  # noqa: E402
 
 WATER = geometry_text("OHH", WATER_ANGSTROM)
@@ -214,7 +214,7 @@ def test_mirror_and_line_starts_are_second_order(tmp_path, reference):
     and line both 0.022 of the response start's for water HF/6-31G*; for NH2
     at ROHF/6-31G*, whose rotation from the reference is found by passes of a
     matrix logarithm, both 0.016)."""
-    from fieldprop.plan import FieldPoint
+    from fieldprop.numerics.plan import FieldPoint
 
     job = (_job(tmp_path, WATER, 'method = "hf"\n        basis = "6-31g*"')
            if reference == "closed" else
@@ -259,7 +259,7 @@ def test_two_workers_hand_converged_points_on_as_starts(tmp_path):
     rotations go through the parent), and the tensors equal those of one
     worker within their error bars."""
     job = _job(tmp_path, WATER, 'method = "hf"\n        basis = "6-31g*"')
-    from fieldprop.engine import compute
+    from fieldprop.engine.core import compute
 
     one = compute(job, workers=1, progress=False)
     two = compute(job, workers=2, progress=False)

@@ -19,9 +19,9 @@ import pytest
 pytest.importorskip("pyscf")
 
 from fieldprop.cli import main  # noqa: E402
-from fieldprop.engine import compute  # noqa: E402
-from fieldprop.job import load_job  # noqa: E402
-from fieldprop.store import PointStore  # noqa: E402
+from fieldprop.engine.core import compute  # noqa: E402
+from fieldprop.inputs.job import load_job  # noqa: E402
+from fieldprop.points.store import PointStore  # noqa: E402
 
 LIH = """
 [molecule]
@@ -142,7 +142,7 @@ def test_check_after_run_computes_only_the_analytic_alpha_points(tmp_path, capsy
 
 
 def test_a_stored_failure_is_not_retried_unless_asked(tmp_path, capsys, monkeypatch):
-    from fieldprop import backend_pyscf
+    from fieldprop.backend import compute as backend_pyscf
     from fieldprop.errors import ScfNotConvergedError
 
     target = "L1(0,0,+1)"

@@ -15,7 +15,7 @@ pytest.importorskip("pyscf")
 
 from support import geometry_text, rotation, run_job  # noqa: E402
 
-from fieldprop.extrapolate import ComponentStatus  # noqa: E402
+from fieldprop.numerics.extrapolate import ComponentStatus  # noqa: E402
 
 
 def _pyramid(bond, height):

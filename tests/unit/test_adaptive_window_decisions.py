@@ -12,11 +12,11 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from fieldprop.engine import NoiseModel, _tensor_scales, extrapolate_components
-from fieldprop.extrapolate import ComponentEstimate, ComponentStatus
-from fieldprop.job import AUTO_FIELD_AU, AUTO_LEVELS
-from fieldprop.plan import plan_fields
-from fieldprop.window import (SETTLED_RELATIVE, START_LEVELS, grow, initial_windows,
+from fieldprop.engine.core import NoiseModel, _tensor_scales, extrapolate_components
+from fieldprop.numerics.extrapolate import ComponentEstimate, ComponentStatus
+from fieldprop.inputs.job import AUTO_FIELD_AU, AUTO_LEVELS
+from fieldprop.numerics.plan import plan_fields
+from fieldprop.numerics.window import (SETTLED_RELATIVE, START_LEVELS, grow, initial_windows,
                               needed_points, wants)
 
 E0, A = -40.0, 1.0

@@ -19,13 +19,13 @@ import pytest
 
 
 def _json(path: Path, n: int) -> None:
-    from fieldprop.report import write_json_atomic
+    from fieldprop.outputs.report import write_json_atomic
 
     write_json_atomic({"writer": n, "values": [float(n)] * (2000 + 1000 * n)}, path)
 
 
 def _relaxed_structure(path: Path, n: int) -> None:
-    from fieldprop.report import write_relaxed_structure
+    from fieldprop.outputs.report import write_relaxed_structure
 
     document = {"field_au": [0.0, 0.0, 0.001 * (n + 1)], "symbols": ["H"] * (10 + 5 * n),
                 "energy_relaxed_au": -1.0 - n,
@@ -34,7 +34,7 @@ def _relaxed_structure(path: Path, n: int) -> None:
 
 
 def _xyz(path: Path, n: int) -> None:
-    from fieldprop.cli import write_xyz
+    from fieldprop.cli.commands import write_xyz
 
     atoms = [SimpleNamespace(symbol="H", coords_bohr=(0.0, 0.0, 1.4 * i))
              for i in range(10 + 5 * n)]
@@ -44,7 +44,7 @@ def _xyz(path: Path, n: int) -> None:
 
 
 def _ranked_rows(n: int):
-    from fieldprop import ranking
+    from fieldprop.outputs import ranking
 
     entries = [ranking.Entry(f"m{i}", {"invariants": {"alpha_iso": {
         "value": 1.0 + i, "error": 0.01}}, "tensors": {}}, "H2", "hf/sto-3g")
@@ -53,13 +53,13 @@ def _ranked_rows(n: int):
 
 
 def _png(path: Path, n: int) -> None:
-    from fieldprop import ranking
+    from fieldprop.outputs import ranking
 
     ranking.write_png(_ranked_rows(n), "alpha_iso", "au", path)
 
 
 def _csv(path: Path, n: int) -> None:
-    from fieldprop import ranking
+    from fieldprop.outputs import ranking
 
     ranking.write_csv_file(_ranked_rows(n), "au", path)
 
@@ -139,7 +139,7 @@ def test_an_interrupted_write_leaves_the_old_file_and_no_temporary(name, interru
 
 
 def test_the_helper_writes_text_and_bytes_with_the_usual_permissions(tmp_path):
-    from fieldprop import atomic_files
+    from fieldprop.outputs import files as atomic_files
 
     path = tmp_path / "out.json"
     with atomic_files.replacing(path) as fh:
@@ -155,7 +155,7 @@ def test_the_helper_writes_text_and_bytes_with_the_usual_permissions(tmp_path):
 
 
 def test_an_exception_inside_the_block_leaves_no_temporary(tmp_path):
-    from fieldprop import atomic_files
+    from fieldprop.outputs import files as atomic_files
 
     path = tmp_path / "out.txt"
     path.write_text("old\n")

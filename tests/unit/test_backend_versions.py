@@ -9,13 +9,13 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from fieldprop.engine import gather, prepare
+from fieldprop.engine.core import gather, prepare
 from fieldprop.errors import InputError
-from fieldprop.job import load_job
-from fieldprop.keys import backend_version_conflict
-from fieldprop.pointlines import line_document, read_lines
-from fieldprop.records import ZeroFieldReference
-from fieldprop.store import PointStore, StoredPoint
+from fieldprop.inputs.job import load_job
+from fieldprop.points.keys import backend_version_conflict
+from fieldprop.points.pointlines import line_document, read_lines
+from fieldprop.points.records import ZeroFieldReference
+from fieldprop.points.store import PointStore, StoredPoint
 
 JOB = '''[molecule]
 geometry = """

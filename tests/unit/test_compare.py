@@ -7,10 +7,10 @@ import numpy as np
 import pytest
 from scipy.spatial.transform import Rotation
 
-from fieldprop.compare import (ReferenceTensors, align_reference, compare_tensors,
+from fieldprop.outputs.compare import (ReferenceTensors, align_reference, compare_tensors,
                                kabsch_rotation, load_reference_file, rotate_tensor, worst)
 from fieldprop.errors import InputError
-from fieldprop.tensors import symmetrize
+from fieldprop.numerics.tensors import symmetrize
 
 RNG = np.random.default_rng(11)
 COORDS = RNG.normal(size=(4, 3)) * 2.0
@@ -117,7 +117,7 @@ def _entry(comparisons, name):
 
 
 def test_an_error_between_the_bars_and_the_floor_agrees_only_by_the_floor_and_strict_fails_it():
-    from fieldprop.compare import AgreementRule, verdict
+    from fieldprop.outputs.compare import AgreementRule, verdict
 
     ff = _ff(alpha=(ALPHA, 1e-9))  # dipole-route-sized bars, far below the 1e-5 floor
     wrong = ALPHA.copy()
@@ -147,7 +147,7 @@ def test_an_error_between_the_bars_and_the_floor_agrees_only_by_the_floor_and_st
 
 
 def test_strict_adds_the_two_error_bars_linearly():
-    from fieldprop.compare import AgreementRule
+    from fieldprop.outputs.compare import AgreementRule
 
     # ff and reference bars 1e-8 each: sum 2e-8, quadrature 1.41e-8. A difference of
     # 3 x 1.9e-8 is inside 3 x the sum and outside 3 x the quadrature.
@@ -183,7 +183,7 @@ TRUE = {"dipole": MU, "alpha": ALPHA, "beta": BETA, "gamma": GAMMA}
 
 
 def _diagnoses(reference_values, strict=False):
-    from fieldprop.compare import AgreementRule, diagnose
+    from fieldprop.outputs.compare import AgreementRule, diagnose
 
     ff = _ff(**{n: (v, ERRORS[n]) for n, v in TRUE.items()})
     ref = ReferenceTensors("ref", reference_values, {n: None for n in reference_values})
@@ -210,7 +210,7 @@ def test_each_common_mistake_is_named_and_only_it():
 
 
 def test_the_detail_says_which_way_the_convention_factor_goes():
-    from fieldprop.compare import AgreementRule, diagnose
+    from fieldprop.outputs.compare import AgreementRule, diagnose
 
     ff = _ff(beta=(BETA, 1e-7))
     for factor, words in ((0.5, "2 x reference agrees"), (2.0, "reference / 2 agrees")):
@@ -252,7 +252,7 @@ def test_a_uniform_difference_of_the_size_of_another_bohr_is_named_under_strict(
 
 
 def test_the_bohr_band_holds_every_pair_of_codata_editions_scipy_knows():
-    from fieldprop.compare import BOHR_EDITION_BAND
+    from fieldprop.outputs.compare import BOHR_EDITION_BAND
 
     codata = pytest.importorskip("scipy.constants._codata")
     values = []
@@ -278,7 +278,7 @@ def _geometry_doc(tmp_path, coords, alpha=ALPHA):
 
 
 def test_angstrom_coordinates_given_as_bohr_are_named_and_still_aligned(tmp_path):
-    from fieldprop.units import ANGSTROM_TO_BOHR, BOHR_TO_ANGSTROM
+    from fieldprop.numerics.units import ANGSTROM_TO_BOHR, BOHR_TO_ANGSTROM
 
     turned = ROT @ ALPHA @ ROT.T
     for factor, words in ((BOHR_TO_ANGSTROM, "angstrom coordinates given as coords_bohr"),

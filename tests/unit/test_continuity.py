@@ -7,11 +7,11 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from fieldprop.continuity import RELATIVE_DEPARTURE, check_continuity, lagrange_weights
-from fieldprop.engine import NoiseModel, extrapolate_components
-from fieldprop.plan import plan_fields
-from fieldprop.records import PointRecord
-from fieldprop.tensors import assemble
+from fieldprop.numerics.continuity import RELATIVE_DEPARTURE, check_continuity, lagrange_weights
+from fieldprop.engine.core import NoiseModel, extrapolate_components
+from fieldprop.numerics.plan import plan_fields
+from fieldprop.points.records import PointRecord
+from fieldprop.numerics.tensors import assemble
 
 
 def taylor_energy(f, mu, alpha, beta, gamma):

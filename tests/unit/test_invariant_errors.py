@@ -14,9 +14,9 @@ import itertools
 import numpy as np
 import pytest
 
-from fieldprop import tensors as ft
-from fieldprop.extrapolate import ComponentEstimate, ComponentStatus
-from fieldprop.plan import plan_fields
+from fieldprop.numerics import tensors as ft
+from fieldprop.numerics.extrapolate import ComponentEstimate, ComponentStatus
+from fieldprop.numerics.plan import plan_fields
 
 SEMINORMS = {"dipole_norm": "dipole", "alpha_aniso": "alpha", "beta_vector_norm": "beta",
              "beta_hrs": "beta"}

@@ -25,11 +25,11 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from fieldprop.errors import InputError
-from fieldprop.job import (DIPOLE_ROUTE_METHODS, MAX_COORDINATE_BOHR, METHODS,
+from fieldprop.inputs.job import (DIPOLE_ROUTE_METHODS, MAX_COORDINATE_BOHR, METHODS,
                            MIN_DISTANCE_BOHR, ORIGINS, Job, load_job)
-from fieldprop.methods import METHODS as TRAITS
-from fieldprop.plan import plan_fields
-from fieldprop.units import PROPERTY_ORDER
+from fieldprop.numerics.methods import METHODS as TRAITS
+from fieldprop.numerics.plan import plan_fields
+from fieldprop.numerics.units import PROPERTY_ORDER
 
 SETTINGS = settings(max_examples=300, deadline=None,
                     suppress_health_check=[HealthCheck.too_slow])
@@ -576,8 +576,8 @@ def test_the_old_name_of_differentiate_still_works_with_a_warning(tmp_path, capl
     "energy", and says it was renamed."""
     import logging
 
-    from fieldprop.job import load_job
-    from fieldprop.methods import Route
+    from fieldprop.inputs.job import load_job
+    from fieldprop.numerics.methods import Route
 
     text = ('[molecule]\ngeometry = """\nH 0 0 0\nH 0 0 0.74\n"""\n[model]\nmethod = "hf"\n'
             'basis = "sto-3g"\n[response]\nproperties = ["alpha"]\n{key} = "energy"\n')

@@ -1,4 +1,4 @@
-"""Content keys of stored field points (:mod:`fieldprop.keys`).
+"""Content keys of stored field points (:mod:`fieldprop.points.keys`).
 
 A stored point is reused by any job whose key for it is the same, so keys must
 
@@ -34,12 +34,12 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from fieldprop.engine import make_plan, make_tasks
-from fieldprop.job import ModelSpec, ScfSpec, load_job
-from fieldprop.keys import (COORDINATE_DECIMALS, Quantities, digest, model_document, model_key,
+from fieldprop.engine.core import make_plan, make_tasks
+from fieldprop.inputs.job import ModelSpec, ScfSpec, load_job
+from fieldprop.points.keys import (COORDINATE_DECIMALS, Quantities, digest, model_document, model_key,
                             point_key, short_id)
-from fieldprop.molecule import MoleculeSpec, build_molecule
-from fieldprop.units import ANGSTROM_TO_BOHR
+from fieldprop.inputs.molecule import MoleculeSpec, build_molecule
+from fieldprop.numerics.units import ANGSTROM_TO_BOHR
 
 # A few dozen examples per property: enough to hit the pools' coincidences and
 # every mutated field many times, and the file still runs in a few seconds.
@@ -83,7 +83,7 @@ def keys_of(tmp_path: Path, geometry: str = H2, **sections) -> list[str]:
 
 
 def keyed_scf(scf) -> tuple:
-    """The SCF settings that enter the model key (see fieldprop.keys): not
+    """The SCF settings that enter the model key (see fieldprop.points.keys): not
     max_cycle or other settings that only decide whether a point is accepted."""
     return scf.energy_conv_tol_au, scf.gradient_conv_tol, scf.grid_level
 
@@ -446,10 +446,10 @@ def test_keys_are_64_lowercase_hex_and_ids_their_first_12(tmp_path):
 
 _SUBPROCESS = """
 import json, sys
-from fieldprop.job import ModelSpec, ScfSpec
-from fieldprop.keys import Quantities, model_key, point_key
-from fieldprop.molecule import MoleculeSpec
-import fieldprop.engine, fieldprop.store  # the whole keying path; none imports PySCF
+from fieldprop.inputs.job import ModelSpec, ScfSpec
+from fieldprop.points.keys import Quantities, model_key, point_key
+from fieldprop.inputs.molecule import MoleculeSpec
+import fieldprop.engine.core, fieldprop.points.store  # the whole keying path; none imports PySCF
 assert "pyscf" not in sys.modules
 spec = json.loads(sys.argv[1])
 m = MoleculeSpec(tuple(spec["symbols"]), tuple(spec["charges"]),

@@ -11,16 +11,16 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from fieldprop.engine import (CC_STEP_FACTOR, CC_STEP_SPREAD, ENERGY_ULPS, NoiseModel,
+from fieldprop.engine.core import (CC_STEP_FACTOR, CC_STEP_SPREAD, ENERGY_ULPS, NoiseModel,
                               make_plan, make_tasks, noise_model, tightened_task)
-from fieldprop.extrapolate import ComponentEstimate, ComponentStatus
-from fieldprop.job import (CORRELATION_DEFAULTS, MAX_TIGHTENING, TIGHTENING_FACTOR,
+from fieldprop.numerics.extrapolate import ComponentEstimate, ComponentStatus
+from fieldprop.inputs.job import (CORRELATION_DEFAULTS, MAX_TIGHTENING, TIGHTENING_FACTOR,
                            TIGHTEST_GRADIENT, load_job)
-from fieldprop.keys import model_document, model_key
-from fieldprop.molecule import MoleculeSpec, build_molecule
-from fieldprop.plan import FieldPoint
-from fieldprop.records import PointRecord
-from fieldprop.window import TIGHTER, expected_precision, grow, wants
+from fieldprop.points.keys import model_document, model_key
+from fieldprop.inputs.molecule import MoleculeSpec, build_molecule
+from fieldprop.numerics.plan import FieldPoint
+from fieldprop.points.records import PointRecord
+from fieldprop.numerics.window import TIGHTER, expected_precision, grow, wants
 
 
 def _job(tmp_path, method="ccsd", properties='["alpha", "gamma"]', extra=""):

@@ -8,10 +8,10 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from fieldprop.engine import ENERGY_ULPS, noise_model
-from fieldprop.molecule import MoleculeSpec
-from fieldprop.plan import FieldPoint
-from fieldprop.records import PointRecord
+from fieldprop.engine.core import ENERGY_ULPS, noise_model
+from fieldprop.inputs.molecule import MoleculeSpec
+from fieldprop.numerics.plan import FieldPoint
+from fieldprop.points.records import PointRecord
 
 
 def _symmetric_triatomic(half_length_bohr: float) -> MoleculeSpec:
@@ -59,8 +59,8 @@ def test_the_backend_records_the_energy_terms_scale(tmp_path):
     pytest.importorskip("pyscf")
     from pyscf import gto, scf
 
-    from fieldprop.engine import compute
-    from fieldprop.job import load_job
+    from fieldprop.engine.core import compute
+    from fieldprop.inputs.job import load_job
 
     path = tmp_path / "water.toml"
     path.write_text('[molecule]\ngeometry = """\nO 0 0 0.1173\nH 0 0.7572 -0.4692\n'

@@ -1,11 +1,11 @@
 """The numerical heart of fieldprop against exact answers, with no PySCF.
 
-Covered: the stencil planner plus Richardson extrapolation (fieldprop.plan,
-fieldprop.extrapolate, fieldprop.engine.extrapolate_components) on synthetic
+Covered: the stencil planner plus Richardson extrapolation (fieldprop.numerics.plan,
+fieldprop.numerics.extrapolate, fieldprop.engine.extrapolate_components) on synthetic
 energy and dipole functions whose derivatives are known exactly; the error bars
 and round-off floors under energy noise of known size; the Richardson table by
-itself; the tensor invariants (fieldprop.tensors) on hand-computable cases and
-against brute-force orientational averages; the unit factors (fieldprop.units).
+itself; the tensor invariants (fieldprop.numerics.tensors) on hand-computable cases and
+against brute-force orientational averages; the unit factors (fieldprop.numerics.units).
 
 Sources. "REFERENCES" is docs/REFERENCES.md: sect. 1 (Taylor
 convention), sect. 2 (central stencils, their noise factors C_n, the Richardson
@@ -33,11 +33,11 @@ import pytest
 from scipy import constants as sc
 from scipy.spatial.transform import Rotation
 
-from fieldprop import tensors as ft
-from fieldprop import units
-from fieldprop.engine import NoiseModel, extrapolate_components
-from fieldprop.extrapolate import ComponentStatus, richardson
-from fieldprop.plan import plan_fields
+from fieldprop.numerics import tensors as ft
+from fieldprop.numerics import units
+from fieldprop.engine.core import NoiseModel, extrapolate_components
+from fieldprop.numerics.extrapolate import ComponentStatus, richardson
+from fieldprop.numerics.plan import plan_fields
 
 EPS = float(np.finfo(float).eps)  # 2**-52
 PROPS = ("dipole", "alpha", "beta", "gamma")
@@ -849,15 +849,37 @@ def test_unit_factor_matches_codata_derived_unit(order, key):
 # 6. Purity: the numerics import without PySCF
 # --------------------------------------------------------------------------
 
-def test_numerics_import_without_pyscf():
-    code = ("import fieldprop.plan, fieldprop.extrapolate, fieldprop.tensors, "
-            "fieldprop.continuity, fieldprop.window, fieldprop.relaxation, sys; "
-            "assert 'pyscf' not in sys.modules")
-    assert subprocess.run([sys.executable, "-c", code], cwd=REPO).returncode == 0
+def _modules(room: str) -> list[str]:
+    folder = REPO / "fieldprop" / room
+    return [f"fieldprop.{room}.{p.stem}" for p in sorted(folder.glob("*.py"))
+            if p.stem != "__init__"]
 
 
-def test_engine_import_without_pyscf():
-    """This file uses fieldprop.engine.extrapolate_components: the tests are
-    PySCF-free only while importing the engine does not load PySCF."""
-    code = "import fieldprop.engine, fieldprop.units, sys; assert 'pyscf' not in sys.modules"
-    assert subprocess.run([sys.executable, "-c", code], cwd=REPO).returncode == 0
+@pytest.mark.parametrize("room", ["numerics", "inputs", "points", "engine", "outputs", "cli"])
+def test_every_room_but_the_backend_imports_without_pyscf(room):
+    """PySCF lives behind fieldprop.backend alone: importing any other module
+    (the pure numerics, inputs, the point store and executors, the engine
+    whose analysis collect runs, the outputs, the command line) loads none of
+    it, so collect and report run where PySCF is not even installed."""
+    modules = _modules(room)
+    assert modules
+    code = f"import sys, {', '.join(modules)}; assert 'pyscf' not in sys.modules, 'pyscf'"
+    done = subprocess.run([sys.executable, "-c", code], cwd=REPO, capture_output=True,
+                          text=True)
+    assert done.returncode == 0, done.stderr
+
+
+def test_only_the_backend_imports_pyscf():
+    """No module outside fieldprop/backend names PySCF in an import, even a
+    deferred one: the arrows point down, and the backend is the bottom room
+    the others reach through its functions."""
+    import re
+
+    offenders = []
+    for path in sorted((REPO / "fieldprop").rglob("*.py")):
+        if "backend" in path.relative_to(REPO / "fieldprop").parts:
+            continue
+        for number, line in enumerate(path.read_text().splitlines(), start=1):
+            if re.match(r"\s*(from pyscf\b|import pyscf\b)", line):
+                offenders.append(f"{path.relative_to(REPO)}:{number}")
+    assert not offenders, offenders

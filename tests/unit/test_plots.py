@@ -1,7 +1,7 @@
 """The plots' y-range follows the plateau, not the largest-field estimates."""
 
-from fieldprop.extrapolate import richardson
-from fieldprop.plots import PLATEAU_BARS, _plateau_range
+from fieldprop.numerics.extrapolate import richardson
+from fieldprop.outputs.plots import PLATEAU_BARS, _plateau_range
 
 
 def test_the_y_range_follows_the_plateau_not_the_drifting_large_fields():

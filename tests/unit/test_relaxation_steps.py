@@ -1,10 +1,10 @@
-"""The pure side of nuclear relaxation (fieldprop.relaxation): the Eckart basis
+"""The pure side of nuclear relaxation (fieldprop.numerics.relaxation): the Eckart basis
 and the Newton steps on synthetic surfaces whose minima are known, no PySCF."""
 
 import numpy as np
 import pytest
 
-from fieldprop.relaxation import (Evaluation, Frame, NotRelaxed, double_harmonic_alpha,
+from fieldprop.numerics.relaxation import (Evaluation, Frame, NotRelaxed, double_harmonic_alpha,
                                   eckart_basis, eckart_residuals, relax)
 
 RNG = np.random.default_rng(11)

@@ -18,10 +18,10 @@ import itertools
 import numpy as np
 import pytest
 
-from fieldprop import tensors as ft
-from fieldprop.extrapolate import ComponentEstimate, ComponentStatus, mark_unstable
-from fieldprop.plan import plan_fields
-from fieldprop.records import Orientation
+from fieldprop.numerics import tensors as ft
+from fieldprop.numerics.extrapolate import ComponentEstimate, ComponentStatus, mark_unstable
+from fieldprop.numerics.plan import plan_fields
+from fieldprop.points.records import Orientation
 
 RNG = np.random.default_rng(20240611)
 #: A tilted linear molecule's frame (u, v, n), as MoleculeSpec.orientation_frame builds it.

@@ -13,12 +13,12 @@ from pathlib import Path
 
 import pytest
 
-from fieldprop.job import ModelSpec, ScfSpec
-from fieldprop.keys import Quantities, model_key, point_key
-from fieldprop.molecule import MoleculeSpec
-from fieldprop.plan import FieldPoint
-from fieldprop.records import PointRecord, PointTask
-from fieldprop.store import PointStore
+from fieldprop.inputs.job import ModelSpec, ScfSpec
+from fieldprop.points.keys import Quantities, model_key, point_key
+from fieldprop.inputs.molecule import MoleculeSpec
+from fieldprop.numerics.plan import FieldPoint
+from fieldprop.points.records import PointRecord, PointTask
+from fieldprop.points.store import PointStore
 
 H2 = MoleculeSpec(("H", "H"), (1, 1), ((0.0, 0.0, 0.0), (0.0, 0.0, 1.4)), 0, 1, (0.0, 0.0, 0.7))
 MODEL = ModelSpec("hf", "sto-3g", "restricted")
@@ -98,7 +98,7 @@ def test_a_store_in_a_folder_this_process_cannot_write_is_read_as_it_stands(tmp_
     user's, a read-only mount), the view reads the file as immutable: every
     row, and no file made beside it. (Permissions are simulated, so that the
     test also runs as root; tests/cli/test_store_input.py has the real folder.)"""
-    from fieldprop import store as store_module
+    from fieldprop.points import store as store_module
 
     path = tmp_path / "points.sqlite"
     write_points(path, range(3))
@@ -146,8 +146,8 @@ def test_a_writer_checkpoints_while_an_export_is_consumed_slowly(tmp_path, monke
     reader, and every point is exported once, in order."""
     import json
 
-    from fieldprop import store as store_module
-    from fieldprop.report import write_store_lines
+    from fieldprop.points import store as store_module
+    from fieldprop.outputs.report import write_store_lines
 
     if batch is not None:
         monkeypatch.setattr(store_module, "EXPORT_BATCH", batch)
@@ -167,7 +167,7 @@ def test_a_writer_checkpoints_while_an_export_is_consumed_slowly(tmp_path, monke
 def test_only_a_verifying_open_reads_the_whole_file(tmp_path, monkeypatch):
     """The full check (PRAGMA quick_check: every page) runs when asked
     (``verify``: once per job, and ``inspect``), not on every open."""
-    from fieldprop import store as store_module
+    from fieldprop.points import store as store_module
 
     path = tmp_path / "points.sqlite"
     write_points(path, range(3))

@@ -1,4 +1,4 @@
-"""Point-group symmetry of the nuclear framework (fieldprop.symmetry), pure
+"""Point-group symmetry of the nuclear framework (fieldprop.numerics.symmetry), pure
 numerics: group orders of textbook molecules wherever they are placed, the
 components the group forces to zero, images of field vectors, and the
 symmetrised geometry.
@@ -13,7 +13,7 @@ import math
 import numpy as np
 import pytest
 
-from fieldprop.symmetry import SYMMETRY_TOLERANCE_BOHR, detect, image_record, images
+from fieldprop.numerics.symmetry import SYMMETRY_TOLERANCE_BOHR, detect, image_record, images
 
 
 def _bent(bond, angle_deg):
@@ -164,8 +164,8 @@ def test_off_axis_forced_zeros_are_those_of_the_turned_tensor():
 
 
 def test_images_map_field_vectors_exactly_and_records_turn_with_them():
-    from fieldprop.plan import FieldPoint
-    from fieldprop.records import PointRecord
+    from fieldprop.numerics.plan import FieldPoint
+    from fieldprop.points.records import PointRecord
 
     charges, coords, _ = MOLECULES["water (C2v)"]
     sym = detect(charges, coords)
@@ -232,7 +232,7 @@ def test_the_symmetry_frame_makes_the_operations_lattice_maps(name):
     """Off its axes, each molecule gets a frame in which as many operations
     permute the stencil lattice as in its own axes (C3v, D6h: only the
     subgroup a cubic lattice can carry); aligned, the input frame is kept."""
-    from fieldprop.symmetry import _lattice_operations
+    from fieldprop.numerics.symmetry import _lattice_operations
 
     charges, coords, order = MOLECULES[name]
     aligned = detect(charges, coords)
@@ -253,7 +253,7 @@ def test_a_framework_symmetric_only_to_the_tolerance_gets_exact_operations(name)
     # into every derivative (1e-7 of mu over h^2 is ~0.1 au of beta); worse, the
     # forced zeros computed from them were all of them (the dipole of ammonia
     # came out zero by "symmetry"). The operations must come out exact.
-    from fieldprop.symmetry import _invariant_basis
+    from fieldprop.numerics.symmetry import _invariant_basis
 
     charges, coords, order = MOLECULES[name]
     q, shift = _turn(11)
@@ -305,7 +305,7 @@ def test_symmetrise_like_restores_a_group_in_the_axes_exactly():
     """An optimiser's structure tilted and shifted by ~1e-7 bohr goes back onto
     the starting geometry's group about its centre: mirror images bit for bit,
     atoms on the axis exactly on it."""
-    from fieldprop.symmetry import symmetrise_like
+    from fieldprop.numerics.symmetry import symmetrise_like
 
     charges = (6, 8, 1, 1)
     start = np.array([[0, 0, -1.0], [0, 0, 1.28], [0, 1.78, -2.1], [0, -1.78, -2.1]])

@@ -24,7 +24,7 @@ from pathlib import Path  # noqa: E402
 from typing import Sequence  # noqa: E402
 
 from fieldprop import __version__  # noqa: E402
-from fieldprop.atomic_files import replacing  # noqa: E402
+from fieldprop.outputs.files import replacing  # noqa: E402
 from fieldprop.errors import CampaignError, FieldpropError, IncompleteError, InputError  # noqa: E402,E501
 
 logger = logging.getLogger("fieldprop")
@@ -205,7 +205,7 @@ def _positive_float(text: str) -> float:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    from fieldprop.store import DEFAULT_NAME as DEFAULT_STORE_NAME
+    from fieldprop.points.store import DEFAULT_NAME as DEFAULT_STORE_NAME
 
     parser = _Parser(prog="fieldprop", epilog=EXIT_CODES,
                      formatter_class=argparse.RawDescriptionHelpFormatter,
@@ -365,7 +365,7 @@ def build_parser() -> argparse.ArgumentParser:
                             formatter_class=argparse.RawDescriptionHelpFormatter)
     screen.add_argument("set", type=Path, help="set file (TOML): molecules and the model, "
                         "response and geometry options they share")
-    from fieldprop.ranking import RANK_KEYS
+    from fieldprop.outputs.ranking import RANK_KEYS
 
     screen.add_argument("--rank-by", choices=RANK_KEYS, default=None,
                         help="ranking invariant, by magnitude (default: beta_hrs when beta is "
@@ -432,7 +432,7 @@ def _executor_options(parser) -> None:
 
 def _executor(args):
     """The executor of --workers/--threads/--scheduler/--scheduler-file."""
-    from fieldprop.execute import make_executor
+    from fieldprop.engine.stages import make_executor
 
     workers = args.workers or max(1, default_workers() // args.threads)
     return make_executor(workers, args.threads, args.scheduler,
@@ -440,7 +440,7 @@ def _executor(args):
 
 
 def _store_options(parser) -> None:
-    from fieldprop.store import DEFAULT_NAME as DEFAULT_STORE_NAME
+    from fieldprop.points.store import DEFAULT_NAME as DEFAULT_STORE_NAME
 
     group = parser.add_mutually_exclusive_group()
     group.add_argument("--store", type=Path, metavar="PATH", help="point store: computed points "
@@ -454,7 +454,7 @@ def _store_options(parser) -> None:
 
 def _open_store(args, job_path: Path, read_only: bool = False):
     """The store the options name: in memory, --store PATH, or the default file."""
-    from fieldprop.store import PointStore, default_store_path
+    from fieldprop.points.store import PointStore, default_store_path
 
     if getattr(args, "no_store", False):
         return PointStore.in_memory()
@@ -489,7 +489,7 @@ def _at_optimised_geometry(prepared, store, job_path: Path):
     """``prepared`` again at the optimised geometry, when the job asks for
     one (optimised now or found in ``store``), with it written beside the job
     as JOB.optimised.xyz; else ``prepared`` itself."""
-    from fieldprop.engine import optimised, prepare
+    from fieldprop.engine.core import optimised, prepare
 
     job = prepared.job
     if not job.geometry.optimize:
@@ -514,7 +514,7 @@ def _clamped_only(job, command: str) -> None:
 def _at_relaxation_minimum(prepared, store):
     """``prepared`` again at the zero-field minimum the nuclear relaxation is
     held to (computed now or found in ``store``), when the job asks for it."""
-    from fieldprop.engine import prepare, relaxed_reference
+    from fieldprop.engine.core import prepare, relaxed_reference
 
     if not prepared.job.response.nuclear_relaxation:
         return prepared
@@ -555,9 +555,9 @@ def default_workers() -> int:
 
 
 def cmd_run(args) -> int:
-    from fieldprop.engine import prepare, require_stable, run_prepared
-    from fieldprop.job import load_job
-    from fieldprop.report import (check_output_path, is_stdout, result_document,
+    from fieldprop.engine.core import prepare, require_stable, run_prepared
+    from fieldprop.inputs.job import load_job
+    from fieldprop.outputs.report import (check_output_path, is_stdout, result_document,
                                   write_json_atomic)
 
     job = load_job(args.job)
@@ -588,7 +588,7 @@ def cmd_run(args) -> int:
         logger.info("result written to %s (%.1f s)", out_path, result.wall_time_s)
         _to_stdout(lambda: _write_result(result, args.format, args.units, out_path))
     if args.plot is not None:
-        from fieldprop.plots import write_plots
+        from fieldprop.outputs.plots import write_plots
 
         for name in write_plots(result.tensors, result.plan, args.plot):
             logger.info("plot written to %s", args.plot / name)
@@ -597,11 +597,11 @@ def cmd_run(args) -> int:
 
 
 def cmd_check(args) -> int:
-    from fieldprop import compare
-    from fieldprop.engine import prepare, reference_tensors, run_prepared
-    from fieldprop.job import load_job
-    from fieldprop.methods import METHODS
-    from fieldprop.report import (check_output_path, comparison_document, is_stdout,
+    from fieldprop.outputs import compare
+    from fieldprop.engine.core import prepare, reference_tensors, run_prepared
+    from fieldprop.inputs.job import load_job
+    from fieldprop.numerics.methods import METHODS
+    from fieldprop.outputs.report import (check_output_path, comparison_document, is_stdout,
                                   write_comparison, write_json_atomic)
 
     job = load_job(args.job)
@@ -675,7 +675,7 @@ def cmd_check(args) -> int:
 
 def _agreement_rule(args):
     """check's rule from its options; --strict refuses the floors' options."""
-    from fieldprop import compare
+    from fieldprop.outputs import compare
 
     if args.strict:
         given = [o for o, v in (("--rel-floor", args.rel_floor),
@@ -692,7 +692,7 @@ def _agreement_rule(args):
 
 def _write_result(result, fmt: str, units: str, label) -> None:
     """A result on stdout: the tables, the result JSON, or a CSV of components."""
-    from fieldprop.report import result_document, write_tables
+    from fieldprop.outputs.report import result_document, write_tables
 
     if fmt == "table":
         write_tables(result, sys.stdout, units)
@@ -700,7 +700,7 @@ def _write_result(result, fmt: str, units: str, label) -> None:
         json.dump(result_document(result), sys.stdout, indent=1, allow_nan=False)
         sys.stdout.write("\n")
     else:
-        from fieldprop import summary
+        from fieldprop.outputs import summary
 
         summary.write([(str(label), result_document(result))], sys.stdout, units, "taylor",
                       "csv", components=True)
@@ -731,11 +731,11 @@ def _read_point_lines(paths: list[Path] | None):
 
 
 def cmd_plan(args) -> int:
-    from fieldprop.engine import gather, make_plan, to_compute, todo_list_key
-    from fieldprop.job import load_job
-    from fieldprop.report import write_plan
-    from fieldprop.stages import JobWork
-    from fieldprop.store import PointStore, default_store_path
+    from fieldprop.engine.core import gather, make_plan, to_compute, todo_list_key
+    from fieldprop.inputs.job import load_job
+    from fieldprop.outputs.report import write_plan
+    from fieldprop.engine.stages import JobWork
+    from fieldprop.points.store import PointStore, default_store_path
 
     job = load_job(args.job)
     _clamped_only(job, "plan")
@@ -743,7 +743,7 @@ def cmd_plan(args) -> int:
     path = args.store if args.store is not None else default_store_path(args.job)
     if args.count:
         if not path.exists():  # bad input must not leave a new store behind
-            from fieldprop.engine import prepare
+            from fieldprop.engine.core import prepare
 
             prepare(job)
         store = PointStore.open(path)  # fixes the to-do list: written
@@ -805,8 +805,8 @@ def _requested_ids(args) -> list[str]:
 
 def _targets(args, prepared, store) -> list:
     """The planned tasks a ``point`` command is asked for, in order, once each."""
-    from fieldprop.engine import todo_list_key
-    from fieldprop.keys import short_id
+    from fieldprop.engine.core import todo_list_key
+    from fieldprop.points.keys import short_id
 
     tasks = prepared.all_tasks()  # a later stage may ask for tightened points
     if args.zero_field:
@@ -852,13 +852,13 @@ def _targets(args, prepared, store) -> list:
 def cmd_point(args) -> int:
     from threadpoolctl import threadpool_limits
 
-    from fieldprop.engine import prepare
-    from fieldprop.execute import InProcess
-    from fieldprop.job import load_job
-    from fieldprop.keys import short_id
-    from fieldprop.pointlines import line_document, write_line
-    from fieldprop.stages import JobWork, compute_jobs
-    from fieldprop.store import PointStore, default_store_path
+    from fieldprop.engine.core import prepare
+    from fieldprop.points.executors import InProcess
+    from fieldprop.inputs.job import load_job
+    from fieldprop.points.keys import short_id
+    from fieldprop.points.pointlines import line_document, write_line
+    from fieldprop.engine.stages import JobWork, compute_jobs
+    from fieldprop.points.store import PointStore, default_store_path
 
     job = load_job(args.job)
     _clamped_only(job, "point")
@@ -870,7 +870,7 @@ def cmd_point(args) -> int:
         real = PointStore.open(path)
     try:
         if job.geometry.optimize:
-            from fieldprop.engine import optimised
+            from fieldprop.engine.core import optimised
 
             job = optimised(job, real, compute=True)
             prepared = prepare(job, facts=prepared.facts)
@@ -898,9 +898,9 @@ def cmd_point(args) -> int:
         todo = work.todo()
         if todo:
             threads = args.threads or _env_threads()
-            from pyscf import lib
+            from fieldprop.backend.tasks import set_threads
 
-            lib.num_threads(threads)
+            set_threads(threads)
             with threadpool_limits(threads):
                 compute_jobs([work], store, InProcess())
         failed = []
@@ -929,7 +929,7 @@ def cmd_point(args) -> int:
     if work.failure is not None:
         raise work.failure
     if failed:
-        from fieldprop.engine import failed_points_error
+        from fieldprop.engine.core import failed_points_error
 
         raise failed_points_error(prepared, failed, args.retry_failed)
     return 0
@@ -943,10 +943,10 @@ def _env_threads() -> int:
 
 
 def cmd_collect(args) -> int:
-    from fieldprop.engine import collect, require_stable
-    from fieldprop.job import load_job
-    from fieldprop.report import check_output_path, is_stdout, result_document, write_json_atomic
-    from fieldprop.store import PointStore, default_store_path
+    from fieldprop.engine.core import collect, require_stable
+    from fieldprop.inputs.job import load_job
+    from fieldprop.outputs.report import check_output_path, is_stdout, result_document, write_json_atomic
+    from fieldprop.points.store import PointStore, default_store_path
 
     job = load_job(args.job)
     out_path = args.json if args.json is not None else default_result_path(args.job)
@@ -983,11 +983,11 @@ def cmd_collect(args) -> int:
 
 
 def cmd_screen(args) -> int:
-    from fieldprop import ranking
-    from fieldprop.campaign import load_set
-    from fieldprop.report import check_output_path, is_stdout, result_document, \
+    from fieldprop.outputs import ranking
+    from fieldprop.inputs.campaign import load_set
+    from fieldprop.outputs.report import check_output_path, is_stdout, result_document, \
         write_json_atomic
-    from fieldprop.screening import run_campaign
+    from fieldprop.engine.screening import run_campaign
 
     campaign = load_set(args.set)
     stem = args.set.with_suffix("")
@@ -1063,7 +1063,7 @@ def cmd_screen(args) -> int:
 
 
 def _formula_text(job) -> str:
-    from fieldprop.molecule import build_molecule
+    from fieldprop.inputs.molecule import build_molecule
 
     try:
         return build_molecule(job.molecule, job.response.origin).formula
@@ -1087,10 +1087,10 @@ def cmd_relax(args) -> int:
 
     import numpy as np
 
-    from fieldprop.engine import prepare, relax_at_field
-    from fieldprop.job import load_job
-    from fieldprop.methods import METHODS
-    from fieldprop.report import (check_output_path, is_stdout, write_json_atomic,
+    from fieldprop.engine.core import prepare, relax_at_field
+    from fieldprop.inputs.job import load_job
+    from fieldprop.numerics.methods import METHODS
+    from fieldprop.outputs.report import (check_output_path, is_stdout, write_json_atomic,
                                   write_relaxation_table, write_relaxed_structure)
 
     job = load_job(args.job)
@@ -1127,7 +1127,7 @@ def cmd_relax(args) -> int:
 
 
 def cmd_report(args) -> int:
-    from fieldprop import summary
+    from fieldprop.outputs import summary
 
     docs = [(str(path), summary.load_result(path)) for path in args.results]
     _to_stdout(lambda: summary.write(docs, sys.stdout, args.units, args.convention,
@@ -1136,8 +1136,8 @@ def cmd_report(args) -> int:
 
 
 def cmd_inspect(args) -> int:
-    from fieldprop.report import write_store_lines, write_store_summary
-    from fieldprop.store import PointStore
+    from fieldprop.outputs.report import write_store_lines, write_store_summary
+    from fieldprop.points.store import PointStore
 
     with PointStore.open(args.store, read_only=True, verify=True) as store:
         if args.json_lines:

@@ -34,9 +34,9 @@ from pathlib import Path
 from typing import Any
 
 from fieldprop.errors import InputError
-from fieldprop.methods import METHODS as METHOD_TRAITS
-from fieldprop.methods import Route, methods_with
-from fieldprop.units import BACKEND_BOHR_ANGSTROM, NAMED_BOHR_ANGSTROM, PROPERTY_ORDER
+from fieldprop.numerics.methods import METHODS as METHOD_TRAITS
+from fieldprop.numerics.methods import Route, methods_with
+from fieldprop.numerics.units import BACKEND_BOHR_ANGSTROM, NAMED_BOHR_ANGSTROM, PROPERTY_ORDER
 
 logger = logging.getLogger(__name__)
 
@@ -190,7 +190,7 @@ class ResponseSpec:
     symmetry: bool | str = True
     #: Which levels of the ladder are computed: "adaptive" (the automatic
     #: ladder, each component's levels grown from three while its table has not
-    #: settled: fieldprop.window), "full" (every level of the automatic ladder)
+    #: settled: fieldprop.numerics.window), "full" (every level of the automatic ladder)
     #: or "fixed" (the job's own field_au: every level).
     window: str = "fixed"
 
@@ -880,8 +880,8 @@ def needed_gradient(method: str, route: str, max_order: int, field_au: float) ->
     >>> f"{needed_gradient('hf', 'energy', 2, 0.00025):.1e}"
     '4.0e-07'
     """
-    from fieldprop.plan import central_weights
-    from fieldprop.tensors import NEGLIGIBLE_ERROR_AU
+    from fieldprop.numerics.plan import central_weights
+    from fieldprop.numerics.tensors import NEGLIGIBLE_ERROR_AU
 
     k = max_order - 1 if route == "dipole" else max_order
     weight = sum(abs(w) for _, w in central_weights(k)) if k > 0 else 1.0

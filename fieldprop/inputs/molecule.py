@@ -6,7 +6,7 @@ by default the centre of nuclear charge.
 
 Example
 -------
->>> from fieldprop.job import Atom, MoleculeInput
+>>> from fieldprop.inputs.job import Atom, MoleculeInput
 >>> m = MoleculeInput((Atom("H", (0.0, 0.0, 0.0)), Atom("H", (0.0, 0.0, 1.4))), 0, 1,
 ...                   "bohr", "inline")
 >>> spec = build_molecule(m, "nuclear-charge")
@@ -21,8 +21,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from fieldprop.atomic_weights import ATOMIC_WEIGHTS
-from fieldprop.job import MoleculeInput
+from fieldprop.inputs.atomic_weights import ATOMIC_WEIGHTS
+from fieldprop.inputs.job import MoleculeInput
 
 
 #: Largest distance (bohr) of a nucleus from the line through the others for a
@@ -113,7 +113,7 @@ class MoleculeSpec:
         axis most perpendicular to n projected onto the plane normal to it,
         v = n x u; for an atom x, y, z. None for anything else.
 
-        >>> from fieldprop.job import Atom, MoleculeInput
+        >>> from fieldprop.inputs.job import Atom, MoleculeInput
         >>> m = MoleculeInput((Atom("O", (0.0, 0.0, 0.0)), Atom("H", (0.0, 0.0, 1.8))), 0, 2,
         ...                   "bohr", "inline")
         >>> build_molecule(m, "zero").orientation_frame().round(12).tolist()
@@ -140,7 +140,7 @@ def centre_of_nuclear_charge(charges, coords_bohr) -> tuple[float, float, float]
 
 def centre_of_mass(charges, coords_bohr) -> tuple[float, float, float]:
     """sum_A m_A R_A / sum_A m_A in bohr, with the standard (isotope-averaged)
-    atomic weights of :mod:`fieldprop.atomic_weights` (PySCF's values, without
+    atomic weights of :mod:`fieldprop.inputs.atomic_weights` (PySCF's values, without
     PySCF), by nuclear charge."""
     m = np.array([ATOMIC_WEIGHTS[int(z)] for z in charges])
     c = (m @ np.asarray(coords_bohr, dtype=float)) / m.sum()

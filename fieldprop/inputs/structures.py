@@ -51,8 +51,8 @@ class SmilesStructure:
         ~1e-7 bohr of asymmetry), each number at full precision (the text
         reads back to the same doubles), and the group's name ("" for none):
         the structure computed is then exactly the one reported."""
-        from fieldprop.job import _Z_OF
-        from fieldprop.symmetry import detect
+        from fieldprop.inputs.job import _Z_OF
+        from fieldprop.numerics.symmetry import detect
 
         coords = np.asarray(self.coords_angstrom, dtype=float) * (1.0 / bohr_angstrom)
         group = detect([_Z_OF[s.lower()] for s in self.symbols], coords)

@@ -1,6 +1,6 @@
 """The point store: every computed field point, kept in one SQLite file.
 
-A point is stored under its content key (:mod:`fieldprop.keys`), so any job
+A point is stored under its content key (:mod:`fieldprop.points.keys`), so any job
 that needs the same field vector of the same molecule and model finds it,
 whatever its plan. The zero-field reference each point starts from and is
 checked against (density, occupied orbitals, <S^2>, symmetry operations) is
@@ -74,7 +74,7 @@ import numpy as np
 
 from fieldprop import __version__
 from fieldprop.errors import InputError
-from fieldprop.records import (Orientation, PointFailure, PointRecord, SymmetryOperation,
+from fieldprop.points.records import (Orientation, PointFailure, PointRecord, SymmetryOperation,
                                ZeroFieldReference)
 
 logger = logging.getLogger(__name__)

@@ -57,8 +57,8 @@ from functools import lru_cache
 
 import numpy as np
 
-from fieldprop.methods import Route
-from fieldprop.units import PROPERTY_ORDER
+from fieldprop.numerics.methods import Route
+from fieldprop.numerics.units import PROPERTY_ORDER
 
 AXES = "xyz"
 

@@ -123,7 +123,7 @@ class Frame:
     def frequencies_cm(self) -> np.ndarray:
         """Harmonic wavenumbers (cm^-1) of the internal Hessian, ascending;
         an imaginary one as a negative number."""
-        from fieldprop.units import HARTREE_TO_CM, AMU_TO_ME
+        from fieldprop.numerics.units import HARTREE_TO_CM, AMU_TO_ME
 
         lam = np.linalg.eigvalsh(self.hessian) / AMU_TO_ME
         return np.sign(lam) * np.sqrt(np.abs(lam)) * HARTREE_TO_CM

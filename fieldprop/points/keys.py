@@ -32,8 +32,8 @@ two versions, and what is stored stays readable by any version.
 Keys are SHA-256 over a canonical JSON text (sorted keys, no spaces); never
 Python's salted ``hash``. Pure: no PySCF, no I/O.
 
->>> from fieldprop.job import ModelSpec, ScfSpec
->>> from fieldprop.molecule import MoleculeSpec
+>>> from fieldprop.inputs.job import ModelSpec, ScfSpec
+>>> from fieldprop.inputs.molecule import MoleculeSpec
 >>> m = MoleculeSpec(("H", "H"), (1, 1), ((0.0, 0.0, 0.0), (0.0, 0.0, 1.4)), 0, 1,
 ...                  (0.0, 0.0, 0.7))
 >>> k = model_key(m, ModelSpec("hf", "sto-3g", "restricted"), ScfSpec(1e-11, 1e-8, 200, None))

@@ -24,11 +24,11 @@ import time
 from dataclasses import dataclass
 
 from fieldprop import errors
-from fieldprop.campaign import Campaign, Candidate
-from fieldprop.engine import RunResult, gather
-from fieldprop.execute import optimise_task
-from fieldprop.progress import Progress
-from fieldprop.stages import JobWork, compute_jobs
+from fieldprop.inputs.campaign import Campaign, Candidate
+from fieldprop.engine.core import RunResult, gather
+from fieldprop.backend.tasks import optimise_task
+from fieldprop.points.progress import Progress
+from fieldprop.engine.stages import JobWork, compute_jobs
 
 logger = logging.getLogger(__name__)
 
@@ -60,7 +60,7 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
                  log_every_s: float | None = None, retry_failed: bool = False,
                  on_result=None) -> tuple[list[MoleculeOutcome], CampaignCounts]:
     """Compute and analyse every molecule of ``campaign`` (see the module
-    text) on ``pool`` (an executor of fieldprop.execute);
+    text) on ``pool`` (an executor of fieldprop.points.executors);
     ``on_result(outcome)`` is called as each molecule finishes."""
     start = time.perf_counter()
     outcomes = [MoleculeOutcome(c) for c in campaign.candidates]
@@ -110,7 +110,7 @@ def _optimise(candidates, outcomes, store, pool, progress: bool) -> list:
     task per molecule whose optimised geometry is not stored; each result is
     stored at once and logged. A failed optimisation fails its molecule.
     Returns each molecule's job (at its optimised geometry where optimised)."""
-    from fieldprop.engine import geometry_key, with_geometry
+    from fieldprop.engine.core import geometry_key, with_geometry
 
     jobs = [c.job for c in candidates]
     pending = {}
@@ -166,7 +166,7 @@ def _prepare(candidate: Candidate, out: MoleculeOutcome, job, store,
     engine's JobWork); None, with ``out`` failed, for a model PySCF refuses
     for it or a model stored by another backend version (that molecule
     fails, not the set)."""
-    from fieldprop.execute import refuse_another_backend
+    from fieldprop.backend.tasks import refuse_another_backend
 
     try:
         prepared, rows = gather(job, store)

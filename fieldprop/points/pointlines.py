@@ -28,9 +28,9 @@ import math
 from typing import Iterable, TextIO
 
 from fieldprop.errors import InputError
-from fieldprop.keys import backend_version_conflict, point_key, short_id
-from fieldprop.records import Orientation
-from fieldprop.store import StoredPoint
+from fieldprop.points.keys import backend_version_conflict, point_key, short_id
+from fieldprop.points.records import Orientation
+from fieldprop.points.store import StoredPoint
 
 #: The kind mark of a point line.
 SCHEMA = "fieldprop-point-1"

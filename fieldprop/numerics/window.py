@@ -4,7 +4,7 @@ Pure numerics: a plan's components, their current windows and their Richardson
 estimates in; wider windows out. No PySCF, no store.
 
 The automatic ladder spans h_k = h0 * 2**k, k = 0..L-1 (AUTO_FIELD_AU and
-AUTO_LEVELS of :mod:`fieldprop.job`), wide enough to hold every component's
+AUTO_LEVELS of :mod:`fieldprop.inputs.job`), wide enough to hold every component's
 stable window. Computing all of it for every component doubles a job's cost
 over a 3-level ladder, yet each component's best Richardson entry uses only a
 few neighbouring levels. So each component starts from a window of
@@ -45,7 +45,7 @@ stored points and name what the next stage needs.
 
 Example
 -------
->>> from fieldprop.plan import plan_fields
+>>> from fieldprop.numerics.plan import plan_fields
 >>> plan = plan_fields(("alpha",), 0.00025, 2.0, 6, "dipole")
 >>> initial_windows(plan)[:2]
 ((2, 4, 0), (2, 4, 0))
@@ -55,8 +55,8 @@ Example
 
 from __future__ import annotations
 
-from fieldprop.extrapolate import ComponentEstimate, ComponentStatus
-from fieldprop.methods import Route
+from fieldprop.numerics.extrapolate import ComponentEstimate, ComponentStatus
+from fieldprop.numerics.methods import Route
 
 #: Levels of a component's first window.
 START_LEVELS = 3

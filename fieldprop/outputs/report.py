@@ -18,13 +18,13 @@ import numpy as np
 from tabulate import tabulate
 
 from fieldprop import __version__
-from fieldprop.atomic_files import replacing
-from fieldprop.engine import RunResult, entry_window_au
-from fieldprop.job import SYMMETRISE
-from fieldprop.extrapolate import ComponentStatus
-from fieldprop.keys import short_id
-from fieldprop.plan import FieldPlan
-from fieldprop.units import (DISPLAY_UNITS,
+from fieldprop.outputs.files import replacing
+from fieldprop.engine.core import RunResult, entry_window_au
+from fieldprop.inputs.job import SYMMETRISE
+from fieldprop.numerics.extrapolate import ComponentStatus
+from fieldprop.points.keys import short_id
+from fieldprop.numerics.plan import FieldPlan
+from fieldprop.numerics.units import (DISPLAY_UNITS,
                              FIELD_AU_TO_V_PER_M, PROPERTY_ORDER, TABLE_UNITS)
 
 SCHEMA = "fieldprop-result-1"
@@ -497,7 +497,7 @@ def _relaxation_document(part) -> dict:
     """How the nuclear relaxation was done: the zero-field minimum and each
     relaxed point's structure and remaining optimiser errors."""
     frame = part.frame
-    from fieldprop import relaxation as nr
+    from fieldprop.numerics import relaxation as nr
 
     return {
         "method": "finite-field nuclear relaxation under the Eckart conditions of the "
@@ -809,9 +809,9 @@ def write_store_summary(store, path: Path, out: TextIO) -> None:
 
 
 def write_store_lines(store, out: TextIO) -> None:
-    """Every stored point as a point line (:mod:`fieldprop.pointlines`),
+    """Every stored point as a point line (:mod:`fieldprop.points.pointlines`),
     computed and failed: ``fieldprop collect --points`` reads them back."""
-    from fieldprop.pointlines import line_document, write_line
+    from fieldprop.points.pointlines import line_document, write_line
 
     facts: dict = {}
     for row, extra, description in store.iter_points():

@@ -4,7 +4,7 @@ Every entrance asks this module what to compute, under one policy:
 
 - ``run``, ``check`` and ``screen`` hand their prepared jobs, with the records
   the store holds (:meth:`JobWork.at_hand`), to :func:`compute_jobs`, which
-  sends the missing points to an executor (:mod:`fieldprop.execute`: this
+  sends the missing points to an executor (:mod:`fieldprop.points.executors`: this
   process, local processes or a Dask cluster), stores every outcome as it
   arrives (the parent process is the store's only writer) and moves each job
   through the adaptive window's stages (:func:`fieldprop.engine.settle`), then
@@ -33,10 +33,10 @@ import time
 from dataclasses import dataclass, field
 
 from fieldprop import errors
-from fieldprop.execute import point_task, predecessors, reference_task, \
-    refuse_another_backend, worker_lost
-from fieldprop.progress import Progress
-from fieldprop.records import PointFailure, PointRecord, PointTask, ZeroFieldReference
+from fieldprop.backend.tasks import point_task, reference_task, refuse_another_backend
+from fieldprop.points.executors import predecessors, worker_lost
+from fieldprop.points.progress import Progress
+from fieldprop.points.records import PointFailure, PointRecord, PointTask, ZeroFieldReference
 
 logger = logging.getLogger(__name__)
 
@@ -80,7 +80,7 @@ class JobWork:
         """A job with the records ``rows`` ({key: StoredPoint}, from a store
         and point lines) of every task it may ask for, its stage settled on
         them."""
-        from fieldprop.engine import relaxed_tasks
+        from fieldprop.engine.core import relaxed_tasks
 
         tasks = list(prepared.all_tasks())
         if prepared.job.response.nuclear_relaxation and prepared.settled:
@@ -101,7 +101,7 @@ class JobWork:
 
     def settle(self) -> None:
         """The adaptive window's stage the points found reach."""
-        from fieldprop.engine import settle
+        from fieldprop.engine.core import settle
 
         self.prepared = settle(self.prepared, self.found)
 
@@ -116,7 +116,7 @@ class JobWork:
         """The tasks of the current stage: the clamped points the windows use,
         then (once those are all found) the relaxed ones of a job that relaxes
         the nuclei; ``only`` where given."""
-        from fieldprop.engine import relaxed_tasks
+        from fieldprop.engine.core import relaxed_tasks
 
         if self.only is not None:
             return list(self.only)
@@ -141,7 +141,7 @@ class JobWork:
         return {k: r for k, r in self.found.items() if k not in relaxed}
 
     def relaxed_keys(self) -> set:
-        from fieldprop.engine import relaxed_tasks
+        from fieldprop.engine.core import relaxed_tasks
 
         if not self.prepared.job.response.nuclear_relaxation or not self.prepared.settled:
             return set()
@@ -150,7 +150,7 @@ class JobWork:
     def counts(self):
         """The clamped points' PointCounts: used by the analysis, computed now,
         reused from the records at hand."""
-        from fieldprop.engine import point_counts
+        from fieldprop.engine.core import point_counts
 
         used = {t.key for t in self.prepared.computed_tasks}
         computed = len(self.computed_now & used)
@@ -160,7 +160,7 @@ class JobWork:
     def relaxed_records(self):
         """({plan index: record} of the relaxed points and zero field, their
         PointCounts), or None for a job that does not relax the nuclei."""
-        from fieldprop.engine import point_counts, relaxed_tasks
+        from fieldprop.engine.core import point_counts, relaxed_tasks
 
         if not self.prepared.job.response.nuclear_relaxation:
             return None
@@ -172,7 +172,7 @@ class JobWork:
 
     def result(self, store_label: str, wall_time_s: float):
         """The analysis of a finished job (engine.analyse, with relaxation)."""
-        from fieldprop.engine import analyse, with_relaxation
+        from fieldprop.engine.core import analyse, with_relaxation
 
         result = analyse(self.prepared, self.prepared.records(self.found), self.counts(),
                          store_label, wall_time_s)
@@ -268,7 +268,7 @@ def _lost_failure(task: PointTask, exc: BaseException) -> PointFailure:
 
 
 def _error_of(work: JobWork, failures) -> errors.FieldpropError:
-    from fieldprop.engine import failed_points_error
+    from fieldprop.engine.core import failed_points_error
 
     return failed_points_error(work.prepared, failures, work.retry_failed)
 
@@ -355,7 +355,7 @@ def compute_jobs(works: list[JobWork], store, executor, progress: Progress | Non
     ``failure`` set). Interrupted (Ctrl-C, SIGTERM), the executor's tasks of
     this process are dropped and the exception goes on; every finished point
     is stored."""
-    from fieldprop.backend_pyscf import field_key
+    from fieldprop.backend.compute import field_key
 
     progress = progress or Progress()
     for work in works:
@@ -439,10 +439,25 @@ def _tasks_of(work: JobWork, keys) -> list[PointTask]:
     return [by_key[k] for k in keys if k in by_key]
 
 
+def make_executor(workers: int = 1, threads: int = 1, scheduler: str | None = None,
+                  scheduler_file: str | None = None):
+    """The executor the options ask for: a Dask cluster when given, else local
+    processes (``workers`` > 1, each set up by the backend's worker
+    initializer), else this process."""
+    from fieldprop.backend.tasks import init_worker
+    from fieldprop.points.executors import DaskPool, InProcess, LocalPool
+
+    if scheduler or scheduler_file:
+        return DaskPool(scheduler, scheduler_file, threads)
+    if workers > 1:
+        return LocalPool(workers, threads, init_worker)
+    return InProcess()
+
+
 def run_job(work: JobWork, store, executor, progress: Progress | None = None):
     """One job through :func:`compute_jobs` and its analysis: the RunResult,
     or its failure raised (the points computed are stored)."""
-    from fieldprop.engine import log_counts
+    from fieldprop.engine.core import log_counts
 
     start = time.perf_counter()
     compute_jobs([work], store, executor, progress)

@@ -16,7 +16,7 @@ CSV columns name their unit: ``<invariant>_<unit>`` and
 :data:`UNIT_TAGS`. Conventions: ``taylor`` (fieldprop's, E = E0 - mu F -
 alpha F^2/2 - beta F^3/6 - gamma F^4/24) and ``perturbation`` (the B
 convention, mu(F) = mu + alpha F + beta F^2 + gamma F^3: beta/2, gamma/6; mu
-and alpha unchanged). Factors come from :mod:`fieldprop.units`.
+and alpha unchanged). Factors come from :mod:`fieldprop.numerics.units`.
 
 >>> conversion("beta", "au", "perturbation")
 ('au', 0.5)
@@ -35,7 +35,7 @@ from typing import Any, TextIO
 from tabulate import tabulate
 
 from fieldprop.errors import InputError
-from fieldprop.units import TABLE_UNITS
+from fieldprop.numerics.units import TABLE_UNITS
 
 #: The result documents this module reads.
 RESULT_SCHEMA = "fieldprop-result-1"
@@ -177,7 +177,7 @@ def component_table(docs: list[tuple[str, dict]], units: str, convention: str
 
 
 def _pair_text(value, error) -> tuple[str, str]:
-    from fieldprop.report import format_pair
+    from fieldprop.outputs.report import format_pair
 
     if value is None:
         return "-", "-"

@@ -1,7 +1,7 @@
 """A screening campaign's ranked table: one row per molecule, best first.
 
 Built from the molecules' result documents (:func:`fieldprop.report.
-result_document`) and failures, in any unit system (:mod:`fieldprop.summary`
+result_document`) and failures, in any unit system (:mod:`fieldprop.outputs.summary`
 converts). Molecules are ranked by the magnitude of the ranking invariant
 (|beta_parallel| for a sign-carrying one); a molecule without a number for it
 (failed, or the invariant unstable) comes last, unranked. Two neighbours whose
@@ -22,8 +22,8 @@ from typing import TextIO
 
 from tabulate import tabulate
 
-from fieldprop.atomic_files import replacing
-from fieldprop.summary import INVARIANTS, UNIT_TAGS, _formula, _model, conversion
+from fieldprop.outputs.files import replacing
+from fieldprop.outputs.summary import INVARIANTS, UNIT_TAGS, _formula, _model, conversion
 
 #: Ranking keys: every invariant, and the short name of the vector norm.
 RANK_KEYS = tuple(name for name, _ in INVARIANTS) + ("beta_vec",)

@@ -4,7 +4,7 @@
    their store keys (PySCF only to validate the basis and functional, or not at
    all when the facts come from a store).
 2. computing points: :func:`fieldprop.stages.compute_jobs` (the one stage
-   and to-do engine) on an executor of :mod:`fieldprop.execute`, over a
+   and to-do engine) on an executor of :mod:`fieldprop.points.executors`, over a
    :class:`~fieldprop.store.PointStore` (stored points are reused).
 3. :func:`analyse`: records -> Taylor continuity -> Richardson extrapolation ->
    tensors -> invariants and warnings; pure, no PySCF (:func:`collect` runs it on
@@ -24,22 +24,22 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from fieldprop import errors
-from fieldprop.continuity import ContinuityReport, check_continuity
+from fieldprop.numerics.continuity import ContinuityReport, check_continuity
 from fieldprop.errors import IncompleteError, InputError, UnstableResultError
-from fieldprop.extrapolate import ComponentEstimate, ComponentStatus, mark_unstable, richardson
-from fieldprop.job import MAX_TIGHTENING, SYMMETRISE, Job
-from fieldprop.keys import (Quantities, backend_version_conflict, model_document, model_key,
+from fieldprop.numerics.extrapolate import ComponentEstimate, ComponentStatus, mark_unstable, richardson
+from fieldprop.inputs.job import MAX_TIGHTENING, SYMMETRISE, Job
+from fieldprop.points.keys import (Quantities, backend_version_conflict, model_document, model_key,
                             point_key, short_id)
-from fieldprop.methods import METHODS, Route
-from fieldprop.molecule import MoleculeSpec, build_molecule
-from fieldprop.plan import FieldPlan, plan_fields, stencil_estimate
-from fieldprop.records import CPHF_RTOL, Orientation, PointRecord, PointTask
-from fieldprop.symmetry import FRAME_ERROR
-from fieldprop.tensors import (Invariant, RotationalAverage, TensorResult, assemble, invariants,
+from fieldprop.numerics.methods import METHODS, Route
+from fieldprop.inputs.molecule import MoleculeSpec, build_molecule
+from fieldprop.numerics.plan import FieldPlan, plan_fields, stencil_estimate
+from fieldprop.points.records import CPHF_RTOL, Orientation, PointRecord, PointTask
+from fieldprop.numerics.symmetry import FRAME_ERROR
+from fieldprop.numerics.tensors import (Invariant, RotationalAverage, TensorResult, assemble, invariants,
                                rotational_average, turn_tensors)
 
 if TYPE_CHECKING:
-    from fieldprop.symmetry import Symmetry
+    from fieldprop.numerics.symmetry import Symmetry
 
 logger = logging.getLogger(__name__)
 
@@ -248,7 +248,7 @@ class Prepared:
     def expand(self, by_index: dict) -> list:
         """Records of every planned point from those of the computed ones
         ({plan index: PointRecord}); None where a computed point is absent."""
-        from fieldprop.symmetry import image_record
+        from fieldprop.numerics.symmetry import image_record
 
         if not self.images:
             return [by_index.get(i) for i in range(len(self.tasks))]
@@ -352,13 +352,13 @@ class NuclearRelaxation:
 def settle(prepared: Prepared, found: dict) -> Prepared:
     """``prepared`` with the adaptive window replayed on the computed records
     ``found`` ({task key: PointRecord}, images not needed): from the first
-    windows, grow them (fieldprop.window: one more level, or tighter points)
+    windows, grow them (fieldprop.numerics.window: one more level, or tighter points)
     while the points they use are all there; the result holds the windows
     reached, the points they use and their tightening, some of which may
     still be missing (the next stage to compute). The same records give the
     same stages in every process. Without the adaptive window, ``prepared``
     itself."""
-    from fieldprop import window as adaptive
+    from fieldprop.numerics import window as adaptive
 
     if not prepared.adaptive:
         return prepared
@@ -383,7 +383,7 @@ def _stage(prepared: Prepared, windows) -> Prepared:
     """``prepared`` at the adaptive window's ``windows``: the points they use,
     and the tightening of each computed point (the largest any window using
     it, or an image of it, asks for)."""
-    from fieldprop import window as adaptive
+    from fieldprop.numerics import window as adaptive
 
     steps = adaptive.point_tightening(prepared.plan, windows)
     tightening: dict[int, int] = {}
@@ -468,8 +468,8 @@ def geometry_key(job: Job) -> str:
     :func:`fieldprop.keys.model_document` fixes them), charge, multiplicity,
     the optimisation's model (method, functional, basis, reference, density
     fitting, DFT grid), the numerics version, the criteria and step limit."""
-    from fieldprop.backend_pyscf import optimisation_model
-    from fieldprop.keys import digest
+    from fieldprop.backend.compute import optimisation_model
+    from fieldprop.points.keys import digest
 
     model = optimisation_model(job)
     molecule = build_molecule(job.molecule, job.response.origin)
@@ -483,7 +483,7 @@ def with_geometry(job: Job, document: dict) -> Job:
     """``job`` with the optimised coordinates of ``document`` (the stored
     optimisation), moved onto their point group (:func:`symmetrised_optimum`),
     and the document itself as ``job.optimisation``."""
-    from fieldprop.job import Atom
+    from fieldprop.inputs.job import Atom
 
     document = symmetrised_optimum(job, document)
     coords = document["coords_bohr"]
@@ -512,7 +512,7 @@ def optimised(job: Job, store=None, compute: bool = True) -> Job:
                                   f"{store.label if store is not None else 'any store'}; "
                                   "fieldprop run, or fieldprop point --zero-field, optimises "
                                   "it first")
-        from fieldprop.backend_pyscf import optimize_geometry
+        from fieldprop.backend.compute import optimize_geometry
 
         start = time.perf_counter()
         logger.info("%s: optimising the geometry (%s criteria, at most %d steps)", job.path,
@@ -543,7 +543,7 @@ def symmetrised_optimum(job: Job, document: dict) -> dict:
     is near; the move (within the optimiser's own tolerance) is recorded as
     ``document["symmetrised"]``. So the geometry reported and written is the
     one computed, and symmetry applies to it exactly."""
-    from fieldprop import symmetry
+    from fieldprop.numerics import symmetry
 
     start = build_molecule(job.molecule, job.response.origin)
     charges = start.nuclear_charges
@@ -564,8 +564,8 @@ def relaxation_key(job: Job, molecule: MoleculeSpec) -> str:
     """The store key of a job's zero-field relaxation frame: the model's
     reference key (nuclei, model, SCF), the route (the dipole's tolerance
     applies on the dipole route) and the relaxation's tolerances."""
-    from fieldprop import relaxation as nr
-    from fieldprop.keys import digest
+    from fieldprop.numerics import relaxation as nr
+    from fieldprop.points.keys import digest
 
     return digest({"kind": "fieldprop-relaxation-frame",
                    "model": model_key(molecule, job.model, job.scf),
@@ -591,7 +591,7 @@ def relaxed_reference(job: Job, store=None, compute: bool = True) -> Job:
                                   f"frame (key {short_id(key)}) is not in "
                                   f"{store.label if store is not None else 'any store'}; "
                                   "fieldprop run computes it first")
-        from fieldprop.backend_pyscf import relaxation_frame
+        from fieldprop.backend.compute import relaxation_frame
 
         logger.info("%s: the zero-field minimum for nuclear relaxation: gradient, Hessian, "
                     "dipole derivatives", job.path)
@@ -603,7 +603,7 @@ def relaxed_reference(job: Job, store=None, compute: bool = True) -> Job:
                     "" if document["polish_steps"] == 1 else "s", document["moved_bohr"],
                     document["frequencies_cm"][0] if document["frequencies_cm"] else 0.0,
                     document["wall_time_s"])
-    from fieldprop.job import Atom
+    from fieldprop.inputs.job import Atom
 
     # The polish moves the minimum by the gradient's noise: back onto its group.
     document = symmetrised_optimum(job, document)
@@ -615,8 +615,8 @@ def relaxed_reference(job: Job, store=None, compute: bool = True) -> Job:
 
 def relax_target(prepared: Prepared):
     """The RelaxTarget of a prepared job with a relaxation frame."""
-    from fieldprop.records import RelaxTarget
-    from fieldprop.relaxation import Frame
+    from fieldprop.points.records import RelaxTarget
+    from fieldprop.numerics.relaxation import Frame
 
     job = prepared.job
     doc = job.relaxation
@@ -630,7 +630,7 @@ def relaxed_tasks(prepared: Prepared) -> list[PointTask]:
     """The relaxed points of the computed tasks (zero field: the clamped
     point itself, the frame being its minimum), keyed by the clamped point's
     key and the frame's."""
-    from fieldprop.keys import digest
+    from fieldprop.points.keys import digest
 
     target = relax_target(prepared)
     out = []
@@ -651,8 +651,8 @@ def relax_at_field(prepared: Prepared, field_au) -> dict:
     displacement, the relaxation energy and the dipole before and after. A
     document (bohr, Eh, au). Raises ScfNotConvergedError when an SCF or the
     relaxation does not converge."""
-    from fieldprop import relaxation
-    from fieldprop.backend_pyscf import StructureEvaluator
+    from fieldprop.numerics import relaxation
+    from fieldprop.backend.compute import StructureEvaluator
 
     start = time.perf_counter()
     job, molecule = prepared.job, prepared.molecule
@@ -730,7 +730,7 @@ def prepare(job: Job, route: Route | str | None = None, facts: dict | None = Non
     """
     molecule, sym, near = symmetry_decision(job)
     if facts is None:
-        from fieldprop.backend_pyscf import validate
+        from fieldprop.backend.compute import validate
 
         facts = validate(job, molecule)
     if any(facts.get("core_electrons", ())):
@@ -739,7 +739,7 @@ def prepare(job: Job, route: Route | str | None = None, facts: dict | None = Non
     tasks = make_tasks(job, molecule, plan)
     images = ()
     if sym is not None:
-        from fieldprop.symmetry import images as find_images
+        from fieldprop.numerics.symmetry import images as find_images
 
         images = tuple(find_images([p.field_vector_au for p in plan.points], sym))
     return settle(Prepared(job, molecule, facts, plan, tuple(tasks), tasks[0].model_key, sym,
@@ -792,7 +792,7 @@ def symmetry_decision(job: Job):
     round-off, is computed as given (the group is returned as near), unless
     ``[response] symmetry = "symmetrise"``: the framework is then moved onto
     the group, and the moved nuclei are the molecule."""
-    from fieldprop import symmetry
+    from fieldprop.numerics import symmetry
 
     molecule = build_molecule(job.molecule, job.response.origin)
     if symmetry_refusal(job, molecule):
@@ -818,7 +818,7 @@ def _near_symmetry(job: Job, route, near) -> NearSymmetry | None:
     the planned ladder."""
     if near is None:
         return None
-    from fieldprop.symmetry import images as find_images
+    from fieldprop.numerics.symmetry import images as find_images
 
     plain = make_plan(job, route, None)
     grouped = make_plan(job, route, near)
@@ -962,7 +962,7 @@ def noise_model(job: Job, records, molecule: MoleculeSpec | None = None) -> Nois
             e += g
         relaxed = r.relaxation or {}
         # A relaxed structure's optimiser error: what one more Newton step would
-        # still change (fieldprop.relaxation), twice for safety.
+        # still change (fieldprop.numerics.relaxation), twice for safety.
         e += 2.0 * relaxed.get("energy_change_au", 0.0)
         energy.append(float(e))
         drift.append(float(follows))
@@ -1009,10 +1009,10 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
     local processes, or this process for one), then the analysis.
     ``progress``: a bar; ``log_every_s``: progress log lines at most that
     often instead (batch logs)."""
-    from fieldprop.execute import make_executor
-    from fieldprop.progress import Progress
-    from fieldprop.stages import JobWork, run_job
-    from fieldprop.store import PointStore
+    from fieldprop.engine.stages import make_executor
+    from fieldprop.points.progress import Progress
+    from fieldprop.engine.stages import JobWork, run_job
+    from fieldprop.points.store import PointStore
 
     job, plan = prepared.job, prepared.plan
     own_store, own_executor = store is None, executor is None
@@ -1048,7 +1048,7 @@ def with_relaxation(result: RunResult, prepared: Prepared, relaxed: dict,
     """``result`` (clamped nuclei) with the analysis of the relaxed points
     ``relaxed`` ({plan index: record} of the computed tasks): total tensors,
     and the nuclear-relaxation ones as total less electronic."""
-    from fieldprop.tensors import difference
+    from fieldprop.numerics.tensors import difference
 
     total = analyse(prepared, prepared.expand(relaxed), counts, result.store, 0.0,
                     label="with relaxed nuclei")
@@ -1182,8 +1182,8 @@ def gather(job: Job, store=None, lines=None, route: Route | str | None = None,
     stream): {point key: StoredPoint}, a computed point winning over a failure. No PySCF when the backend facts are
     in the store or the lines (else PySCF validates the job, computing nothing).
     ``facts_needed=False``: never PySCF, the facts may stay empty (planning).
-    Bad lines raise InputError (:mod:`fieldprop.pointlines`)."""
-    from fieldprop import pointlines
+    Bad lines raise InputError (:mod:`fieldprop.points.pointlines`)."""
+    from fieldprop.points import pointlines
 
     job = relaxed_reference(optimised(job, store, compute=False), store, compute=False)
     molecule, sym = symmetric_molecule(job)
@@ -1298,7 +1298,7 @@ def todo_list_key(prepared: Prepared) -> str:
     """The key of a plan's to-do list in a store: the keys of the points it
     may compute, in order (the whole ladder's, not the adaptive window's
     stage: ``point --index`` finds the list without knowing the stage)."""
-    from fieldprop.keys import digest
+    from fieldprop.points.keys import digest
 
     tasks = [t for i, t in enumerate(prepared.tasks)
              if not prepared.images or prepared.images[i][1] is None]
@@ -1430,7 +1430,7 @@ def reference_tensors(job: Job, result: RunResult, workers: int = 1, progress: b
     left out when the finite-field run itself used the analytic dipole (the
     dipole route), which would compare a number with itself.
     """
-    from fieldprop.compare import ReferenceTensors
+    from fieldprop.outputs.compare import ReferenceTensors
 
     logger.info("%s: the analytic reference route (CPHF/CPKS alpha at each field point)",
                 job.path)

@@ -14,11 +14,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from fieldprop.job import ModelSpec, ScfSpec
-from fieldprop.keys import Quantities
-from fieldprop.molecule import MoleculeSpec
-from fieldprop.plan import FieldPoint
-from fieldprop.relaxation import Frame
+from fieldprop.inputs.job import ModelSpec, ScfSpec
+from fieldprop.points.keys import Quantities
+from fieldprop.inputs.molecule import MoleculeSpec
+from fieldprop.numerics.plan import FieldPoint
+from fieldprop.numerics.relaxation import Frame
 
 #: Relative residual at which the CPHF/CPKS linear equations count as solved: far
 #: below the finite-difference precision of any derivative taken of alpha. Used
@@ -198,7 +198,7 @@ class PointTask:
     def tolerances(self) -> dict | None:
         """A tightened point's convergence targets, as its key holds them
         (None: the model's own)."""
-        from fieldprop.keys import tolerance_document
+        from fieldprop.points.keys import tolerance_document
 
         return tolerance_document(self.scf) if self.tightening else None
 
@@ -238,7 +238,7 @@ class PointRecord:
     #: |E_one-electron| + |E_two-electron| + |E_nuclear| of the SCF energy (Eh):
     #: the terms whose cancellation sets the energy's rounding noise (0: unknown).
     energy_scale_au: float = 0.0
-    #: A relaxed point's structure and optimiser errors (fieldprop.relaxation:
+    #: A relaxed point's structure and optimiser errors (fieldprop.numerics.relaxation:
     #: coords_bohr, steps, energy_change_au, dipole_change_au,
     #: largest_gradient_au, gradients); None for clamped nuclei.
     relaxation: dict | None = None

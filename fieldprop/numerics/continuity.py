@@ -44,7 +44,7 @@ the larger fields on its line are excluded, whatever its Taylor residual.
 
 Example
 -------
->>> from fieldprop.plan import plan_fields
+>>> from fieldprop.numerics.plan import plan_fields
 >>> plan = plan_fields(("alpha",), field_au=0.001, ratio=2.0, levels=3, route="energy")
 >>> import numpy as np
 >>> f = np.array([p.field_vector_au for p in plan.points])

@@ -35,8 +35,8 @@ from pathlib import Path
 from typing import Any
 
 from fieldprop.errors import InputError
-from fieldprop.job import Job, job_from_tables
-from fieldprop.units import BACKEND_BOHR_ANGSTROM, NAMED_BOHR_ANGSTROM
+from fieldprop.inputs.job import Job, job_from_tables
+from fieldprop.numerics.units import BACKEND_BOHR_ANGSTROM, NAMED_BOHR_ANGSTROM
 
 #: Keys of a [[molecule]] entry.
 MOLECULE_KEYS = {"name", "xyz", "geometry", "smiles", "units", "charge", "multiplicity",
@@ -177,7 +177,7 @@ def _from_smiles(shown: str, where: str, smiles, molecule: dict) -> tuple[dict, 
     """The molecule table with the SMILES' 3D geometry (angstrom) and its
     charge and multiplicity, checked against those given; and how the
     structure was made."""
-    from fieldprop.structures import from_smiles
+    from fieldprop.inputs.structures import from_smiles
 
     if not isinstance(smiles, str) or not smiles.strip():
         raise _fail(shown, f"{where}: smiles must be a SMILES string, got {smiles!r}")

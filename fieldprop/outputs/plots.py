@@ -18,9 +18,9 @@ from __future__ import annotations
 import math
 from pathlib import Path
 
-from fieldprop.atomic_files import replacing
-from fieldprop.extrapolate import ComponentStatus
-from fieldprop.plan import FieldPlan
+from fieldprop.outputs.files import replacing
+from fieldprop.numerics.extrapolate import ComponentStatus
+from fieldprop.numerics.plan import FieldPlan
 
 
 #: The y-range shows the chosen value +- this many error bars, widened to the

@@ -71,9 +71,9 @@ from pathlib import Path
 import numpy as np
 
 from fieldprop.errors import InputError
-from fieldprop.plan import AXES
-from fieldprop.tensors import NEGLIGIBLE_ERROR_AU, symmetrize
-from fieldprop.units import ANGSTROM_TO_BOHR, BOHR_TO_ANGSTROM, PROPERTY_ORDER
+from fieldprop.numerics.plan import AXES
+from fieldprop.numerics.tensors import NEGLIGIBLE_ERROR_AU, symmetrize
+from fieldprop.numerics.units import ANGSTROM_TO_BOHR, BOHR_TO_ANGSTROM, PROPERTY_ORDER
 
 #: Largest RMS deviation (bohr) between aligned geometries for the frames to match:
 #: geometries printed with 5-6 decimals in angstrom agree to ~1e-5 bohr; 1e-3

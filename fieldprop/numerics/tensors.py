@@ -57,9 +57,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from fieldprop.extrapolate import ComponentEstimate, ComponentStatus, mark_unstable
-from fieldprop.plan import ComponentPlan
-from fieldprop.units import PROPERTY_ORDER
+from fieldprop.numerics.extrapolate import ComponentEstimate, ComponentStatus, mark_unstable
+from fieldprop.numerics.plan import ComponentPlan
+from fieldprop.numerics.units import PROPERTY_ORDER
 
 #: A component is unstable when its error bar exceeds this fraction of the
 #: largest magnitude in its tensor (and the negligible level below).
@@ -486,9 +486,9 @@ def rotational_average(t: TensorResult, kind: str, frame, labels) -> RotationalA
     the plan's indices relabelled). The averages are exact (_turns) and linear
     in the components, whose error bars they carry linearly.
 
-    >>> from fieldprop.extrapolate import ComponentEstimate, ComponentStatus
-    >>> from fieldprop.methods import Route
-    >>> from fieldprop.plan import ComponentPlan
+    >>> from fieldprop.numerics.extrapolate import ComponentEstimate, ComponentStatus
+    >>> from fieldprop.numerics.methods import Route
+    >>> from fieldprop.numerics.plan import ComponentPlan
     >>> plans = [ComponentPlan("alpha", (i, i), Route.ENERGY, (), d, -1.0, ())
     ...          for i, d in enumerate(((2, 0, 0), (0, 2, 0), (0, 0, 2)))]
     >>> ests = [ComponentEstimate(v, 0.01, (0, 1), ComponentStatus.OK, 0.0, ())

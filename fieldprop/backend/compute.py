@@ -27,12 +27,12 @@ import warnings
 import numpy as np
 
 from fieldprop.errors import FieldpropError, InputError, ScfNotConvergedError
-from fieldprop.job import Job
-from fieldprop.methods import METHODS
-from fieldprop.records import (CPHF_RTOL, DIIS, LINE_START, MIRROR_START, NEWTON, ONE_ELECTRON,
+from fieldprop.inputs.job import Job
+from fieldprop.numerics.methods import METHODS
+from fieldprop.points.records import (CPHF_RTOL, DIIS, LINE_START, MIRROR_START, NEWTON, ONE_ELECTRON,
                                ORIENTATION, REFERENCE_START, RESPONSE_START, Orientation,
                                PointRecord, PointTask, SymmetryOperation, ZeroFieldReference)
-from fieldprop.units import BACKEND_BOHR_ANGSTROM
+from fieldprop.numerics.units import BACKEND_BOHR_ANGSTROM
 
 logger = logging.getLogger(__name__)
 
@@ -1821,7 +1821,7 @@ class StructureEvaluator:
         self.last = None  # (mf, r, molecule, orbital gradient) of the last structure
 
     def __call__(self, coords_bohr):
-        from fieldprop.relaxation import Evaluation
+        from fieldprop.numerics.relaxation import Evaluation
 
         molecule = _at(self.molecule, coords_bohr)
         mf, r = field_mean_field(molecule, self.model, self.scf, self.field)
@@ -1890,7 +1890,7 @@ def relaxation_frame(job: Job, molecule, dipole_route: bool) -> dict:
     InputError when it is not a minimum), the Hessian, dmu/dR (central
     differences of field gradients), the structure polished to the
     relaxation's tolerances under the Eckart conditions. A document (lists)."""
-    from fieldprop import relaxation
+    from fieldprop.numerics import relaxation
 
     start = time.perf_counter()
     where = f"{job.path}: [response] nuclear_relaxation"
@@ -1954,7 +1954,7 @@ def relaxation_frame(job: Job, molecule, dipole_route: bool) -> dict:
 
 def compute_relaxed_point(context: ModelContext, task: PointTask) -> PointRecord:
     """One field point with the nuclei relaxed (task.relax: the frame and
-    tolerances): the Newton steps of fieldprop.relaxation on E(R; F), each
+    tolerances): the Newton steps of fieldprop.numerics.relaxation on E(R; F), each
     structure's SCF from the last one's density (the first from the clamped
     point's at this field); the record holds the energy and dipole at the
     relaxed structure, the structure and the optimiser's remaining errors.
@@ -1967,7 +1967,7 @@ def compute_relaxed_point(context: ModelContext, task: PointTask) -> PointRecord
     """
     from pyscf import gto
 
-    from fieldprop import relaxation
+    from fieldprop.numerics import relaxation
 
     start = time.perf_counter()
     target = task.relax

@@ -1,0 +1,173 @@
+"""The backend's tasks as an executor runs them: plain functions of picklable
+arguments, each turning any exception into a named failure (never a
+traceback), so that one point's failure ends no run.
+
+A worker keeps the model contexts (integrals, grid, zero-field response) of
+the last few models it worked on, per thread, and a point starts from the
+converged orbitals of the points handed to it alone, never from whatever its
+worker solved before: the same task gives the same numbers on any executor
+(:mod:`fieldprop.points.executors`).
+"""
+
+from __future__ import annotations
+
+import logging
+import signal
+import threading
+import time
+
+from fieldprop.errors import BackendError, FieldpropError, InputError
+from fieldprop.points.executors import end_with_parent
+from fieldprop.points.records import PointFailure, PointRecord, PointTask, ZeroFieldReference
+
+logger = logging.getLogger(__name__)
+
+
+def set_threads(threads: int) -> None:
+    """This process's BLAS and OpenMP threads (PySCF's and NumPy's)."""
+    from pyscf import lib
+    from threadpoolctl import threadpool_limits
+
+    lib.num_threads(threads)
+    threadpool_limits(threads)
+
+
+def init_worker(parent: int, threads: int) -> None:
+    """A local worker process: Ctrl-C reaches the whole process group, and only
+    the parent acts on it (it stops the workers); SIGTERM from the parent ends
+    a worker at once; ``threads`` BLAS threads (N workers share N cores)."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    if parent:
+        end_with_parent(parent)
+    set_threads(threads)
+
+
+#: Model contexts a worker keeps (each holds its model's integrals).
+CONTEXTS_KEPT = 2
+#: The process's model contexts, {(model key, thread id): ModelContext}: a Dask
+#: worker runs tasks in several threads, and a context's solved points are its
+#: own. The lock guards the dictionary, not the contexts (one thread each).
+_CONTEXTS: dict = {}
+_CONTEXTS_LOCK = threading.Lock()
+
+
+def _context_key(model_key: str):
+    return model_key, threading.get_ident()
+
+
+def _keep_context(key, context) -> None:
+    with _CONTEXTS_LOCK:
+        _CONTEXTS[key] = context
+        while len(_CONTEXTS) > CONTEXTS_KEPT:
+            _CONTEXTS.pop(next(iter(_CONTEXTS)))
+
+
+def _cached_context(key):
+    with _CONTEXTS_LOCK:
+        return _CONTEXTS.get(key)
+
+
+def _named_failure(task: PointTask, what: str, exc: Exception, start: float) -> PointFailure:
+    """An exception inside the backend as a named failure (never a traceback)."""
+    logger.debug("%s", what, exc_info=True)
+    text = " ".join(str(exc).split())[:300] or "no message"
+    return PointFailure(task.point, f"{what} failed inside the backend ({type(exc).__name__}: "
+                        f"{text}); no number is formed from it", BackendError.__name__,
+                        time.perf_counter() - start)
+
+
+def reference_task(task: PointTask, threads: int = 0):
+    """A model's zero-field point and its reference: (PointRecord,
+    ZeroFieldReference), or (PointFailure, None)."""
+    from fieldprop.backend.compute import ModelContext, compute_reference
+
+    if threads:
+        set_threads(threads)
+    start = time.perf_counter()
+    try:
+        context = ModelContext(task.molecule, task.model, task.scf)
+        record, reference = compute_reference(context, task)
+    except FieldpropError as exc:
+        return PointFailure(task.point, str(exc), type(exc).__name__,
+                            time.perf_counter() - start), None
+    except Exception as exc:  # noqa: BLE001 - named, never a traceback
+        return _named_failure(task, "the zero-field point", exc, start), None
+    _keep_context(_context_key(task.model_key), context)
+    return record, reference
+
+
+def point_task(task: PointTask, reference: ZeroFieldReference, solved: dict,
+               threads: int = 0):
+    """One field point of any model, clamped or with relaxed nuclei:
+    (PointRecord or PointFailure, its converged rotation or None). ``solved``:
+    the converged rotations of the points it starts from (and nothing else:
+    its numbers do not depend on where it runs)."""
+    from fieldprop.backend.compute import (ModelContext, compute_point, compute_relaxed_point,
+                                         field_key)
+
+    if threads:
+        set_threads(threads)
+    start = time.perf_counter()
+    key = _context_key(task.model_key)
+    context = _cached_context(key)
+    if context is None:
+        try:
+            context = ModelContext(task.molecule, task.model, task.scf, reference)
+        except Exception as exc:  # noqa: BLE001 - named, never a traceback
+            return _named_failure(task, f"field point {task.point.label}: the model's set-up",
+                                  exc, start), None
+        _keep_context(key, context)
+    context.solved.clear()
+    try:
+        if task.relax is not None:
+            outcome = compute_relaxed_point(context, task)
+        else:
+            outcome = compute_point(context, task, solved)
+    except FieldpropError as exc:
+        return PointFailure(task.point, str(exc), type(exc).__name__,
+                            time.perf_counter() - start), None
+    except Exception as exc:  # noqa: BLE001 - one point's failure must not end the run
+        return _named_failure(task, f"field point {task.point.label}", exc, start), None
+    rotation = context.solved.get(field_key(task.point.field_vector_au)) \
+        if isinstance(outcome, PointRecord) else None
+    return outcome, rotation
+
+
+def optimise_task(job, threads: int = 0):
+    """A molecule's geometry optimisation: (document, None) or (None,
+    (reason, kind))."""
+    from fieldprop.backend.compute import optimize_geometry
+    from fieldprop.inputs.molecule import build_molecule
+
+    if threads:
+        set_threads(threads)
+    start = time.perf_counter()
+    try:
+        document = optimize_geometry(job, build_molecule(job.molecule, job.response.origin))
+    except FieldpropError as exc:
+        return None, (str(exc), type(exc).__name__)
+    except Exception as exc:  # noqa: BLE001 - named, never a traceback
+        text = " ".join(str(exc).split())[:300] or "no message"
+        return None, (f"{job.path}: [geometry] optimize failed inside the backend "
+                      f"({type(exc).__name__}: {text})", BackendError.__name__)
+    document["wall_time_s"] = time.perf_counter() - start
+    return document, None
+
+
+
+
+def refuse_another_backend(store, zero: PointTask, stored_facts: dict) -> None:
+    """InputError (one line, both versions) when the stored model was computed
+    with another backend version than this process has: its new points would
+    join the stored ones in one Richardson table (keys.backend_version_conflict)."""
+    from fieldprop.backend.compute import backend_versions
+    from fieldprop.points.keys import backend_version_conflict
+
+    conflict = backend_version_conflict(stored_facts, backend_versions(zero.model.method))
+    if conflict is not None:
+        raise InputError(
+            f"store {store.label}: model {zero.model_key[:12]} was computed with "
+            f"{conflict[0]}, this process has {conflict[1]}: its new points would join the "
+            "stored ones in one Richardson table; give --store another path (the model is "
+            f"then computed anew), or compute with {conflict[0]}")
