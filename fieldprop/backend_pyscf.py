@@ -1408,7 +1408,8 @@ def optimize_geometry(job: Job, molecule) -> dict:
 
     Returns a document: coordinates (bohr), energy, steps, the largest
     remaining gradient component, the criteria, the model. Raises
-    ScfNotConvergedError (named) when it does not converge in max_steps.
+    ScfNotConvergedError (named) when it does not converge in max_steps, or
+    when the SCF at the geometry it ends at does not converge.
     """
     from pyscf.geomopt import geometric_solver
 
@@ -1453,6 +1454,13 @@ def optimize_geometry(job: Job, molecule) -> dict:
     final = _mean_field(mol_eq, model, scf_spec)
     final.conv_tol, final.conv_tol_grad = 1e-10, 1e-6
     final.kernel()
+    if not final.converged:
+        # Its gradient, energy and coordinates would be those of no state.
+        raise ScfNotConvergedError(
+            f"{job.path}: [geometry] optimize: the SCF at the optimised geometry did not "
+            f"converge in [scf] max_cycle = {final.max_cycle} cycles (orbital gradient "
+            f"{_gradient_norm(final):.1e}, target {final.conv_tol_grad:g}); no geometry is "
+            "formed from it")
     target = final
     if model.method == "mp2":
         from pyscf import mp

@@ -108,3 +108,35 @@ def test_plan_before_the_optimisation_is_incomplete_and_bad_options_are_refused(
     bad.write_text(JOB.replace("optimize = true", 'basis = "sto-3g"'))
     assert main(["run", str(bad)]) == 2
     assert "optimize is not true" in capsys.readouterr().err
+
+
+def test_an_unconverged_final_scf_is_an_error_naming_the_job(tmp_path, monkeypatch):
+    """The geometry of an optimisation whose final SCF did not converge is
+    never returned: the optimiser is replaced by one that reports success at
+    the start, and the final SCF is allowed one cycle from the atomic guess
+    (water needs ~10 to reach the gradient 1e-6 asked for)."""
+    from pyscf.geomopt import geometric_solver
+
+    from fieldprop import backend_pyscf
+    from fieldprop.errors import FieldpropError
+    from fieldprop.job import load_job
+    from fieldprop.molecule import build_molecule
+
+    path = tmp_path / "water.toml"
+    path.write_text(JOB)
+    job = load_job(path)
+    monkeypatch.setattr(geometric_solver, "kernel",
+                        lambda method, **kwargs: (True, method.mol.copy()))
+    built = backend_pyscf._mean_field
+
+    def one_cycle(*args, **kwargs):
+        mf = built(*args, **kwargs)
+        mf.max_cycle = 1
+        return mf
+
+    monkeypatch.setattr(backend_pyscf, "_mean_field", one_cycle)
+    with pytest.raises(FieldpropError) as caught:
+        backend_pyscf.optimize_geometry(job, build_molecule(job.molecule, job.response.origin))
+    message = str(caught.value)
+    assert str(path) in message and "[geometry] optimize" in message
+    assert "SCF" in message and "\n" not in message
