@@ -534,12 +534,11 @@ def _dipole_error(mf, r, fock, gradient: float, dipole_route: bool, constraints=
     a coarse-grid kernel, which changes an estimate of ~1e-10 au by far less
     than it matters and saves two thirds of an open-shell DFT point's time).
     """
-    try:
-        if dipole_route and np.asarray(mf.mo_occ).ndim == 2:
-            return float(np.linalg.norm(newton_dipole_step(mf, r, fock, constraints, response)))
-        return float(np.linalg.norm(diagonal_dipole_step(mf, r, fock, constraints)))
-    except TypeError:  # no orbital Hessian here (ROHF)
+    if not _has_hessian(mf):  # a restricted open shell: no orbital Hessian in fieldprop
         return gradient
+    if dipole_route and np.asarray(mf.mo_occ).ndim == 2:
+        return float(np.linalg.norm(newton_dipole_step(mf, r, fock, constraints, response)))
+    return float(np.linalg.norm(diagonal_dipole_step(mf, r, fock, constraints)))
 
 
 def _orbital_sets(mf) -> tuple[np.ndarray, ...]:
@@ -1631,20 +1630,32 @@ class StructureEvaluator:
 HESSIAN_STEP_BOHR = 1e-3
 
 
+def _has_nuclear_hessian(mf) -> bool:
+    """Whether PySCF has the analytic nuclear Hessian of ``mf``: RHF, UHF, RKS
+    and UKS (_has_hessian), density-fitted or not; not restricted open shells
+    (PySCF de-registers their Hessian, and its density-fitted one fails), nor
+    a functional with nonlocal correlation (VV10) where PySCF's Hessian refuses
+    it (unrestricted, or more than one such term)."""
+    if not _has_hessian(mf):
+        return False
+    if not (hasattr(mf, "do_nlc") and mf.do_nlc()):
+        return True
+    if np.asarray(mf.mo_occ).ndim == 2:
+        return False
+    xc = mf.xc if mf._numint.libxc.is_nlc(mf.xc) else mf.nlc
+    return len(mf._numint.nlc_coeff(xc)) == 1
+
+
 def _hessian(evaluate: StructureEvaluator, mf, coords) -> tuple[np.ndarray, str]:
     """The Cartesian Hessian (3N, 3N) at zero field: PySCF's analytic one for
     RHF, UHF, RKS, UKS, else central differences of analytic gradients."""
     n = len(coords)
     # Only a mean-field method's Hessian is the SCF object's (MP2's is not).
-    analytic = METHODS[evaluate.model.method].mean_field and hasattr(mf, "Hessian")
-    if analytic:
-        try:
-            h = mf.Hessian()
-            h.verbose = 0
-            value = np.asarray(h.kernel()).transpose(0, 2, 1, 3).reshape(3 * n, 3 * n)
-            return value, "analytic"
-        except (NotImplementedError, TypeError):  # PySCF has none for this reference
-            pass
+    if METHODS[evaluate.model.method].mean_field and _has_nuclear_hessian(mf):
+        h = mf.Hessian()
+        h.verbose = 0
+        value = np.asarray(h.kernel()).transpose(0, 2, 1, 3).reshape(3 * n, 3 * n)
+        return value, "analytic"
     value = np.zeros((3 * n, 3 * n))
     for i in range(3 * n):
         step = np.zeros(3 * n)
