@@ -569,6 +569,14 @@ def _operation_name(signs, axes) -> str:
     return f"C2 rotation about {vec(axes[plus])}"
 
 
+def _element_counts(mol) -> list[tuple[str, int]]:
+    """(symbol, count) of the molecule's atoms, in order of first appearance."""
+    counts: dict[str, int] = {}
+    for i in range(mol.natm):
+        counts[mol.atom_pure_symbol(i)] = counts.get(mol.atom_pure_symbol(i), 0) + 1
+    return list(counts.items())
+
+
 def symmetry_operations(mol, mf) -> tuple[SymmetryOperation, ...]:
     """The operations of the molecule's largest abelian point subgroup (D2h and
     its subgroups) that the zero-field state ``mf`` shares, with their action on
@@ -583,12 +591,20 @@ def symmetry_operations(mol, mf) -> tuple[SymmetryOperation, ...]:
     import itertools
 
     from pyscf import dft, symm
+    from pyscf.lib.exceptions import PointGroupSymmetryError
 
     try:
         group, origin, axes = symm.detect_symm(mol._atom)
         group, axes = symm.as_subgroup(group, axes)
-    except Exception as exc:  # noqa: BLE001 - detection is a bonus, never fatal
-        logger.debug("no symmetry detection: %s", exc)
+    except (PointGroupSymmetryError, AssertionError) as exc:
+        # What PySCF's detection raises for a framework it cannot classify:
+        # its own error, or (a near-icosahedral one taken for T or O) an
+        # assertion of its search. Called once per model (at zero field).
+        formula = "".join(f"{s}{n if n > 1 else ''}" for s, n in _element_counts(mol))
+        logger.warning("%s: PySCF's point-group detection failed (%s%s); the "
+                       "occupation-by-symmetry check is skipped for this model (the "
+                       "occupied-overlap and <S^2> checks still apply)", formula,
+                       type(exc).__name__, f": {exc}" if str(exc) else "")
         return ()
     if group == "C1":
         return ()

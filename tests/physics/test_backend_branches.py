@@ -138,3 +138,45 @@ def test_the_analytic_hessian_is_asked_for_exactly_where_pyscf_computes_one(kind
     except (NotImplementedError, ValueError):
         computed = False
     assert _has_nuclear_hessian(mf) == computed
+
+
+def _near_icosahedron():
+    """B12 at the vertices of an icosahedron (edge 4 bohr), each moved by
+    ~1e-7 bohr: PySCF's point-group detection cannot classify it (it takes
+    it for T or O, and its own consistency check stops it)."""
+    from pyscf import gto
+
+    phi = (1 + 5 ** 0.5) / 2
+    vertices = 2.0 * np.array(
+        [(0, a, b * phi) for a in (1, -1) for b in (1, -1)]
+        + [(a, b * phi, 0) for a in (1, -1) for b in (1, -1)]
+        + [(b * phi, 0, a) for a in (1, -1) for b in (1, -1)], dtype=float)
+    vertices += np.random.default_rng(0).normal(size=vertices.shape) * 1e-7
+    return gto.M(atom=[("B", tuple(v)) for v in vertices], unit="Bohr", basis="sto-3g",
+                 verbose=0)
+
+
+def test_a_molecule_symmetry_detection_cannot_classify_is_warned_about(caplog):
+    from fieldprop.backend_pyscf import symmetry_operations
+
+    mol = _near_icosahedron()
+    with caplog.at_level("WARNING", logger="fieldprop"):
+        assert symmetry_operations(mol, None) == ()
+    warned = [r for r in caplog.records if r.levelname == "WARNING"]
+    assert len(warned) == 1
+    text = warned[0].getMessage()
+    assert "occupation-by-symmetry check is skipped" in text and text.startswith("B12")
+
+
+def test_a_failure_of_symmetry_detection_that_is_not_pyscf_s_refusal_surfaces(monkeypatch):
+    from pyscf import gto, symm
+
+    from fieldprop.backend_pyscf import symmetry_operations
+
+    def broken(*args, **kwargs):
+        raise TypeError("a defect in the call")
+
+    monkeypatch.setattr(symm, "detect_symm", broken)
+    mol = gto.M(atom="H 0 0 0; H 0 0 1.4", unit="Bohr", basis="sto-3g", verbose=0)
+    with pytest.raises(TypeError, match="a defect in the call"):
+        symmetry_operations(mol, None)
