@@ -43,9 +43,13 @@ MIN_OCCUPIED_OVERLAP = 0.9
 #: Largest change of <S^2> from zero field before a point counts as another state:
 #: field-induced changes are O(F^2) ~ 1e-4, a spin flip or new contamination ~0.1-1.
 MAX_S2_CHANGE = 0.01
-#: Largest distance (bohr) between an atom's image and an atom of the same element
-#: for a symmetry operation to count; PySCF's own detection tolerance is tighter.
-SYMMETRY_TOLERANCE_BOHR = 1e-4
+#: Largest distance (bohr) between an atom's image under one of the abelian
+#: operations PySCF's detection found and an atom of the same element, for the
+#: operation to enter the state checks (symmetry_operations). Looser than PySCF's
+#: own detection tolerance (symm.geom.TOLERANCE, 1e-5), so that every operation
+#: it found passes; unrelated to symmetry.SYMMETRY_TOLERANCE_BOHR, the framework's
+#: own point-group detection.
+ATOM_IMAGE_MATCH_BOHR = 1e-4
 #: A zero-field character this far from an integer means the state does not have
 #: that operation's symmetry (a broken-symmetry solution): the operation is not used.
 CHARACTER_TOLERANCE = 0.05
@@ -617,7 +621,7 @@ def symmetry_operations(mol, mf) -> tuple[SymmetryOperation, ...]:
         matrix = axes.T @ np.diag(signs) @ axes
         image = (coords - origin) @ matrix.T + origin
         if all(any(symbols[i] == symbols[j] and
-                   np.linalg.norm(image[i] - coords[j]) < SYMMETRY_TOLERANCE_BOHR
+                   np.linalg.norm(image[i] - coords[j]) < ATOM_IMAGE_MATCH_BOHR
                    for j in range(mol.natm)) for i in range(mol.natm)):
             chosen.append((signs, matrix))
     if not chosen:

@@ -34,8 +34,7 @@ from pathlib import Path
 from typing import Any
 
 from fieldprop.errors import InputError
-from fieldprop.methods import METHODS as METHOD_TRAITS
-from fieldprop.methods import Route, methods_with
+from fieldprop.methods import METHODS, Route, methods_with
 from fieldprop.units import BACKEND_BOHR_ANGSTROM, NAMED_BOHR_ANGSTROM, PROPERTY_ORDER
 
 logger = logging.getLogger(__name__)
@@ -49,7 +48,8 @@ ELEMENTS = (
 ).split()
 _Z_OF = {sym.lower(): z for z, sym in enumerate(ELEMENTS) if z > 0}
 
-METHODS = tuple(METHOD_TRAITS)
+#: [model] method and [geometry] method: the names of the method table.
+METHOD_NAMES = tuple(METHODS)
 REFERENCES = ("auto", "restricted", "unrestricted")
 ROUTES = ("auto", "energy", "dipole")
 #: [response] window: grow each component's levels of the automatic ladder
@@ -592,7 +592,7 @@ def _bohr_angstrom(r: "_Reader", value: Any) -> tuple[float, str]:
 
 def _parse_model(path: str, table: dict[str, Any], multiplicity: int) -> ModelSpec:
     r = _Reader(path, "model", table)
-    method = r.string("method", None, METHODS)
+    method = r.string("method", None, METHOD_NAMES)
     raw_basis = table.get("basis")
     if isinstance(raw_basis, dict):
         if not raw_basis:
@@ -619,12 +619,12 @@ def _parse_model(path: str, table: dict[str, Any], multiplicity: int) -> ModelSp
     if reference == "auto":
         reference = "restricted" if multiplicity == 1 else "unrestricted"
     if reference == "restricted" and multiplicity > 1 and \
-            not METHOD_TRAITS[method].restricted_open_shell:
-        allowed = " and ".join(m for m, t in METHOD_TRAITS.items() if t.restricted_open_shell)
+            not METHODS[method].restricted_open_shell:
+        allowed = " and ".join(m for m, t in METHODS.items() if t.restricted_open_shell)
         raise r.fail("reference", f"= \"restricted\" with multiplicity {multiplicity} is "
                      f"restricted open shell, available for {allowed} only; use "
                      f"\"unrestricted\" for {method}")
-    correlated = not METHOD_TRAITS[method].mean_field
+    correlated = not METHODS[method].mean_field
     frozen_core = table.get("frozen_core", correlated)
     if not isinstance(frozen_core, bool):
         raise r.fail("frozen_core", f"must be true or false, got {frozen_core!r}")
@@ -753,8 +753,8 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
     relax = table.get("nuclear_relaxation", False)
     if not isinstance(relax, bool):
         raise r.fail("nuclear_relaxation", f"must be true or false, got {relax!r}")
-    if relax and not METHOD_TRAITS[method].nuclear_gradient:
-        with_gradient = ", ".join(m for m, t in METHOD_TRAITS.items()
+    if relax and not METHODS[method].nuclear_gradient:
+        with_gradient = ", ".join(m for m, t in METHODS.items()
                                  if t.nuclear_gradient)
         raise r.fail("nuclear_relaxation", f"= true needs nuclear gradients of E(R; F), which "
                      f"fieldprop has for {with_gradient}; {method} has none: set it to false, "
@@ -810,7 +810,7 @@ def _parse_scf(path: str, table: dict[str, Any], method: str, max_order: int,
     # cheap next to MP2 or CC: 1e-11 for closed shells, 1e-10 for open ones.
     if route == "dipole":
         gradient_tol = (1e-10 if open_shell else 1e-12 if method == "hf" else 1e-11)
-    elif METHOD_TRAITS[method].mean_field:
+    elif METHODS[method].mean_field:
         gradient_tol = 1e-8
     else:
         gradient_tol = 1e-10 if open_shell else 1e-11
@@ -844,9 +844,9 @@ CORRELATION_DEFAULTS = {1: (1e-10, 1e-6), 2: (1e-11, 1e-7), 3: (1e-12, 1e-8),
 def _parse_correlation(path: str, table: dict[str, Any], method: str,
                        max_order: int) -> CorrelationSpec | None:
     r = _Reader(path, "correlation", table)
-    if not METHOD_TRAITS[method].amplitude_solver:
+    if not METHODS[method].amplitude_solver:
         if table:
-            solvers = ", ".join(m for m, t in METHOD_TRAITS.items() if t.amplitude_solver)
+            solvers = ", ".join(m for m, t in METHODS.items() if t.amplitude_solver)
             raise r.fail(next(iter(table)), f"applies to the amplitude solvers ({solvers}), "
                          f"not to method = {method!r}; remove the [correlation] table")
         return None
@@ -886,7 +886,7 @@ def needed_gradient(method: str, route: str, max_order: int, field_au: float) ->
     k = max_order - 1 if route == "dipole" else max_order
     weight = sum(abs(w) for _, w in central_weights(k)) if k > 0 else 1.0
     allowed = NEGLIGIBLE_ERROR_AU[max_order] / 10.0 * field_au ** k / weight
-    if route != "dipole" and METHOD_TRAITS[method].mean_field:
+    if route != "dipole" and METHODS[method].mean_field:
         return math.sqrt(allowed)
     return allowed
 
@@ -952,7 +952,7 @@ def _parse_geometry(path: str, table: dict[str, Any], model: ModelSpec) -> Geome
     if others and not optimize:
         raise r.fail(others[0], "is given but optimize is not true; set optimize = true or "
                      "remove it")
-    method = r.string("method", None, METHODS) if r.has("method") else None
+    method = r.string("method", None, METHOD_NAMES) if r.has("method") else None
     functional = r.string("functional") if r.has("functional") else None
     basis = r.string("basis") if r.has("basis") else None
     effective = method or model.method

@@ -37,7 +37,8 @@ from tabulate import tabulate
 from fieldprop.errors import InputError
 from fieldprop.units import TABLE_UNITS
 
-#: The result documents this module reads.
+#: The schema of the result documents (report.result_document writes them, this
+#: module reads them).
 RESULT_SCHEMA = "fieldprop-result-1"
 #: Conventions: factor from the Taylor convention, per property.
 CONVENTIONS = {"taylor": {"dipole": 1.0, "alpha": 1.0, "beta": 1.0, "gamma": 1.0},
