@@ -939,10 +939,6 @@ def job_from_tables(shown: str, job_path: Path, data: dict[str, Any]) -> Job:
     return Job(shown, molecule, model, response, scf, geometry)
 
 
-#: Methods whose nuclear gradients PySCF has (for [geometry] optimize).
-GRADIENT_METHODS = ("hf", "dft", "mp2")
-
-
 def _parse_geometry(path: str, table: dict[str, Any], model: ModelSpec) -> GeometrySpec:
     r = _Reader(path, "geometry", table)
     optimize = table.get("optimize", False)
@@ -961,10 +957,10 @@ def _parse_geometry(path: str, table: dict[str, Any], model: ModelSpec) -> Geome
         raise r.fail("functional", "is missing; method = \"dft\" needs a functional")
     if effective != "dft" and functional is not None:
         raise r.fail("functional", f"is given but the optimisation's method is {effective!r}")
-    if optimize and effective not in GRADIENT_METHODS:
+    if optimize and not METHODS[effective].nuclear_gradient:
+        with_gradient = ", ".join(m for m, t in METHODS.items() if t.nuclear_gradient)
         raise r.fail("method", f"= {effective!r} has no nuclear gradient in fieldprop; optimise "
-                     f"at one of {', '.join(GRADIENT_METHODS)} (give [geometry] method and "
-                     "basis)")
+                     f"at one of {with_gradient} (give [geometry] method and basis)")
     criteria = r.string("criteria", "tight", tuple(GEOMETRY_CRITERIA))
     max_steps = r.integer("max_steps", 100, low=1)
     return GeometrySpec(optimize, method, functional, basis, criteria, max_steps)
