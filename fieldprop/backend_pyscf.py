@@ -27,7 +27,7 @@ import warnings
 import numpy as np
 
 from fieldprop.errors import FieldpropError, InputError, ScfNotConvergedError
-from fieldprop.job import Job
+from fieldprop.job import DEFAULT_GRID_LEVEL, Job
 from fieldprop.methods import METHODS
 from fieldprop.records import (CPHF_RTOL, DIIS, LINE_START, MIRROR_START, NEWTON, ONE_ELECTRON,
                                ORIENTATION, REFERENCE_START, RESPONSE_START, PointRecord,
@@ -55,6 +55,63 @@ ATOM_IMAGE_MATCH_BOHR = 1e-4
 CHARACTER_TOLERANCE = 0.05
 #: Grid points per block when integrating basis-function products (memory bound).
 _GRID_BLOCK = 20000
+#: PySCF grid level on which <chi_mu | R chi_nu> is integrated for the state
+#: checks' characters: ~1e-6 accurate for the overlap, so characters land within
+#: ~1e-5 of their integers, far inside CHARACTER_TOLERANCE.
+CHARACTER_GRID_LEVEL = 3
+#: A character differing from zero field's by more than this has changed: a
+#: change of occupation by symmetry moves a character by 2 (an orbital's +1
+#: becomes -1), the grid's error by ~1e-5.
+CHARACTER_CHANGE = 0.5
+#: A symmetry operation keeps a field F when |R F - F| <= this times
+#: max(|F|, FIELD_NORM_FLOOR_AU): a kept field moves only by rounding
+#: (~1e-16 |F|), a field it does not keep by ~|F|. The floor (au) lies far
+#: below any field point; zero field is kept by every operation.
+FIELD_KEPT_RTOL = 1e-9
+FIELD_NORM_FLOOR_AU = 1e-300
+
+#: The Newton step's relative residual (_newton) is kept within these bounds:
+#: no looser than 0.1 (each step still removes ~90 % of the gradient), no
+#: tighter than 1e-8 (the step's own quadratic error and the next Fock build's
+#: rounding dominate long before); and it need not beat NEWTON_TARGET_SHARE of
+#: the target (the rest of the target is left to the step's quadratic error).
+NEWTON_RTOL_BOUNDS = (1e-8, 0.1)
+NEWTON_TARGET_SHARE = 0.3
+#: A CG solve counts as converged when its true residual is within this many
+#: times the tolerance asked: SciPy's cg checks its own recursively updated
+#: residual, which drifts from the true one by rounding; a residual 10x over
+#: means the solve stalled (a near-zero mode), not rounding.
+CG_RESIDUAL_SLACK = 10
+#: Two solved field vectors lie on one line through zero field (the line start)
+#: when they agree to this (au) after scaling: field vectors are exact
+#: multiples of their offsets (plan.field_vector), so only rounding separates
+#: points on a line, ~1e-19 au at fields ~1e-3.
+LINE_START_ATOL_AU = 1e-12
+#: Below this t (the tangent of a rotation angle) arctan(t)/t is 1 to double
+#: precision (its series is 1 - t^2/3): _rotation_from_reference takes 1 there.
+SMALL_ROTATION = 1e-8
+#: Iterations a coupled-cluster amplitude solve may take at least (the SCF's
+#: max_cycle when larger): CCSD from MP2 amplitudes converges to 1e-12 Eh in
+#: 10-50 iterations for the molecules measured, with DIIS.
+MIN_AMPLITUDE_ITERATIONS = 100
+
+#: PySCF's ladder (_ladder), after plain DIIS: a level shift (Eh) of the
+#: virtual orbitals, DIIS only from cycle LADDER_DIIS_START_CYCLE (the first,
+#: damped and shifted cycles are far from convergence and would crowd its
+#: subspace), and damping (the share of the old Fock matrix mixed in; not for
+#: ROHF, where PySCF's damping fails): the usual cures of an SCF oscillating
+#: among near-degenerate orbitals.
+LADDER_LEVEL_SHIFT_AU = 0.2
+LADDER_DIIS_START_CYCLE = 4
+LADDER_DAMPING = 0.3
+
+#: The SCF inside a geometry optimisation (each step's and the final one):
+#: an energy to 1e-10 Eh (far below the criteria's energy change, 1e-6 Eh) and
+#: an orbital gradient of 1e-6, which moved PySCF's nuclear gradient of water
+#: by 2e-9 (HF/6-31G) and 4e-8 Eh/bohr (B3LYP) from a converged SCF's, below
+#: the tightest criteria's largest gradient (2e-6 Eh/bohr).
+OPTIMISATION_ENERGY_TOL_AU = 1e-10
+OPTIMISATION_GRADIENT_TOL = 1e-6
 
 
 def _pyscf_basis(basis):
@@ -588,9 +645,9 @@ def symmetry_operations(mol, mf) -> tuple[SymmetryOperation, ...]:
 
     PySCF's detection gives the symmetry frame; each of the seven sign changes
     of its axes is kept if it maps every atom onto an atom of the same element
-    (same basis). <chi_mu | R chi_nu> is integrated on a DFT grid (level 3,
-    ~1e-6 accurate for the overlap), so characters come out within ~1e-5 of
-    their integers; the comparison allows 0.5.
+    (same basis). <chi_mu | R chi_nu> is integrated on a DFT grid
+    (CHARACTER_GRID_LEVEL), so characters come out within ~1e-5 of their
+    integers; state_issues allows CHARACTER_CHANGE.
     """
     import itertools
 
@@ -627,7 +684,7 @@ def symmetry_operations(mol, mf) -> tuple[SymmetryOperation, ...]:
     if not chosen:
         return ()
     grids = dft.gen_grid.Grids(mol)
-    grids.level = 3
+    grids.level = CHARACTER_GRID_LEVEL
     grids.verbose = 0
     grids.build()
     reps = [np.zeros((mol.nao, mol.nao)) for _ in chosen]
@@ -658,10 +715,11 @@ def state_issues(reference: ZeroFieldReference, field_vector_au, sets, s2,
         issues.append(f"<S^2> {s2:.4f} against {reference.s2:.4f} at zero field")
     f = np.asarray(field_vector_au, dtype=float)
     for op in reference.symmetry:
-        if np.linalg.norm(op.matrix @ f - f) > 1e-9 * max(np.linalg.norm(f), 1e-300):
+        if np.linalg.norm(op.matrix @ f - f) > FIELD_KEPT_RTOL * max(np.linalg.norm(f),
+                                                                      FIELD_NORM_FLOOR_AU):
             continue  # the field breaks this symmetry: its characters may change
         chars = _characters(sets, op.representation)
-        if any(abs(c - c0) > 0.5 for c, c0 in zip(chars, op.characters)):
+        if any(abs(c - c0) > CHARACTER_CHANGE for c, c0 in zip(chars, op.characters)):
             shown = "/".join(f"{c:.0f}" for c in chars)
             zero = "/".join(f"{c:.0f}" for c in op.characters)
             issues.append(f"occupation by symmetry changed: under the {op.name}, which the "
@@ -807,8 +865,9 @@ def _newton(mf, context, c, occ, target: float,
         hessian = _OrbitalHessian(mf, response=context.response, constraints=constraints)
         # The step's linear-solve error (rtol g) need not beat the quadratic
         # error of an exact step (~g^2 per Eh, measured 0.5-1 for water), nor
-        # a third of the target.
-        rtol = float(np.clip(max(0.3 * target / g, NEWTON_RTOL_PER_GRADIENT * g), 1e-8, 0.1))
+        # a share of the target.
+        rtol = float(np.clip(max(NEWTON_TARGET_SHARE * target / g,
+                                 NEWTON_RTOL_PER_GRADIENT * g), *NEWTON_RTOL_BOUNDS))
         try:
             x = hessian.solve(-hessian.vo(fock), rtol, "Newton step")
         except ScfNotConvergedError:
@@ -855,7 +914,7 @@ def _start_orbitals(context, field_vector_au) -> tuple[np.ndarray, str]:
         t = float(a @ f) / float(f @ f)
         partner = solved.get(field_key(-a))
         if (0.0 < t < 1.0 and partner is not None and np.allclose(a, t * f, rtol=0.0,
-                                                                  atol=1e-12)
+                                                                  atol=LINE_START_ATOL_AU)
                 and (best is None or t > best[0])):
             best = (t, x, partner)
     if best is not None:
@@ -889,7 +948,7 @@ def _rotation_from_reference(ref_c, ref_occ, c, overlap) -> np.ndarray:
         w, v = np.linalg.eigh(m.T @ m)
         root = np.sqrt(np.clip(w, 0.0, None))
         f = np.ones_like(root)
-        big = root > 1e-8
+        big = root > SMALL_ROTATION
         f[big] = np.arctan(root[big]) / root[big]
         parts.append((m @ (v * f) @ v.T).ravel())
     return np.concatenate(parts)
@@ -903,9 +962,9 @@ def _ladder(mf, dm0, target: float, attempts: list[str]) -> int:
     from pyscf.scf import rohf
 
     restricted_open = isinstance(mf, rohf.ROHF)
-    shift = {"level_shift": 0.2, "diis_start_cycle": 4}
+    shift = {"level_shift": LADDER_LEVEL_SHIFT_AU, "diis_start_cycle": LADDER_DIIS_START_CYCLE}
     if not restricted_open:
-        shift["damp"] = 0.3
+        shift["damp"] = LADDER_DAMPING
     strategies = [(DIIS, {}), ("diis+level_shift" if restricted_open else
                                  "diis+damping+level_shift", shift), ("second_order", None)]
     cycles, best = 0, None
@@ -1029,7 +1088,7 @@ def _correlated_energy(mf, model, scf_spec, label: str
     solver.verbose = 0
     solver.conv_tol = wanted.energy_change_au
     solver.conv_tol_normt = wanted.amplitude_change
-    solver.max_cycle = max(scf_spec.max_cycle, 100)
+    solver.max_cycle = max(scf_spec.max_cycle, MIN_AMPLITUDE_ITERATIONS)
     eris = solver.ao2mo()
     solver.kernel(eris=eris)
     # The convergence reached: one more (Jacobi) iteration from the final
@@ -1169,7 +1228,7 @@ class _OrbitalHessian:
             x, info = cg(operator, b, rtol=rtol, atol=0.0, M=precondition,
                          maxiter=CG_MAX_ITERATIONS)
             residual = np.linalg.norm(operator.matvec(x) - b)
-            if info == 0 and residual <= 10 * rtol:
+            if info == 0 and residual <= CG_RESIDUAL_SLACK * rtol:
                 return x * norm
         raise ScfNotConvergedError(f"{what} did not converge (residual {residual:.1e}); "
                                    "the SCF may be unstable")
@@ -1439,9 +1498,9 @@ def optimize_geometry(job: Job, molecule) -> dict:
     mol = build_mole(molecule, model.basis, f"{job.path}: {where}", model.cartesian)
     scf_spec = job.scf
     if model.method == "dft" and scf_spec.grid_level is None:
-        scf_spec = dataclasses.replace(scf_spec, grid_level=5)
+        scf_spec = dataclasses.replace(scf_spec, grid_level=DEFAULT_GRID_LEVEL)
     mf = _mean_field(mol, model, scf_spec)
-    mf.conv_tol, mf.conv_tol_grad = 1e-10, 1e-6
+    mf.conv_tol, mf.conv_tol_grad = OPTIMISATION_ENERGY_TOL_AU, OPTIMISATION_GRADIENT_TOL
     method = mf
     if model.method == "mp2":
         from pyscf import mp
@@ -1471,7 +1530,7 @@ def optimize_geometry(job: Job, molecule) -> dict:
                                    f"max_steps = {job.geometry.max_steps} steps; raise it, or "
                                    "start from a better geometry")
     final = _mean_field(mol_eq, model, scf_spec)
-    final.conv_tol, final.conv_tol_grad = 1e-10, 1e-6
+    final.conv_tol, final.conv_tol_grad = OPTIMISATION_ENERGY_TOL_AU, OPTIMISATION_GRADIENT_TOL
     final.kernel()
     if not final.converged:
         # Its gradient, energy and coordinates would be those of no state.
@@ -1804,7 +1863,7 @@ def compute_relaxed_point(context: ModelContext, task: PointTask) -> PointRecord
         if overlap < MIN_OCCUPIED_OVERLAP:
             issues.append(f"occupied overlap with zero field {overlap:.3f} < "
                           f"{MIN_OCCUPIED_OVERLAP} at the relaxed structure")
-        if abs(s2 - ref.s2) > 0.01:
+        if abs(s2 - ref.s2) > MAX_S2_CHANGE:
             issues.append(f"<S^2> moved from {ref.s2:.4f} to {s2:.4f} at the relaxed structure")
     want = task.quantities
     dipole = tuple(float(v) for v in relaxed.evaluation.dipole_au) if want.dipole else None

@@ -792,9 +792,7 @@ def _parse_scf(path: str, table: dict[str, Any], method: str, max_order: int,
         if grid_level > 9:
             raise r.fail("grid_level", f"must be 0..9 (PySCF grid levels), got {grid_level}")
     elif method == "dft":
-        # One fixed, fine grid for every field point: grid noise is amplified by
-        # finite differences (REFERENCES sect. 6), and level 5 keeps it small.
-        grid_level = 5
+        grid_level = DEFAULT_GRID_LEVEL
     # The SCF energy is variational (error ~ g^2 in the orbital gradient g), so
     # g <= 1e-8 suffices for the energy route. The SCF dipole and post-HF energies
     # are not variational (error ~ g; measured: |d mu| ~ 0.9 g for water). The
@@ -860,6 +858,10 @@ def _parse_correlation(path: str, table: dict[str, Any], method: str,
     return CorrelationSpec(energy, amplitude)
 
 
+#: [scf] grid_level of DFT when the job gives none: one fixed, fine grid for
+#: every field point, since grid noise is amplified by finite differences
+#: (REFERENCES sect. 6), and level 5 keeps it small.
+DEFAULT_GRID_LEVEL = 5
 #: SCF solvers of [scf] solver (see ScfSpec).
 SOLVERS = ("newton", "diis")
 

@@ -41,3 +41,40 @@ def test_every_constant_name_is_defined_in_one_module():
     assert not twice, f"constant names defined in more than one module: {twice}"
     assert "SYMMETRY_TOLERANCE_BOHR" in defined  # the scan sees module constants
 
+
+
+#: The backend's functions whose thresholds and counts are named constants:
+#: the solver, the ladder, the state checks and the grids (and the geometry
+#: optimisation's SCF settings).
+NAMED_NUMBERS_IN = ("_newton", "_ladder", "_converge", "_converge_structure",
+                    "_correlated_energy", "solve", "_start_orbitals",
+                    "_rotation_from_reference", "symmetry_operations", "state_issues",
+                    "compute_relaxed_point", "optimize_geometry", "response")
+#: Numbers that are arithmetic, not settings (a count's step, a factor of a
+#: formula, an empty start); dimensions given as `comp=`/`repeat=` and indices
+#: are not looked at.
+ARITHMETIC = {0, 1, 2, -1}
+
+
+def test_the_backend_s_solver_ladder_state_checks_and_grids_use_named_numbers():
+    tree = ast.parse((PACKAGE / "backend_pyscf.py").read_text(encoding="utf-8"))
+    skipped = set()
+    for node in ast.walk(tree):
+        if isinstance(node, ast.keyword) and node.arg in ("comp", "repeat"):
+            skipped.add(id(node.value))
+        if isinstance(node, ast.Subscript):
+            skipped.update(id(n) for n in ast.walk(node.slice))
+    bare = []
+    for node in ast.walk(tree):
+        if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef)) and \
+                node.name in NAMED_NUMBERS_IN:
+            for inner in ast.walk(node):
+                value = inner
+                if isinstance(inner, ast.UnaryOp) and isinstance(inner.op, ast.USub):
+                    value = inner.operand
+                if (isinstance(value, ast.Constant) and type(value.value) in (int, float)
+                        and id(inner) not in skipped and id(value) not in skipped
+                        and value.value not in ARITHMETIC and -value.value not in ARITHMETIC):
+                    bare.append(f"{node.name}: line {inner.lineno}: {ast.unparse(inner)}")
+    assert not bare, "bare numbers (name them near the top of backend_pyscf.py): " + \
+        "; ".join(bare)
