@@ -29,7 +29,7 @@ import logging
 import math
 import os
 import tomllib
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -131,6 +131,11 @@ class MoleculeInput:
     #: what the job said: "backend", "scipy" or "given".
     bohr_angstrom: float = BACKEND_BOHR_ANGSTROM
     bohr_source: str = "backend"
+    #: The nuclei the job file gave (bohr): ``atoms`` until an optimisation or
+    #: a nuclear relaxation's polished minimum replaces those
+    #: (engine.with_geometry, engine.relaxed_reference); what the job echo
+    #: writes as [molecule] geometry. None: the same as ``atoms``.
+    given_atoms: tuple[Atom, ...] | None = None
 
     @property
     def angstrom_to_bohr(self) -> float:
@@ -346,28 +351,111 @@ class Job:
     relaxation: dict | None = None
 
     def to_dict(self) -> dict[str, Any]:
-        """The job as understood, every default filled in (for the result JSON)."""
-        mol = self.molecule
-        return {
+        """The job as understood, for the result JSON: the job file's sections
+        and keys with every default filled in (automatic choices resolved to
+        the value they took: reference, differentiate), so that a job file
+        written from them loads as this job; its geometry the nuclei the job
+        file gave, in bohr (``units = "bohr"``, every digit of the floats).
+
+        ``"derived"`` holds what was worked out and is no input: the job's
+        path; the molecule's nuclei as computed (``atoms``: after an
+        optimisation its optimum), the units and source the job file used, the
+        bohr in angstrom as a number and where it came from; the field
+        strength and window the response used; the orbital gradient and the
+        coupled-cluster energy change accepted; the optimisation criteria's
+        thresholds; the optimisation and nuclear relaxation documents (None
+        without them).
+        """
+        mol, model, response, scf, geometry = (self.molecule, self.model, self.response,
+                                               self.scf, self.geometry)
+        automatic = response.field_au_source != "job"
+        # repr: the shortest text that reads back as the same float.
+        geometry_text = "\n".join(" ".join([a.symbol, *map(repr, a.coords_bohr)])
+                                  for a in mol.given_atoms or mol.atoms)
+        sections: dict[str, Any] = {
+            "molecule": {
+                "geometry": geometry_text,
+                "units": "bohr",
+                "charge": mol.charge,
+                "multiplicity": mol.multiplicity,
+                "allow_close_atoms": mol.allow_close_atoms,
+                "bohr_angstrom": (mol.bohr_source if mol.bohr_source in NAMED_BOHR_ANGSTROM
+                                  else mol.bohr_angstrom),
+            },
+            "model": {
+                "method": model.method,
+                **({} if model.functional is None else {"functional": model.functional}),
+                "basis": model.basis if isinstance(model.basis, str) else dict(model.basis),
+                "reference": model.reference,
+                "frozen_core": model.frozen_core,
+                "cartesian": model.cartesian,
+                "density_fit": {None: False, "auto": True}.get(model.density_fit,
+                                                               model.density_fit),
+            },
+            "response": {
+                "properties": list(response.properties),
+                **({} if automatic else {"field_au": response.field_au}),
+                "ratio": response.ratio,
+                "levels": response.levels,
+                "origin": (response.origin if isinstance(response.origin, str)
+                           else list(response.origin)),
+                "differentiate": str(response.route),
+                "symmetry": response.symmetry,
+                **({"window": response.window} if automatic else {}),
+                "nuclear_relaxation": response.nuclear_relaxation,
+            },
+            "scf": {
+                "energy_conv_tol_au": scf.energy_conv_tol_au,
+                "max_cycle": scf.max_cycle,
+                **({} if scf.grid_level is None else {"grid_level": scf.grid_level}),
+                "gradient_target": scf.gradient_conv_tol,
+                "gradient_needed": scf.gradient_needed,
+                "solver": scf.solver,
+            },
+        }
+        if scf.correlation is not None:
+            sections["correlation"] = {"energy_change_au": scf.correlation.energy_change_au,
+                                       "amplitude_change": scf.correlation.amplitude_change}
+        sections["geometry"] = {"optimize": geometry.optimize}
+        if geometry.optimize:
+            sections["geometry"].update(
+                {k: v for k, v in (("method", geometry.method),
+                                   ("functional", geometry.functional),
+                                   ("basis", geometry.basis)) if v is not None})
+            sections["geometry"].update(criteria=geometry.criteria,
+                                        max_steps=geometry.max_steps)
+        derived = {
             "path": self.path,
             "molecule": {
                 "atoms": [{"symbol": a.symbol, "coords_bohr": list(a.coords_bohr)}
                           for a in mol.atoms],
-                "units_in_job": mol.units, "source": mol.source,
+                "units": mol.units, "source": mol.source,
                 "bohr_angstrom": mol.bohr_angstrom, "bohr_source": mol.bohr_source,
-                "charge": mol.charge, "multiplicity": mol.multiplicity,
-                "allow_close_atoms": mol.allow_close_atoms,
             },
-            "model": asdict(self.model),
-            "response": {**asdict(self.response), "properties": list(self.response.properties),
-                         "origin": (self.response.origin if isinstance(self.response.origin, str)
-                                    else list(self.response.origin))},
-            "scf": {k: v for k, v in asdict(self.scf).items() if k != "correlation"},
-            "correlation": (None if self.scf.correlation is None
-                            else asdict(self.scf.correlation)),
-            "geometry": {**asdict(self.geometry), "thresholds": self.geometry.thresholds()},
+            "response": {"field_au": response.field_au,
+                         "field_au_source": response.field_au_source,
+                         "window": response.window},
+            "scf": {"gradient_accepted": scf.gradient_accepted},
+            **({} if scf.correlation is None else
+               {"correlation": {"accepted_au": scf.correlation.accepted_au}}),
+            "geometry": {"thresholds": geometry.thresholds()},
             "optimisation": self.optimisation,
+            "relaxation": self.relaxation,
         }
+        return {**sections, "derived": derived}
+
+
+def echo_atoms(echo: dict) -> list | None:
+    """The nuclei as computed in a job echo (:meth:`Job.to_dict`, a result's
+    ``"job"``): ``derived.molecule.atoms``, [{"symbol", "coords_bohr"}], or
+    ``molecule.atoms`` in results written before the echo took the job file's
+    keys; None when neither is there."""
+    derived = echo.get("derived")
+    for parent in (derived.get("molecule") if isinstance(derived, dict) else None,
+                   echo.get("molecule")):
+        if isinstance(parent, dict) and isinstance(parent.get("atoms"), list):
+            return parent["atoms"]
+    return None
 
 
 def derived_energy_conv_tol_au(max_order: int) -> float:
@@ -566,7 +654,7 @@ def _parse_molecule(path: str, job_path: Path, table: dict[str, Any]) -> Molecul
     if not isinstance(allow_close, bool):
         raise r.fail("allow_close_atoms", f"must be true or false, got {allow_close!r}")
     return MoleculeInput(atoms, charge, multiplicity, units, source, allow_close, bohr,
-                         bohr_source)
+                         bohr_source, atoms)
 
 
 #: A bohr (angstrom) outside this range is a typing mistake, not another
