@@ -27,7 +27,7 @@ import warnings
 import numpy as np
 
 from fieldprop.errors import FieldpropError, InputError, ScfNotConvergedError
-from fieldprop.inputs.job import Job
+from fieldprop.inputs.job import DEFAULT_GRID_LEVEL, Job
 from fieldprop.numerics.methods import METHODS
 from fieldprop.points.records import (CPHF_RTOL, DIIS, LINE_START, MIRROR_START, NEWTON, ONE_ELECTRON,
                                ORIENTATION, REFERENCE_START, RESPONSE_START, Orientation,
@@ -43,14 +43,75 @@ MIN_OCCUPIED_OVERLAP = 0.9
 #: Largest change of <S^2> from zero field before a point counts as another state:
 #: field-induced changes are O(F^2) ~ 1e-4, a spin flip or new contamination ~0.1-1.
 MAX_S2_CHANGE = 0.01
-#: Largest distance (bohr) between an atom's image and an atom of the same element
-#: for a symmetry operation to count; PySCF's own detection tolerance is tighter.
-SYMMETRY_TOLERANCE_BOHR = 1e-4
+#: Largest distance (bohr) between an atom's image under one of the abelian
+#: operations PySCF's detection found and an atom of the same element, for the
+#: operation to enter the state checks (symmetry_operations). Looser than PySCF's
+#: own detection tolerance (symm.geom.TOLERANCE, 1e-5), so that every operation
+#: it found passes; unrelated to symmetry.SYMMETRY_TOLERANCE_BOHR, the framework's
+#: own point-group detection.
+ATOM_IMAGE_MATCH_BOHR = 1e-4
 #: A zero-field character this far from an integer means the state does not have
 #: that operation's symmetry (a broken-symmetry solution): the operation is not used.
 CHARACTER_TOLERANCE = 0.05
 #: Grid points per block when integrating basis-function products (memory bound).
 _GRID_BLOCK = 20000
+#: PySCF grid level on which <chi_mu | R chi_nu> is integrated for the state
+#: checks' characters: ~1e-6 accurate for the overlap, so characters land within
+#: ~1e-5 of their integers, far inside CHARACTER_TOLERANCE.
+CHARACTER_GRID_LEVEL = 3
+#: A character differing from zero field's by more than this has changed: a
+#: change of occupation by symmetry moves a character by 2 (an orbital's +1
+#: becomes -1), the grid's error by ~1e-5.
+CHARACTER_CHANGE = 0.5
+#: A symmetry operation keeps a field F when |R F - F| <= this times
+#: max(|F|, FIELD_NORM_FLOOR_AU): a kept field moves only by rounding
+#: (~1e-16 |F|), a field it does not keep by ~|F|. The floor (au) lies far
+#: below any field point; zero field is kept by every operation.
+FIELD_KEPT_RTOL = 1e-9
+FIELD_NORM_FLOOR_AU = 1e-300
+
+#: The Newton step's relative residual (_newton) is kept within these bounds:
+#: no looser than 0.1 (each step still removes ~90 % of the gradient), no
+#: tighter than 1e-8 (the step's own quadratic error and the next Fock build's
+#: rounding dominate long before); and it need not beat NEWTON_TARGET_SHARE of
+#: the target (the rest of the target is left to the step's quadratic error).
+NEWTON_RTOL_BOUNDS = (1e-8, 0.1)
+NEWTON_TARGET_SHARE = 0.3
+#: A CG solve counts as converged when its true residual is within this many
+#: times the tolerance asked: SciPy's cg checks its own recursively updated
+#: residual, which drifts from the true one by rounding; a residual 10x over
+#: means the solve stalled (a near-zero mode), not rounding.
+CG_RESIDUAL_SLACK = 10
+#: Two solved field vectors lie on one line through zero field (the line start)
+#: when they agree to this (au) after scaling: field vectors are exact
+#: multiples of their offsets (plan.field_vector), so only rounding separates
+#: points on a line, ~1e-19 au at fields ~1e-3.
+LINE_START_ATOL_AU = 1e-12
+#: Below this t (the tangent of a rotation angle) arctan(t)/t is 1 to double
+#: precision (its series is 1 - t^2/3): _rotation_from_reference takes 1 there.
+SMALL_ROTATION = 1e-8
+#: Iterations a coupled-cluster amplitude solve may take at least (the SCF's
+#: max_cycle when larger): CCSD from MP2 amplitudes converges to 1e-12 Eh in
+#: 10-50 iterations for the molecules measured, with DIIS.
+MIN_AMPLITUDE_ITERATIONS = 100
+
+#: PySCF's ladder (_ladder), after plain DIIS: a level shift (Eh) of the
+#: virtual orbitals, DIIS only from cycle LADDER_DIIS_START_CYCLE (the first,
+#: damped and shifted cycles are far from convergence and would crowd its
+#: subspace), and damping (the share of the old Fock matrix mixed in; not for
+#: ROHF, where PySCF's damping fails): the usual cures of an SCF oscillating
+#: among near-degenerate orbitals.
+LADDER_LEVEL_SHIFT_AU = 0.2
+LADDER_DIIS_START_CYCLE = 4
+LADDER_DAMPING = 0.3
+
+#: The SCF inside a geometry optimisation (each step's and the final one):
+#: an energy to 1e-10 Eh (far below the criteria's energy change, 1e-6 Eh) and
+#: an orbital gradient of 1e-6, which moved PySCF's nuclear gradient of water
+#: by 2e-9 (HF/6-31G) and 4e-8 Eh/bohr (B3LYP) from a converged SCF's, below
+#: the tightest criteria's largest gradient (2e-6 Eh/bohr).
+OPTIMISATION_ENERGY_TOL_AU = 1e-10
+OPTIMISATION_GRADIENT_TOL = 1e-6
 
 
 def _pyscf_basis(basis):
@@ -648,6 +709,14 @@ def _operation_name(signs, axes) -> str:
     return f"C2 rotation about {vec(axes[plus])}"
 
 
+def _element_counts(mol) -> list[tuple[str, int]]:
+    """(symbol, count) of the molecule's atoms, in order of first appearance."""
+    counts: dict[str, int] = {}
+    for i in range(mol.natm):
+        counts[mol.atom_pure_symbol(i)] = counts.get(mol.atom_pure_symbol(i), 0) + 1
+    return list(counts.items())
+
+
 def symmetry_operations(mol, mf) -> tuple[SymmetryOperation, ...]:
     """The operations of the molecule's largest abelian point subgroup (D2h and
     its subgroups) that the zero-field state ``mf`` shares, with their action on
@@ -655,19 +724,27 @@ def symmetry_operations(mol, mf) -> tuple[SymmetryOperation, ...]:
 
     PySCF's detection gives the symmetry frame; each of the seven sign changes
     of its axes is kept if it maps every atom onto an atom of the same element
-    (same basis). <chi_mu | R chi_nu> is integrated on a DFT grid (level 3,
-    ~1e-6 accurate for the overlap), so characters come out within ~1e-5 of
-    their integers; the comparison allows 0.5.
+    (same basis). <chi_mu | R chi_nu> is integrated on a DFT grid
+    (CHARACTER_GRID_LEVEL), so characters come out within ~1e-5 of their
+    integers; state_issues allows CHARACTER_CHANGE.
     """
     import itertools
 
     from pyscf import dft, symm
+    from pyscf.lib.exceptions import PointGroupSymmetryError
 
     try:
         group, origin, axes = symm.detect_symm(mol._atom)
         group, axes = symm.as_subgroup(group, axes)
-    except Exception as exc:  # noqa: BLE001 - detection is a bonus, never fatal
-        logger.debug("no symmetry detection: %s", exc)
+    except (PointGroupSymmetryError, AssertionError) as exc:
+        # What PySCF's detection raises for a framework it cannot classify:
+        # its own error, or (a near-icosahedral one taken for T or O) an
+        # assertion of its search. Called once per model (at zero field).
+        formula = "".join(f"{s}{n if n > 1 else ''}" for s, n in _element_counts(mol))
+        logger.warning("%s: PySCF's point-group detection failed (%s%s); the "
+                       "occupation-by-symmetry check is skipped for this model (the "
+                       "occupied-overlap and <S^2> checks still apply)", formula,
+                       type(exc).__name__, f": {exc}" if str(exc) else "")
         return ()
     if group == "C1":
         return ()
@@ -680,13 +757,13 @@ def symmetry_operations(mol, mf) -> tuple[SymmetryOperation, ...]:
         matrix = axes.T @ np.diag(signs) @ axes
         image = (coords - origin) @ matrix.T + origin
         if all(any(symbols[i] == symbols[j] and
-                   np.linalg.norm(image[i] - coords[j]) < SYMMETRY_TOLERANCE_BOHR
+                   np.linalg.norm(image[i] - coords[j]) < ATOM_IMAGE_MATCH_BOHR
                    for j in range(mol.natm)) for i in range(mol.natm)):
             chosen.append((signs, matrix))
     if not chosen:
         return ()
     grids = dft.gen_grid.Grids(mol)
-    grids.level = 3
+    grids.level = CHARACTER_GRID_LEVEL
     grids.verbose = 0
     grids.build()
     reps = [np.zeros((mol.nao, mol.nao)) for _ in chosen]
@@ -717,10 +794,11 @@ def state_issues(reference: ZeroFieldReference, field_vector_au, sets, s2,
         issues.append(f"<S^2> {s2:.4f} against {reference.s2:.4f} at zero field")
     f = np.asarray(field_vector_au, dtype=float)
     for op in reference.symmetry:
-        if np.linalg.norm(op.matrix @ f - f) > 1e-9 * max(np.linalg.norm(f), 1e-300):
+        if np.linalg.norm(op.matrix @ f - f) > FIELD_KEPT_RTOL * max(np.linalg.norm(f),
+                                                                      FIELD_NORM_FLOOR_AU):
             continue  # the field breaks this symmetry: its characters may change
         chars = _characters(sets, op.representation)
-        if any(abs(c - c0) > 0.5 for c, c0 in zip(chars, op.characters)):
+        if any(abs(c - c0) > CHARACTER_CHANGE for c, c0 in zip(chars, op.characters)):
             shown = "/".join(f"{c:.0f}" for c in chars)
             zero = "/".join(f"{c:.0f}" for c in op.characters)
             issues.append(f"occupation by symmetry changed: under the {op.name}, which the "
@@ -878,8 +956,9 @@ def _newton(mf, context, c, occ, target: float,
         hessian = _orbital_hessian(mf, context.response, constraints, fock)
         # The step's linear-solve error (rtol g) need not beat the quadratic
         # error of an exact step (~g^2 per Eh, measured 0.5-1 for water), nor
-        # a third of the target.
-        rtol = float(np.clip(max(0.3 * target / g, NEWTON_RTOL_PER_GRADIENT * g), 1e-8, 0.1))
+        # a share of the target.
+        rtol = float(np.clip(max(NEWTON_TARGET_SHARE * target / g,
+                                 NEWTON_RTOL_PER_GRADIENT * g), *NEWTON_RTOL_BOUNDS))
         try:
             x = hessian.solve(-hessian.vo(fock), rtol, "Newton step")
         except ScfNotConvergedError:
@@ -926,7 +1005,7 @@ def _start_orbitals(context, field_vector_au) -> tuple[np.ndarray, str]:
         t = float(a @ f) / float(f @ f)
         partner = solved.get(field_key(-a))
         if (0.0 < t < 1.0 and partner is not None and np.allclose(a, t * f, rtol=0.0,
-                                                                  atol=1e-12)
+                                                                  atol=LINE_START_ATOL_AU)
                 and (best is None or t > best[0])):
             best = (t, x, partner)
     if best is not None:
@@ -963,7 +1042,7 @@ def _rotation_from_reference(ref_c, ref_occ, c, overlap) -> np.ndarray:
         w, v = np.linalg.eigh(m.T @ m)
         root = np.sqrt(np.clip(w, 0.0, None))
         f = np.ones_like(root)
-        big = root > 1e-8
+        big = root > SMALL_ROTATION
         f[big] = np.arctan(root[big]) / root[big]
         parts.append((m @ (v * f) @ v.T).ravel())
     return np.concatenate(parts)
@@ -1012,9 +1091,9 @@ def _ladder(mf, dm0, target: float, attempts: list[str]) -> int:
     from pyscf.scf import rohf
 
     restricted_open = isinstance(mf, rohf.ROHF)
-    shift = {"level_shift": 0.2, "diis_start_cycle": 4}
+    shift = {"level_shift": LADDER_LEVEL_SHIFT_AU, "diis_start_cycle": LADDER_DIIS_START_CYCLE}
     if not restricted_open:
-        shift["damp"] = 0.3
+        shift["damp"] = LADDER_DAMPING
     strategies = [(DIIS, {}), ("diis+level_shift" if restricted_open else
                                  "diis+damping+level_shift", shift), ("second_order", None)]
     cycles, best = 0, None
@@ -1138,7 +1217,7 @@ def _correlated_energy(mf, model, scf_spec, label: str
     solver.verbose = 0
     solver.conv_tol = wanted.energy_change_au
     solver.conv_tol_normt = wanted.amplitude_change
-    solver.max_cycle = max(scf_spec.max_cycle, 100)
+    solver.max_cycle = max(scf_spec.max_cycle, MIN_AMPLITUDE_ITERATIONS)
     eris = solver.ao2mo()
     solver.kernel(eris=eris)
     # The convergence reached: one more (Jacobi) iteration from the final
@@ -1224,7 +1303,7 @@ class _HessianSolver:
             x, info = cg(operator, b, rtol=rtol, atol=0.0, M=precondition,
                          maxiter=CG_MAX_ITERATIONS)
             residual = np.linalg.norm(operator.matvec(x) - b)
-            if info == 0 and residual <= 10 * rtol:
+            if info == 0 and residual <= CG_RESIDUAL_SLACK * rtol:
                 return x * norm
         raise ScfNotConvergedError(f"{what} did not converge (residual {residual:.1e}); "
                                    "the SCF may be unstable")
@@ -1645,7 +1724,8 @@ def optimize_geometry(job: Job, molecule) -> dict:
 
     Returns a document: coordinates (bohr), energy, steps, the largest
     remaining gradient component, the criteria, the model. Raises
-    ScfNotConvergedError (named) when it does not converge in max_steps.
+    ScfNotConvergedError (named) when it does not converge in max_steps, or
+    when the SCF at the geometry it ends at does not converge.
     """
     from pyscf.geomopt import geometric_solver
 
@@ -1656,9 +1736,9 @@ def optimize_geometry(job: Job, molecule) -> dict:
     mol = build_mole(molecule, model.basis, f"{job.path}: {where}", model.cartesian)
     scf_spec = job.scf
     if model.method == "dft" and scf_spec.grid_level is None:
-        scf_spec = dataclasses.replace(scf_spec, grid_level=5)
+        scf_spec = dataclasses.replace(scf_spec, grid_level=DEFAULT_GRID_LEVEL)
     mf = _mean_field(mol, model, scf_spec)
-    mf.conv_tol, mf.conv_tol_grad = 1e-10, 1e-6
+    mf.conv_tol, mf.conv_tol_grad = OPTIMISATION_ENERGY_TOL_AU, OPTIMISATION_GRADIENT_TOL
     method = mf
     if model.method == "mp2":
         from pyscf import mp
@@ -1688,8 +1768,15 @@ def optimize_geometry(job: Job, molecule) -> dict:
                                    f"max_steps = {job.geometry.max_steps} steps; raise it, or "
                                    "start from a better geometry")
     final = _mean_field(mol_eq, model, scf_spec)
-    final.conv_tol, final.conv_tol_grad = 1e-10, 1e-6
+    final.conv_tol, final.conv_tol_grad = OPTIMISATION_ENERGY_TOL_AU, OPTIMISATION_GRADIENT_TOL
     final.kernel()
+    if not final.converged:
+        # Its gradient, energy and coordinates would be those of no state.
+        raise ScfNotConvergedError(
+            f"{job.path}: [geometry] optimize: the SCF at the optimised geometry did not "
+            f"converge in [scf] max_cycle = {final.max_cycle} cycles (orbital gradient "
+            f"{_gradient_norm(final):.1e}, target {final.conv_tol_grad:g}); no geometry is "
+            "formed from it")
     target = final
     if model.method == "mp2":
         from pyscf import mp
@@ -1860,20 +1947,32 @@ class StructureEvaluator:
 HESSIAN_STEP_BOHR = 1e-3
 
 
+def _has_nuclear_hessian(mf) -> bool:
+    """Whether PySCF has the analytic nuclear Hessian of ``mf``: RHF, UHF, RKS
+    and UKS (_has_hessian), density-fitted or not; not restricted open shells
+    (PySCF de-registers their Hessian, and its density-fitted one fails), nor
+    a functional with nonlocal correlation (VV10) where PySCF's Hessian refuses
+    it (unrestricted, or more than one such term)."""
+    if not _has_hessian(mf):
+        return False
+    if not (hasattr(mf, "do_nlc") and mf.do_nlc()):
+        return True
+    if np.asarray(mf.mo_occ).ndim == 2:
+        return False
+    xc = mf.xc if mf._numint.libxc.is_nlc(mf.xc) else mf.nlc
+    return len(mf._numint.nlc_coeff(xc)) == 1
+
+
 def _hessian(evaluate: StructureEvaluator, mf, coords) -> tuple[np.ndarray, str]:
     """The Cartesian Hessian (3N, 3N) at zero field: PySCF's analytic one for
     RHF, UHF, RKS, UKS, else central differences of analytic gradients."""
     n = len(coords)
     # Only a mean-field method's Hessian is the SCF object's (MP2's is not).
-    analytic = METHODS[evaluate.model.method].mean_field and hasattr(mf, "Hessian")
-    if analytic:
-        try:
-            h = mf.Hessian()
-            h.verbose = 0
-            value = np.asarray(h.kernel()).transpose(0, 2, 1, 3).reshape(3 * n, 3 * n)
-            return value, "analytic"
-        except (NotImplementedError, TypeError):  # PySCF has none for this reference
-            pass
+    if METHODS[evaluate.model.method].mean_field and _has_nuclear_hessian(mf):
+        h = mf.Hessian()
+        h.verbose = 0
+        value = np.asarray(h.kernel()).transpose(0, 2, 1, 3).reshape(3 * n, 3 * n)
+        return value, "analytic"
     value = np.zeros((3 * n, 3 * n))
     for i in range(3 * n):
         step = np.zeros(3 * n)
@@ -2002,7 +2101,7 @@ def compute_relaxed_point(context: ModelContext, task: PointTask) -> PointRecord
         if overlap < MIN_OCCUPIED_OVERLAP:
             issues.append(f"occupied overlap with zero field {overlap:.3f} < "
                           f"{MIN_OCCUPIED_OVERLAP} at the relaxed structure")
-        if abs(s2 - ref.s2) > 0.01:
+        if abs(s2 - ref.s2) > MAX_S2_CHANGE:
             issues.append(f"<S^2> moved from {ref.s2:.4f} to {s2:.4f} at the relaxed structure")
     want = task.quantities
     dipole = tuple(float(v) for v in relaxed.evaluation.dipole_au) if want.dipole else None

@@ -74,6 +74,7 @@ class JobWork:
     running: int = 0
     lost: set = field(default_factory=set)  # keys whose worker died once
     shared: object = None  # the reference as the executor hands it to tasks
+    counted: set = field(default_factory=set)  # keys in the progress total
 
     @classmethod
     def at_hand(cls, prepared, rows: dict, retry_failed: bool = False, **kw) -> "JobWork":
@@ -230,7 +231,7 @@ def _references(works: list[JobWork], store, executor, progress: Progress) -> No
                 continue
             logger.info("%scomputing the zero-field reference (model %s)",
                         f"{work.label}: " if work.label else "", zero.model_key[:12])
-            progress.grow(1)
+            _count(work, [zero], progress)
             pending[executor.submit(reference_task, zero, executor.threads)] = work
         try:
             while pending:
@@ -319,13 +320,18 @@ def _next_stage(work: JobWork, store, progress: Progress, on_finished) -> None:
                        for i, t in enumerate(stage)}
     else:  # relaxed points start from their clamped points; point: from nothing
         work.before = {}
-    work.queue = [t for t in todo if not (t.is_zero_field and not t.tightening)]
-    if not work.queue:  # only the zero field was asked for: it is there now
-        work.finished = True
-        if on_finished is not None:
-            on_finished(work)
-        return
-    progress.grow(len(work.queue))
+    # The zero-field point is here unless the model's reference was stored by
+    # a job of other quantities (check's alpha route): then it is an ordinary
+    # point of this job.
+    work.queue = todo
+    _count(work, todo, progress)
+
+
+def _count(work: JobWork, tasks, progress: Progress) -> None:
+    """Add the tasks not counted yet to the progress total."""
+    new = [t.key for t in tasks if t.key not in work.counted]
+    work.counted.update(new)
+    progress.grow(len(new))
 
 
 def _pick(works: list[JobWork]):
@@ -361,6 +367,7 @@ def compute_jobs(works: list[JobWork], store, executor, progress: Progress | Non
     for work in works:
         if work.only is None:
             work.settle()
+        _count(work, work.todo(), progress)  # the first stage's total, zero field included
     _references(works, store, executor, progress)
     pending: dict = {}
 
@@ -421,8 +428,14 @@ def compute_jobs(works: list[JobWork], store, executor, progress: Progress | Non
                     work.failed[task.key] = outcome
                 if not work.queue and work.running == 0 and not work.finished:
                     _next_stage(work, store, progress, on_finished)
-    except BaseException:
+    except BaseException as exc:
         executor.close(abort=True, pending=list(pending))
+        if isinstance(exc, KeyboardInterrupt):
+            done = sum(len(w.computed_now) + len(w.relaxed_now) for w in works)
+            left = sum(len(w.queue) for w in works) + len(pending)
+            logger.warning("interrupted: %d new field point(s) stored in %s; %d still to "
+                           "compute. Run the same command again to resume.", done,
+                           store.label, left)
         raise
     for work in works:  # cannot happen: predecessors precede their points in the plan
         if not work.finished:

@@ -29,13 +29,12 @@ import logging
 import math
 import os
 import tomllib
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
 from fieldprop.errors import InputError
-from fieldprop.numerics.methods import METHODS as METHOD_TRAITS
-from fieldprop.numerics.methods import Route, methods_with
+from fieldprop.numerics.methods import METHODS, Route, methods_with
 from fieldprop.numerics.units import BACKEND_BOHR_ANGSTROM, NAMED_BOHR_ANGSTROM, PROPERTY_ORDER
 
 logger = logging.getLogger(__name__)
@@ -49,7 +48,8 @@ ELEMENTS = (
 ).split()
 _Z_OF = {sym.lower(): z for z, sym in enumerate(ELEMENTS) if z > 0}
 
-METHODS = tuple(METHOD_TRAITS)
+#: [model] method and [geometry] method: the names of the method table.
+METHOD_NAMES = tuple(METHODS)
 REFERENCES = ("auto", "restricted", "unrestricted")
 ROUTES = ("auto", "energy", "dipole")
 #: [response] window: grow each component's levels of the automatic ladder
@@ -131,6 +131,11 @@ class MoleculeInput:
     #: what the job said: "backend", "scipy" or "given".
     bohr_angstrom: float = BACKEND_BOHR_ANGSTROM
     bohr_source: str = "backend"
+    #: The nuclei the job file gave (bohr): ``atoms`` until an optimisation or
+    #: a nuclear relaxation's polished minimum replaces those
+    #: (engine.with_geometry, engine.relaxed_reference); what the job echo
+    #: writes as [molecule] geometry. None: the same as ``atoms``.
+    given_atoms: tuple[Atom, ...] | None = None
 
     @property
     def angstrom_to_bohr(self) -> float:
@@ -346,28 +351,111 @@ class Job:
     relaxation: dict | None = None
 
     def to_dict(self) -> dict[str, Any]:
-        """The job as understood, every default filled in (for the result JSON)."""
-        mol = self.molecule
-        return {
+        """The job as understood, for the result JSON: the job file's sections
+        and keys with every default filled in (automatic choices resolved to
+        the value they took: reference, differentiate), so that a job file
+        written from them loads as this job; its geometry the nuclei the job
+        file gave, in bohr (``units = "bohr"``, every digit of the floats).
+
+        ``"derived"`` holds what was worked out and is no input: the job's
+        path; the molecule's nuclei as computed (``atoms``: after an
+        optimisation its optimum), the units and source the job file used, the
+        bohr in angstrom as a number and where it came from; the field
+        strength and window the response used; the orbital gradient and the
+        coupled-cluster energy change accepted; the optimisation criteria's
+        thresholds; the optimisation and nuclear relaxation documents (None
+        without them).
+        """
+        mol, model, response, scf, geometry = (self.molecule, self.model, self.response,
+                                               self.scf, self.geometry)
+        automatic = response.field_au_source != "job"
+        # repr: the shortest text that reads back as the same float.
+        geometry_text = "\n".join(" ".join([a.symbol, *map(repr, a.coords_bohr)])
+                                  for a in mol.given_atoms or mol.atoms)
+        sections: dict[str, Any] = {
+            "molecule": {
+                "geometry": geometry_text,
+                "units": "bohr",
+                "charge": mol.charge,
+                "multiplicity": mol.multiplicity,
+                "allow_close_atoms": mol.allow_close_atoms,
+                "bohr_angstrom": (mol.bohr_source if mol.bohr_source in NAMED_BOHR_ANGSTROM
+                                  else mol.bohr_angstrom),
+            },
+            "model": {
+                "method": model.method,
+                **({} if model.functional is None else {"functional": model.functional}),
+                "basis": model.basis if isinstance(model.basis, str) else dict(model.basis),
+                "reference": model.reference,
+                "frozen_core": model.frozen_core,
+                "cartesian": model.cartesian,
+                "density_fit": {None: False, "auto": True}.get(model.density_fit,
+                                                               model.density_fit),
+            },
+            "response": {
+                "properties": list(response.properties),
+                **({} if automatic else {"field_au": response.field_au}),
+                "ratio": response.ratio,
+                "levels": response.levels,
+                "origin": (response.origin if isinstance(response.origin, str)
+                           else list(response.origin)),
+                "differentiate": str(response.route),
+                "symmetry": response.symmetry,
+                **({"window": response.window} if automatic else {}),
+                "nuclear_relaxation": response.nuclear_relaxation,
+            },
+            "scf": {
+                "energy_conv_tol_au": scf.energy_conv_tol_au,
+                "max_cycle": scf.max_cycle,
+                **({} if scf.grid_level is None else {"grid_level": scf.grid_level}),
+                "gradient_target": scf.gradient_conv_tol,
+                "gradient_needed": scf.gradient_needed,
+                "solver": scf.solver,
+            },
+        }
+        if scf.correlation is not None:
+            sections["correlation"] = {"energy_change_au": scf.correlation.energy_change_au,
+                                       "amplitude_change": scf.correlation.amplitude_change}
+        sections["geometry"] = {"optimize": geometry.optimize}
+        if geometry.optimize:
+            sections["geometry"].update(
+                {k: v for k, v in (("method", geometry.method),
+                                   ("functional", geometry.functional),
+                                   ("basis", geometry.basis)) if v is not None})
+            sections["geometry"].update(criteria=geometry.criteria,
+                                        max_steps=geometry.max_steps)
+        derived = {
             "path": self.path,
             "molecule": {
                 "atoms": [{"symbol": a.symbol, "coords_bohr": list(a.coords_bohr)}
                           for a in mol.atoms],
-                "units_in_job": mol.units, "source": mol.source,
+                "units": mol.units, "source": mol.source,
                 "bohr_angstrom": mol.bohr_angstrom, "bohr_source": mol.bohr_source,
-                "charge": mol.charge, "multiplicity": mol.multiplicity,
-                "allow_close_atoms": mol.allow_close_atoms,
             },
-            "model": asdict(self.model),
-            "response": {**asdict(self.response), "properties": list(self.response.properties),
-                         "origin": (self.response.origin if isinstance(self.response.origin, str)
-                                    else list(self.response.origin))},
-            "scf": {k: v for k, v in asdict(self.scf).items() if k != "correlation"},
-            "correlation": (None if self.scf.correlation is None
-                            else asdict(self.scf.correlation)),
-            "geometry": {**asdict(self.geometry), "thresholds": self.geometry.thresholds()},
+            "response": {"field_au": response.field_au,
+                         "field_au_source": response.field_au_source,
+                         "window": response.window},
+            "scf": {"gradient_accepted": scf.gradient_accepted},
+            **({} if scf.correlation is None else
+               {"correlation": {"accepted_au": scf.correlation.accepted_au}}),
+            "geometry": {"thresholds": geometry.thresholds()},
             "optimisation": self.optimisation,
+            "relaxation": self.relaxation,
         }
+        return {**sections, "derived": derived}
+
+
+def echo_atoms(echo: dict) -> list | None:
+    """The nuclei as computed in a job echo (:meth:`Job.to_dict`, a result's
+    ``"job"``): ``derived.molecule.atoms``, [{"symbol", "coords_bohr"}], or
+    ``molecule.atoms`` in results written before the echo took the job file's
+    keys; None when neither is there."""
+    derived = echo.get("derived")
+    for parent in (derived.get("molecule") if isinstance(derived, dict) else None,
+                   echo.get("molecule")):
+        if isinstance(parent, dict) and isinstance(parent.get("atoms"), list):
+            return parent["atoms"]
+    return None
 
 
 def derived_energy_conv_tol_au(max_order: int) -> float:
@@ -566,7 +654,7 @@ def _parse_molecule(path: str, job_path: Path, table: dict[str, Any]) -> Molecul
     if not isinstance(allow_close, bool):
         raise r.fail("allow_close_atoms", f"must be true or false, got {allow_close!r}")
     return MoleculeInput(atoms, charge, multiplicity, units, source, allow_close, bohr,
-                         bohr_source)
+                         bohr_source, atoms)
 
 
 #: A bohr (angstrom) outside this range is a typing mistake, not another
@@ -592,7 +680,7 @@ def _bohr_angstrom(r: "_Reader", value: Any) -> tuple[float, str]:
 
 def _parse_model(path: str, table: dict[str, Any], multiplicity: int) -> ModelSpec:
     r = _Reader(path, "model", table)
-    method = r.string("method", None, METHODS)
+    method = r.string("method", None, METHOD_NAMES)
     raw_basis = table.get("basis")
     if isinstance(raw_basis, dict):
         if not raw_basis:
@@ -619,12 +707,12 @@ def _parse_model(path: str, table: dict[str, Any], multiplicity: int) -> ModelSp
     if reference == "auto":
         reference = "restricted" if multiplicity == 1 else "unrestricted"
     if reference == "restricted" and multiplicity > 1 and \
-            not METHOD_TRAITS[method].restricted_open_shell:
-        allowed = " and ".join(m for m, t in METHOD_TRAITS.items() if t.restricted_open_shell)
+            not METHODS[method].restricted_open_shell:
+        allowed = " and ".join(m for m, t in METHODS.items() if t.restricted_open_shell)
         raise r.fail("reference", f"= \"restricted\" with multiplicity {multiplicity} is "
                      f"restricted open shell, available for {allowed} only; use "
                      f"\"unrestricted\" for {method}")
-    correlated = not METHOD_TRAITS[method].mean_field
+    correlated = not METHODS[method].mean_field
     frozen_core = table.get("frozen_core", correlated)
     if not isinstance(frozen_core, bool):
         raise r.fail("frozen_core", f"must be true or false, got {frozen_core!r}")
@@ -753,8 +841,8 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
     relax = table.get("nuclear_relaxation", False)
     if not isinstance(relax, bool):
         raise r.fail("nuclear_relaxation", f"must be true or false, got {relax!r}")
-    if relax and not METHOD_TRAITS[method].nuclear_gradient:
-        with_gradient = ", ".join(m for m, t in METHOD_TRAITS.items()
+    if relax and not METHODS[method].nuclear_gradient:
+        with_gradient = ", ".join(m for m, t in METHODS.items()
                                  if t.nuclear_gradient)
         raise r.fail("nuclear_relaxation", f"= true needs nuclear gradients of E(R; F), which "
                      f"fieldprop has for {with_gradient}; {method} has none: set it to false, "
@@ -792,9 +880,7 @@ def _parse_scf(path: str, table: dict[str, Any], method: str, max_order: int,
         if grid_level > 9:
             raise r.fail("grid_level", f"must be 0..9 (PySCF grid levels), got {grid_level}")
     elif method == "dft":
-        # One fixed, fine grid for every field point: grid noise is amplified by
-        # finite differences (REFERENCES sect. 6), and level 5 keeps it small.
-        grid_level = 5
+        grid_level = DEFAULT_GRID_LEVEL
     # The SCF energy is variational (error ~ g^2 in the orbital gradient g), so
     # g <= 1e-8 suffices for the energy route. The SCF dipole and post-HF energies
     # are not variational (error ~ g; measured: |d mu| ~ 0.9 g for water). The
@@ -810,7 +896,7 @@ def _parse_scf(path: str, table: dict[str, Any], method: str, max_order: int,
     # cheap next to MP2 or CC: 1e-11 for closed shells, 1e-10 for open ones.
     if route == "dipole":
         gradient_tol = (1e-10 if open_shell else 1e-12 if method == "hf" else 1e-11)
-    elif METHOD_TRAITS[method].mean_field:
+    elif METHODS[method].mean_field:
         gradient_tol = 1e-8
     else:
         gradient_tol = 1e-10 if open_shell else 1e-11
@@ -844,9 +930,9 @@ CORRELATION_DEFAULTS = {1: (1e-10, 1e-6), 2: (1e-11, 1e-7), 3: (1e-12, 1e-8),
 def _parse_correlation(path: str, table: dict[str, Any], method: str,
                        max_order: int) -> CorrelationSpec | None:
     r = _Reader(path, "correlation", table)
-    if not METHOD_TRAITS[method].amplitude_solver:
+    if not METHODS[method].amplitude_solver:
         if table:
-            solvers = ", ".join(m for m, t in METHOD_TRAITS.items() if t.amplitude_solver)
+            solvers = ", ".join(m for m, t in METHODS.items() if t.amplitude_solver)
             raise r.fail(next(iter(table)), f"applies to the amplitude solvers ({solvers}), "
                          f"not to method = {method!r}; remove the [correlation] table")
         return None
@@ -860,6 +946,10 @@ def _parse_correlation(path: str, table: dict[str, Any], method: str,
     return CorrelationSpec(energy, amplitude)
 
 
+#: [scf] grid_level of DFT when the job gives none: one fixed, fine grid for
+#: every field point, since grid noise is amplified by finite differences
+#: (REFERENCES sect. 6), and level 5 keeps it small.
+DEFAULT_GRID_LEVEL = 5
 #: SCF solvers of [scf] solver (see ScfSpec).
 SOLVERS = ("newton", "diis")
 
@@ -886,7 +976,7 @@ def needed_gradient(method: str, route: str, max_order: int, field_au: float) ->
     k = max_order - 1 if route == "dipole" else max_order
     weight = sum(abs(w) for _, w in central_weights(k)) if k > 0 else 1.0
     allowed = NEGLIGIBLE_ERROR_AU[max_order] / 10.0 * field_au ** k / weight
-    if route != "dipole" and METHOD_TRAITS[method].mean_field:
+    if route != "dipole" and METHODS[method].mean_field:
         return math.sqrt(allowed)
     return allowed
 
@@ -939,10 +1029,6 @@ def job_from_tables(shown: str, job_path: Path, data: dict[str, Any]) -> Job:
     return Job(shown, molecule, model, response, scf, geometry)
 
 
-#: Methods whose nuclear gradients PySCF has (for [geometry] optimize).
-GRADIENT_METHODS = ("hf", "dft", "mp2")
-
-
 def _parse_geometry(path: str, table: dict[str, Any], model: ModelSpec) -> GeometrySpec:
     r = _Reader(path, "geometry", table)
     optimize = table.get("optimize", False)
@@ -952,7 +1038,7 @@ def _parse_geometry(path: str, table: dict[str, Any], model: ModelSpec) -> Geome
     if others and not optimize:
         raise r.fail(others[0], "is given but optimize is not true; set optimize = true or "
                      "remove it")
-    method = r.string("method", None, METHODS) if r.has("method") else None
+    method = r.string("method", None, METHOD_NAMES) if r.has("method") else None
     functional = r.string("functional") if r.has("functional") else None
     basis = r.string("basis") if r.has("basis") else None
     effective = method or model.method
@@ -961,10 +1047,10 @@ def _parse_geometry(path: str, table: dict[str, Any], model: ModelSpec) -> Geome
         raise r.fail("functional", "is missing; method = \"dft\" needs a functional")
     if effective != "dft" and functional is not None:
         raise r.fail("functional", f"is given but the optimisation's method is {effective!r}")
-    if optimize and effective not in GRADIENT_METHODS:
+    if optimize and not METHODS[effective].nuclear_gradient:
+        with_gradient = ", ".join(m for m, t in METHODS.items() if t.nuclear_gradient)
         raise r.fail("method", f"= {effective!r} has no nuclear gradient in fieldprop; optimise "
-                     f"at one of {', '.join(GRADIENT_METHODS)} (give [geometry] method and "
-                     "basis)")
+                     f"at one of {with_gradient} (give [geometry] method and basis)")
     criteria = r.string("criteria", "tight", tuple(GEOMETRY_CRITERIA))
     max_steps = r.integer("max_steps", 100, low=1)
     return GeometrySpec(optimize, method, functional, basis, criteria, max_steps)

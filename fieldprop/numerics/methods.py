@@ -48,7 +48,8 @@ class MethodTraits:
     them). ``restricted_open_shell``: whether the
     method runs on a restricted open-shell reference at all. ``amplitude_solver``:
     a coupled-cluster solver, whose amplitude tolerance adds to the energy noise.
-    ``nuclear_gradient``: nuclear relaxation in a field is available.
+    ``nuclear_gradient``: nuclear relaxation in a field and a geometry
+    optimisation are available.
     ``integration_grid``: the energy is integrated on a grid fixed in the input
     axes (DFT: atom-centred Lebedev grids, invariant only under signed
     permutations of those axes), so a symmetry operation maps a field point onto
@@ -62,7 +63,7 @@ class MethodTraits:
     amplitude_solver: bool = False
     integration_grid: bool = False
     #: PySCF has the method's nuclear gradient, so E(R; F) can be minimised
-    #: over the nuclei ([response] nuclear_relaxation).
+    #: over the nuclei ([response] nuclear_relaxation, [geometry] optimize).
     nuclear_gradient: bool = False
 
     def has(self, route: Route | str) -> bool:

@@ -71,6 +71,7 @@ from pathlib import Path
 import numpy as np
 
 from fieldprop.errors import InputError
+from fieldprop.inputs.job import echo_atoms
 from fieldprop.numerics.plan import AXES
 from fieldprop.numerics.tensors import NEGLIGIBLE_ERROR_AU, symmetrize
 from fieldprop.numerics.units import ANGSTROM_TO_BOHR, BOHR_TO_ANGSTROM, PROPERTY_ORDER
@@ -550,7 +551,7 @@ def _has_null(raw) -> bool:
 def _json_geometry(where: str, doc: dict):
     geo = doc.get("geometry")
     if geo is None and isinstance(doc.get("job"), dict):
-        atoms = doc["job"].get("molecule", {}).get("atoms")
+        atoms = echo_atoms(doc["job"])
         if atoms:
             geo = {"symbols": [a.get("symbol") for a in atoms],
                    "coords_bohr": [a.get("coords_bohr") for a in atoms]}

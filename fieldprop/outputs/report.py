@@ -24,10 +24,10 @@ from fieldprop.inputs.job import SYMMETRISE
 from fieldprop.numerics.extrapolate import ComponentStatus
 from fieldprop.points.keys import short_id
 from fieldprop.numerics.plan import FieldPlan
+from fieldprop.outputs.summary import RESULT_SCHEMA
 from fieldprop.numerics.units import (DISPLAY_UNITS,
                              FIELD_AU_TO_V_PER_M, PROPERTY_ORDER, TABLE_UNITS)
 
-SCHEMA = "fieldprop-result-1"
 
 CAUTION = ("Results depend on method and basis set (beta and gamma strongly: diffuse "
            "functions and correlation change them by tens of percent); computed NLO "
@@ -523,7 +523,7 @@ def result_document(result: RunResult) -> dict[str, Any]:
     invariants = _invariants_document(result.invariants)
     plan = result.plan
     document = {
-        "schema": SCHEMA,
+        "schema": RESULT_SCHEMA,
         "version": __version__,
         "units": "au",
         "convention": "taylor",

@@ -35,9 +35,11 @@ from typing import Any, TextIO
 from tabulate import tabulate
 
 from fieldprop.errors import InputError
+from fieldprop.inputs.job import echo_atoms
 from fieldprop.numerics.units import TABLE_UNITS
 
-#: The result documents this module reads.
+#: The schema of the result documents (report.result_document writes them, this
+#: module reads them).
 RESULT_SCHEMA = "fieldprop-result-1"
 #: Conventions: factor from the Taylor convention, per property.
 CONVENTIONS = {"taylor": {"dipole": 1.0, "alpha": 1.0, "beta": 1.0, "gamma": 1.0},
@@ -93,7 +95,7 @@ def _formula(doc: dict) -> str:
     formula = doc.get("formula")
     if isinstance(formula, str) and formula:
         return formula
-    atoms = (doc["job"].get("molecule") or {}).get("atoms") or []
+    atoms = echo_atoms(doc["job"]) or []
     counts: dict[str, int] = {}
     for a in atoms:
         counts[a.get("symbol", "?")] = counts.get(a.get("symbol", "?"), 0) + 1

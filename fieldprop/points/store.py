@@ -387,10 +387,15 @@ class PointStore:
     @contextlib.contextmanager
     def reference_lock(self):
         """Held while a model's zero-field reference is looked up and, if
-        missing, computed and stored: an exclusive ``flock`` on ``<store>.lock``
-        beside a writable store file (nothing for a store in memory or opened
-        read-only, whose processes cannot share a reference anyway). Released
-        when the process ends, however it ends."""
+        missing, computed and stored: an exclusive POSIX record lock
+        (``lockf``) on ``<store>.lock`` beside a writable store file (nothing
+        for a store in memory or opened read-only, whose processes cannot share
+        a reference anyway). Released when the process ends, however it ends.
+
+        A record lock belongs to this process alone: worker processes forked
+        while it is held (a pool computing the reference) do not inherit it,
+        where a ``flock`` would stay held by their copy of the descriptor and
+        block this process's next reference for ever."""
         if self.path is None or self.read_only:
             yield
             return
@@ -404,11 +409,11 @@ class PointStore:
                              f"({exc.strerror})") from None
         try:
             try:
-                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-            except BlockingIOError:
+                fcntl.lockf(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            except (BlockingIOError, PermissionError):
                 logger.info("waiting for the zero-field reference another process is "
                             "computing (%s)", self.label)
-                fcntl.flock(fd, fcntl.LOCK_EX)
+                fcntl.lockf(fd, fcntl.LOCK_EX)
             yield
         finally:
             os.close(fd)  # releases the lock

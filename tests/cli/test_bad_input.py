@@ -19,7 +19,7 @@ from pathlib import Path
 
 import pytest
 
-from fieldprop.cli import main
+from fieldprop.cli.commands import main
 
 # --------------------------------------------------------------------------- job text
 

@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from fieldprop.cli import main
+from fieldprop.cli.commands import main
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "physics"))
 
@@ -149,7 +149,7 @@ def test_each_alpha_iso_agrees_with_an_analytic_cphf_polarizability(three):
     assert done.returncode == 0, done.stderr
     for name in ("water", "formaldehyde", "hydrogen-fluoride"):
         doc = json.loads((folder / "set.results" / f"{name}.result.json").read_text())
-        atoms = doc["job"]["molecule"]["atoms"]
+        atoms = doc["job"]["derived"]["molecule"]["atoms"]
         mol = gto.M(atom=[(a["symbol"], a["coords_bohr"]) for a in atoms], unit="Bohr",
                     basis="sto-3g", verbose=0)
         mf = scf.RHF(mol)
@@ -251,10 +251,10 @@ def test_a_campaign_optimises_each_geometry_once(tmp_path):
     assert "optimising 2 geometries" in first.stderr
     for name in ("water", "hydrogen-fluoride"):
         doc = json.loads((tmp_path / "set.results" / f"{name}.result.json").read_text())
-        opt = doc["job"]["optimisation"]
+        opt = doc["job"]["derived"]["optimisation"]
         assert opt["criteria"] == "tight" and opt["largest_gradient_au"] < 1.5e-5
         xyz = (tmp_path / "set.results" / f"{name}.optimised.xyz").read_text().splitlines()
-        assert int(xyz[0]) == len(doc["job"]["molecule"]["atoms"])
+        assert int(xyz[0]) == len(doc["job"]["derived"]["molecule"]["atoms"])
     again = subprocess.run(command, capture_output=True, text=True, timeout=600)
     assert again.returncode == 0, again.stderr
     assert "optimising" not in again.stderr and " 0 field points computed" in again.stderr

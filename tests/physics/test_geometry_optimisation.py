@@ -10,11 +10,12 @@ largest-gradient threshold.
 
 import math
 import textwrap
+from pathlib import Path
 
 import numpy as np
 import pytest
 
-from fieldprop.cli import main
+from fieldprop.cli.commands import main
 from fieldprop.inputs.job import GEOMETRY_CRITERIA
 
 pytest.importorskip("pyscf")
@@ -48,13 +49,13 @@ def test_optimised_water_has_the_hf_631g_shape_and_no_gradient(tmp_path, capsys)
     doc = json.loads((tmp_path / "water.result.json").read_text())
     xyz = (tmp_path / "water.optimised.xyz").read_text().splitlines()
     assert xyz[0] == "3" and "optimised at hf/6-31g" in xyz[1]
-    coords = np.array([a["coords_bohr"] for a in doc["job"]["molecule"]["atoms"]])
+    coords = np.array([a["coords_bohr"] for a in doc["job"]["derived"]["molecule"]["atoms"]])
     o, h1, h2 = coords * 0.529177210544
     r1, r2 = np.linalg.norm(h1 - o), np.linalg.norm(h2 - o)
     angle = math.degrees(math.acos((h1 - o) @ (h2 - o) / (r1 * r2)))
     assert 0.945 < r1 < 0.955 and abs(r1 - r2) < 1e-4
     assert 110.5 < angle < 112.5
-    opt = doc["job"]["optimisation"]
+    opt = doc["job"]["derived"]["optimisation"]
     assert opt["criteria"] == "tight" and opt["thresholds"] == GEOMETRY_CRITERIA["tight"]
     # An independent gradient at the coordinates the response used.
     mol = gto.M(atom=[("O", coords[0]), ("H", coords[1]), ("H", coords[2])], unit="Bohr",
@@ -108,3 +109,64 @@ def test_plan_before_the_optimisation_is_incomplete_and_bad_options_are_refused(
     bad.write_text(JOB.replace("optimize = true", 'basis = "sto-3g"'))
     assert main(["run", str(bad)]) == 2
     assert "optimize is not true" in capsys.readouterr().err
+
+
+def test_an_unconverged_final_scf_is_an_error_naming_the_job(tmp_path, monkeypatch):
+    """The geometry of an optimisation whose final SCF did not converge is
+    never returned: the optimiser is replaced by one that reports success at
+    the start, and the final SCF is allowed one cycle from the atomic guess
+    (water needs ~10 to reach the gradient 1e-6 asked for)."""
+    from pyscf.geomopt import geometric_solver
+
+    from fieldprop.backend import compute as backend_pyscf
+    from fieldprop.errors import FieldpropError
+    from fieldprop.inputs.job import load_job
+    from fieldprop.inputs.molecule import build_molecule
+
+    path = tmp_path / "water.toml"
+    path.write_text(JOB)
+    job = load_job(path)
+    monkeypatch.setattr(geometric_solver, "kernel",
+                        lambda method, **kwargs: (True, method.mol.copy()))
+    built = backend_pyscf._mean_field
+
+    def one_cycle(*args, **kwargs):
+        mf = built(*args, **kwargs)
+        mf.max_cycle = 1
+        return mf
+
+    monkeypatch.setattr(backend_pyscf, "_mean_field", one_cycle)
+    with pytest.raises(FieldpropError) as caught:
+        backend_pyscf.optimize_geometry(job, build_molecule(job.molecule, job.response.origin))
+    message = str(caught.value)
+    assert str(path) in message and "[geometry] optimize" in message
+    assert "SCF" in message and "\n" not in message
+
+
+def test_the_result_s_job_echo_rebuilds_the_job_that_started_the_optimisation(tmp_path,
+                                                                               capsys):
+    """The result's "job" without "derived", written as a job file, loads as
+    the job that was run: the starting geometry (bit for bit in bohr), not
+    the optimum, which is under derived.molecule.atoms."""
+    import dataclasses
+    import json
+    import sys
+
+    from fieldprop.inputs.job import load_job
+
+    sys.path.insert(0, str(Path(__file__).parents[1] / "unit"))
+    from toml_text import toml_document
+
+    path = tmp_path / "water.toml"
+    path.write_text(JOB)
+    assert main(["run", str(path), "--quiet"]) == 0
+    capsys.readouterr()
+    echo = json.loads((tmp_path / "water.result.json").read_text())["job"]
+    rebuilt_path = tmp_path / "rebuilt.toml"
+    rebuilt_path.write_text(toml_document({k: v for k, v in echo.items() if k != "derived"}))
+    job, rebuilt = load_job(path), load_job(rebuilt_path)
+    assert rebuilt == dataclasses.replace(job, path=rebuilt.path, molecule=dataclasses.replace(
+        job.molecule, units="bohr", source="inline"))
+    optimum = [a["coords_bohr"] for a in echo["derived"]["molecule"]["atoms"]]
+    assert optimum != [list(a.coords_bohr) for a in job.molecule.atoms]
+    assert echo["derived"]["molecule"]["source"] == "inline, optimised"

@@ -23,7 +23,7 @@ pytest.importorskip("pyscf")
 from analytic_reference import cphf_polarizability, scf_dipole  # noqa: E402
 from support import rotation  # noqa: E402
 
-from fieldprop.cli import main  # noqa: E402
+from fieldprop.cli.commands import main  # noqa: E402
 from fieldprop.inputs.job import load_job  # noqa: E402
 from fieldprop.numerics.symmetry import detect  # noqa: E402
 from fieldprop.numerics.units import BACKEND_BOHR_ANGSTROM, BOHR_TO_ANGSTROM  # noqa: E402
@@ -109,18 +109,22 @@ def test_angstrom_is_turned_into_the_backends_bohr_bit_for_bit(tmp_path):
     ours = np.array([a.coords_bohr for a in job.molecule.atoms])
     theirs = gto.M(atom=SIX_DECIMALS, unit="Angstrom", basis="sto-3g").atom_coords()
     assert np.array_equal(ours, theirs)  # bit for bit
-    echo = job.to_dict()["molecule"]
-    assert echo["bohr_angstrom"] == BOHR and echo["bohr_source"] == "backend"
+    echo = job.to_dict()
+    assert echo["molecule"]["bohr_angstrom"] == "backend"
+    derived = echo["derived"]["molecule"]
+    assert derived["bohr_angstrom"] == BOHR and derived["bohr_source"] == "backend"
     # Another bohr, asked for by name or number, gives another molecule, and says so.
     path.write_text(_job_text('bohr_angstrom = "scipy"'))
     scipy_job = load_job(path)
     scipy_coords = np.array([a.coords_bohr for a in scipy_job.molecule.atoms])
     assert not np.array_equal(scipy_coords, theirs)
     assert np.allclose(scipy_coords * BOHR_TO_ANGSTROM, theirs * BOHR, rtol=0, atol=1e-14)
-    assert scipy_job.to_dict()["molecule"]["bohr_source"] == "scipy"
+    assert scipy_job.to_dict()["molecule"]["bohr_angstrom"] == "scipy"
+    assert scipy_job.to_dict()["derived"]["molecule"]["bohr_source"] == "scipy"
     path.write_text(_job_text("bohr_angstrom = 0.52917721067"))
-    given = load_job(path).to_dict()["molecule"]
-    assert given["bohr_angstrom"] == 0.52917721067 and given["bohr_source"] == "given"
+    given = load_job(path).to_dict()
+    assert given["molecule"]["bohr_angstrom"] == 0.52917721067
+    assert given["derived"]["molecule"]["bohr_source"] == "given"
 
 
 def test_a_geometry_symmetric_to_its_digits_is_computed_as_given(tmp_path, capsys):
@@ -178,7 +182,7 @@ def test_symmetrise_moves_the_geometry_onto_its_group_and_says_so(tmp_path, caps
     assert "geometry symmetrised" in captured.out
     assert any("moved by up to" in w for w in doc["warnings"])
     computed = np.array([a["coords_bohr"] for a in doc["geometry_computed_bohr"]])
-    given = np.array([a["coords_bohr"] for a in doc["job"]["molecule"]["atoms"]])
+    given = np.array([a["coords_bohr"] for a in doc["job"]["derived"]["molecule"]["atoms"]])
     moved = np.abs(computed - given).max()
     assert 1e-8 < moved < 1e-5 and moved <= doc["symmetry"]["geometry_moved_bohr"] * 1.01
     # The nuclei computed are symmetric to round-off: the group holds as they stand.
@@ -210,7 +214,7 @@ def test_an_optimised_c2v_molecule_keeps_exact_zeros_and_honest_bars(tmp_path):
     assert main(["run", str(path), "--quiet", "--workers", "1"]) == 0
     doc = json.loads((tmp_path / "h2co.result.json").read_text())
     # Symmetrised at its source: the optimiser's tilt is gone, the group used.
-    assert doc["job"]["optimisation"]["symmetrised"]["moved_bohr"] < 1e-4
+    assert doc["job"]["derived"]["optimisation"]["symmetrised"]["moved_bohr"] < 1e-4
     assert doc["symmetry"]["group"].startswith("C2v") and not doc["symmetry"]["geometry_symmetrised"]
     coords = np.array([a["coords_bohr"] for a in doc["geometry_computed_bohr"]])
     assert np.all(coords[:, 0] == 0.0) and coords[2, 1] == -coords[3, 1]

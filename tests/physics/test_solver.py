@@ -12,7 +12,7 @@ import pytest
 pytest.importorskip("pyscf")
 
 from fieldprop.backend import compute as backend_pyscf  # noqa: E402
-from fieldprop.cli import main  # noqa: E402
+from fieldprop.cli.commands import main  # noqa: E402
 from fieldprop.engine.core import prepare  # noqa: E402
 from fieldprop.inputs.job import load_job  # noqa: E402
 from support import WATER_ANGSTROM, agree, geometry_text, nh2_geometry, run_job  # noqa: E402
