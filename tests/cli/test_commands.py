@@ -98,7 +98,7 @@ def test_run_plot_writes_one_png_per_property_with_every_component(tmp_path):
         assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 10_000
 
     # The panels are the computed components (9 for alpha, 18 for beta on this route).
-    from fieldprop.engine.core import compute
+    from fieldprop.engine.run import compute
     from fieldprop.inputs.job import load_job
     from fieldprop.outputs.plots import write_plots
 
