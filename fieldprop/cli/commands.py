@@ -489,7 +489,8 @@ def _at_optimised_geometry(prepared, store, job_path: Path):
     """``prepared`` again at the optimised geometry, when the job asks for
     one (optimised now or found in ``store``), with it written beside the job
     as JOB.optimised.xyz; else ``prepared`` itself."""
-    from fieldprop.engine.core import optimised, prepare
+    from fieldprop.engine.geometry import optimised
+    from fieldprop.engine.prepare import prepare
 
     job = prepared.job
     if not job.geometry.optimize:
@@ -514,7 +515,8 @@ def _clamped_only(job, command: str) -> None:
 def _at_relaxation_minimum(prepared, store):
     """``prepared`` again at the zero-field minimum the nuclear relaxation is
     held to (computed now or found in ``store``), when the job asks for it."""
-    from fieldprop.engine.core import prepare, relaxed_reference
+    from fieldprop.engine.geometry import relaxed_reference
+    from fieldprop.engine.prepare import prepare
 
     if not prepared.job.response.nuclear_relaxation:
         return prepared
@@ -555,7 +557,9 @@ def default_workers() -> int:
 
 
 def cmd_run(args) -> int:
-    from fieldprop.engine.core import prepare, require_stable, run_prepared
+    from fieldprop.engine.analyse import require_stable
+    from fieldprop.engine.prepare import prepare
+    from fieldprop.engine.run import run_prepared
     from fieldprop.inputs.job import load_job
     from fieldprop.outputs.report import (check_output_path, is_stdout, result_document,
                                   write_json_atomic)
@@ -598,7 +602,8 @@ def cmd_run(args) -> int:
 
 def cmd_check(args) -> int:
     from fieldprop.outputs import compare
-    from fieldprop.engine.core import prepare, reference_tensors, run_prepared
+    from fieldprop.engine.prepare import prepare
+    from fieldprop.engine.run import reference_tensors, run_prepared
     from fieldprop.inputs.job import load_job
     from fieldprop.numerics.methods import METHODS
     from fieldprop.outputs.report import (check_output_path, comparison_document, is_stdout,
@@ -731,7 +736,8 @@ def _read_point_lines(paths: list[Path] | None):
 
 
 def cmd_plan(args) -> int:
-    from fieldprop.engine.core import gather, make_plan, to_compute, todo_list_key
+    from fieldprop.engine.prepare import make_plan, to_compute, todo_list_key
+    from fieldprop.engine.run import gather
     from fieldprop.inputs.job import load_job
     from fieldprop.outputs.report import write_plan
     from fieldprop.engine.stages import JobWork
@@ -743,7 +749,7 @@ def cmd_plan(args) -> int:
     path = args.store if args.store is not None else default_store_path(args.job)
     if args.count:
         if not path.exists():  # bad input must not leave a new store behind
-            from fieldprop.engine.core import prepare
+            from fieldprop.engine.prepare import prepare
 
             prepare(job)
         store = PointStore.open(path)  # fixes the to-do list: written
@@ -805,7 +811,7 @@ def _requested_ids(args) -> list[str]:
 
 def _targets(args, prepared, store) -> list:
     """The planned tasks a ``point`` command is asked for, in order, once each."""
-    from fieldprop.engine.core import todo_list_key
+    from fieldprop.engine.prepare import todo_list_key
     from fieldprop.points.keys import short_id
 
     tasks = prepared.all_tasks()  # a later stage may ask for tightened points
@@ -852,7 +858,7 @@ def _targets(args, prepared, store) -> list:
 def cmd_point(args) -> int:
     from threadpoolctl import threadpool_limits
 
-    from fieldprop.engine.core import prepare
+    from fieldprop.engine.prepare import prepare
     from fieldprop.points.executors import InProcess
     from fieldprop.inputs.job import load_job
     from fieldprop.points.keys import short_id
@@ -870,7 +876,7 @@ def cmd_point(args) -> int:
         real = PointStore.open(path)
     try:
         if job.geometry.optimize:
-            from fieldprop.engine.core import optimised
+            from fieldprop.engine.geometry import optimised
 
             job = optimised(job, real, compute=True)
             prepared = prepare(job, facts=prepared.facts)
@@ -929,7 +935,7 @@ def cmd_point(args) -> int:
     if work.failure is not None:
         raise work.failure
     if failed:
-        from fieldprop.engine.core import failed_points_error
+        from fieldprop.engine.analyse import failed_points_error
 
         raise failed_points_error(prepared, failed, args.retry_failed)
     return 0
@@ -943,7 +949,8 @@ def _env_threads() -> int:
 
 
 def cmd_collect(args) -> int:
-    from fieldprop.engine.core import collect, require_stable
+    from fieldprop.engine.analyse import require_stable
+    from fieldprop.engine.run import collect
     from fieldprop.inputs.job import load_job
     from fieldprop.outputs.report import check_output_path, is_stdout, result_document, write_json_atomic
     from fieldprop.points.store import PointStore, default_store_path
@@ -1087,7 +1094,8 @@ def cmd_relax(args) -> int:
 
     import numpy as np
 
-    from fieldprop.engine.core import prepare, relax_at_field
+    from fieldprop.engine.geometry import relax_at_field
+    from fieldprop.engine.prepare import prepare
     from fieldprop.inputs.job import load_job
     from fieldprop.numerics.methods import METHODS
     from fieldprop.outputs.report import (check_output_path, is_stdout, write_json_atomic,

@@ -1,10 +1,10 @@
 """Screening campaigns: many molecules, one model, one pool.
 
 Each molecule's geometry optimisation ([geometry] optimize) runs first, in
-the pool; then every molecule is prepared (:func:`fieldprop.engine.gather`:
+the pool; then every molecule is prepared (:func:`fieldprop.engine.run.gather`:
 its plan and the points the store holds, as a stage-engine
-:class:`~fieldprop.stages.JobWork`) and all of them go to the one stage
-engine at once (:func:`fieldprop.stages.compute_jobs`), on the executor the
+:class:`~fieldprop.engine.stages.JobWork`) and all of them go to the one stage
+engine at once (:func:`fieldprop.engine.stages.compute_jobs`), on the executor the
 command chose (local processes or an existing Dask cluster): every
 molecule's zero field first, then the field points, a molecule's before the
 next one's while any molecule's points fill a worker that would otherwise
@@ -25,7 +25,8 @@ from dataclasses import dataclass
 
 from fieldprop import errors
 from fieldprop.inputs.campaign import Campaign, Candidate
-from fieldprop.engine.core import RunResult, gather
+from fieldprop.engine.analyse import RunResult
+from fieldprop.engine.run import gather
 from fieldprop.backend.tasks import optimise_task
 from fieldprop.points.progress import Progress
 from fieldprop.engine.stages import JobWork, compute_jobs
@@ -110,7 +111,7 @@ def _optimise(candidates, outcomes, store, pool, progress: bool) -> list:
     task per molecule whose optimised geometry is not stored; each result is
     stored at once and logged. A failed optimisation fails its molecule.
     Returns each molecule's job (at its optimised geometry where optimised)."""
-    from fieldprop.engine.core import geometry_key, with_geometry
+    from fieldprop.engine.geometry import geometry_key, with_geometry
 
     jobs = [c.job for c in candidates]
     pending = {}

@@ -7,7 +7,7 @@ Every entrance asks this module what to compute, under one policy:
   sends the missing points to an executor (:mod:`fieldprop.points.executors`: this
   process, local processes or a Dask cluster), stores every outcome as it
   arrives (the parent process is the store's only writer) and moves each job
-  through the adaptive window's stages (:func:`fieldprop.engine.settle`), then
+  through the adaptive window's stages (:func:`settle`), then
   its relaxed points when the job relaxes the nuclei;
 - ``plan`` lists, and ``point`` computes, :meth:`JobWork.todo` (``point``
   through the same :func:`compute_jobs`, restricted to the points asked for);
@@ -17,28 +17,122 @@ Reuse and retries: a point whose record is at hand is never computed again; a
 stored failure is computed again only with ``retry_failed`` (once per
 process), and a failure of the current stage that is not retried ends its job
 (the stage's other points still finish and are stored). Starts: a point is
-sent once the points it starts from (:func:`fieldprop.execute.predecessors`,
+sent once the points it starts from (:func:`fieldprop.points.executors.predecessors`,
 which precede it in the plan) are done, with their converged orbitals and
 nothing else, so its numbers do not depend on the executor or the schedule:
 ``run``, ``screen`` and ``run --scheduler`` give the same numbers bit for bit.
 A point whose predecessors were computed in another process (a resumed run, a
 job-array element) starts from the zero-field orbitals turned by their linear
 response instead, and differs in the last digits.
+
+The adaptive window's stages live here too (:func:`settle`: the windows the
+records at hand reach, and the points and tightening they ask for next). It
+may import the points room, the backend's task functions (PySCF only when a
+task runs), and of the engine :mod:`~fieldprop.engine.prepare`,
+:mod:`~fieldprop.engine.analyse` and :mod:`~fieldprop.engine.geometry`
+(:func:`~fieldprop.engine.geometry.relaxed_tasks`); never
+:mod:`~fieldprop.engine.run` or :mod:`~fieldprop.engine.screening`, which
+import it.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import time
 from dataclasses import dataclass, field
 
 from fieldprop import errors
 from fieldprop.backend.tasks import point_task, reference_task, refuse_another_backend
+from fieldprop.engine.analyse import (NoiseModel, _estimates, _tensor_scales, analyse,
+                                      failed_points_error, log_counts, point_counts,
+                                      with_relaxation)
+from fieldprop.engine.geometry import relaxed_tasks
+from fieldprop.engine.prepare import Prepared
+from fieldprop.numerics.extrapolate import ComponentStatus
 from fieldprop.points.executors import predecessors, worker_lost
 from fieldprop.points.progress import Progress
 from fieldprop.points.records import PointFailure, PointRecord, PointTask, ZeroFieldReference
 
 logger = logging.getLogger(__name__)
+
+
+def settle(prepared: Prepared, found: dict) -> Prepared:
+    """``prepared`` with the adaptive window replayed on the computed records
+    ``found`` ({task key: PointRecord}, images not needed): from the first
+    windows, grow them (fieldprop.numerics.window: one more level, or tighter points)
+    while the points they use are all there; the result holds the windows
+    reached, the points they use and their tightening, some of which may
+    still be missing (the next stage to compute). The same records give the
+    same stages in every process. Without the adaptive window, ``prepared``
+    itself."""
+    from fieldprop.numerics import window as adaptive
+
+    if not prepared.adaptive:
+        return prepared
+    plan = prepared.plan
+    windows = adaptive.initial_windows(plan)
+    while True:
+        stage = _stage(prepared, windows)
+        records = stage.records(found)
+        need = stage.active
+        if any(records[i] is None for i in need):
+            return dataclasses.replace(stage, settled=False)
+        framed, noise, _, estimates = _estimates(stage, records, windows, need, {})
+        grown = adaptive.grow(plan, windows, estimates, _tensor_scales(plan, estimates),
+                              _tightenable(stage, noise, windows, estimates))
+        if grown == windows:
+            break
+        windows = grown
+    return dataclasses.replace(stage, settled=True)
+
+
+def _stage(prepared: Prepared, windows) -> Prepared:
+    """``prepared`` at the adaptive window's ``windows``: the points they use,
+    and the tightening of each computed point (the largest any window using
+    it, or an image of it, asks for)."""
+    from fieldprop.numerics import window as adaptive
+
+    steps = adaptive.point_tightening(prepared.plan, windows)
+    tightening: dict[int, int] = {}
+    for i, k in steps.items():
+        j = prepared.images[i][0] if prepared.images else i
+        if k:
+            tightening[j] = max(tightening.get(j, 0), k)
+    return dataclasses.replace(prepared, windows=windows, active=frozenset(steps),
+                               tightening=tightening)
+
+
+#: A window's points are worth tightening when, at its smallest field, the
+#: convergence part of a raw estimate's floor exceeds this many times its
+#: double-precision part (below, a tighter convergence would shrink that
+#: floor by less than half), and the noise sets the error bar: the entry is
+#: at its noise floor, or that convergence part exceeds the bar (the noise,
+#: not the truncation, keeps the smaller fields from helping).
+TIGHTENING_GAIN = 1.0
+
+
+def _tightenable(prepared: Prepared, noise: "NoiseModel", windows,
+                 estimates) -> tuple[bool, ...]:
+    """Per component: one more tightening step is allowed and would lower its
+    floor where it matters (see TIGHTENING_GAIN); the records' noise is in the
+    plan's frame."""
+    plan, scf = prepared.plan, prepared.job.scf
+    n = len(plan.points)
+    out = []
+    for comp, window, est in zip(plan.components, windows, estimates):
+        lo, hi, steps = window
+        if len(comp.stencils) <= 1 or not scf.can_tighten(steps + 1):
+            out.append(False)
+            continue
+        s = comp.stencils[lo]
+        rounding = noise.rounding(comp.quantity, n)
+        floor = sum(abs(w) * rounding[p] for p, w in s.terms) / s.step_au ** comp.order
+        converged = noise.stencil_floor(comp.quantity, s.terms, s.step_au, comp.order) - floor
+        noise_sets_bar = (est.status is ComponentStatus.NOISE_LIMITED
+                          or converged > est.error_au)
+        out.append(bool(converged > TIGHTENING_GAIN * floor and noise_sets_bar))
+    return tuple(out)
 
 
 @dataclass
@@ -52,7 +146,7 @@ class JobWork:
     the error that ended the job (None: it finished).
     """
 
-    prepared: object  # engine.Prepared
+    prepared: Prepared
     found: dict = field(default_factory=dict)
     failed: dict = field(default_factory=dict)
     retry_failed: bool = False
@@ -81,8 +175,6 @@ class JobWork:
         """A job with the records ``rows`` ({key: StoredPoint}, from a store
         and point lines) of every task it may ask for, its stage settled on
         them."""
-        from fieldprop.engine.core import relaxed_tasks
-
         tasks = list(prepared.all_tasks())
         if prepared.job.response.nuclear_relaxation and prepared.settled:
             tasks += relaxed_tasks(prepared)[1:]
@@ -102,8 +194,6 @@ class JobWork:
 
     def settle(self) -> None:
         """The adaptive window's stage the points found reach."""
-        from fieldprop.engine.core import settle
-
         self.prepared = settle(self.prepared, self.found)
 
     def wanted(self, task: PointTask) -> bool:
@@ -117,8 +207,6 @@ class JobWork:
         """The tasks of the current stage: the clamped points the windows use,
         then (once those are all found) the relaxed ones of a job that relaxes
         the nuclei; ``only`` where given."""
-        from fieldprop.engine.core import relaxed_tasks
-
         if self.only is not None:
             return list(self.only)
         clamped = list(self.prepared.computed_tasks)
@@ -142,8 +230,6 @@ class JobWork:
         return {k: r for k, r in self.found.items() if k not in relaxed}
 
     def relaxed_keys(self) -> set:
-        from fieldprop.engine.core import relaxed_tasks
-
         if not self.prepared.job.response.nuclear_relaxation or not self.prepared.settled:
             return set()
         return {t.key for t in relaxed_tasks(self.prepared)[1:]}
@@ -151,8 +237,6 @@ class JobWork:
     def counts(self):
         """The clamped points' PointCounts: used by the analysis, computed now,
         reused from the records at hand."""
-        from fieldprop.engine.core import point_counts
-
         used = {t.key for t in self.prepared.computed_tasks}
         computed = len(self.computed_now & used)
         reused = len((used & set(self.found)) - self.computed_now)
@@ -161,8 +245,6 @@ class JobWork:
     def relaxed_records(self):
         """({plan index: record} of the relaxed points and zero field, their
         PointCounts), or None for a job that does not relax the nuclei."""
-        from fieldprop.engine.core import point_counts, relaxed_tasks
-
         if not self.prepared.job.response.nuclear_relaxation:
             return None
         tasks = relaxed_tasks(self.prepared)
@@ -173,8 +255,6 @@ class JobWork:
 
     def result(self, store_label: str, wall_time_s: float):
         """The analysis of a finished job (engine.analyse, with relaxation)."""
-        from fieldprop.engine.core import analyse, with_relaxation
-
         result = analyse(self.prepared, self.prepared.records(self.found), self.counts(),
                          store_label, wall_time_s)
         relaxed = self.relaxed_records()
@@ -269,8 +349,6 @@ def _lost_failure(task: PointTask, exc: BaseException) -> PointFailure:
 
 
 def _error_of(work: JobWork, failures) -> errors.FieldpropError:
-    from fieldprop.engine.core import failed_points_error
-
     return failed_points_error(work.prepared, failures, work.retry_failed)
 
 
@@ -470,8 +548,6 @@ def make_executor(workers: int = 1, threads: int = 1, scheduler: str | None = No
 def run_job(work: JobWork, store, executor, progress: Progress | None = None):
     """One job through :func:`compute_jobs` and its analysis: the RunResult,
     or its failure raised (the points computed are stored)."""
-    from fieldprop.engine.core import log_counts
-
     start = time.perf_counter()
     compute_jobs([work], store, executor, progress)
     if progress is not None:

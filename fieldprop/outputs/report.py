@@ -19,7 +19,7 @@ from tabulate import tabulate
 
 from fieldprop import __version__
 from fieldprop.outputs.files import replacing
-from fieldprop.engine.core import RunResult, entry_window_au
+from fieldprop.engine.analyse import RunResult, entry_window_au
 from fieldprop.inputs.job import SYMMETRISE
 from fieldprop.numerics.extrapolate import ComponentStatus
 from fieldprop.points.keys import short_id

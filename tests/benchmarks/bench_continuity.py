@@ -25,7 +25,7 @@ from tabulate import tabulate  # noqa: E402
 from calibration import VALIDATION_SET, job_text  # noqa: E402
 
 from fieldprop.numerics.continuity import RELATIVE_DEPARTURE  # noqa: E402
-from fieldprop.engine.core import compute  # noqa: E402
+from fieldprop.engine.run import compute  # noqa: E402
 from fieldprop.inputs.job import load_job  # noqa: E402
 
 

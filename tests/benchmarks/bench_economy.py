@@ -46,7 +46,8 @@ import numpy as np  # noqa: E402
 from scipy.spatial.transform import Rotation  # noqa: E402
 from tabulate import tabulate  # noqa: E402
 
-from fieldprop.engine.core import compute, prepare  # noqa: E402
+from fieldprop.engine.prepare import prepare  # noqa: E402
+from fieldprop.engine.run import compute  # noqa: E402
 from fieldprop.inputs.job import load_job  # noqa: E402
 
 

@@ -36,7 +36,7 @@ from tabulate import tabulate  # noqa: E402
 ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 
-from fieldprop.engine.core import compute  # noqa: E402
+from fieldprop.engine.run import compute  # noqa: E402
 from fieldprop.inputs.job import load_job  # noqa: E402
 
 WATER = """O 0.000000 0.000000 0.117300

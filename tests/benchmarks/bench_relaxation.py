@@ -38,7 +38,7 @@ from tabulate import tabulate  # noqa: E402
 ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 
-from fieldprop.cli.commands import main  # noqa: E402
+from fieldprop.cli import main  # noqa: E402
 
 WATER = """O 0.000000 0.000000 0.117300
 H 0.000000 0.757200 -0.469200

@@ -15,7 +15,7 @@ from pathlib import Path  # noqa: E402
 
 from tabulate import tabulate  # noqa: E402
 
-from fieldprop.engine.core import compute  # noqa: E402
+from fieldprop.engine.run import compute  # noqa: E402
 from fieldprop.inputs.job import load_job  # noqa: E402
 
 JOB = textwrap.dedent("""

@@ -91,7 +91,7 @@ def main() -> None:
         with PointStore.in_memory() as memory:
             outcomes, _ = run_campaign(campaign, memory, make_executor(2, 1))
         pairs = []
-        from fieldprop.engine.core import prepare
+        from fieldprop.engine.prepare import prepare
 
         for o in outcomes:
             tasks = prepare(o.result.job, facts=o.result.backend_facts).tasks

@@ -19,7 +19,7 @@ from pathlib import Path
 
 import pytest
 
-from fieldprop.cli.commands import main
+from fieldprop.cli import main
 
 # --------------------------------------------------------------------------- job text
 
@@ -450,7 +450,7 @@ def test_good_job_passes_the_same_gate(tmp_path, capsys, monkeypatch):
 def test_close_atoms_pass_when_the_job_allows_them(tmp_path):
     """The refused unit-mistake geometry passes validation with allow_close_atoms."""
     pytest.importorskip("pyscf")
-    from fieldprop.engine.core import prepare
+    from fieldprop.engine.prepare import prepare
     from fieldprop.inputs.job import load_job
 
     path = tmp_path / "job.toml"

@@ -98,7 +98,7 @@ def test_run_plot_writes_one_png_per_property_with_every_component(tmp_path):
         assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 10_000
 
     # The panels are the computed components (9 for alpha, 18 for beta on this route).
-    from fieldprop.engine.core import compute
+    from fieldprop.engine.run import compute
     from fieldprop.inputs.job import load_job
     from fieldprop.outputs.plots import write_plots
 
@@ -120,7 +120,7 @@ def test_run_plot_into_an_unwritable_folder_is_refused_before_work(tmp_path, cap
     """A folder the process may not write (simulated: this may run as root, who
     may write anywhere) is refused before any work, not after it."""
     import fieldprop.cli.commands
-    from fieldprop.cli.commands import main
+    from fieldprop.cli import main
 
     (tmp_path / "lih.toml").write_text(JOB)
     (tmp_path / "locked").mkdir()
@@ -240,7 +240,7 @@ def test_a_zero_field_failure_inside_the_backend_is_named_not_a_traceback(tmp_pa
                                                                           monkeypatch):
     pytest.importorskip("pyscf")
     import fieldprop.backend.compute
-    from fieldprop.cli.commands import main
+    from fieldprop.cli import main
 
     def broken(context, task):
         raise RuntimeError("injected inside PySCF")

@@ -20,7 +20,7 @@ pytest.importorskip("pyscf")
 
 from cli_support import WATER_STO3G, fieldprop  # noqa: E402
 
-from fieldprop.cli.commands import main  # noqa: E402
+from fieldprop.cli import main  # noqa: E402
 
 #: The adaptive window's first stage settles for this small job at a fixed
 #: ladder, so every entrance computes the same single stage (the job-array

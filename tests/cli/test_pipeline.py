@@ -388,7 +388,7 @@ def test_a_failed_point_gives_exit_1_and_collect_names_it(tmp_path, capsys, monk
     """A point whose SCF never converges: point exits 1 naming it, the failure
     is stored, and collect exits 1 with the same reason."""
     from fieldprop.backend import compute as backend_pyscf
-    from fieldprop.cli.commands import main
+    from fieldprop.cli import main
     from fieldprop.errors import ScfNotConvergedError
 
     (tmp_path / "lih.toml").write_text(JOB)

@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from fieldprop.cli.commands import main
+from fieldprop.cli import main
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "physics"))
 

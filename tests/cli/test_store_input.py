@@ -401,7 +401,7 @@ _ID = re.compile(r"\b[0-9a-f]{12}\b")
 def test_collect_names_the_points_the_store_lacks(tmp_path, computed_store):
     """The store holds the 2-level job; the 3-level one of the same model needs
     the 0.004 au points too: exit 3, naming exactly those (short ids)."""
-    from fieldprop.engine.core import prepare
+    from fieldprop.engine.prepare import prepare
     from fieldprop.inputs.job import load_job
     from fieldprop.points.keys import short_id
     from fieldprop.points.store import PointStore

@@ -202,7 +202,7 @@ def test_two_runs_sharing_one_store_write_every_point_once(tmp_path):
 
 
 #: Runs ``fieldprop collect`` with PySCF made unimportable.
-NO_PYSCF = ("import sys; sys.modules['pyscf'] = None; from fieldprop.cli.commands import main; "
+NO_PYSCF = ("import sys; sys.modules['pyscf'] = None; from fieldprop.cli import main; "
             "code = main(sys.argv[1:]); assert 'pyscf' not in [m.split('.')[0] for m in "
             "sys.modules if sys.modules[m] is not None]; sys.exit(code)")
 

@@ -23,7 +23,7 @@ import numpy as np
 from analytic_reference import cphf_polarizability
 from support import NH2_ANGSTROM, bent_triatomic, geometry_text, mean_field, rotation
 
-from fieldprop.engine.core import compute
+from fieldprop.engine.run import compute
 from fieldprop.inputs.job import load_job
 
 

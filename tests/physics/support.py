@@ -7,7 +7,7 @@ import pytest
 
 pytest.importorskip("pyscf")
 
-from fieldprop.engine.core import compute  # noqa: E402
+from fieldprop.engine.run import compute  # noqa: E402
 from fieldprop.inputs.job import load_job  # noqa: E402
 
 #: Water built by us (O-H 0.958 A, H-O-H 104.4 deg, roughly the experimental

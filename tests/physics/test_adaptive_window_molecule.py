@@ -16,7 +16,7 @@ import textwrap
 import numpy as np
 import pytest
 
-from fieldprop.engine.core import collect, compute
+from fieldprop.engine.run import collect, compute
 from fieldprop.inputs.job import load_job
 from fieldprop.points.store import PointStore
 from fieldprop.numerics.window import initial_windows

@@ -15,7 +15,7 @@ import pytest
 from analytic_reference import cphf_polarizability
 from support import mean_field, nh2_geometry, rotated_water, rotation, run_job
 
-from fieldprop.cli.commands import main
+from fieldprop.cli import main
 
 
 def job_text(geometry: str, model: str, multiplicity: int = 1, extra: str = "",

@@ -129,7 +129,8 @@ def test_tightened_points_have_their_own_keys_and_are_reused(tmp_path):
     keys that hold their targets; a second run computes nothing, collect
     replays the same stages from the store alone, and point lines carry the
     targets (a collect from lines alone agrees)."""
-    from fieldprop.engine.core import collect, prepare, run_prepared
+    from fieldprop.engine.prepare import prepare
+    from fieldprop.engine.run import collect, run_prepared
     from fieldprop.inputs.job import load_job
     from fieldprop.points.keys import point_key
     from fieldprop.points.pointlines import _Quantities

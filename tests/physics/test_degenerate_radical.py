@@ -27,7 +27,7 @@ pytest.importorskip("pyscf")
 from analytic_reference import cphf_polarizability  # noqa: E402
 from support import agree, geometry_text  # noqa: E402
 
-from fieldprop.engine.core import compute  # noqa: E402
+from fieldprop.engine.run import compute  # noqa: E402
 from fieldprop.inputs.job import load_job  # noqa: E402
 from fieldprop.outputs.report import result_document  # noqa: E402
 from fieldprop.points.store import PointStore  # noqa: E402
@@ -304,7 +304,7 @@ def test_a_state_not_turned_to_the_frame_reports_its_own_axes(tmp_path):
     from pyscf import scf
 
     from fieldprop.backend import compute as backend_pyscf
-    from fieldprop.engine.core import prepare
+    from fieldprop.engine.prepare import prepare
 
     prepared = prepare(_job(tmp_path, "rohf", "dipole"))
     context = backend_pyscf.ModelContext(prepared.molecule, prepared.job.model,

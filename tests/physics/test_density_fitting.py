@@ -55,7 +55,7 @@ def test_a_fitted_model_gives_its_own_analytic_polarizability(tmp_path, model):
 
 
 def test_fitted_points_are_stored_apart_from_exact_ones(tmp_path):
-    from fieldprop.cli.commands import main
+    from fieldprop.cli import main
 
     (tmp_path / "exact.toml").write_text(WATER.format(model='method = "hf"', fit=""))
     (tmp_path / "fitted.toml").write_text(WATER.format(model='method = "hf"',

@@ -10,7 +10,7 @@ import pytest
 pytest.importorskip("pyscf")
 
 from fieldprop.backend import compute as backend_pyscf  # noqa: E402
-from fieldprop.cli.commands import main  # noqa: E402
+from fieldprop.cli import main  # noqa: E402
 from fieldprop.errors import ScfNotConvergedError  # noqa: E402
 
 WATER = textwrap.dedent("""

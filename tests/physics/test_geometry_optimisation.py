@@ -15,7 +15,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from fieldprop.cli.commands import main
+from fieldprop.cli import main
 from fieldprop.inputs.job import GEOMETRY_CRITERIA
 
 pytest.importorskip("pyscf")

@@ -23,7 +23,7 @@ pytest.importorskip("pyscf")
 from analytic_reference import cphf_polarizability, scf_dipole  # noqa: E402
 from support import rotation  # noqa: E402
 
-from fieldprop.cli.commands import main  # noqa: E402
+from fieldprop.cli import main  # noqa: E402
 from fieldprop.inputs.job import load_job  # noqa: E402
 from fieldprop.numerics.symmetry import detect  # noqa: E402
 from fieldprop.numerics.units import BACKEND_BOHR_ANGSTROM, BOHR_TO_ANGSTROM  # noqa: E402

@@ -29,7 +29,7 @@ import textwrap
 import numpy as np
 import pytest
 
-from fieldprop.cli.commands import main
+from fieldprop.cli import main
 
 pytest.importorskip("pyscf")
 

@@ -36,7 +36,7 @@ def _job(origin: str) -> str:
 
 
 def test_centre_of_mass_origin_shifts_an_ions_dipole_by_its_charge(tmp_path, capsys):
-    from fieldprop.cli.commands import main
+    from fieldprop.cli import main
     from fieldprop.numerics.units import ANGSTROM_TO_BOHR
 
     _, at_zero = run_job(tmp_path, _job("zero"), "zero.toml")

@@ -22,7 +22,7 @@ from support import (WATER_ANGSTROM, agree, geometry_text, rotated_water,  # noq
                      run_job)
 
 from fieldprop.backend.compute import ModelContext, compute_point, compute_reference  # noqa: E402
-from fieldprop.engine.core import prepare  # noqa: E402
+from fieldprop.engine.prepare import prepare  # noqa: E402
 from fieldprop.numerics.plan import FieldPoint  # noqa: E402
 
 

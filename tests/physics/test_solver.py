@@ -12,8 +12,8 @@ import pytest
 pytest.importorskip("pyscf")
 
 from fieldprop.backend import compute as backend_pyscf  # noqa: E402
-from fieldprop.cli.commands import main  # noqa: E402
-from fieldprop.engine.core import prepare  # noqa: E402
+from fieldprop.cli import main  # noqa: E402
+from fieldprop.engine.prepare import prepare  # noqa: E402
 from fieldprop.inputs.job import load_job  # noqa: E402
 from support import WATER_ANGSTROM, agree, geometry_text, nh2_geometry, run_job  # noqa: E402
 
@@ -259,7 +259,7 @@ def test_two_workers_hand_converged_points_on_as_starts(tmp_path):
     rotations go through the parent), and the tensors equal those of one
     worker within their error bars."""
     job = _job(tmp_path, WATER, 'method = "hf"\n        basis = "6-31g*"')
-    from fieldprop.engine.core import compute
+    from fieldprop.engine.run import compute
 
     one = compute(job, workers=1, progress=False)
     two = compute(job, workers=2, progress=False)

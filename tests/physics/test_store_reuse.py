@@ -18,8 +18,8 @@ import pytest
 
 pytest.importorskip("pyscf")
 
-from fieldprop.cli.commands import main  # noqa: E402
-from fieldprop.engine.core import compute  # noqa: E402
+from fieldprop.cli import main  # noqa: E402
+from fieldprop.engine.run import compute  # noqa: E402
 from fieldprop.inputs.job import load_job  # noqa: E402
 from fieldprop.points.store import PointStore  # noqa: E402
 

@@ -3,7 +3,7 @@
 E(F) = E0 - A exp(B F_z), so -d^nE/dF_z^n = A B^n exactly and mu_z(F) =
 A B exp(B F_z); B sets how fast the truncation error grows with the field,
 the added uniform noise (amplitude eps) how fast the round-off grows as the
-field shrinks. The replay below is the engine's (engine.settle) without a
+field shrinks. The replay below is the engine's (engine.stages.settle) without a
 molecule: every point exists, the windows decide which enter the tables.
 """
 
@@ -12,7 +12,7 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from fieldprop.engine.core import NoiseModel, _tensor_scales, extrapolate_components
+from fieldprop.engine.analyse import NoiseModel, _tensor_scales, extrapolate_components
 from fieldprop.numerics.extrapolate import ComponentEstimate, ComponentStatus
 from fieldprop.inputs.job import AUTO_FIELD_AU, AUTO_LEVELS
 from fieldprop.numerics.plan import plan_fields

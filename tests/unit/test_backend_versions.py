@@ -9,7 +9,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from fieldprop.engine.core import gather, prepare
+from fieldprop.engine.prepare import prepare
+from fieldprop.engine.run import gather
 from fieldprop.errors import InputError
 from fieldprop.inputs.job import load_job
 from fieldprop.points.keys import backend_version_conflict

@@ -8,7 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from fieldprop.numerics.continuity import RELATIVE_DEPARTURE, check_continuity, lagrange_weights
-from fieldprop.engine.core import NoiseModel, extrapolate_components
+from fieldprop.engine.analyse import NoiseModel, extrapolate_components
 from fieldprop.numerics.plan import plan_fields
 from fieldprop.points.records import PointRecord
 from fieldprop.numerics.tensors import assemble

@@ -21,7 +21,7 @@ import textwrap
 import pytest
 from toml_text import toml_document
 
-from fieldprop.engine.core import with_geometry
+from fieldprop.engine.geometry import with_geometry
 from fieldprop.inputs.job import _SECTIONS, Job, load_job
 
 WATER = """

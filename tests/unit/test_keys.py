@@ -13,7 +13,7 @@ A stored point is reused by any job whose key for it is the same, so keys must
   process whatever its hash seed.
 
 Jobs are read from TOML files with :func:`fieldprop.job.load_job` and keyed with
-:func:`fieldprop.engine.make_tasks` (no PySCF), or keyed directly with
+:func:`fieldprop.engine.prepare.make_tasks` (no PySCF), or keyed directly with
 :func:`fieldprop.keys.model_key` and :func:`fieldprop.keys.point_key`.
 """
 
@@ -34,7 +34,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from fieldprop.engine.core import make_plan, make_tasks
+from fieldprop.engine.prepare import make_plan, make_tasks
 from fieldprop.inputs.job import ModelSpec, ScfSpec, load_job
 from fieldprop.points.keys import (COORDINATE_DECIMALS, Quantities, digest, model_document, model_key,
                             point_key, short_id)
@@ -449,7 +449,7 @@ import json, sys
 from fieldprop.inputs.job import ModelSpec, ScfSpec
 from fieldprop.points.keys import Quantities, model_key, point_key
 from fieldprop.inputs.molecule import MoleculeSpec
-import fieldprop.engine.core, fieldprop.points.store  # the whole keying path; none imports PySCF
+import fieldprop.engine.prepare, fieldprop.points.store  # the whole keying path; none imports PySCF
 assert "pyscf" not in sys.modules
 spec = json.loads(sys.argv[1])
 m = MoleculeSpec(tuple(spec["symbols"]), tuple(spec["charges"]),

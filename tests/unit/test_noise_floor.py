@@ -11,8 +11,9 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from fieldprop.engine.core import (CC_STEP_FACTOR, CC_STEP_SPREAD, ENERGY_ULPS, NoiseModel,
-                              make_plan, make_tasks, noise_model, tightened_task)
+from fieldprop.engine.analyse import (CC_STEP_FACTOR, CC_STEP_SPREAD, ENERGY_ULPS, NoiseModel,
+                                      noise_model)
+from fieldprop.engine.prepare import make_plan, make_tasks, tightened_task
 from fieldprop.numerics.extrapolate import ComponentEstimate, ComponentStatus
 from fieldprop.inputs.job import (CORRELATION_DEFAULTS, MAX_TIGHTENING, TIGHTENING_FACTOR,
                            TIGHTEST_GRADIENT, load_job)

@@ -1,4 +1,5 @@
-"""The noise model's double-precision floors (fieldprop.engine.noise_model), without PySCF."""
+"""The noise model's double-precision floors (fieldprop.engine.analyse.noise_model),
+without PySCF."""
 
 from __future__ import annotations
 
@@ -8,7 +9,7 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from fieldprop.engine.core import ENERGY_ULPS, noise_model
+from fieldprop.engine.analyse import ENERGY_ULPS, noise_model
 from fieldprop.inputs.molecule import MoleculeSpec
 from fieldprop.numerics.plan import FieldPoint
 from fieldprop.points.records import PointRecord
@@ -59,7 +60,7 @@ def test_the_backend_records_the_energy_terms_scale(tmp_path):
     pytest.importorskip("pyscf")
     from pyscf import gto, scf
 
-    from fieldprop.engine.core import compute
+    from fieldprop.engine.run import compute
     from fieldprop.inputs.job import load_job
 
     path = tmp_path / "water.toml"

@@ -1,7 +1,7 @@
 """The numerical heart of fieldprop against exact answers, with no PySCF.
 
 Covered: the stencil planner plus Richardson extrapolation (fieldprop.numerics.plan,
-fieldprop.numerics.extrapolate, fieldprop.engine.extrapolate_components) on synthetic
+fieldprop.numerics.extrapolate, fieldprop.engine.analyse.extrapolate_components) on synthetic
 energy and dipole functions whose derivatives are known exactly; the error bars
 and round-off floors under energy noise of known size; the Richardson table by
 itself; the tensor invariants (fieldprop.numerics.tensors) on hand-computable cases and
@@ -35,7 +35,7 @@ from scipy.spatial.transform import Rotation
 
 from fieldprop.numerics import tensors as ft
 from fieldprop.numerics import units
-from fieldprop.engine.core import NoiseModel, extrapolate_components
+from fieldprop.engine.analyse import NoiseModel, extrapolate_components
 from fieldprop.numerics.extrapolate import ComponentStatus, richardson
 from fieldprop.numerics.plan import plan_fields
 

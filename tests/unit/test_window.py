@@ -15,7 +15,7 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from fieldprop.engine.core import NoiseModel, extrapolate_components
+from fieldprop.engine.analyse import NoiseModel, extrapolate_components
 from fieldprop.numerics.extrapolate import _table
 from fieldprop.inputs.job import AUTO_FIELD_AU, AUTO_LEVELS
 from fieldprop.numerics.plan import plan_fields, stencil_estimate
@@ -108,7 +108,7 @@ def test_a_field_above_the_window_is_warned_with_a_better_one(prop, name, field_
     # smallest field and its error is truncation. The warning must say so and
     # name an h0 within a factor of 2 of the step that minimises the true error of
     # that entry on the same two-level ladder (scanned on the model above).
-    from fieldprop.engine.core import window_warnings
+    from fieldprop.engine.analyse import window_warnings
     from fieldprop.numerics.tensors import assemble
 
     eps, levels = 1e-12, 2
@@ -129,7 +129,7 @@ def test_a_field_above_the_window_is_warned_with_a_better_one(prop, name, field_
 
 
 def test_a_field_inside_the_window_is_not_warned():
-    from fieldprop.engine.core import window_warnings
+    from fieldprop.engine.analyse import window_warnings
     from fieldprop.numerics.tensors import assemble
 
     plan = plan_fields(("alpha",), 0.002, 2.0, 3, "energy")
