@@ -125,7 +125,7 @@ def test_run_plot_into_an_unwritable_folder_is_refused_before_work(tmp_path, cap
     (tmp_path / "lih.toml").write_text(JOB)
     (tmp_path / "locked").mkdir()
     real_access = os.access
-    monkeypatch.setattr(fieldprop.cli.os, "access", lambda path, mode: (
+    monkeypatch.setattr(fieldprop.cli.commands.os, "access", lambda path, mode: (
         False if str(path).endswith("locked") else real_access(path, mode)))
     monkeypatch.chdir(tmp_path)
     assert main(["run", "lih.toml", "--plot", "locked"]) == 2
@@ -238,13 +238,13 @@ def test_batch_logs_get_progress_lines_and_quiet_silences_them(tmp_path):
 def test_a_zero_field_failure_inside_the_backend_is_named_not_a_traceback(tmp_path, capsys,
                                                                           monkeypatch):
     pytest.importorskip("pyscf")
-    import fieldprop.points.executors
+    import fieldprop.backend.compute
     from fieldprop.cli import main
 
     def broken(context, task):
         raise RuntimeError("injected inside PySCF")
 
-    monkeypatch.setattr(fieldprop.points.executors, "compute_reference", broken)
+    monkeypatch.setattr(fieldprop.backend.compute, "compute_reference", broken)
     (tmp_path / "lih.toml").write_text(JOB)
     assert main(["run", str(tmp_path / "lih.toml"), "--quiet", "--no-store"]) == 1
     err = capsys.readouterr().err
@@ -292,7 +292,7 @@ def test_tables_in_esu_or_si_convert_every_component(tmp_path, system, label, fa
 def test_every_command_has_worked_examples_and_the_exit_codes_are_listed():
     import argparse
 
-    from fieldprop.cli.commands import build_parser
+    from fieldprop.cli.parser import build_parser
 
     parser = build_parser()
     for word in ("0    success", "2    bad input", "3    incomplete", "130"):
