@@ -1,6 +1,6 @@
 """A screening campaign's ranked table: one row per molecule, best first.
 
-Built from the molecules' result documents (:func:`fieldprop.report.
+Built from the molecules' result documents (:func:`fieldprop.outputs.documents.
 result_document`) and failures, in any unit system (:mod:`fieldprop.outputs.summary`
 converts). Molecules are ranked by the magnitude of the ranking invariant
 (|beta_parallel| for a sign-carrying one); a molecule without a number for it

@@ -179,7 +179,7 @@ def component_table(docs: list[tuple[str, dict]], units: str, convention: str
 
 
 def _pair_text(value, error) -> tuple[str, str]:
-    from fieldprop.outputs.report import format_pair
+    from fieldprop.outputs.tables import format_pair
 
     if value is None:
         return "-", "-"

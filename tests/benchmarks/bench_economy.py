@@ -295,7 +295,7 @@ def overhead(folder: Path) -> None:
                            "field_au = 0.001")
     env = {**os.environ, "OMP_NUM_THREADS": "1"}
     start = time.perf_counter()
-    subprocess.run([sys.executable, "-c", "import fieldprop.cli.commands, pyscf.scf, pyscf.dft"],
+    subprocess.run([sys.executable, "-c", "import fieldprop.cli, pyscf.scf, pyscf.dft"],
                    check=True, env=env)
     imports = time.perf_counter() - start
     profile = folder / "run.prof"

@@ -125,7 +125,7 @@ def test_run_plot_into_an_unwritable_folder_is_refused_before_work(tmp_path, cap
     (tmp_path / "lih.toml").write_text(JOB)
     (tmp_path / "locked").mkdir()
     real_access = os.access
-    monkeypatch.setattr(fieldprop.cli.os, "access", lambda path, mode: (
+    monkeypatch.setattr(fieldprop.cli.commands.os, "access", lambda path, mode: (
         False if str(path).endswith("locked") else real_access(path, mode)))
     monkeypatch.chdir(tmp_path)
     assert main(["run", "lih.toml", "--plot", "locked"]) == 2
@@ -293,7 +293,7 @@ def test_tables_in_esu_or_si_convert_every_component(tmp_path, system, label, fa
 def test_every_command_has_worked_examples_and_the_exit_codes_are_listed():
     import argparse
 
-    from fieldprop.cli.commands import build_parser
+    from fieldprop.cli.parser import build_parser
 
     parser = build_parser()
     for word in ("0    success", "2    bad input", "3    incomplete", "130"):

@@ -134,7 +134,7 @@ def test_tightened_points_have_their_own_keys_and_are_reused(tmp_path):
     from fieldprop.inputs.job import load_job
     from fieldprop.points.keys import point_key
     from fieldprop.points.pointlines import _Quantities
-    from fieldprop.outputs.report import write_store_lines
+    from fieldprop.outputs.listings import write_store_lines
     from fieldprop.points.store import PointStore
 
     path = tmp_path / "he.toml"

@@ -29,7 +29,7 @@ from support import agree, geometry_text  # noqa: E402
 
 from fieldprop.engine.run import compute  # noqa: E402
 from fieldprop.inputs.job import load_job  # noqa: E402
-from fieldprop.outputs.report import result_document  # noqa: E402
+from fieldprop.outputs.documents import result_document  # noqa: E402
 from fieldprop.points.store import PointStore  # noqa: E402
 
 #: Our OH: 0.97 angstrom (about the radical's equilibrium bond, from memory), on

@@ -19,13 +19,13 @@ import pytest
 
 
 def _json(path: Path, n: int) -> None:
-    from fieldprop.outputs.report import write_json_atomic
+    from fieldprop.outputs.documents import write_json_atomic
 
     write_json_atomic({"writer": n, "values": [float(n)] * (2000 + 1000 * n)}, path)
 
 
 def _relaxed_structure(path: Path, n: int) -> None:
-    from fieldprop.outputs.report import write_relaxed_structure
+    from fieldprop.outputs.documents import write_relaxed_structure
 
     document = {"field_au": [0.0, 0.0, 0.001 * (n + 1)], "symbols": ["H"] * (10 + 5 * n),
                 "energy_relaxed_au": -1.0 - n,

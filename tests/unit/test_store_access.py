@@ -147,7 +147,7 @@ def test_a_writer_checkpoints_while_an_export_is_consumed_slowly(tmp_path, monke
     import json
 
     from fieldprop.points import store as store_module
-    from fieldprop.outputs.report import write_store_lines
+    from fieldprop.outputs.listings import write_store_lines
 
     if batch is not None:
         monkeypatch.setattr(store_module, "EXPORT_BATCH", batch)
