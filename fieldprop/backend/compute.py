@@ -1953,7 +1953,9 @@ def _has_nuclear_hessian(mf) -> bool:
     (PySCF de-registers their Hessian, and its density-fitted one fails), nor
     a functional with nonlocal correlation (VV10) where PySCF's Hessian refuses
     it (unrestricted, or more than one such term)."""
-    if not _has_hessian(mf):
+    from pyscf.scf import rohf
+
+    if not _has_hessian(mf) or isinstance(mf, rohf.ROHF):
         return False
     if not (hasattr(mf, "do_nlc") and mf.do_nlc()):
         return True

@@ -239,7 +239,8 @@ class JobWork:
         reused from the records at hand."""
         used = {t.key for t in self.prepared.computed_tasks}
         computed = len(self.computed_now & used)
-        reused = len((used & set(self.found)) - self.computed_now)
+        # Taken from the records at hand: points, and failures not retried.
+        reused = len((used & (set(self.found) | set(self.failed))) - self.computed_now)
         return point_counts(self.prepared, computed, reused)
 
     def relaxed_records(self):
