@@ -2,6 +2,6 @@
 
 import sys
 
-from fieldprop.cli.commands import main
+from fieldprop.cli import main
 
 sys.exit(main())

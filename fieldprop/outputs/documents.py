@@ -23,7 +23,7 @@ from fieldprop.outputs.files import replacing
 from fieldprop.outputs.summary import RESULT_SCHEMA
 
 if TYPE_CHECKING:
-    from fieldprop.engine.core import RunResult
+    from fieldprop.engine.analyse import RunResult
 
 
 
@@ -120,7 +120,7 @@ def _tensors_document(result: RunResult, tensors_in: dict, tables: bool = True,
     (a degenerate open shell)."""
     # The engine's own rule for an entry's field strengths; imported here, where
     # a result is at hand, so that this module does not load the engine.
-    from fieldprop.engine.core import entry_window_au
+    from fieldprop.engine.analyse import entry_window_au
 
     tensors = {}
     for name, t in tensors_in.items():

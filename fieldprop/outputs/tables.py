@@ -21,7 +21,7 @@ from fieldprop.outputs.documents import (_INVARIANT_PROPERTY, _INVARIANT_TEXT, C
                                          orientation_note)
 
 if TYPE_CHECKING:
-    from fieldprop.engine.core import RunResult
+    from fieldprop.engine.analyse import RunResult
 
 
 def format_pair(value: float | None, error: float | None) -> tuple[str, str]:
