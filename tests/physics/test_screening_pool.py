@@ -45,14 +45,19 @@ def components(outcomes):
     return out
 
 
-def test_a_dask_cluster_gives_the_numbers_of_a_serial_run(tmp_path):
+@pytest.mark.parametrize("workers, threads", [(2, 1), (1, 2)],
+                         ids=["two processes", "one process, two threads"])
+def test_a_dask_cluster_gives_the_numbers_of_a_serial_run(tmp_path, workers, threads):
+    """Two worker processes, or one worker whose two threads run points of the
+    same model at once (each thread has its own model context, the worker's
+    table of them guarded by a lock)."""
     from distributed import Client, LocalCluster
 
     (tmp_path / "set.toml").write_text(SET)
     campaign = load_set(tmp_path / "set.toml")
     with PointStore.in_memory() as store:
         serial, _ = run_campaign(campaign, store, make_executor(1, 1))
-    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+    with LocalCluster(n_workers=workers, threads_per_worker=threads, processes=True,
                       dashboard_address=None) as cluster, Client(cluster) as client:
         with PointStore.in_memory() as store:
             spread, counts = run_campaign(campaign, store, DaskPool(client=client))
