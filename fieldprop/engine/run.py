@@ -22,7 +22,7 @@ from fieldprop.engine.analyse import (RunResult, analyse, failed_points_error, p
 from fieldprop.engine.geometry import optimised, relaxed_reference, relaxed_tasks
 from fieldprop.engine.prepare import (Prepared, make_plan, make_tasks, prepare,
                                       symmetric_molecule, tightened_task, to_compute)
-from fieldprop.engine.stages import settle
+from fieldprop.engine.stages import JobWork, settle
 from fieldprop.errors import IncompleteError, InputError, UnstableResultError
 from fieldprop.inputs.job import MAX_TIGHTENING, Job
 from fieldprop.numerics.methods import Route
@@ -163,13 +163,16 @@ def collect(job: Job, store=None, route: Route | str | None = None, lines=None,
                               f"of this molecule and model (id {short_id(zero.key)}); every "
                               "result needs it: compute it with fieldprop point --zero-field "
                               "or fieldprop run")
-    missing = [t for t in prepared.computed_tasks if t.key not in rows]
+    # What is missing and what failed, as the stage engine sees them (no retry:
+    # collect computes nothing).
+    work = JobWork.at_hand(prepared, rows)
+    missing = [t for t in prepared.computed_tasks if work.wanted(t)]
     if missing and not allow_partial:
         ids = " ".join(short_id(t.key) for t in missing[:8])
         raise IncompleteError(f"{job.path}: {len(missing)} of the {to_compute(prepared)} are "
                               f"not in {where}: {ids}{' ...' if len(missing) > 8 else ''}")
-    failures = [rows[t.key].failure(t.point) for t in prepared.computed_tasks
-                if t.key in rows and not rows[t.key].ok]
+    failures = [work.failed[t.key] for t in prepared.computed_tasks
+                if t.key in work.failed and t.key not in work.found]
     if failures and (not allow_partial or not rows[zero.key].ok):
         raise failed_points_error(prepared, failures)
     found = {t.point.index: rows[t.key].record(t.point) for t in prepared.computed_tasks
