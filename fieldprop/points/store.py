@@ -57,6 +57,7 @@ the path; the file is left untouched.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import functools
 import io
 import json
@@ -165,10 +166,39 @@ CREATE TABLE points (
 CREATE INDEX points_by_model ON points (model_key);
 """ + _TO_DO_LISTS_TABLE + ";\n" + _GEOMETRIES_TABLE + ";\n"
 
-_RECORD_COLUMNS = ("energy_au", "scf_energy_au", "dipole_au", "alpha_au", "scf_cycles",
-                   "attempts", "s2", "occupied_overlap", "gradient_norm", "dipole_error_au",
-                   "state_issue", "energy_scale_au", "relaxation",
-                   "correlation_energy_change_au", "amplitude_change", "orientation")
+def _json_list(value):
+    return None if value is None else json.dumps(np.asarray(value, dtype=float).tolist())
+
+
+#: How a PointRecord field that is not a plain number or text is written into
+#: its column and read back: (encode, decode), each of a non-None value.
+_CODECS = {
+    "dipole_au": (_json_list, lambda v: tuple(json.loads(v))),
+    "alpha_au": (_json_list, lambda v: tuple(tuple(r) for r in json.loads(v))),
+    "attempts": (lambda v: json.dumps(list(v)), lambda v: tuple(json.loads(v))),
+    "scf_cycles": (int, int),
+    "relaxation": (json.dumps, json.loads),
+    "orientation": (lambda v: json.dumps(v.document()),
+                    lambda v: Orientation.from_document(json.loads(v))),
+}
+#: The record's columns: every field of PointRecord but the point itself (its
+#: key and field vector have their own columns) and the wall time (common to
+#: failures), so a field added to the record is stored, read back and written
+#: into point lines without a second list to keep.
+_RECORD_COLUMNS = tuple(f.name for f in dataclasses.fields(PointRecord)
+                        if f.name not in ("point", "wall_time_s"))
+
+
+def _encoded(name: str, value):
+    if value is None or name not in _CODECS:
+        return value
+    return _CODECS[name][0](value)
+
+
+def _decoded_field(name: str, value):
+    if value is None:
+        return 0.0 if name == "energy_scale_au" else None  # a column added later: unknown
+    return _CODECS[name][1](value) if name in _CODECS else value
 _POINT_COLUMNS = ("point_key", "model_key", "field_vector_au", "origin_bohr", "quantities",
                   "status", *_RECORD_COLUMNS, "failure", "failure_kind", "wall_time_s", "host",
                   "version", "created_at", "tolerances")
@@ -511,19 +541,8 @@ class PointStore:
             values = common + ("failed",) + (None,) * len(_RECORD_COLUMNS) + (
                 outcome.reason, outcome.kind)
         else:
-            r = outcome
-            values = common + ("ok", r.energy_au, r.scf_energy_au,
-                               None if r.dipole_au is None else json.dumps(list(r.dipole_au)),
-                               None if r.alpha_au is None else json.dumps(
-                                   [list(row) for row in r.alpha_au]),
-                               r.scf_cycles, json.dumps(list(r.attempts)), r.s2,
-                               r.occupied_overlap, r.gradient_norm, r.dipole_error_au,
-                               r.state_issue, r.energy_scale_au,
-                               None if r.relaxation is None else json.dumps(r.relaxation),
-                               r.correlation_energy_change_au, r.amplitude_change,
-                               None if r.orientation is None
-                               else json.dumps(r.orientation.document()),
-                               None, None)
+            values = common + ("ok",) + tuple(_encoded(name, getattr(outcome, name))
+                                              for name in _RECORD_COLUMNS) + (None, None)
         tolerances = getattr(task, "tolerances", None)
         values += (outcome.wall_time_s, socket.gethostname(), __version__, _now(),
                    None if tolerances is None else json.dumps(tolerances, sort_keys=True))
@@ -628,25 +647,7 @@ def _decoded_point(row) -> StoredPoint:
     values = dict(zip(_RECORD_COLUMNS, row[3:3 + len(_RECORD_COLUMNS)]))
     failure, kind, wall, host, version, created = row[3 + len(_RECORD_COLUMNS):]
     if status == "ok":
-        fields = {
-            "energy_au": values["energy_au"], "scf_energy_au": values["scf_energy_au"],
-            "dipole_au": (None if values["dipole_au"] is None
-                          else tuple(json.loads(values["dipole_au"]))),
-            "alpha_au": (None if values["alpha_au"] is None
-                         else tuple(tuple(r) for r in json.loads(values["alpha_au"]))),
-            "scf_cycles": int(values["scf_cycles"]),
-            "attempts": tuple(json.loads(values["attempts"])),
-            "s2": values["s2"], "occupied_overlap": values["occupied_overlap"],
-            "gradient_norm": values["gradient_norm"],
-            "dipole_error_au": values["dipole_error_au"], "state_issue": values["state_issue"],
-            "energy_scale_au": values["energy_scale_au"] or 0.0,
-            "relaxation": (None if values["relaxation"] is None
-                           else json.loads(values["relaxation"])),
-            "correlation_energy_change_au": values["correlation_energy_change_au"],
-            "amplitude_change": values["amplitude_change"],
-            "orientation": (None if values["orientation"] is None
-                            else Orientation.from_document(json.loads(values["orientation"]))),
-        }
+        fields = {name: _decoded_field(name, values[name]) for name in _RECORD_COLUMNS}
     else:
         fields = {"reason": failure, "kind": kind}
     return StoredPoint(key, model_key, status, fields, wall or 0.0, host, version, created)

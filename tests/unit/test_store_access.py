@@ -201,3 +201,19 @@ def test_a_row_that_does_not_decode_is_bad_input_naming_the_store(tmp_path):
             reader.get_points([task(1).key])
         with pytest.raises(InputError, match="corrupt"):
             list(reader.iter_points())
+
+
+def test_every_field_of_a_record_has_its_column():
+    """The store's columns are derived from PointRecord's fields (a field added
+    to the record is stored without a second list to keep): the schema of a
+    new store has a column for each. Round trips of every kind of record are
+    the pipeline and store tests'."""
+    import dataclasses
+
+    from fieldprop.points import store as store_module
+    from fieldprop.points.records import PointRecord
+
+    names = {f.name for f in dataclasses.fields(PointRecord)} - {"point", "wall_time_s"}
+    assert set(store_module._RECORD_COLUMNS) == names
+    for name in names:
+        assert f"    {name} " in store_module._SCHEMA, name
