@@ -80,7 +80,8 @@ def _named_failure(task: PointTask, what: str, exc: Exception, start: float) -> 
 def reference_task(task: PointTask, threads: int = 0):
     """A model's zero-field point and its reference: (PointRecord,
     ZeroFieldReference), or (PointFailure, None)."""
-    from fieldprop.backend.compute import ModelContext, compute_reference
+    from fieldprop.backend.context import ModelContext
+    from fieldprop.backend.points import compute_reference
 
     if threads:
         set_threads(threads)
@@ -103,8 +104,10 @@ def point_task(task: PointTask, reference: ZeroFieldReference, solved: dict,
     (PointRecord or PointFailure, its converged rotation or None). ``solved``:
     the converged rotations of the points it starts from (and nothing else:
     its numbers do not depend on where it runs)."""
-    from fieldprop.backend.compute import (ModelContext, compute_point, compute_relaxed_point,
-                                         field_key)
+    from fieldprop.backend.context import ModelContext
+    from fieldprop.backend.gradients import compute_relaxed_point
+    from fieldprop.backend.points import compute_point
+    from fieldprop.backend.solver import field_key
 
     if threads:
         set_threads(threads)
@@ -137,7 +140,7 @@ def point_task(task: PointTask, reference: ZeroFieldReference, solved: dict,
 def optimise_task(job, threads: int = 0):
     """A molecule's geometry optimisation: (document, None) or (None,
     (reason, kind))."""
-    from fieldprop.backend.compute import optimize_geometry
+    from fieldprop.backend.geometry import optimize_geometry
     from fieldprop.inputs.molecule import build_molecule
 
     if threads:
@@ -161,7 +164,7 @@ def refuse_another_backend(store, zero: PointTask, stored_facts: dict) -> None:
     """InputError (one line, both versions) when the stored model was computed
     with another backend version than this process has: its new points would
     join the stored ones in one Richardson table (keys.backend_version_conflict)."""
-    from fieldprop.backend.compute import backend_versions
+    from fieldprop.backend.molecule import backend_versions
     from fieldprop.points.keys import backend_version_conflict
 
     conflict = backend_version_conflict(stored_facts, backend_versions(zero.model.method))

@@ -246,7 +246,7 @@ class NuclearRelaxation:
     """The nuclear-relaxation part of a result: ``total`` is the analysis of
     the relaxed points (electronic plus nuclear relaxation), ``nuclear`` the
     tensors total less electronic, ``frame`` the zero-field frame's document
-    (backend_pyscf.relaxation_frame), ``counts`` the relaxed points'."""
+    (backend.gradients.relaxation_frame), ``counts`` the relaxed points'."""
 
     total: RunResult
     nuclear: dict[str, TensorResult]

@@ -35,7 +35,7 @@ def geometry_key(job: Job) -> str:
     :func:`fieldprop.keys.model_document` fixes them), charge, multiplicity,
     the optimisation's model (method, functional, basis, reference, density
     fitting, DFT grid), the numerics version, the criteria and step limit."""
-    from fieldprop.backend.compute import optimisation_model
+    from fieldprop.backend import optimisation_model
     from fieldprop.points.keys import digest
 
     model = optimisation_model(job)
@@ -79,7 +79,7 @@ def optimised(job: Job, store=None, compute: bool = True) -> Job:
                                   f"{store.label if store is not None else 'any store'}; "
                                   "fieldprop run, or fieldprop point --zero-field, optimises "
                                   "it first")
-        from fieldprop.backend.compute import optimize_geometry
+        from fieldprop.backend import optimize_geometry
 
         start = time.perf_counter()
         logger.info("%s: optimising the geometry (%s criteria, at most %d steps)", job.path,
@@ -158,7 +158,7 @@ def relaxed_reference(job: Job, store=None, compute: bool = True) -> Job:
                                   f"frame (key {short_id(key)}) is not in "
                                   f"{store.label if store is not None else 'any store'}; "
                                   "fieldprop run computes it first")
-        from fieldprop.backend.compute import relaxation_frame
+        from fieldprop.backend import relaxation_frame
 
         logger.info("%s: the zero-field minimum for nuclear relaxation: gradient, Hessian, "
                     "dipole derivatives", job.path)
@@ -219,7 +219,7 @@ def relax_at_field(prepared: Prepared, field_au) -> dict:
     document (bohr, Eh, au). Raises ScfNotConvergedError when an SCF or the
     relaxation does not converge."""
     from fieldprop.numerics import relaxation
-    from fieldprop.backend.compute import StructureEvaluator
+    from fieldprop.backend import StructureEvaluator
 
     start = time.perf_counter()
     job, molecule = prepared.job, prepared.molecule

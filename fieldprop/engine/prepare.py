@@ -178,7 +178,7 @@ def prepare(job: Job, route: Route | str | None = None, facts: dict | None = Non
 
     molecule, sym, near = symmetry_decision(job)
     if facts is None:
-        from fieldprop.backend.compute import validate
+        from fieldprop.backend import validate
 
         facts = validate(job, molecule)
     if any(facts.get("core_electrons", ())):

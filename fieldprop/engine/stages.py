@@ -440,7 +440,7 @@ def compute_jobs(works: list[JobWork], store, executor, progress: Progress | Non
     ``failure`` set). Interrupted (Ctrl-C, SIGTERM), the executor's tasks of
     this process are dropped and the exception goes on; every finished point
     is stored."""
-    from fieldprop.backend.compute import field_key
+    from fieldprop.backend import field_key
 
     progress = progress or Progress()
     for work in works:

@@ -123,7 +123,7 @@ class MoleculeInput:
     multiplicity: int
     units: str
     source: str  # "inline" or the xyz path as written in the job
-    #: Atoms closer than backend_pyscf.CLOSE_FRACTION of their covalent bond
+    #: Atoms closer than backend.molecule.CLOSE_FRACTION of their covalent bond
     #: length are refused unless this is set ([molecule] allow_close_atoms).
     allow_close_atoms: bool = False
     #: The bohr in angstrom that turned angstrom input into bohr ([molecule]

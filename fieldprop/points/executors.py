@@ -190,7 +190,7 @@ def end_with_parent(parent: int) -> None:
 
 def predecessors(tasks) -> dict[int, tuple[int, ...]]:
     """For each of ``tasks`` (by position), the positions of the tasks whose
-    converged orbitals start it best (backend_pyscf._start_orbitals): the
+    converged orbitals start it best (backend.solver._start_orbitals): the
     opposite field, when it comes first (mirror start); else the nearest
     smaller pair on the same line through zero field (line start); else none
     (it starts from the zero-field orbitals turned by their linear response).

@@ -30,7 +30,7 @@ CPHF_RTOL = 1e-11
 #: solver): the starts of a field point's Newton steps (the zero-field orbitals
 #: rotated by the linear response, by the opposite point's rotation, by a
 #: pair's on the same line, or not rotated when there is no response:
-#: backend_pyscf._start_orbitals), DIIS, the turn of a degenerate open shell
+#: backend.solver._start_orbitals), DIIS, the turn of a degenerate open shell
 #: onto its fixed orientation, the Newton steps, the exact one-electron solution.
 RESPONSE_START = "response_start"
 MIRROR_START = "mirror_start"

@@ -312,8 +312,8 @@ def overhead(folder: Path) -> None:
                    if n == name and f.replace(os.sep, "/").endswith(module))
 
     backend = cumulative("fieldprop/engine/stages.py", "compute_jobs")
-    reference = cumulative("fieldprop/points/executors.py", "reference_task")
-    context = cumulative("fieldprop/backend/compute.py", "__init__")
+    reference = cumulative("fieldprop/backend/tasks.py", "reference_task")
+    context = cumulative("fieldprop/backend/context.py", "__init__")
     rows = [["whole process (profiled)", f"{wall:.1f}", "1.000"],
             ["backend: integrals, zero-field reference, field points", f"{backend:.1f}",
              f"{backend / wall:.3f}"],

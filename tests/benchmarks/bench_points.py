@@ -79,7 +79,7 @@ solver = "{solver}"
 
 def cold_scf(job):
     """PySCF's DIIS from its initial guess to the job's orbital-gradient target."""
-    from fieldprop.backend.compute import ModelContext
+    from fieldprop.backend import ModelContext
 
     context = ModelContext(_molecule(job), job.model, job.scf)
     mf = context.mean_field((0.0, 0.0, 0.0))
@@ -91,7 +91,7 @@ def cold_scf(job):
 
 def analytic_alpha_seconds(job) -> float:
     """A cold SCF with PySCF's default tolerances plus the CPHF/CPKS solve."""
-    from fieldprop.backend.compute import ModelContext, analytic_polarizability
+    from fieldprop.backend import ModelContext, analytic_polarizability
 
     start = time.perf_counter()
     context = ModelContext(_molecule(job), job.model, job.scf)

@@ -392,12 +392,13 @@ def _check(rc: int, out: str, err: str, expected: list[str], job_path: Path,
 @pytest.fixture(autouse=True)
 def _no_scf(monkeypatch):
     """Bad input must be refused before any field point is computed."""
-    import fieldprop.backend.compute
+    import fieldprop.backend.context
 
     def tripwire(*args):
         raise AssertionError("a model context was built for an SCF")
 
-    monkeypatch.setattr(fieldprop.backend.compute, "ModelContext", tripwire)
+    # Where the backend's tasks, which build every model context, look it up.
+    monkeypatch.setattr(fieldprop.backend.context, "ModelContext", tripwire)
 
 
 # --------------------------------------------------------------------------- tests

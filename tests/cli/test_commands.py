@@ -239,13 +239,14 @@ def test_batch_logs_get_progress_lines_and_quiet_silences_them(tmp_path):
 def test_a_zero_field_failure_inside_the_backend_is_named_not_a_traceback(tmp_path, capsys,
                                                                           monkeypatch):
     pytest.importorskip("pyscf")
-    import fieldprop.backend.compute
+    import fieldprop.backend.points
     from fieldprop.cli import main
 
     def broken(context, task):
         raise RuntimeError("injected inside PySCF")
 
-    monkeypatch.setattr(fieldprop.backend.compute, "compute_reference", broken)
+    # Where the zero-field task looks it up (backend.tasks imports it from there).
+    monkeypatch.setattr(fieldprop.backend.points, "compute_reference", broken)
     (tmp_path / "lih.toml").write_text(JOB)
     assert main(["run", str(tmp_path / "lih.toml"), "--quiet", "--no-store"]) == 1
     err = capsys.readouterr().err

@@ -387,14 +387,14 @@ def test_a_degenerate_open_shells_orientation_travels_with_its_zero_field_point(
 def test_a_failed_point_gives_exit_1_and_collect_names_it(tmp_path, capsys, monkeypatch):
     """A point whose SCF never converges: point exits 1 naming it, the failure
     is stored, and collect exits 1 with the same reason."""
-    from fieldprop.backend import compute as backend_pyscf
+    from fieldprop.backend import points as backend_points
     from fieldprop.cli import main
     from fieldprop.errors import ScfNotConvergedError
 
     (tmp_path / "lih.toml").write_text(JOB)
     job = str(tmp_path / "lih.toml")
     ids = [p["id"] for p in plan_lines(tmp_path)]
-    real = backend_pyscf._converge
+    real = backend_points._converge
 
     def stubborn(mf, context, point, *rest):
         if point.label == "L1(0,+1,0)":
@@ -402,7 +402,7 @@ def test_a_failed_point_gives_exit_1_and_collect_names_it(tmp_path, capsys, monk
                                        "(injected)")
         return real(mf, context, point, *rest)
 
-    monkeypatch.setattr(backend_pyscf, "_converge", stubborn)
+    monkeypatch.setattr(backend_points, "_converge", stubborn)
     assert main(["point", job, *sum((["--id", i] for i in ids), [])]) == 1
     err = capsys.readouterr().err
     assert "L1(0,+1,0)" in err and err.strip().splitlines()[-1].startswith(

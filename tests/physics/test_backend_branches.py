@@ -40,8 +40,8 @@ def _dipole_integrals(mf):
 def test_each_reference_gets_its_own_dipole_error_estimate():
     from pyscf import gto, scf
 
-    from fieldprop.backend.compute import (_dipole_error, diagonal_dipole_step,
-                                         newton_dipole_step)
+    from fieldprop.backend.response import (_dipole_error, diagonal_dipole_step,
+                                            newton_dipole_step)
 
     water = gto.M(atom="O 0 0 0.22; H 0 1.43 -0.89; H 0 -1.43 -0.89", unit="Bohr",
                   basis="sto-3g", verbose=0)
@@ -74,7 +74,7 @@ def test_an_error_inside_a_dipole_error_estimate_is_not_taken_for_a_restricted_o
         monkeypatch):
     from pyscf import gto, scf
 
-    from fieldprop.backend import compute as backend_pyscf
+    from fieldprop.backend import response as backend_response
 
     mol = gto.M(atom="H 0 0 0; H 0 0 1.4", unit="Bohr", basis="sto-3g", verbose=0)
     mf = scf.RHF(mol)
@@ -83,9 +83,9 @@ def test_an_error_inside_a_dipole_error_estimate_is_not_taken_for_a_restricted_o
     def broken(*args, **kwargs):
         raise TypeError("a defect inside the estimate")
 
-    monkeypatch.setattr(backend_pyscf, "diagonal_dipole_step", broken)
+    monkeypatch.setattr(backend_response, "diagonal_dipole_step", broken)
     with pytest.raises(TypeError, match="a defect inside"):
-        backend_pyscf._dipole_error(mf, _dipole_integrals(mf), mf.get_fock(), False)
+        backend_response._dipole_error(mf, _dipole_integrals(mf), mf.get_fock(), False)
 
 
 class _QuadraticSurface:
@@ -110,7 +110,7 @@ class _QuadraticSurface:
 def test_a_restricted_open_shell_hessian_is_central_differences_of_gradients(density_fit):
     from pyscf import scf
 
-    from fieldprop.backend.compute import _hessian
+    from fieldprop.backend.gradients import _hessian
 
     mf = _oh(scf.ROHF, density_fit)
     rng = np.random.default_rng(7)
@@ -130,7 +130,7 @@ def test_a_restricted_open_shell_hessian_is_central_differences_of_gradients(den
 def test_the_analytic_hessian_is_asked_for_exactly_where_pyscf_computes_one(kind):
     from pyscf import dft, scf
 
-    from fieldprop.backend.compute import _has_nuclear_hessian
+    from fieldprop.backend.gradients import _has_nuclear_hessian
 
     name, _, extra = kind.partition(" ")
     cls = getattr(scf, name, None) or getattr(dft, name)
@@ -162,7 +162,7 @@ def _near_icosahedron():
 
 
 def test_a_molecule_symmetry_detection_cannot_classify_is_warned_about(caplog):
-    from fieldprop.backend.compute import symmetry_operations
+    from fieldprop.backend.states import symmetry_operations
 
     mol = _near_icosahedron()
     with caplog.at_level("WARNING", logger="fieldprop"):
@@ -176,7 +176,7 @@ def test_a_molecule_symmetry_detection_cannot_classify_is_warned_about(caplog):
 def test_a_failure_of_symmetry_detection_that_is_not_pyscf_s_refusal_surfaces(monkeypatch):
     from pyscf import gto, symm
 
-    from fieldprop.backend.compute import symmetry_operations
+    from fieldprop.backend.states import symmetry_operations
 
     def broken(*args, **kwargs):
         raise TypeError("a defect in the call")

@@ -303,27 +303,28 @@ def test_a_state_not_turned_to_the_frame_reports_its_own_axes(tmp_path):
     the frame (u the Cartesian axis most perpendicular to the bond)."""
     from pyscf import scf
 
-    from fieldprop.backend import compute as backend_pyscf
+    from fieldprop.backend import context as backend_context
+    from fieldprop.backend import orientation as backend_orientation
     from fieldprop.engine.prepare import prepare
 
     prepared = prepare(_job(tmp_path, "rohf", "dipole"))
-    context = backend_pyscf.ModelContext(prepared.molecule, prepared.job.model,
+    context = backend_context.ModelContext(prepared.molecule, prepared.job.model,
                                          prepared.job.scf)
     mf = scf.ROHF(context.mol)
     mf.verbose, mf.conv_tol = 0, 1e-12
     mf.kernel()
-    context.constraints = backend_pyscf.orientation_constraints(context, mf.mo_coeff, mf.mo_occ)
+    context.constraints = backend_orientation.orientation_constraints(context, mf.mo_coeff, mf.mo_occ)
     assert context.constraints
-    second = backend_pyscf._unpaired_second_moment(context, mf)
+    second = backend_orientation._unpaired_second_moment(context, mf)
     frame = _frame()
     turned = abs((frame @ second @ frame.T)[0, 1])
     assert turned > 1e-3, "PySCF's solution happened to lie in the frame: no premise"
-    record = backend_pyscf.orientation_record(context, mf)
+    record = backend_orientation.orientation_record(context, mf)
     axes = np.array(record.axes)
     in_axes = axes @ second @ axes.T
     assert np.abs(in_axes - np.diag(np.diag(in_axes))).max() < 1e-10
     assert np.allclose(axes[2], BOND, atol=1e-9) and in_axes[0, 0] > in_axes[1, 1]
     assert not np.allclose(axes[0], frame[0], atol=1e-3)
-    assert backend_pyscf._align(mf, context)
-    aligned = np.array(backend_pyscf.orientation_record(context, mf).axes)
+    assert backend_orientation._align(mf, context)
+    aligned = np.array(backend_orientation.orientation_record(context, mf).axes)
     assert np.allclose(aligned, frame, atol=1e-12)

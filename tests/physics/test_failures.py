@@ -9,7 +9,9 @@ import pytest
 
 pytest.importorskip("pyscf")
 
-from fieldprop.backend import compute as backend_pyscf  # noqa: E402
+from fieldprop.backend import context as backend_context  # noqa: E402
+from fieldprop.backend import points as backend_points  # noqa: E402
+from fieldprop.backend import states as backend_states  # noqa: E402
 from fieldprop.cli import main  # noqa: E402
 from fieldprop.errors import ScfNotConvergedError  # noqa: E402
 
@@ -62,7 +64,7 @@ def test_a_normal_run_lists_no_scf_retries(tmp_path, capsys):
 
 def test_a_point_that_never_converges_fails_the_job(tmp_path, capsys, monkeypatch):
     target = "L1(-1,0,0)"  # computed (L1(+1,0,0) is its mirror image by symmetry)
-    real = backend_pyscf._converge
+    real = backend_points._converge
 
     def stubborn(mf, context, point, *rest):
         if point.label == target:  # every strategy of the ladder fails at this point
@@ -70,7 +72,7 @@ def test_a_point_that_never_converges_fails_the_job(tmp_path, capsys, monkeypatc
                                        "after diis, diis+damping+level_shift, second_order")
         return real(mf, context, point, *rest)
 
-    monkeypatch.setattr(backend_pyscf, "_converge", stubborn)
+    monkeypatch.setattr(backend_points, "_converge", stubborn)
     job = tmp_path / "water.toml"
     job.write_text(WATER.format(extra=""))
     assert main(["run", str(job), "--quiet"]) == 1
@@ -95,7 +97,7 @@ def _steer_to_excited_state(monkeypatch, at_field):
     solver = "diis" (STEERED)."""
     from pyscf import scf
 
-    real = backend_pyscf._apply_field
+    real = backend_context._apply_field
 
     def steer(mf, context, field_vector_au):
         real(mf, context, field_vector_au)
@@ -114,7 +116,7 @@ def _steer_to_excited_state(monkeypatch, at_field):
 
             mf.get_occ = get_occ
 
-    monkeypatch.setattr(backend_pyscf, "_apply_field", steer)
+    monkeypatch.setattr(backend_context, "_apply_field", steer)
 
 
 def test_a_state_switch_at_the_smallest_field_leaves_no_number(tmp_path, capsys, monkeypatch):
@@ -158,8 +160,8 @@ def test_the_occupation_by_symmetry_alone_catches_the_switch(tmp_path, capsys, m
     # With the overlap and <S^2> checks switched off, the characters of the
     # occupied space under the C2 axis and mirror planes the field keeps must
     # still see that an a1 orbital replaced a b1 one.
-    monkeypatch.setattr(backend_pyscf, "MIN_OCCUPIED_OVERLAP", -1.0)
-    monkeypatch.setattr(backend_pyscf, "MAX_S2_CHANGE", np.inf)
+    monkeypatch.setattr(backend_states, "MIN_OCCUPIED_OVERLAP", -1.0)
+    monkeypatch.setattr(backend_states, "MAX_S2_CHANGE", np.inf)
     _steer_to_excited_state(monkeypatch, (0.0, 0.0, 0.002))
     job = tmp_path / "water.toml"
     job.write_text(WATER.format(extra=STEERED))
@@ -174,14 +176,14 @@ def test_failures_are_reported_from_worker_processes(tmp_path, capsys, monkeypat
     # Through a real process pool (Linux forks the workers, so they inherit the
     # stubborn SCF below): two points fail, both are listed, nothing is written.
     targets = {"L0(0,-1,0)", "L2(0,0,-1)"}  # computed points, not symmetry images
-    real = backend_pyscf._converge
+    real = backend_points._converge
 
     def stubborn(mf, context, point, *rest):
         if point.label in targets:
             raise ScfNotConvergedError(f"SCF did not converge at field point {point.label}")
         return real(mf, context, point, *rest)
 
-    monkeypatch.setattr(backend_pyscf, "_converge", stubborn)
+    monkeypatch.setattr(backend_points, "_converge", stubborn)
     job = tmp_path / "water.toml"
     job.write_text(WATER.format(extra=""))
     assert main(["run", str(job), "--quiet", "--workers", "2"]) == 1

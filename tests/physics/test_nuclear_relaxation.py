@@ -83,7 +83,7 @@ _ORIGIN = np.array([0.1, 0.2, -0.1])
     ("rhf", 0, 0), ("rks", 0, 0), ("uhf", 1, 1), ("uks", 1, 1), ("mp2", 0, 0)],
     ids=["RHF", "RKS-PBE", "UHF-cation", "UKS-PBE-cation", "MP2"])
 def test_the_field_gradient_is_the_derivative_of_the_field_energy(kind, charge, spin):
-    from fieldprop.backend.compute import StructureEvaluator
+    from fieldprop.backend import StructureEvaluator
     from fieldprop.inputs.job import ModelSpec, ScfSpec
     from fieldprop.inputs.molecule import MoleculeSpec
 

@@ -21,7 +21,7 @@ pytest.importorskip("pyscf")
 from support import (WATER_ANGSTROM, agree, geometry_text, rotated_water,  # noqa: E402
                      run_job)
 
-from fieldprop.backend.compute import ModelContext, compute_point, compute_reference  # noqa: E402
+from fieldprop.backend import ModelContext, compute_point, compute_reference  # noqa: E402
 from fieldprop.engine.prepare import prepare  # noqa: E402
 from fieldprop.numerics.plan import FieldPoint  # noqa: E402
 

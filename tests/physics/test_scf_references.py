@@ -104,7 +104,7 @@ def test_the_newton_step_measures_an_open_shell_dipole_error(xc):
     # must remove all but 1 % of that error: the step is exact to first order.
     from pyscf import dft, gto, scf
 
-    from fieldprop.backend.compute import newton_dipole_step
+    from fieldprop.backend import newton_dipole_step
 
     mol = gto.M(atom=nh2_geometry(), basis="6-31g", spin=1, verbose=0)
     r = mol.intor("int1e_r")

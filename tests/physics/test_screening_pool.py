@@ -72,17 +72,17 @@ def test_a_dask_cluster_gives_the_numbers_of_a_serial_run(tmp_path, workers, thr
 
 
 def test_a_point_that_fails_ends_its_molecule_only(tmp_path, monkeypatch):
-    from fieldprop.backend import compute as backend_pyscf
+    from fieldprop.backend import points as backend_points
     from fieldprop.errors import ScfNotConvergedError
 
-    real = backend_pyscf._converge
+    real = backend_points._converge
 
     def stubborn(mf, context, point, *rest):  # every ammonia field point along +x fails
         if context.molecule.formula == "H3N" and point.field_vector_au[0] > 0:
             raise ScfNotConvergedError(f"SCF did not converge at field point {point.label}")
         return real(mf, context, point, *rest)
 
-    monkeypatch.setattr(backend_pyscf, "_converge", stubborn)
+    monkeypatch.setattr(backend_points, "_converge", stubborn)
     (tmp_path / "set.toml").write_text(SET)
     campaign = load_set(tmp_path / "set.toml")
     with PointStore.in_memory() as store:

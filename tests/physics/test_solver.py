@@ -11,7 +11,9 @@ import pytest
 
 pytest.importorskip("pyscf")
 
-from fieldprop.backend import compute as backend_pyscf  # noqa: E402
+from fieldprop.backend import context as backend_context  # noqa: E402
+from fieldprop.backend import points as backend_points  # noqa: E402
+from fieldprop.backend import solver as backend_solver  # noqa: E402
 from fieldprop.cli import main  # noqa: E402
 from fieldprop.engine.prepare import prepare  # noqa: E402
 from fieldprop.inputs.job import load_job  # noqa: E402
@@ -49,7 +51,7 @@ def test_shared_integrals_give_the_energies_of_integrals_built_per_point(
 
     job = _job(tmp_path, geometry or nh2_geometry(), model, multiplicity=multiplicity)
     prepared = prepare(job)
-    context = backend_pyscf.ModelContext(prepared.molecule, job.model, job.scf)
+    context = backend_context.ModelContext(prepared.molecule, job.model, job.scf)
     field = np.array([0.003, -0.002, 0.004])
     shared = context.mean_field(field)
     # An independent PySCF object with its own integrals (and grid), the field
@@ -111,7 +113,7 @@ def test_response_start_and_newton_finish_change_no_tensor_beyond_its_error_bars
 def test_a_stall_above_the_needed_gradient_fails_that_point_by_name(tmp_path, capsys,
                                                                      monkeypatch):
     target = np.array([0.0, 0.0, 0.004])
-    real_newton, real_ladder = backend_pyscf._newton, backend_pyscf._ladder
+    real_newton, real_ladder = backend_solver._newton, backend_solver._ladder
 
     def at_target(mf, context):
         return np.allclose(mf.get_hcore(), context.hcore + np.einsum("x,xij->ij", target,
@@ -120,7 +122,7 @@ def test_a_stall_above_the_needed_gradient_fails_that_point_by_name(tmp_path, ca
     def newton(mf, context, c, occ, goal, constraints=()):
         if at_target(mf, context):  # no Newton step: the point keeps its start
             mf.mo_coeff, mf.mo_occ = c, occ
-            return 0, backend_pyscf._gradient_norm(mf), None
+            return 0, backend_solver._gradient_norm(mf), None
         return real_newton(mf, context, c, occ, goal, constraints)
 
     def ladder(mf, dm0, goal, attempts):
@@ -129,16 +131,16 @@ def test_a_stall_above_the_needed_gradient_fails_that_point_by_name(tmp_path, ca
             return 0  # ... and no ladder either: a stall at the start's gradient
         return real_ladder(mf, dm0, goal, attempts)
 
-    real_mean_field = backend_pyscf.ModelContext.mean_field
+    real_mean_field = backend_context.ModelContext.mean_field
 
     def mean_field(self, field):
         mf = real_mean_field(self, field)
         mf._fieldprop_context = self
         return mf
 
-    monkeypatch.setattr(backend_pyscf, "_newton", newton)
-    monkeypatch.setattr(backend_pyscf, "_ladder", ladder)
-    monkeypatch.setattr(backend_pyscf.ModelContext, "mean_field", mean_field)
+    monkeypatch.setattr(backend_solver, "_newton", newton)
+    monkeypatch.setattr(backend_solver, "_ladder", ladder)
+    monkeypatch.setattr(backend_context.ModelContext, "mean_field", mean_field)
     job = _job(tmp_path, WATER, 'method = "hf"\n        basis = "6-31g"', name="water.toml")
     assert main(["run", job.path, "--quiet"]) == 1
     err = capsys.readouterr().err
@@ -184,14 +186,14 @@ def test_a_push_pull_aromatic_converges_on_the_dipole_route(tmp_path):
 
 def test_an_exception_inside_pyscf_fails_that_point_by_name_without_a_traceback(
         tmp_path, capsys, monkeypatch):
-    real = backend_pyscf._converge
+    real = backend_points._converge
 
     def broken(mf, context, point, *rest):
         if point.label == "L0(-1,0,0)":  # computed (L0(+1,0,0) is its mirror image)
             raise np.linalg.LinAlgError("Eigenvalues did not converge")
         return real(mf, context, point, *rest)
 
-    monkeypatch.setattr(backend_pyscf, "_converge", broken)
+    monkeypatch.setattr(backend_points, "_converge", broken)
     job = _job(tmp_path, WATER, 'method = "hf"\n        basis = "6-31g"', name="water.toml")
     assert main(["run", job.path, "--quiet", "--workers", "1"]) == 1
     err = capsys.readouterr().err
@@ -222,22 +224,22 @@ def test_mirror_and_line_starts_are_second_order(tmp_path, reference):
                 '        reference = "restricted"', multiplicity=2))
     prepared = prepare(job)
     zero = next(t for t in prepared.tasks if t.is_zero_field)
-    context = backend_pyscf.ModelContext(zero.molecule, zero.model, zero.scf)
-    backend_pyscf.compute_reference(context, zero)
+    context = backend_context.ModelContext(zero.molecule, zero.model, zero.scf)
+    backend_points.compute_reference(context, zero)
     direction = np.array([0.3, -0.5, 0.8]) / np.linalg.norm([0.3, -0.5, 0.8])
 
     def start_gradient(field):
-        c, how = backend_pyscf._start_orbitals(context, field)
+        c, how = backend_solver._start_orbitals(context, field)
         mf = context.mean_field(field)
         occ = context.reference.mo_occ
         fock = mf.get_fock(dm=mf.make_rdm1(c, occ))
-        return backend_pyscf._gradient_norm(mf, fock, (), c, occ), how
+        return backend_solver._gradient_norm(mf, fock, (), c, occ), how
 
     def solve(field, index):
         import dataclasses
 
         task = dataclasses.replace(zero, point=FieldPoint(index, (9, 9, 9), 0, tuple(field)))
-        return backend_pyscf.compute_point(context, task)
+        return backend_points.compute_point(context, task)
 
     h = 0.004
     g_response, how = start_gradient(h * direction)

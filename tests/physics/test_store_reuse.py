@@ -142,11 +142,11 @@ def test_check_after_run_computes_only_the_analytic_alpha_points(tmp_path, capsy
 
 
 def test_a_stored_failure_is_not_retried_unless_asked(tmp_path, capsys, monkeypatch):
-    from fieldprop.backend import compute as backend_pyscf
+    from fieldprop.backend import points as backend_points
     from fieldprop.errors import ScfNotConvergedError
 
     target = "L1(0,0,+1)"
-    real = backend_pyscf._converge
+    real = backend_points._converge
 
     def stubborn(mf, context, point, *rest):
         if point.label == target:
@@ -154,14 +154,14 @@ def test_a_stored_failure_is_not_retried_unless_asked(tmp_path, capsys, monkeypa
         return real(mf, context, point, *rest)
 
     write_job(tmp_path, "lih.toml", properties='["alpha"]')
-    monkeypatch.setattr(backend_pyscf, "_converge", stubborn)
+    monkeypatch.setattr(backend_points, "_converge", stubborn)
     assert main(["run", str(tmp_path / "lih.toml")]) == 1
     first = capsys.readouterr().err
     assert target in first and "--retry-failed" in first
     planned, computed, reused = _counts(first)[0]
     assert computed == planned and reused == 0  # the others finished and were stored
     # Fixed or not, a stored failure fails the job again without an SCF ...
-    monkeypatch.setattr(backend_pyscf, "_converge", real)
+    monkeypatch.setattr(backend_points, "_converge", real)
     assert main(["run", str(tmp_path / "lih.toml")]) == 1
     second = capsys.readouterr().err
     assert target in second and _counts(second)[0] == (planned, 0, planned)

@@ -1,0 +1,133 @@
+"""The model context and the field term.
+
+The field term is applied in one place, :func:`_apply_field`, for every method:
+the core Hamiltonian gets +F.<r - O> (electrons carry charge -1, so -mu_op.F adds
++F.r per electron) and the nuclear repulsion gets -F.sum_A Z_A (R_A - O). MP2,
+CCSD and CCSD(T) then run on the field-perturbed orbitals and integrals, because
+they take the core Hamiltonian and nuclear energy from the mean-field object.
+
+:class:`ModelContext` holds what the field does not change (integrals, grid,
+the zero-field reference and its response function), computed once per
+molecule, model and process.
+"""
+
+from __future__ import annotations
+
+import copy
+import functools
+
+import numpy as np
+
+from fieldprop.backend.molecule import _mean_field, build_mole
+from fieldprop.backend.orbital_hessian import _has_hessian, response_function
+from fieldprop.backend.orientation import orientation_constraints
+from fieldprop.points.records import ZeroFieldReference
+
+
+def _apply_field(mf, context, field_vector_au) -> None:
+    """Add -mu_op.F to the Hamiltonian of ``mf``, measured from the job's origin
+    (the dipole integrals and the field-free core Hamiltonian come from the
+    context, computed once)."""
+    f = np.asarray(field_vector_au, dtype=float)
+    h = context.hcore + np.einsum("x,xij->ij", f, context.r)
+    e_nuc = context.energy_nuc - float(f @ context.molecule.nuclear_dipole_au())
+    mf.get_hcore = lambda *args, **kwargs: h
+    mf.energy_nuc = lambda *args, **kwargs: e_nuc
+
+
+#: DFT integration grid (PySCF level) of the exchange-correlation kernel in the
+#: Newton steps' orbital Hessian (see ModelContext.response).
+NEWTON_GRID_LEVEL = 2
+
+
+class ModelContext:
+    """What the field does not change, computed once per molecule, model and
+    process and shared by every point computed there.
+
+    The molecule (PySCF ``Mole``), the field-free core Hamiltonian, overlap and
+    dipole integrals (about the job's origin), and a template mean-field object
+    holding the two-electron integrals in memory when they fit (PySCF's own
+    rule, ``_is_mem_enough``) and, for DFT, the built integration grid; each
+    point's mean-field object is a shallow copy of it with the field applied, so
+    it shares them. With a zero-field ``reference`` (attached once computed),
+    also its density-response function (J, K and, for DFT, the
+    exchange-correlation kernel at the zero-field density), used by the Newton
+    steps of every point.
+    """
+
+    def __init__(self, molecule, model, scf_spec, reference: ZeroFieldReference | None = None):
+        self.molecule, self.model, self.scf = molecule, model, scf_spec
+        self.mol = build_mole(molecule, model.basis, cartesian=model.cartesian)
+        self.template = _mean_field(self.mol, model, scf_spec)
+        self.hcore = self.template.get_hcore()
+        self.overlap = self.template.get_ovlp()
+        self.energy_nuc = self.mol.energy_nuc()
+        with self.mol.with_common_orig(molecule.origin_bohr):
+            self.r = self.mol.intor_symmetric("int1e_r", comp=3)
+        template = self.template
+        template.get_ovlp = lambda *args, **kwargs: self.overlap
+        if model.density_fit is not None:
+            template.with_df.build()  # the three-index integrals, once per process
+        elif self.mol.nelectron > 1 and (template._is_mem_enough() or self.mol.incore_anyway):
+            template._eri = self.mol.intor("int2e", aosym="s8")
+        if model.method == "dft":
+            template.grids.build()
+        self.reference: ZeroFieldReference | None = None
+        #: Converged rotations (from the zero-field orbitals) of the points
+        #: solved in this process or handed in, by field vector: starts for
+        #: the points at the opposite field and further along the same line.
+        self.solved: dict[tuple[float, float, float], np.ndarray] = {}
+        #: The orientation constraints of a reference that breaks a rotational
+        #: symmetry of the molecule (orientation_constraints); empty otherwise.
+        self.constraints: tuple[np.ndarray, ...] = ()
+        if reference is not None:
+            self.attach(reference)
+
+    def attach(self, reference: ZeroFieldReference) -> None:
+        """Use ``reference`` as every later point's start and state reference."""
+        self.reference = reference
+        self.solved = {}
+        self.__dict__.pop("response", None)
+        self.constraints = ()
+        if reference.mo_coeff is not None:
+            self.template.mo_coeff = reference.mo_coeff
+            self.template.mo_occ = reference.mo_occ
+            if _has_hessian(self.template):
+                self.constraints = orientation_constraints(self, reference.mo_coeff,
+                                                           reference.mo_occ)
+
+    @functools.cached_property
+    def response(self):
+        """The zero-field density-response function used by the Newton steps
+        (None without one). For DFT its exchange-correlation kernel is
+        integrated on a coarse grid (NEWTON_GRID_LEVEL): each Hessian product
+        then costs a fraction of a Fock build, and the step it gives is exact
+        to the grid's accuracy, far better than the steps need (the gradient
+        that decides convergence is always that of the job's own grid)."""
+        if self.reference is None or self.reference.mo_coeff is None or not _has_hessian(
+                self.template):
+            return None
+        solver = self.template
+        if self.model.method == "dft" and (self.scf.grid_level or 0) > NEWTON_GRID_LEVEL:
+            from pyscf import dft
+
+            solver = copy.copy(self.template)
+            solver._eri, solver._opt = self.template._eri, self.template._opt
+            solver.grids = dft.gen_grid.Grids(self.mol)
+            solver.grids.level = NEWTON_GRID_LEVEL
+            solver.grids.verbose = 0
+            solver.grids.build()
+        return response_function(solver)
+
+    def mean_field(self, field_vector_au):
+        """A mean-field object for one field point, sharing the context's integrals."""
+        mf = copy.copy(self.template)
+        # PySCF's copy leaves out the integrals and the screening data (its
+        # __getstate__); the point shares the template's instead.
+        mf._eri = self.template._eri
+        mf._opt = self.template._opt
+        for key in ("mo_coeff", "mo_occ", "mo_energy"):
+            setattr(mf, key, None)
+        mf.converged, mf.e_tot = False, 0.0
+        _apply_field(mf, self, field_vector_au)
+        return mf

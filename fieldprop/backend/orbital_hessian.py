@@ -1,0 +1,327 @@
+"""Orbital rotations and the orbital Hessian.
+
+The layout of the non-redundant rotations of each kind of mean field (closed
+shell, unrestricted, restricted open shell), the real orbital Hessian A + B
+over them (:class:`_OrbitalHessian`, :class:`_RestrictedOpenHessian`), its
+projected, preconditioned conjugate-gradient solve, and PySCF's
+density-response function. The Newton steps of the solver and the
+coupled-perturbed solves of the response share them.
+"""
+
+from __future__ import annotations
+
+import functools
+
+import numpy as np
+
+from fieldprop.errors import ScfNotConvergedError
+
+
+#: A CG solve counts as converged when its true residual is within this many
+#: times the tolerance asked: SciPy's cg checks its own recursively updated
+#: residual, which drifts from the true one by rounding; a residual 10x over
+#: means the solve stalled (a near-zero mode), not rounding.
+CG_RESIDUAL_SLACK = 10
+
+
+def _restricted_open(mo_occ) -> bool:
+    """Occupations of a restricted open shell (ROHF, ROKS): one orbital set with
+    doubly and singly occupied orbitals."""
+    occ = np.asarray(mo_occ)
+    return occ.ndim == 1 and bool(np.any(occ == 1))
+
+
+def _set_blocks(mo_coeff, mo_occ):
+    """(occupied, virtual) coefficients per spin density and the density weight:
+    alpha and beta (unrestricted; a restricted open shell, whose alpha electrons
+    occupy the doubly and singly occupied orbitals and beta the doubly occupied
+    ones), or the one closed-shell set (two electrons per orbital)."""
+    occ = np.asarray(mo_occ)
+    if occ.ndim == 2:
+        return [(c[:, o > 0], c[:, o == 0]) for c, o in zip(mo_coeff, occ)], 1.0
+    if _restricted_open(occ):
+        return [(mo_coeff[:, occ > 0], mo_coeff[:, occ == 0]),
+                (mo_coeff[:, occ == 2], mo_coeff[:, occ < 2])], 1.0
+    return [(mo_coeff[:, occ > 0], mo_coeff[:, occ == 0])], 2.0
+
+
+def _pairs(mo_occ) -> np.ndarray:
+    """The non-redundant rotations of one orbital set, (nmo, nmo) bool: p (row)
+    less occupied than q (column). For a closed shell the virtual-occupied
+    block; for a restricted open shell also open-core and virtual-open (PySCF's
+    ROHF gradient has this layout, row by row)."""
+    occ = np.asarray(mo_occ)
+    return occ[:, None] < occ[None, :]
+
+
+def _spin_occupations(mo_occ) -> np.ndarray:
+    """(2, nmo) alpha and beta occupations of a restricted open shell."""
+    occ = np.asarray(mo_occ)
+    return np.array([occ > 0, occ == 2], dtype=float)
+
+
+def _restricted_open_layout(c, mo_occ, matrices) -> np.ndarray:
+    """sum_s (n_q^s - n_p^s) [C^T M_s C]_pq over the non-redundant pairs (p, q)
+    (_pairs) of a restricted open shell: PySCF's ROHF gradient for the alpha and
+    beta Fock matrices M_s (one AO matrix ``matrices`` serves both spins; a
+    Roothaan Fock matrix gives its alpha and beta ones)."""
+    if getattr(matrices, "focka", None) is not None:
+        matrices = (matrices.focka, matrices.fockb)
+    elif np.ndim(matrices) == 2:
+        matrices = (matrices, matrices)
+    out = 0.0
+    for n, m in zip(_spin_occupations(mo_occ), matrices):
+        out = out + (n[None, :] - n[:, None]) * (c.T @ m @ c)
+    return out[_pairs(mo_occ)]
+
+
+def _has_hessian(mf) -> bool:
+    """RHF, UHF, RKS and UKS have the orbital Hessian of _OrbitalHessian,
+    ROHF and ROKS that of _RestrictedOpenHessian (every mean field fieldprop
+    builds; not PySCF's generalised or relativistic ones)."""
+    from pyscf.scf import hf, uhf
+
+    return isinstance(mf, (hf.RHF, uhf.UHF))
+
+
+#: Conjugate-gradient iterations at most per solve, and the level shift (Eh) that
+#: removes a (near-)zero mode of the orbital Hessian when they do not suffice.
+CG_MAX_ITERATIONS = 150
+SINGULAR_SHIFT = 1e-4
+
+
+class _HessianSolver:
+    """What the orbital Hessians share: the orientation constraints, the
+    projected, preconditioned conjugate-gradient solve and the dipole change of
+    a rotation. A subclass sets ``weight`` (electrons per orbital and spin
+    density), ``diagonal`` (the preconditioner, positive) and ``products``, and
+    defines ``matvec`` and ``vo`` (the layout of rotations, gradients and
+    perturbations: a perturbation M enters the gradient as vo(M))."""
+
+    def _constrain(self, constraints) -> None:
+        #: The constraints' gradients (columns: d c_k / d x) and an orthonormal
+        #: basis of them; the solver works in the space orthogonal to them.
+        self.constraint_gradients = np.zeros((self.diagonal.size, 0))
+        if constraints:
+            self.constraint_gradients = np.array(
+                [2.0 * self.weight * self.vo(w) for w in constraints]).T
+        self._q = np.linalg.qr(self.constraint_gradients)[0]
+
+    def project(self, x) -> np.ndarray:
+        """x without its part along the constraints' gradients."""
+        x = np.asarray(x).ravel()
+        return x - self._q @ (self._q.T @ x) if self._q.shape[1] else x
+
+    def solve(self, rhs, rtol: float, what: str) -> np.ndarray:
+        """x with H x = rhs, to relative residual ``rtol``.
+
+        Preconditioned conjugate gradients (the Hessian of a stable SCF is
+        positive definite), in the space orthogonal to the constraints'
+        gradients (an orientation constraint: orientation_constraints). A
+        Hessian with a (near-)zero mode, such as the rotation of a degenerate
+        open shell's unpaired orbital about the axis of a linear molecule (OH,
+        2Pi), stalls them; then the system is solved again with the Hessian
+        shifted by SINGULAR_SHIFT, which leaves the other modes' share of x
+        changed by a relative SINGULAR_SHIFT / their eigenvalue (~1e-4 for
+        eigenvalues ~ the orbital-energy gaps).
+        """
+        from scipy.sparse.linalg import LinearOperator, cg
+
+        rhs = self.project(rhs)
+        norm = np.linalg.norm(rhs)
+        if norm == 0.0:
+            return np.zeros_like(rhs)
+        n = self.diagonal.size
+        b = rhs / norm
+        residual = np.inf
+        project = self.project
+        for sigma in (0.0, SINGULAR_SHIFT):
+            operator = LinearOperator(
+                (n, n), matvec=lambda v, s=sigma: project(self.matvec(project(v))) + s * v,
+                dtype=float)
+            precondition = LinearOperator(
+                (n, n), matvec=lambda v, s=sigma: project(project(v) / (self.diagonal + s)),
+                dtype=float)
+            x, info = cg(operator, b, rtol=rtol, atol=0.0, M=precondition,
+                         maxiter=CG_MAX_ITERATIONS)
+            residual = np.linalg.norm(operator.matvec(x) - b)
+            if info == 0 and residual <= CG_RESIDUAL_SLACK * rtol:
+                return x * norm
+        raise ScfNotConvergedError(f"{what} did not converge (residual {residual:.1e}); "
+                                   "the SCF may be unstable")
+
+    def density_trace(self, rmo, x) -> float:
+        """-tr(r dD) for the rotation x: the dipole change it causes (one component)."""
+        return float(-2.0 * self.weight * (rmo @ x))
+
+
+class _OrbitalHessian(_HessianSolver):
+    """The real orbital Hessian A + B of a converged RHF, UHF, RKS or UKS object,
+    as a preconditioned conjugate-gradient solver over occupied-virtual blocks.
+
+    x_ai (one block per spin; one block for closed shells) maps to the density
+    change dD = n_w (C_v x C_o^T + transpose), n_w = 2 for closed shells and 1
+    per spin otherwise; the operator is (e_a - e_i) x + [V(dD)]_ai with V PySCF's
+    response function. One-electron systems have no two-electron response
+    (PySCF's generic response function would add one: 18.4 instead of 4.48 for
+    the polarizability of H).
+    """
+
+    def __init__(self, mf, response=None, constraints=()):
+        from pyscf.scf import uhf
+
+        if isinstance(mf, uhf.UHF):
+            coeffs, energies, occs, self.weight = mf.mo_coeff, mf.mo_energy, mf.mo_occ, 1.0
+        else:
+            coeffs, energies, occs, self.weight = ([mf.mo_coeff], [mf.mo_energy], [mf.mo_occ],
+                                                   2.0)
+        self.blocks = []
+        for c, e, occ in zip(coeffs, energies, occs):
+            o, v = occ > 0, occ == 0
+            self.blocks.append((c[:, o], c[:, v], e[v][:, None] - e[o][None, :]))
+        self.sizes = [b[2].size for b in self.blocks]
+        self.diagonal = np.concatenate([de.ravel() for (co, cv, de) in self.blocks])
+        self._mf = mf
+        self.products = 0  # Hessian-vector products so far (each ~ one Fock build)
+        if response is not None:
+            self.__dict__["response"] = response  # shared: see ModelContext.response
+        self._constrain(constraints)
+
+    @functools.cached_property
+    def response(self):
+        """PySCF's response function (built on first use: for DFT it holds the
+        exchange-correlation kernel on the grid); None for one electron."""
+        return response_function(self._mf)
+
+    def _split(self, x):
+        parts, start = [], 0
+        for (co, cv, de), n in zip(self.blocks, self.sizes):
+            parts.append(x[start:start + n].reshape(de.shape))
+            start += n
+        return parts
+
+    def matvec(self, x):
+        self.products += 1
+        parts = self._split(np.asarray(x).ravel())
+        out = [de * xs for (co, cv, de), xs in zip(self.blocks, parts)]
+        if self.response is not None:
+            dms = [self.weight * (cv @ xs @ co.T) for (co, cv, de), xs in zip(self.blocks, parts)]
+            dms = [d + d.T for d in dms]
+            v1 = self.response(np.array(dms) if len(dms) == 2 else dms[0])
+            v1 = v1 if len(dms) == 2 else [v1]
+            out = [o_ + cv.T @ vs @ co for o_, (co, cv, de), vs in zip(out, self.blocks, v1)]
+        return np.concatenate([o_.ravel() for o_ in out])
+
+    def vo(self, matrices) -> np.ndarray:
+        """The occupied-virtual blocks of AO matrices (one per block, or one for all)."""
+        if np.ndim(matrices) == 2:
+            matrices = [matrices] * len(self.blocks)
+        return np.concatenate([(cv.T @ m @ co).ravel()
+                               for m, (co, cv, de) in zip(matrices, self.blocks)])
+
+
+#: Smallest preconditioner entry (Eh) of the restricted open-shell Hessian: its
+#: diagonal is built from the alpha and beta Fock matrices, not from the
+#: orbital energies of the Roothaan matrix the orbitals diagonalise, and need
+#: not be positive far from convergence; the floor keeps the preconditioner
+#: positive definite. Below every entry measured (smallest at OH's points:
+#: 0.67 Eh at ROHF, 0.024 Eh at ROKS/PBE, the pair of the two pi orbitals).
+MIN_PRECONDITIONER = 1e-3
+
+
+class _RestrictedOpenHessian(_HessianSolver):
+    """The exact orbital Hessian of a restricted open shell (ROHF, ROKS).
+
+    One set of orbitals C carries the alpha density (doubly and singly occupied
+    orbitals, occupations n^a) and the beta one (doubly occupied, n^b). Turning
+    them by exp(K), K antisymmetric with the non-redundant pairs of _pairs
+    (open-core, virtual-core, virtual-open), gives to second order
+
+        E(K) = E + sum_s tr(F^s [K, n^s]) + 1/2 sum_s tr(F^s [K, [K, n^s]])
+                 + 1/2 sum_s tr(dD^s V^s(dD)),   dD^s = [K, n^s]
+
+    (MO basis; F^s the spin Fock matrices, V PySCF's UHF response function,
+    which ROHF and ROKS share). Its gradient over the pairs is twice PySCF's
+    ROHF gradient; the operator here is half its Hessian, so that H x = -g
+    with PySCF's g is the Newton step. The Fock terms are kept whole (the
+    orbital energies of the Roothaan matrix do not give them), so the Hessian
+    is exact at any orbitals, converged or not: 7e-8 relative from central
+    differences of PySCF's ROHF gradient for OH (PySCF's own second-order
+    solver's ROHF Hessian, which drops some of them, differed by 2.5e-4).
+    """
+
+    weight = 1.0
+
+    def __init__(self, mf, response=None, constraints=(), fock=None):
+        self.c, self.occ = np.asarray(mf.mo_coeff), np.asarray(mf.mo_occ)
+        self.pairs = _pairs(self.occ)
+        self.spins = _spin_occupations(self.occ)
+        if fock is None:
+            fock = mf.get_fock()
+        self.fock_mo = [self.c.T @ f @ self.c for f in (fock.focka, fock.fockb)]
+        diagonal = sum((n[None, :] - n[:, None]) * (np.diag(f)[:, None] - np.diag(f)[None, :])
+                       for n, f in zip(self.spins, self.fock_mo))
+        self.diagonal = np.maximum(diagonal[self.pairs], MIN_PRECONDITIONER)
+        self._mf = mf
+        self.products = 0
+        if response is not None:
+            self.__dict__["response"] = response
+        self._constrain(constraints)
+
+    @functools.cached_property
+    def response(self):
+        """PySCF's response function of the alpha and beta densities (for ROKS
+        the exchange-correlation kernel at this one's)."""
+        return response_function(self._mf)
+
+    def matvec(self, x):
+        self.products += 1
+        k = np.zeros(self.pairs.shape)
+        k[self.pairs] = np.asarray(x).ravel()
+        k = k - k.T
+        out = np.zeros_like(k)
+        dms = []
+        for n, f in zip(self.spins, self.fock_mo):
+            first = k * (n[None, :] - n[:, None])  # [K, n]
+            fk = f @ k - k @ f  # [F, K]
+            # The derivative of 1/2 tr(F [K, [K, n]]) along a pair:
+            # M = 1/2 ([[K, n], F] + [n, [F, K]]), entry (p, q) gets M_qp - M_pq.
+            m = 0.5 * (first @ f - f @ first + n[:, None] * fk - fk * n[None, :])
+            out += m.T - m
+            dms.append(self.c @ first @ self.c.T)
+        for n, v in zip(self.spins, self.response(np.array(dms))):
+            g = (n[:, None] - n[None, :]) * (self.c.T @ v @ self.c)  # [n, V]
+            out += g.T - g
+        return 0.5 * out[self.pairs]
+
+    def vo(self, matrices) -> np.ndarray:
+        """A perturbation's (or Fock matrix's) gradient over the pairs: AO
+        matrices for alpha and beta, or one for both (_restricted_open_layout)."""
+        return _restricted_open_layout(self.c, self.occ, matrices)
+
+
+def _orbital_hessian(mf, response=None, constraints=(), fock=None) -> _HessianSolver:
+    """The orbital Hessian of a converged (or nearly converged) mean field:
+    _RestrictedOpenHessian for ROHF and ROKS (``fock``: its Roothaan Fock
+    matrix at these orbitals when at hand, else built), _OrbitalHessian for the
+    others."""
+    if not _has_hessian(mf):
+        raise TypeError(f"no orbital Hessian for {type(mf).__name__}")
+    if _restricted_open(mf.mo_occ):
+        return _RestrictedOpenHessian(mf, response, constraints, fock)
+    return _OrbitalHessian(mf, response, constraints)
+
+
+def response_function(mf):
+    """PySCF's density-response function of a converged RHF, UHF, RKS or UKS
+    object (J, K and the exchange-correlation kernel at its density); for ROHF
+    and ROKS the unrestricted one of its alpha and beta densities; None for
+    one electron, which has no electron-electron terms."""
+    if mf.mol.nelectron == 1:
+        return None
+    if _restricted_open(mf.mo_occ):
+        c = np.asarray(mf.mo_coeff)
+        return mf.gen_response(mo_coeff=(c, c), mo_occ=tuple(_spin_occupations(mf.mo_occ)),
+                               hermi=1)
+    return (mf.gen_response(hermi=1) if np.asarray(mf.mo_occ).ndim == 2
+            else mf.gen_response(singlet=None, hermi=1))

@@ -1,0 +1,161 @@
+"""What one clamped field point does: the zero-field reference
+(:func:`compute_reference`) and every other point (:func:`compute_point`):
+the SCF (solver), the state checks, the correlated energy, the dipole and its
+convergence error, the analytic polarizability where asked.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import logging
+import time
+
+import numpy as np
+
+from fieldprop.backend.context import ModelContext
+from fieldprop.backend.correlated import _correlated_energy
+from fieldprop.backend.orbital_hessian import _has_hessian, _orbital_hessian
+from fieldprop.backend.orientation import (MAX_ORIENTATION_DRIFT, _constraint_values,
+                                           orientation_record)
+from fieldprop.backend.response import _dipole_error, _scf_dipole, analytic_polarizability
+from fieldprop.backend.solver import _converge, _gradient_norm, _rotation_from_reference, field_key
+from fieldprop.backend.states import _orbital_sets, _s2, state_issues, symmetry_operations
+from fieldprop.numerics.methods import METHODS
+from fieldprop.points.records import PointRecord, PointTask, ZeroFieldReference
+
+logger = logging.getLogger(__name__)
+
+
+#: Relative residual of the zero-field response rotations: they only start the
+#: points (an error of 1e-6 of a first-order term is far below what Newton removes).
+START_RTOL = 1e-6
+
+
+def compute_reference(context: ModelContext,
+                      task: PointTask) -> tuple[PointRecord, ZeroFieldReference]:
+    """Compute the zero-field point from scratch, and the reference it gives every
+    other point: density, orbitals, <S^2>, the symmetry operations its state has
+    (the state checks) and the orbitals' linear response to a field (the start
+    of every point). Attaches the reference to ``context``.
+
+    Raises
+    ------
+    ScfNotConvergedError : the SCF (or CC) never converged.
+    """
+    if not task.is_zero_field:
+        raise ValueError(f"the reference is computed at zero field, not at {task.point.label}")
+    record, mf = _evaluate(context, task)
+    reference = ZeroFieldReference(np.asarray(mf.make_rdm1()), _orbital_sets(mf), record.s2,
+                                   symmetry_operations(context.mol, mf),
+                                   np.asarray(mf.mo_coeff), np.asarray(mf.mo_occ))
+    context.attach(reference)
+    work = 0
+    if _has_hessian(mf):
+        # The start needs the rotations to a small fraction of a first-order
+        # term only: the Newton steps' (coarse-grid) response serves.
+        hessian = _orbital_hessian(mf, context.response, context.constraints)
+        rotations = np.array([hessian.solve(-hessian.vo(context.r[j]), START_RTOL,
+                                            "zero-field response") for j in range(3)])
+        work = hessian.products
+        reference = dataclasses.replace(reference, field_rotations=rotations)
+        context.reference = reference  # the same orbitals: the response stays valid
+    record = dataclasses.replace(record, scf_cycles=record.scf_cycles + work,
+                                 orientation=orientation_record(context, mf))
+    return record, reference
+
+
+def compute_point(context: ModelContext, task: PointTask, solved=None) -> PointRecord:
+    """Compute one field point from the context's zero-field reference: SCF
+    (response, mirror or line start and Newton finish, or the ladder), state
+    checks against the reference, post-HF. ``solved``: {field: rotation} of
+    points converged elsewhere (another worker), for the start; the point's
+    own converged rotation joins ``context.solved``.
+
+    A point on another state than zero field's (occupied overlap, <S^2>,
+    occupation by symmetry) is returned with ``state_issue`` set; the analysis
+    leaves it out of every derivative.
+
+    Raises
+    ------
+    ScfNotConvergedError : the SCF (or CC) never converged.
+    """
+    if context.reference is None:
+        raise ValueError("compute the zero-field reference first (compute_reference)")
+    if solved:
+        context.solved.update(solved)
+    record, mf = _evaluate(context, task)
+    ref = context.reference
+    if (ref.mo_coeff is not None and mf.mo_coeff is not None and not record.state_issue
+            and np.asarray(mf.mo_occ).shape == np.asarray(ref.mo_occ).shape):
+        context.solved[field_key(task.point.field_vector_au)] = _rotation_from_reference(
+            ref.mo_coeff, ref.mo_occ, np.asarray(mf.mo_coeff), context.overlap)
+    return record
+
+
+def _evaluate(context: ModelContext, task: PointTask):
+    start = time.perf_counter()
+    molecule, model, point = task.molecule, task.model, task.point
+    reference = context.reference
+    mf = context.mean_field(point.field_vector_au)
+    r, mol = context.r, context.mol
+    attempts, cycles, fock = _converge(mf, context, point, task.scf)
+    occupied, s2 = _orbital_sets(mf), _s2(mf)
+    overlap, issues = 1.0, []
+    if reference is not None:
+        for c_ref, c in zip(reference.occupied, occupied):
+            if c.shape[1] != c_ref.shape[1]:
+                overlap = 0.0
+                break
+            if c.shape[1]:
+                overlap = min(overlap, float(np.linalg.svd(c_ref.T @ context.overlap @ c,
+                                                           compute_uv=False).min()))
+        issues = state_issues(reference, point.field_vector_au, occupied, s2, overlap)
+        if context.constraints:
+            drift = float(np.abs(_constraint_values(context.constraints,
+                                                    np.asarray(mf.make_rdm1()))).max())
+            if drift > MAX_ORIENTATION_DRIFT:
+                issues.append(f"the state turned by {drift:.1e} rad about the molecule's "
+                              f"rotation axis from its zero-field orientation")
+        if issues:
+            logger.debug("point %s is on another state: %s", point.label, "; ".join(issues))
+    want = task.quantities
+    dipole = tuple(float(v) for v in _scf_dipole(mf, r, molecule)) if want.dipole else None
+    energy, correlation_change, amplitude_change = (
+        (float(mf.e_tot), None, None) if METHODS[model.method].mean_field
+        else _correlated_energy(mf, model, task.scf, point.label))
+    # One Fock build serves the gradient and the dipole's error estimate: the
+    # Newton steps' own, when they ended the SCF. A one-electron system has no
+    # electron-electron terms (PySCF's HF1e): its Fock matrix is the core
+    # Hamiltonian, and the generic build would compute two-electron integrals
+    # for nothing.
+    if mol.nelectron == 1:
+        h = mf.get_hcore()
+        fock = np.array([h, h]) if np.asarray(mf.mo_occ).ndim == 2 else h
+    elif fock is None:
+        fock = mf.get_fock()
+    constraints = context.constraints
+    gradient = _gradient_norm(mf, fock, constraints)
+    dipole_error = 0.0
+    if want.dipole:
+        dipole_error = _dipole_error(mf, r, fock, want.newton_dipole_error,
+                                     constraints, context.response)
+    alpha = None
+    if want.alpha:
+        alpha = tuple(tuple(float(v) for v in row)
+                      for row in analytic_polarizability(mf, r, constraints))
+    record = PointRecord(point, energy, float(mf.e_tot), dipole, cycles, tuple(attempts), s2,
+                         overlap, gradient, alpha, dipole_error, "; ".join(issues),
+                         time.perf_counter() - start, _energy_scale(mf),
+                         correlation_energy_change_au=correlation_change,
+                         amplitude_change=amplitude_change)
+    return record, mf
+
+
+def _energy_scale(mf) -> float:
+    """|E_1| + |E_2| + |E_nuc| of the converged SCF (E_2 = E - E_1 - E_nuc):
+    the energy is their difference, and its rounding follows their size."""
+    dm = np.asarray(mf.make_rdm1())
+    h = mf.get_hcore()
+    e1 = float(np.sum(h * np.swapaxes(dm, -1, -2)))
+    e_nuc = float(mf.energy_nuc())
+    return abs(e1) + abs(float(mf.e_tot) - e1 - e_nuc) + abs(e_nuc)
