@@ -343,7 +343,10 @@ def compute_relaxed_point(context: ModelContext, task: PointTask) -> PointRecord
         dipole_error = _dipole_error(mf, r, mf.get_fock(), want.newton_dipole_error)
     document = relaxed.document()
     document["gradients"] = evaluate.gradients
-    return PointRecord(point, float(relaxed.evaluation.energy_au), float(mf.e_tot), dipole,
-                       evaluate.cycles, tuple(evaluate.attempts), s2, overlap, g, None,
-                       dipole_error, "; ".join(issues), time.perf_counter() - start,
-                       _energy_scale(mf), document)
+    return PointRecord(point=point, energy_au=float(relaxed.evaluation.energy_au),
+                       scf_energy_au=float(mf.e_tot), dipole_au=dipole,
+                       scf_cycles=evaluate.cycles, attempts=tuple(evaluate.attempts), s2=s2,
+                       occupied_overlap=overlap, gradient_norm=g, alpha_au=None,
+                       dipole_error_au=dipole_error, state_issue="; ".join(issues),
+                       wall_time_s=time.perf_counter() - start,
+                       energy_scale_au=_energy_scale(mf), relaxation=document)

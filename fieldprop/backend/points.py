@@ -143,9 +143,12 @@ def _evaluate(context: ModelContext, task: PointTask):
     if want.alpha:
         alpha = tuple(tuple(float(v) for v in row)
                       for row in analytic_polarizability(mf, r, constraints))
-    record = PointRecord(point, energy, float(mf.e_tot), dipole, cycles, tuple(attempts), s2,
-                         overlap, gradient, alpha, dipole_error, "; ".join(issues),
-                         time.perf_counter() - start, _energy_scale(mf),
+    record = PointRecord(point=point, energy_au=energy, scf_energy_au=float(mf.e_tot),
+                         dipole_au=dipole, scf_cycles=cycles, attempts=tuple(attempts), s2=s2,
+                         occupied_overlap=overlap, gradient_norm=gradient, alpha_au=alpha,
+                         dipole_error_au=dipole_error, state_issue="; ".join(issues),
+                         wall_time_s=time.perf_counter() - start,
+                         energy_scale_au=_energy_scale(mf),
                          correlation_energy_change_au=correlation_change,
                          amplitude_change=amplitude_change)
     return record, mf

@@ -489,9 +489,10 @@ def failed_points_error(prepared: Prepared, failures, retried: bool = False):
 def _placeholder(task: PointTask) -> PointRecord:
     """The record of a point not computed: NaN everywhere, never differentiated."""
     nan = math.nan
-    return PointRecord(task.point, nan, nan, (nan,) * 3 if task.quantities.dipole else None, 0,
-                       ("missing",), nan, nan, nan,
-                       ((nan,) * 3,) * 3 if task.quantities.alpha else None)
+    return PointRecord(point=task.point, energy_au=nan, scf_energy_au=nan,
+                       dipole_au=(nan,) * 3 if task.quantities.dipole else None, scf_cycles=0,
+                       attempts=("missing",), s2=nan, occupied_overlap=nan, gradient_norm=nan,
+                       alpha_au=((nan,) * 3,) * 3 if task.quantities.alpha else None)
 
 
 def _in_frame(records, frame) -> tuple[PointRecord, ...]:
