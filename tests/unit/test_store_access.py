@@ -217,3 +217,14 @@ def test_every_field_of_a_record_has_its_column():
     assert set(store_module._RECORD_COLUMNS) == names
     for name in names:
         assert f"    {name} " in store_module._SCHEMA, name
+
+
+def test_a_point_line_carries_every_field_the_store_keeps():
+    """Point lines check each record field's JSON kind; their table names
+    exactly the store's record columns (which PointRecord's fields define), so
+    a field added to the record cannot be dropped from point lines unseen."""
+    from fieldprop.points import pointlines
+    from fieldprop.points import store as store_module
+
+    assert set(pointlines._RECORD) | set(pointlines._OPTIONAL) == set(
+        store_module._RECORD_COLUMNS)
