@@ -224,16 +224,6 @@ class JobWork:
         return [self.failed[t.key] for t in self.stage_tasks()
                 if t.key in self.failed and not self.wanted(t) and t.key not in self.found]
 
-    def clamped_records(self) -> dict:
-        """{task key: record} of the clamped points (relaxed ones left out)."""
-        relaxed = self.relaxed_keys()
-        return {k: r for k, r in self.found.items() if k not in relaxed}
-
-    def relaxed_keys(self) -> set:
-        if not self.prepared.job.response.nuclear_relaxation or not self.prepared.settled:
-            return set()
-        return {t.key for t in relaxed_tasks(self.prepared)[1:]}
-
     def counts(self):
         """The clamped points' PointCounts: used by the analysis, computed now,
         reused from the records at hand."""
