@@ -31,8 +31,18 @@ from typing import IO, Iterator
 def replacing(path: Path, binary: bool = False, newline: str | None = None) -> Iterator[IO]:
     """A file object whose contents replace ``path`` when the block ends
     without an exception (text in UTF-8, or ``binary``; ``newline`` as for
-    :func:`open`). The temporary file is ``.<name>.<random>.tmp`` beside it."""
-    path = Path(path)
+    :func:`open`). The temporary file is ``.<name>.<random>.tmp`` beside it.
+
+    A symbolic link is followed (the file it names is replaced, the link
+    kept); a target that is not a regular file (``/dev/null``, a named pipe,
+    a terminal) is written directly, since renaming over it would replace the
+    device or pipe with an ordinary file."""
+    path = Path(os.path.realpath(path))
+    if path.exists() and not path.is_file():
+        with (open(path, "wb") if binary else
+              open(path, "w", encoding="utf-8", newline=newline)) as fh:
+            yield fh
+        return
     folder = path.parent if str(path.parent) else Path(".")
     fd, tmp = tempfile.mkstemp(dir=folder, prefix=f".{path.name}.", suffix=".tmp")
     try:

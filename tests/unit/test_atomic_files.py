@@ -165,3 +165,32 @@ def test_an_exception_inside_the_block_leaves_no_temporary(tmp_path):
             raise KeyboardInterrupt
     assert path.read_text() == "old\n"
     assert sorted(p.name for p in tmp_path.iterdir()) == ["out.txt"]
+
+
+def test_a_device_a_pipe_or_a_link_is_not_replaced_by_a_file(tmp_path):
+    """``--json /dev/null`` must not turn the device into a file (as root it
+    could), a named pipe's reader must get the document, and a symbolic link
+    keeps pointing at the file it names, which gets the new contents."""
+    import stat
+    import threading
+
+    from fieldprop.outputs import files as atomic_files
+
+    with atomic_files.replacing("/dev/null") as fh:
+        fh.write("thrown away\n")
+    assert stat.S_ISCHR(os.stat("/dev/null").st_mode)
+    fifo = tmp_path / "pipe"
+    os.mkfifo(fifo)
+    got = []
+    reader = threading.Thread(target=lambda: got.append(fifo.read_text()))
+    reader.start()
+    with atomic_files.replacing(fifo) as fh:
+        fh.write("through the pipe\n")
+    reader.join(timeout=10)
+    assert got == ["through the pipe\n"] and stat.S_ISFIFO(os.stat(fifo).st_mode)
+    real, link = tmp_path / "real.json", tmp_path / "link.json"
+    real.write_text("old\n")
+    link.symlink_to(real)
+    with atomic_files.replacing(link) as fh:
+        fh.write("new\n")
+    assert link.is_symlink() and real.read_text() == "new\n"
