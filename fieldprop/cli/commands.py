@@ -492,6 +492,8 @@ def cmd_point(args) -> int:
             set_threads(threads)
             with threadpool_limits(threads):
                 compute_jobs([work], store, InProcess())
+        if work.failure is not None:  # the zero-field point failed: nothing could start
+            raise work.failure
         failed = []
         for t in targets:
             if t in todo:

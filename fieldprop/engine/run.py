@@ -166,6 +166,8 @@ def collect(job: Job, store=None, route: Route | str | None = None, lines=None,
     # What is missing and what failed, as the stage engine sees them (no retry:
     # collect computes nothing).
     work = JobWork.at_hand(prepared, rows)
+    if zero.key in work.failed and zero.key not in work.found:
+        raise failed_points_error(prepared, [work.failed[zero.key]])
     missing = [t for t in prepared.computed_tasks if work.wanted(t)]
     if missing and not allow_partial:
         ids = " ".join(short_id(t.key) for t in missing[:8])

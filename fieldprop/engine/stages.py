@@ -292,6 +292,11 @@ def _references(works: list[JobWork], store, executor, progress: Progress) -> No
         pending = {}
         for work in waiting:
             zero = work.prepared.tasks[0]
+            if zero.key in work.failed and not work.wanted(zero):
+                # A zero field stored as failed is not computed again unasked:
+                # no point of the job can start.
+                _fail(work, _error_of(work, [work.failed[zero.key]]), progress)
+                continue
             model = store.get_model(zero.model_key)
             if model is not None:
                 refuse_another_backend(store, zero, model[1])

@@ -216,3 +216,33 @@ def test_points_of_another_backend_version_are_not_mixed_into_one_table(tmp_path
     assert len(lines) == 1 and lines[0].startswith("fieldprop: error: bad input: "), err
     assert old in lines[0] and new in lines[0] and str(store_path) in lines[0], lines[0]
     assert stored() == (count, facts)
+
+
+def test_a_zero_field_stored_as_failed_stops_every_entrance_in_one_line(tmp_path, capsys,
+                                                                       monkeypatch):
+    """The zero-field point failed and was stored so: run, a job-array element
+    and collect each fail in one line naming it (no traceback, nothing else
+    computed), until --retry-failed asks for it again."""
+    from fieldprop.backend import points as backend_points
+    from fieldprop.errors import ScfNotConvergedError
+
+    real = backend_points.compute_reference
+
+    def stubborn(context, task):
+        raise ScfNotConvergedError(f"SCF did not converge at field point {task.point.label}")
+
+    write_job(tmp_path, "lih.toml", properties='["alpha"]')
+    job = str(tmp_path / "lih.toml")
+    monkeypatch.setattr(backend_points, "compute_reference", stubborn)
+    assert main(["run", job, "--quiet"]) == 1
+    capsys.readouterr()
+    monkeypatch.setattr(backend_points, "compute_reference", real)
+    assert main(["plan", job, "--ids"]) == 0
+    some_id = capsys.readouterr().out.split()[-1]
+    for argv in (["run", job, "--quiet"], ["point", job, "--zero-field", "--quiet"],
+                 ["point", job, "--id", some_id, "--quiet"], ["collect", job, "--quiet"]):
+        assert main(argv) == 1, argv
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and "did not converge" in err[0] and "Traceback" not in err[0]
+        assert "--retry-failed" in err[0] or argv[0] == "collect"
+    assert main(["run", job, "--quiet", "--retry-failed"]) == 0
