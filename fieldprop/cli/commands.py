@@ -464,7 +464,10 @@ def cmd_point(args) -> int:
             job = optimised(job, real, compute=True)
             prepared = prepare(job, facts=prepared.facts)
         targets = _targets(args, prepared, real)
-        rows = real.get_points(t.key for t in targets) if real is not None else {}
+        # The zero field too: every point starts from it (stored as failed, it
+        # is not computed again unasked).
+        rows = (real.get_points([prepared.tasks[0].key, *(t.key for t in targets)])
+                if real is not None else {})
         # The stage engine's policy: a stored point is not computed again, a
         # stored failure only with --retry-failed.
         work = JobWork.at_hand(prepared, rows, args.retry_failed, only=tuple(targets))
