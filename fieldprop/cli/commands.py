@@ -156,15 +156,16 @@ def cmd_run(args) -> int:
         raise InputError(f"--plot {args.plot}: folder is not writable; give another folder")
     prepared = prepare(job)
     bar, log_every = _progress(args)
-    with _open_store(args, args.job) as store:
-        prepared = _at_optimised_geometry(prepared, store, args.job)
-        prepared = _at_relaxation_minimum(prepared, store)
-        executor = _executor(args)
-        try:
-            result = run_prepared(prepared, store, progress=bar, retry_failed=args.retry_failed,
-                                  log_every_s=log_every, executor=executor)
-        finally:
-            executor.close()
+    executor = _executor(args)  # a scheduler that does not answer: before any file is made
+    try:
+        with _open_store(args, args.job) as store:
+            prepared = _at_optimised_geometry(prepared, store, args.job)
+            prepared = _at_relaxation_minimum(prepared, store)
+            result = run_prepared(prepared, store, progress=bar,
+                                  retry_failed=args.retry_failed, log_every_s=log_every,
+                                  executor=executor)
+    finally:
+        executor.close()
     # The file first: a closed stdout (``| head``) must not lose the result.
     if is_stdout(out_path):  # --json -: the JSON is the output, no tables
         _to_stdout(lambda: write_json_atomic(result_document(result), out_path))
@@ -215,10 +216,10 @@ def cmd_check(args) -> int:
                              "\"unrestricted\", or give --against FILE")
     progress, log_every = _progress(args)
     prepared = prepare(job)
+    executor = _executor(args)  # a scheduler that does not answer: before any file is made
     with _open_store(args, args.job) as store:
         prepared = _at_optimised_geometry(prepared, store, args.job)
         job = prepared.job
-        executor = _executor(args)
         try:
             result = run_prepared(prepared, store, progress=progress,
                                   retry_failed=args.retry_failed, log_every_s=log_every,

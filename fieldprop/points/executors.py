@@ -111,10 +111,16 @@ class DaskPool:
                  threads: int = 1, client=None):
         from distributed import Client
 
+        if scheduler_file and client is None and not os.path.isfile(scheduler_file):
+            # Dask waits for a scheduler file to appear, for ever: a typo would
+            # spend a batch job's whole wall time.
+            raise InputError(f"--scheduler-file {scheduler_file}: no such file (the file a "
+                             "Dask scheduler writes when started with --scheduler-file)")
         try:
             self.client = client or (Client(scheduler_file=scheduler_file, timeout="20s")
                                      if scheduler_file else Client(address, timeout="20s"))
-        except (OSError, TimeoutError, ValueError) as exc:
+        except (OSError, TimeoutError, ValueError, KeyError, TypeError,
+                AssertionError) as exc:  # a scheduler file of other content: Dask asserts
             where = scheduler_file or address
             option = "--scheduler-file" if scheduler_file else "--scheduler"
             raise InputError(f"{option} {where}: no Dask scheduler answered "

@@ -303,3 +303,23 @@ def test_every_command_has_worked_examples_and_the_exit_codes_are_listed():
     for name, sub in commands.choices.items():
         assert "examples:" in (sub.epilog or ""), name
         assert f"fieldprop {name} " in sub.epilog, name
+
+
+@pytest.mark.parametrize("content", [None, "garbage", "{}"],
+                         ids=["missing", "not json", "no address"])
+def test_a_scheduler_file_that_names_no_scheduler_is_one_line(tmp_path, content):
+    """A missing scheduler file (Dask would wait for it for ever) or one of
+    other content (Dask asserts): one line naming the option, exit 2, nothing
+    computed or written."""
+    (tmp_path / "lih.toml").write_text(JOB)
+    path = tmp_path / "scheduler.json"
+    if content is not None:
+        path.write_text(content)
+    done = fieldprop("run", "lih.toml", "--scheduler-file", str(path), cwd=tmp_path,
+                     timeout=120)
+    assert done.returncode == 2, done.stderr
+    lines = done.stderr.strip().splitlines()
+    assert lines[-1].startswith("fieldprop: error: bad input: --scheduler-file"), lines
+    assert "Traceback" not in done.stderr
+    assert sorted(p.name for p in tmp_path.iterdir()) == sorted(
+        ["lih.toml"] + (["scheduler.json"] if content is not None else []))
