@@ -202,6 +202,18 @@ def _relaxation_document(part) -> dict:
     }
 
 
+def _job_echo(result: RunResult) -> dict:
+    """The job as understood (Job.to_dict), its derived nuclei the ones
+    computed: with symmetry = "symmetrise" the moved ones, as in
+    geometry_computed_bohr."""
+    echo = result.job.to_dict()
+    molecule = echo.get("derived", {}).get("molecule")
+    if molecule is not None and "atoms" in molecule:
+        molecule["atoms"] = [{"symbol": symbol, "coords_bohr": list(xyz)} for symbol, xyz
+                             in zip(result.molecule.symbols, result.molecule.coords_bohr)]
+    return echo
+
+
 def result_document(result: RunResult) -> dict[str, Any]:
     """The result JSON of the contract (schema fieldprop-result-1), with extensions."""
     tensors = _tensors_document(result, result.tensors, averages=result.averages)
@@ -212,7 +224,7 @@ def result_document(result: RunResult) -> dict[str, Any]:
         "version": __version__,
         "units": "au",
         "convention": "taylor",
-        "job": result.job.to_dict(),
+        "job": _job_echo(result),
         "formula": result.molecule.formula,
         "origin_bohr": list(result.molecule.origin_bohr),
         "geometry_computed_bohr": [{"symbol": symbol, "coords_bohr": list(xyz)} for symbol, xyz

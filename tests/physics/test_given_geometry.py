@@ -182,9 +182,13 @@ def test_symmetrise_moves_the_geometry_onto_its_group_and_says_so(tmp_path, caps
     assert "geometry symmetrised" in captured.out
     assert any("moved by up to" in w for w in doc["warnings"])
     computed = np.array([a["coords_bohr"] for a in doc["geometry_computed_bohr"]])
-    given = np.array([a["coords_bohr"] for a in doc["job"]["derived"]["molecule"]["atoms"]])
+    given = np.array([[float(v) for v in line.split()[1:]]  # the job file's, echoed in bohr
+                      for line in doc["job"]["molecule"]["geometry"].splitlines()])
     moved = np.abs(computed - given).max()
     assert 1e-8 < moved < 1e-5 and moved <= doc["symmetry"]["geometry_moved_bohr"] * 1.01
+    # The job echo's derived nuclei are the ones computed, its input the given.
+    derived = [a["coords_bohr"] for a in doc["job"]["derived"]["molecule"]["atoms"]]
+    assert np.array_equal(np.array(derived), computed)
     # The nuclei computed are symmetric to round-off: the group holds as they stand.
     again = detect((8, 1, 1), computed)
     assert again is not None and again.exact
