@@ -96,7 +96,10 @@ translation or rotation); the job's geometry must be that minimum ([geometry] op
 INSPECT_EXAMPLES = """\
 examples:
   fieldprop inspect fieldprop-points.sqlite
-  fieldprop inspect fieldprop-points.sqlite --json-lines > points.jsonl   (collect --points reads it)
+  fieldprop inspect fieldprop-points.sqlite --json-lines > points.jsonl
+      every point of every job in the store; collect --points refuses lines of points
+      outside its job's plan, so keep a job's own (its ids: fieldprop plan JOB --ids):
+  fieldprop inspect fieldprop-points.sqlite --json-lines | grep -F -f <(fieldprop plan job.toml --ids) > job.jsonl
 """
 
 PLAN_EXAMPLES = """\
