@@ -137,19 +137,28 @@ def default_workers() -> int:
         return max(1, os.cpu_count() or 1)
 
 
+def _result_path(args) -> Path:
+    """Where run and collect write the result JSON (--json, default beside the
+    job), refused before any work when it is the job file or not writable."""
+    from fieldprop.outputs.documents import check_output_path, is_stdout
+
+    out_path = args.json if args.json is not None else default_result_path(args.job)
+    if not is_stdout(out_path) and out_path.resolve() == args.job.resolve():
+        raise InputError(f"--json {out_path}: is the job file itself; give another path")
+    check_output_path(out_path)
+    return out_path
+
+
 def cmd_run(args) -> int:
     from fieldprop.engine.analyse import require_stable
     from fieldprop.engine.prepare import prepare
     from fieldprop.engine.run import run_prepared
     from fieldprop.inputs.job import load_job
-    from fieldprop.outputs.documents import (check_output_path, is_stdout, result_document,
+    from fieldprop.outputs.documents import (is_stdout, result_document,
                                              write_json_atomic)
 
     job = load_job(args.job)
-    out_path = args.json if args.json is not None else default_result_path(args.job)
-    if not is_stdout(out_path) and out_path.resolve() == args.job.resolve():
-        raise InputError(f"--json {out_path}: is the job file itself; give another path")
-    check_output_path(out_path)
+    out_path = _result_path(args)
     if args.plot is not None and not args.plot.is_dir():
         raise InputError(f"--plot {args.plot}: is not an existing folder; create it first")
     if args.plot is not None and not os.access(args.plot, os.W_OK | os.X_OK):
@@ -541,15 +550,12 @@ def cmd_collect(args) -> int:
     from fieldprop.engine.analyse import require_stable
     from fieldprop.engine.run import collect
     from fieldprop.inputs.job import load_job
-    from fieldprop.outputs.documents import (check_output_path, is_stdout, result_document,
+    from fieldprop.outputs.documents import (is_stdout, result_document,
                                              write_json_atomic)
     from fieldprop.points.store import PointStore, default_store_path
 
     job = load_job(args.job)
-    out_path = args.json if args.json is not None else default_result_path(args.job)
-    if not is_stdout(out_path) and out_path.resolve() == args.job.resolve():
-        raise InputError(f"--json {out_path}: is the job file itself; give another path")
-    check_output_path(out_path)
+    out_path = _result_path(args)
     lines = _read_point_lines(args.points)
     path = args.store if args.store is not None else default_store_path(args.job)
     if not path.exists() and lines is None:
