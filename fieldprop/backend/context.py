@@ -24,6 +24,16 @@ from fieldprop.backend.orientation import orientation_constraints
 from fieldprop.points.records import ZeroFieldReference
 
 
+def _orbital_energies(mf):
+    """The diagonal of the Fock matrix in orbitals mf.mo_coeff (semi-canonical
+    zero-field orbitals: their energies)."""
+    fock = mf.get_fock()
+    c = np.asarray(mf.mo_coeff)
+    if c.ndim == 3:
+        return np.array([np.einsum("pi,pq,qi->i", c[k], fock[k], c[k]) for k in range(2)])
+    return np.einsum("pi,pq,qi->i", c, fock, c)
+
+
 def _apply_field(mf, context, field_vector_au) -> None:
     """Add -mu_op.F to the Hamiltonian of ``mf``, measured from the job's origin
     (the dipole integrals and the field-free core Hamiltonian come from the
@@ -88,6 +98,7 @@ class ModelContext:
         self.reference = reference
         self.solved = {}
         self.__dict__.pop("response", None)
+        self.__dict__.pop("subspace", None)
         self.constraints = ()
         if reference.mo_coeff is not None:
             self.template.mo_coeff = reference.mo_coeff
@@ -118,6 +129,26 @@ class ModelContext:
             solver.grids.verbose = 0
             solver.grids.build()
         return response_function(solver)
+
+    @functools.cached_property
+    def subspace(self):
+        """The ResponseSubspace that deflates the Newton steps' solves: the
+        reference's own, or (a reference read from a store, which does not
+        keep it) its zero-field response solved again here, once per
+        process. None without an orbital Hessian."""
+        from fieldprop.backend.orbital_hessian import ResponseSubspace
+        from fieldprop.backend.response import zero_field_response
+
+        ref = self.reference
+        if ref is None or ref.mo_coeff is None or not _has_hessian(self.template):
+            return None
+        if ref.response_subspace is not None:
+            return ResponseSubspace(ref.mo_coeff, ref.mo_occ, *ref.response_subspace)
+        mf = copy.copy(self.template)
+        mf._eri, mf._opt = self.template._eri, self.template._opt
+        mf.mo_coeff, mf.mo_occ = ref.mo_coeff, ref.mo_occ
+        mf.mo_energy = _orbital_energies(mf)
+        return zero_field_response(mf, self)[1]
 
     def mean_field(self, field_vector_au):
         """A mean-field object for one field point, sharing the context's integrals."""

@@ -18,7 +18,7 @@ from fieldprop.errors import ScfNotConvergedError
 
 
 #: A CG solve counts as converged when its true residual is within this many
-#: times the tolerance asked: SciPy's cg checks its own recursively updated
+#: times the tolerance asked: the iteration checks its own recursively updated
 #: residual, which drifts from the true one by rounding; a residual 10x over
 #: means the solve stalled (a near-zero mode), not rounding.
 CG_RESIDUAL_SLACK = 10
@@ -90,6 +90,116 @@ CG_MAX_ITERATIONS = 150
 SINGULAR_SHIFT = 1e-4
 
 
+def _pcg(operator, precondition, b, rtol: float, keep=None) -> tuple[np.ndarray, bool]:
+    """Preconditioned conjugate gradients for operator(x) = b from x = 0, to
+    |r| <= rtol |b| (the recursively updated residual); returns (x, converged).
+    Written out (not SciPy's cg) for its search directions and their
+    products, which ``keep`` receives (normalised) for a later deflation.
+    A non-positive curvature p.Ap (an unstable or singular Hessian) ends it
+    unconverged."""
+    x = np.zeros_like(b)
+    r = b.copy()
+    z = precondition(r)
+    p = z.copy()
+    rz = float(r @ z)
+    goal = rtol * float(np.linalg.norm(b))
+    for _ in range(CG_MAX_ITERATIONS):
+        ap = operator(p)
+        curvature = float(p @ ap)
+        if not curvature > 0.0:
+            return x, False
+        if keep is not None:
+            scale = 1.0 / float(np.linalg.norm(p))
+            keep.append((p * scale, ap * scale))
+        step = rz / curvature
+        x = x + step * p
+        r = r - step * ap
+        if np.linalg.norm(r) <= goal:
+            return x, True
+        z = precondition(r)
+        rz, previous = float(r @ z), rz
+        p = z + (rz / previous) * p
+    return x, False
+
+
+#: Eigenvalues of a deflation subspace's projected Hessian W^T A W below this
+#: share of the largest are left out: its directions (from several solves, or
+#: turned into another orbital basis) can be nearly dependent, and inverting
+#: such a mode would amplify rounding instead of removing a slow one.
+DEFLATION_CUTOFF = 1e-10
+
+
+def _deflated(diagonal, w, z):
+    """A preconditioner that deflates the span of the rows of ``w``
+    (directions), given their products ``z`` with this Hessian or one close
+    to it, around the diagonal one ``diagonal`` (D^-1): with E = W Z^T
+    (symmetrised), Q = W^T E^-1 W and P = I - Z^T E^-1 W,
+    M = Q + P^T D^-1 P. Symmetric and positive definite whatever Z is (only
+    E's positive modes are kept), so the conjugate gradients stay exact;
+    where Z is the Hessian's own product, the span's eigenvalues leave the
+    iteration (deflation after Nicolaides, in the balanced form of Mandel's
+    balancing Neumann-Neumann preconditioner)."""
+    e = w @ z.T
+    values, vectors = np.linalg.eigh(0.5 * (e + e.T))
+    kept = values > DEFLATION_CUTOFF * max(float(values.max(initial=0.0)), 0.0)
+    if not kept.any():
+        return diagonal
+    inverse = (vectors[:, kept] / values[kept]) @ vectors[:, kept].T
+
+    def apply(v):
+        coefficients = inverse @ (w @ v)
+        y = diagonal(v - z.T @ coefficients)
+        return w.T @ coefficients + y - w.T @ (inverse @ (z @ y))
+
+    return apply
+
+
+class ResponseSubspace:
+    """Directions of the zero-field orbital Hessian's conjugate-gradient
+    solves (rows of ``directions``) and their products with it (``products``),
+    in the layout of the zero-field orbitals ``mo_coeff``, ``mo_occ``: the
+    slow modes a field point's Newton steps meet again. :meth:`mapped` turns
+    them into another set of orbitals' layout (a field point's), where they
+    deflate the Newton steps' solves (_deflated)."""
+
+    def __init__(self, mo_coeff, mo_occ, directions, products):
+        self.mo_coeff, self.mo_occ = np.asarray(mo_coeff), np.asarray(mo_occ)
+        self.directions, self.products = np.asarray(directions), np.asarray(products)
+
+    @classmethod
+    def from_pairs(cls, mo_coeff, mo_occ, pairs) -> "ResponseSubspace | None":
+        if not pairs:
+            return None
+        return cls(mo_coeff, mo_occ, np.array([p for p, _ in pairs]),
+                   np.array([q for _, q in pairs]))
+
+    def mapped(self, hessian, overlap):
+        """(W, Z) in ``hessian``'s layout: each occupied-virtual block turned by
+        the overlaps of its orbitals with the zero-field ones, T_v x T_o^T
+        (the field's O(F) mixing of occupied and virtual orbitals is left
+        out: the preconditioner need not be exact). None where the layouts
+        differ or for a restricted open shell (its pairs are not blocks)."""
+        if not isinstance(hessian, _OrbitalHessian) or _restricted_open(self.mo_occ):
+            return None
+        sets = [self.mo_coeff] if self.mo_occ.ndim == 1 else list(self.mo_coeff)
+        occs = [self.mo_occ] if self.mo_occ.ndim == 1 else list(self.mo_occ)
+        if len(sets) != len(hessian.blocks):
+            return None
+        k = self.directions.shape[0]
+        w_parts, z_parts, start = [], [], 0
+        for c0, occ, (co, cv, de) in zip(sets, occs, hessian.blocks):
+            o0, v0 = c0[:, occ > 0], c0[:, occ == 0]
+            if (v0.shape[1], o0.shape[1]) != de.shape:
+                return None
+            t_o, t_v = co.T @ overlap @ o0, cv.T @ overlap @ v0
+            size = de.size
+            for source, parts in ((self.directions, w_parts), (self.products, z_parts)):
+                block = source[:, start:start + size].reshape(k, *de.shape)
+                parts.append((t_v @ block @ t_o.T).reshape(k, size))
+            start += size
+        return np.concatenate(w_parts, axis=1), np.concatenate(z_parts, axis=1)
+
+
 class _HessianSolver:
     """What the orbital Hessians share: the orientation constraints, the
     projected, preconditioned conjugate-gradient solve and the dipole change of
@@ -112,11 +222,12 @@ class _HessianSolver:
         x = np.asarray(x).ravel()
         return x - self._q @ (self._q.T @ x) if self._q.shape[1] else x
 
-    def solve(self, rhs, rtol: float, what: str) -> np.ndarray:
+    def solve(self, rhs, rtol: float, what: str, subspace=None, keep=None,
+              verify: bool = True) -> np.ndarray:
         """x with H x = rhs, to relative residual ``rtol``.
 
-        Preconditioned conjugate gradients (the Hessian of a stable SCF is
-        positive definite), in the space orthogonal to the constraints'
+        Preconditioned conjugate gradients (_pcg; the Hessian of a stable SCF
+        is positive definite), in the space orthogonal to the constraints'
         gradients (an orientation constraint: orientation_constraints). A
         Hessian with a (near-)zero mode, such as the rotation of a degenerate
         open shell's unpaired orbital about the axis of a linear molecule (OH,
@@ -124,28 +235,37 @@ class _HessianSolver:
         shifted by SINGULAR_SHIFT, which leaves the other modes' share of x
         changed by a relative SINGULAR_SHIFT / their eigenvalue (~1e-4 for
         eigenvalues ~ the orbital-energy gaps).
-        """
-        from scipy.sparse.linalg import LinearOperator, cg
 
+        ``subspace``: (W, Z), rows directions and their products with a
+        Hessian close to this one (ResponseSubspace.mapped): the
+        preconditioner deflates them (_deflated). ``keep``: a list that
+        receives the (direction, product) pairs of the solve, normalised.
+        ``verify``: check the true residual once converged (one more
+        product); a Newton step, whose result the next exact gradient
+        judges, need not.
+        """
         rhs = self.project(rhs)
         norm = np.linalg.norm(rhs)
         if norm == 0.0:
             return np.zeros_like(rhs)
-        n = self.diagonal.size
         b = rhs / norm
         residual = np.inf
         project = self.project
         for sigma in (0.0, SINGULAR_SHIFT):
-            operator = LinearOperator(
-                (n, n), matvec=lambda v, s=sigma: project(self.matvec(project(v))) + s * v,
-                dtype=float)
-            precondition = LinearOperator(
-                (n, n), matvec=lambda v, s=sigma: project(project(v) / (self.diagonal + s)),
-                dtype=float)
-            x, info = cg(operator, b, rtol=rtol, atol=0.0, M=precondition,
-                         maxiter=CG_MAX_ITERATIONS)
-            residual = np.linalg.norm(operator.matvec(x) - b)
-            if info == 0 and residual <= CG_RESIDUAL_SLACK * rtol:
+            def operator(v, s=sigma):
+                return project(self.matvec(project(v))) + s * v
+
+            def diagonal(v, s=sigma):
+                return project(project(v) / (self.diagonal + s))
+
+            deflate = sigma == 0.0 and subspace is not None and not self._q.shape[1]
+            precondition = _deflated(diagonal, *subspace) if deflate else diagonal
+            x, converged = _pcg(operator, precondition, b, rtol,
+                                keep if sigma == 0.0 else None)
+            if converged and not verify:
+                return x * norm
+            residual = np.linalg.norm(operator(x) - b)
+            if converged and residual <= CG_RESIDUAL_SLACK * rtol:
                 return x * norm
         raise ScfNotConvergedError(f"{what} did not converge (residual {residual:.1e}); "
                                    "the SCF may be unstable")

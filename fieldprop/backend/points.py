@@ -14,21 +14,17 @@ import numpy as np
 
 from fieldprop.backend.context import ModelContext
 from fieldprop.backend.correlated import _correlated_energy
-from fieldprop.backend.orbital_hessian import _has_hessian, _orbital_hessian
+from fieldprop.backend.orbital_hessian import _has_hessian
 from fieldprop.backend.orientation import (MAX_ORIENTATION_DRIFT, _constraint_values,
                                            orientation_record)
-from fieldprop.backend.response import _dipole_error, _scf_dipole, analytic_polarizability
+from fieldprop.backend.response import (_dipole_error, _scf_dipole, analytic_polarizability,
+                                        zero_field_response)
 from fieldprop.backend.solver import _converge, _gradient_norm, _rotation_from_reference, field_key
 from fieldprop.backend.states import _orbital_sets, _s2, state_issues, symmetry_operations
 from fieldprop.numerics.methods import METHODS
 from fieldprop.points.records import PointRecord, PointTask, ZeroFieldReference
 
 logger = logging.getLogger(__name__)
-
-
-#: Relative residual of the zero-field response rotations: they only start the
-#: points (an error of 1e-6 of a first-order term is far below what Newton removes).
-START_RTOL = 1e-6
 
 
 def compute_reference(context: ModelContext,
@@ -45,19 +41,19 @@ def compute_reference(context: ModelContext,
     if not task.is_zero_field:
         raise ValueError(f"the reference is computed at zero field, not at {task.point.label}")
     record, mf = _evaluate(context, task)
+    target = (task.scf or context.scf).gradient_conv_tol
     reference = ZeroFieldReference(np.asarray(mf.make_rdm1()), _orbital_sets(mf), record.s2,
                                    symmetry_operations(context.mol, mf),
-                                   np.asarray(mf.mo_coeff), np.asarray(mf.mo_occ))
+                                   np.asarray(mf.mo_coeff), np.asarray(mf.mo_occ),
+                                   gradient_floor=(record.gradient_norm
+                                                   if record.gradient_norm > target else 0.0))
     context.attach(reference)
     work = 0
     if _has_hessian(mf):
-        # The start needs the rotations to a small fraction of a first-order
-        # term only: the Newton steps' (coarse-grid) response serves.
-        hessian = _orbital_hessian(mf, context.response, context.constraints)
-        rotations = np.array([hessian.solve(-hessian.vo(context.r[j]), START_RTOL,
-                                            "zero-field response") for j in range(3)])
-        work = hessian.products
-        reference = dataclasses.replace(reference, field_rotations=rotations)
+        rotations, pairs, work = zero_field_response(mf, context)
+        reference = dataclasses.replace(
+            reference, field_rotations=rotations,
+            response_subspace=(pairs.directions, pairs.products) if pairs else None)
         context.reference = reference  # the same orbitals: the response stays valid
     record = dataclasses.replace(record, scf_cycles=record.scf_cycles + work,
                                  orientation=orientation_record(context, mf))

@@ -7,7 +7,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from fieldprop.backend.orbital_hessian import _orbital_hessian, _restricted_open
+from fieldprop.backend.orbital_hessian import (ResponseSubspace, _orbital_hessian,
+                                               _restricted_open)
 from fieldprop.points.records import CPHF_RTOL
 
 
@@ -35,6 +36,26 @@ def _dipole_error(mf, r, fock, dipole_route: bool, constraints=(), response=None
     if dipole_route and (occ.ndim == 2 or _restricted_open(occ)):
         return float(np.linalg.norm(newton_dipole_step(mf, r, fock, constraints, response)))
     return float(np.linalg.norm(diagonal_dipole_step(mf, r, fock, constraints)))
+
+
+#: Relative residual of the zero-field response rotations: they only start the
+#: points (an error of 1e-6 of a first-order term is far below what Newton removes).
+START_RTOL = 1e-6
+
+
+def zero_field_response(mf, context):
+    """The zero-field orbitals' linear response to a field along x, y and z
+    (3, n), the ResponseSubspace of their solves (None without one) and the
+    Hessian products spent. The Newton steps' response function serves
+    (context.response: for DFT a coarse-grid kernel): the rotations only start
+    the points, and the subspace only preconditions their steps."""
+    hessian = _orbital_hessian(mf, context.response, context.constraints)
+    pairs = []
+    rotations = np.array([hessian.solve(-hessian.vo(context.r[j]), START_RTOL,
+                                        "zero-field response", keep=pairs)
+                          for j in range(3)])
+    return rotations, ResponseSubspace.from_pairs(mf.mo_coeff, mf.mo_occ, pairs), \
+        hessian.products
 
 
 def analytic_polarizability(mf, r, constraints=()) -> np.ndarray:

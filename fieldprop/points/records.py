@@ -84,6 +84,14 @@ class ZeroFieldReference:
     block order of the backend's orbital Hessian; empty where there is none
     (one electron). A point at field F starts from the
     zero-field orbitals rotated by sum_j F_j kappa_j: exact to first order in F.
+    ``response_subspace``: (directions, products), rows: the search directions
+    of the solves that gave ``field_rotations`` and their products with the
+    orbital Hessian, which deflate the field points' Newton steps (carried to
+    the workers in memory; not stored: a process that reads the reference
+    from a store solves them again). ``gradient_floor``: the orbital gradient
+    at which the zero-field Newton steps stalled short of their target (the
+    floor double precision allows for this molecule and model; 0 where they
+    reached the target): field points aim no lower (solver._point_target).
     """
 
     density: np.ndarray
@@ -93,6 +101,8 @@ class ZeroFieldReference:
     mo_coeff: np.ndarray | None = None
     mo_occ: np.ndarray | None = None
     field_rotations: np.ndarray | None = None
+    response_subspace: tuple[np.ndarray, np.ndarray] | None = None
+    gradient_floor: float = 0.0
 
 
 @dataclass(frozen=True)

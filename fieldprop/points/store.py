@@ -256,6 +256,7 @@ def reference_to_bytes(reference: ZeroFieldReference) -> bytes:
         value = getattr(reference, name)
         if value is not None:
             arrays[name] = np.asarray(value)
+    arrays["gradient_floor"] = np.array(reference.gradient_floor)
     buffer = io.BytesIO()
     np.savez(buffer, **arrays)
     return buffer.getvalue()
@@ -271,6 +272,8 @@ def reference_from_bytes(blob: bytes) -> ZeroFieldReference:
                     for i, name in enumerate(names))
         extra = {name: data[name] for name in ("mo_coeff", "mo_occ", "field_rotations")
                  if name in data.files}
+        if "gradient_floor" in data.files:  # absent from stores written before it
+            extra["gradient_floor"] = float(data["gradient_floor"])
         return ZeroFieldReference(data["density"], occupied, float(data["s2"]), ops, **extra)
 
 

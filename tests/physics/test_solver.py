@@ -119,11 +119,11 @@ def test_a_stall_above_the_needed_gradient_fails_that_point_by_name(tmp_path, ca
         return np.allclose(mf.get_hcore(), context.hcore + np.einsum("x,xij->ij", target,
                                                                       context.r))
 
-    def newton(mf, context, c, occ, goal, constraints=()):
+    def newton(mf, context, c, occ, goal, constraints=(), accepted=0.0):
         if at_target(mf, context):  # no Newton step: the point keeps its start
             mf.mo_coeff, mf.mo_occ = c, occ
             return 0, backend_solver._gradient_norm(mf), None
-        return real_newton(mf, context, c, occ, goal, constraints)
+        return real_newton(mf, context, c, occ, goal, constraints, accepted)
 
     def ladder(mf, dm0, goal, attempts):
         if mf.mo_coeff is not None and at_target(mf, mf._fieldprop_context):
