@@ -90,6 +90,9 @@ class ModelContext:
         #: The orientation constraints of a reference that breaks a rotational
         #: symmetry of the molecule (orientation_constraints); empty otherwise.
         self.constraints: tuple[np.ndarray, ...] = ()
+        #: The orbital gradient from which the zero-field Newton steps stopped
+        #: halving it (solver._newton; 0 where they never stalled).
+        self.gradient_floor = 0.0
         if reference is not None:
             self.attach(reference)
 
@@ -97,6 +100,7 @@ class ModelContext:
         """Use ``reference`` as every later point's start and state reference."""
         self.reference = reference
         self.solved = {}
+        self.gradient_floor = reference.gradient_floor
         self.__dict__.pop("response", None)
         self.__dict__.pop("subspace", None)
         self.constraints = ()

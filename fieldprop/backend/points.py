@@ -41,12 +41,10 @@ def compute_reference(context: ModelContext,
     if not task.is_zero_field:
         raise ValueError(f"the reference is computed at zero field, not at {task.point.label}")
     record, mf = _evaluate(context, task)
-    target = (task.scf or context.scf).gradient_conv_tol
     reference = ZeroFieldReference(np.asarray(mf.make_rdm1()), _orbital_sets(mf), record.s2,
                                    symmetry_operations(context.mol, mf),
                                    np.asarray(mf.mo_coeff), np.asarray(mf.mo_occ),
-                                   gradient_floor=(record.gradient_norm
-                                                   if record.gradient_norm > target else 0.0))
+                                   gradient_floor=context.gradient_floor)
     context.attach(reference)
     work = 0
     if _has_hessian(mf):

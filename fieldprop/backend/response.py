@@ -50,10 +50,15 @@ def zero_field_response(mf, context):
     (context.response: for DFT a coarse-grid kernel): the rotations only start
     the points, and the subspace only preconditions their steps."""
     hessian = _orbital_hessian(mf, context.response, context.constraints)
-    pairs = []
-    rotations = np.array([hessian.solve(-hessian.vo(context.r[j]), START_RTOL,
-                                        "zero-field response", keep=pairs)
-                          for j in range(3)])
+    pairs, rotations = [], []
+    for j in range(3):
+        # Each solve is deflated by the directions of those before it (the
+        # same Hessian: exact products).
+        earlier = (np.array([p for p, _ in pairs]), np.array([q for _, q in pairs])) \
+            if pairs else None
+        rotations.append(hessian.solve(-hessian.vo(context.r[j]), START_RTOL,
+                                       "zero-field response", subspace=earlier, keep=pairs))
+    rotations = np.array(rotations)
     return rotations, ResponseSubspace.from_pairs(mf.mo_coeff, mf.mo_occ, pairs), \
         hessian.products
 

@@ -153,7 +153,9 @@ def _newton(mf, context, c, occ, target: float, constraints=(),
     MAX_STALLED_STEPS steps in a row that do not halve the gradient end the
     finish: the gradient has reached the floor double precision allows; one
     such step ends it once the gradient is within ``accepted`` (what the
-    point's derivatives need).
+    point's derivatives need). At zero field, the gradient (within
+    ``accepted``) from which a step first failed to halve it becomes
+    ``context.gradient_floor`` (the reference carries it to every point).
 
     With orientation ``constraints`` (orientation_constraints) each step keeps
     them (projected solve, plus the least step that restores c = 0), and the
@@ -161,6 +163,7 @@ def _newton(mf, context, c, occ, target: float, constraints=(),
     """
     h1e, s1e = mf.get_hcore(), context.overlap
     work, best, stalled, steps, last = 0, None, 0, 0, np.inf
+    floor = np.inf
     while True:
         dm = mf.make_rdm1(c, occ)
         vhf = mf.get_veff(mf.mol, dm)
@@ -173,6 +176,10 @@ def _newton(mf, context, c, occ, target: float, constraints=(),
         if best is None or g < best[0]:
             best = (g, c, energies, float(mf.energy_tot(dm, h1e, vhf)), fock)
         stalled = stalled + 1 if g > STALL_RATIO * last else 0
+        if stalled == 1 and last <= accepted:
+            # Steps stopped halving the gradient from here: rounding, not a
+            # soft mode (those stall far above what the derivatives accept).
+            floor = min(floor, last)
         last = g
         if (g <= target or stalled >= MAX_STALLED_STEPS or (stalled and g <= accepted)
                 or steps >= MAX_NEWTON_STEPS):
@@ -184,11 +191,9 @@ def _newton(mf, context, c, occ, target: float, constraints=(),
         # a share of the target.
         rtol = float(np.clip(max(NEWTON_TARGET_SHARE * target / g,
                                  NEWTON_RTOL_PER_GRADIENT * g), *NEWTON_RTOL_BOUNDS))
-        subspace = None
-        if context.subspace is not None and not constraints:
-            subspace = context.subspace.mapped(hessian, context.overlap)
         try:
-            x = hessian.solve(-hessian.vo(fock), rtol, "Newton step", subspace=subspace,
+            x = hessian.solve(-hessian.vo(fock), rtol, "Newton step",
+                              subspace=_deflation(context, hessian, constraints),
                               verify=False)
         except ScfNotConvergedError:
             work += hessian.products
@@ -201,7 +206,20 @@ def _newton(mf, context, c, occ, target: float, constraints=(),
         steps += 1
     g, c, energies, e_tot, fock = best
     mf.mo_coeff, mf.mo_occ, mf.mo_energy, mf.e_tot = c, occ, energies, e_tot
+    if np.isfinite(floor) and context.reference is None:
+        context.gradient_floor = max(context.gradient_floor, floor)
     return work, g, fock
+
+
+def _deflation(context, hessian, constraints):
+    """What deflates a Newton step's solve: the zero-field response's
+    directions turned into the step's orbitals (ResponseSubspace.mapped);
+    None with orientation constraints (the projected solve keeps its diagonal
+    preconditioner) or without a subspace. (The point's own earlier steps'
+    directions, added, saved nothing: measured on push-pull polyenes.)"""
+    if constraints or context.subspace is None:
+        return None
+    return context.subspace.mapped(hessian, context.overlap)
 
 
 def _start_orbitals(context, field_vector_au) -> tuple[np.ndarray, str]:
@@ -354,17 +372,19 @@ def _ladder(mf, dm0, target: float, attempts: list[str]) -> int:
     return cycles
 
 
-#: A field point aims at no less than this many times the gradient at which
-#: the zero-field Newton steps stalled (ZeroFieldReference.gradient_floor):
-#: the points' floors scatter about it (measured: 1.3-1.6x for a 22-atom
-#: polyene at HF/6-31G), and each step spent below the floor is lost.
+#: A field point's Newton steps aim at no less than this many times the
+#: gradient from which the zero-field steps stopped halving it
+#: (ZeroFieldReference.gradient_floor): the points' floors scatter about the
+#: zero-field one (measured: 1.3-1.6x for a 22-atom polyene at HF/6-31G), a
+#: step taken at the floor removes nothing, and a linear solve aimed below it
+#: spends products on digits rounding takes away (22 atoms: 12 % of a point).
 FLOOR_MARGIN = 2.0
 
 
 def _point_target(target: float, accepted: float, floor: float) -> float:
-    """The gradient a field point's Newton steps aim at: the job's target, or
-    FLOOR_MARGIN times the zero-field floor where that is higher, never
-    above what its derivatives accept."""
+    """The gradient a field point's Newton steps aim at and end at: the job's
+    target, or FLOOR_MARGIN times the zero-field floor where that is higher,
+    never above what its derivatives accept."""
     return min(accepted, max(target, FLOOR_MARGIN * floor))
 
 

@@ -89,9 +89,9 @@ class ZeroFieldReference:
     orbital Hessian, which deflate the field points' Newton steps (carried to
     the workers in memory; not stored: a process that reads the reference
     from a store solves them again). ``gradient_floor``: the orbital gradient
-    at which the zero-field Newton steps stalled short of their target (the
-    floor double precision allows for this molecule and model; 0 where they
-    reached the target): field points aim no lower (solver._point_target).
+    from which the zero-field Newton steps stopped halving it (the floor
+    double precision allows for this molecule and model; 0 where they never
+    stalled): field points stop within a margin of it (solver._point_enough).
     """
 
     density: np.ndarray
