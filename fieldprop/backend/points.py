@@ -135,8 +135,8 @@ def _evaluate(context: ModelContext, task: PointTask):
                                      constraints, context.response)
     alpha = None
     if want.alpha:
-        alpha = tuple(tuple(float(v) for v in row)
-                      for row in analytic_polarizability(mf, r, constraints))
+        tensor = analytic_polarizability(mf, r, constraints, context.subspace)
+        alpha = tuple(tuple(float(v) for v in row) for row in tensor)
     record = PointRecord(point=point, energy_au=energy, scf_energy_au=float(mf.e_tot),
                          dipole_au=dipole, scf_cycles=cycles, attempts=tuple(attempts), s2=s2,
                          occupied_overlap=overlap, gradient_norm=gradient, alpha_au=alpha,

@@ -63,7 +63,7 @@ def zero_field_response(mf, context):
         hessian.products
 
 
-def analytic_polarizability(mf, r, constraints=()) -> np.ndarray:
+def analytic_polarizability(mf, r, constraints=(), subspace=None) -> np.ndarray:
     """Static alpha_ij = d mu_i / dF_j (au) from the coupled-perturbed equations.
 
     For a converged mean-field object ``mf`` and dipole integrals ``r``
@@ -74,13 +74,18 @@ def analytic_polarizability(mf, r, constraints=()) -> np.ndarray:
     alpha_ij = -n sum_ai r_i,ai x^(j)_ai with n = 4 for closed shells (two
     electrons per orbital, dD = 2(x + x^T)) and n = 2 per spin otherwise (a
     restricted open shell: _RestrictedOpenHessian, n = 2). With orientation
-    ``constraints`` the rotations keep the orientation.
+    ``constraints`` the rotations keep the orientation. ``subspace``: the
+    zero-field ResponseSubspace (ModelContext.subspace), which deflates the
+    solves at a field point (the solution changes by O(F) from the
+    zero-field one, which lies in it).
     """
     hessian = _orbital_hessian(mf, constraints=constraints)
+    deflation = (subspace.mapped(hessian, mf.get_ovlp())
+                 if subspace is not None and not constraints else None)
     rmo = np.array([hessian.vo(r[j]) for j in range(3)])
     alpha = np.zeros((3, 3))
     for j in range(3):
-        x = hessian.solve(-rmo[j], CPHF_RTOL, "CPHF equations")
+        x = hessian.solve(-rmo[j], CPHF_RTOL, "CPHF equations", subspace=deflation)
         alpha[:, j] = [hessian.density_trace(rmo[i], x) for i in range(3)]
     return 0.5 * (alpha + alpha.T)
 

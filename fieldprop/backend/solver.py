@@ -185,7 +185,11 @@ def _newton(mf, context, c, occ, target: float, constraints=(),
                 or steps >= MAX_NEWTON_STEPS):
             break
         mf.mo_coeff, mf.mo_occ, mf.mo_energy = c, occ, energies
-        hessian = _orbital_hessian(mf, context.response, constraints, fock)
+        # Before there is a reference (zero field), the response at these
+        # orbitals, with the coarse-grid kernel of the field points' steps.
+        response = (context.response if context.reference is not None
+                    else context.response_at(c, occ))
+        hessian = _orbital_hessian(mf, response, constraints, fock)
         # The step's linear-solve error (rtol g) need not beat the quadratic
         # error of an exact step (~g^2 per Eh, measured 0.5-1 for water), nor
         # a share of the target.
