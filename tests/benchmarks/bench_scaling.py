@@ -118,7 +118,7 @@ def _fieldprop(folder: Path, xyz: Path, model: str, workers: int):
                             "--json-lines"], capture_output=True, text=True, env=env,
                            check=True).stdout.splitlines()
     points = [json.loads(line) for line in lines if line.strip()]
-    field = [p for p in points if p.get("ok", True) and any(p["field_au"])]
+    field = [p for p in points if p["status"] == "ok" and any(p["field_vector_au"])]
     return json.loads(out.read_text()), wall, field
 
 
