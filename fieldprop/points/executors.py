@@ -197,9 +197,10 @@ def end_with_parent(parent: int) -> None:
 def predecessors(tasks) -> dict[int, tuple[int, ...]]:
     """For each of ``tasks`` (by position), the positions of the tasks whose
     converged orbitals start it best (backend.solver._start_orbitals): the
-    opposite field, when it comes first (mirror start); else the nearest
-    smaller pair on the same line through zero field (line start); else none
-    (it starts from the zero-field orbitals turned by their linear response).
+    opposite field, when it comes first (mirror start), and the nearest
+    smaller pair on the same line through zero field that comes before it
+    (line start, or the third-order term of a mirror start); else none (it
+    starts from the zero-field orbitals turned by their linear response).
     A point's predecessors precede it in the plan, so the order is acyclic."""
     tasks = list(tasks)
     lines: dict[tuple, dict[float, int]] = {}  # direction -> {signed position: index}
@@ -217,11 +218,12 @@ def predecessors(tasks) -> dict[int, tuple[int, ...]]:
     for i, (direction, p) in where.items():
         on_line = lines[direction]
         partner = on_line.get(-p)
+        inner = [q for q in on_line if 0 < abs(q) < abs(p) and q * p > 0 and -q in on_line
+                 and on_line[q] < i and on_line[-q] < i]
+        pair = () if not inner else (on_line[max(inner, key=abs)],
+                                     on_line[-max(inner, key=abs)])
         if partner is not None and partner < i:
-            out[i] = (partner,)
-            continue
-        inner = [q for q in on_line if q * p > 0 and abs(q) < abs(p) and -q in on_line]
-        if inner:
-            q = max(inner, key=abs)
-            out[i] = (on_line[q], on_line[-q])
+            out[i] = (partner, *pair)
+        elif pair:
+            out[i] = pair
     return out

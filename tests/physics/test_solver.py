@@ -210,12 +210,15 @@ def test_an_exception_inside_pyscf_fails_that_point_by_name_without_a_traceback(
 @pytest.mark.parametrize("reference", ["closed", "restricted-open"])
 def test_mirror_and_line_starts_are_second_order(tmp_path, reference):
     """After the point at -F is solved, the start at +F (mirror) is exact to
-    second order in F, and after +-a the start at F = 2a (line) too: their
+    second order in F, and after +-a the start at F = 2a (line) to third: their
     orbital gradients are far below the response start's, which is exact to
     first order only (O(F^3) against O(F^2); measured at h = 0.004 au: mirror
     and line both 0.022 of the response start's for water HF/6-31G*; for NH2
     at ROHF/6-31G*, whose rotation from the reference is found by passes of a
-    matrix logarithm, both 0.016)."""
+    matrix logarithm, both 0.016). The pair's odd (third-order) term takes the
+    line start at 2a to 0.016 (water) and 0.011 (NH2) of the even term's
+    alone, and the mirror start at -2a to 0.007 and 0.003 of the plain
+    mirror's."""
     from fieldprop.numerics.plan import FieldPoint
 
     job = (_job(tmp_path, WATER, 'method = "hf"\n        basis = "6-31g*"')
@@ -235,6 +238,13 @@ def test_mirror_and_line_starts_are_second_order(tmp_path, reference):
         fock = mf.get_fock(dm=mf.make_rdm1(c, occ))
         return backend_solver._gradient_norm(mf, fock, (), c, occ), how
 
+    def rotated_gradient(field, kappa):
+        ref = context.reference
+        c = backend_solver._rotate(ref.mo_coeff, ref.mo_occ, kappa)
+        mf = context.mean_field(field)
+        fock = mf.get_fock(dm=mf.make_rdm1(c, ref.mo_occ))
+        return backend_solver._gradient_norm(mf, fock, (), c, ref.mo_occ)
+
     def solve(field, index):
         import dataclasses
 
@@ -250,6 +260,20 @@ def test_mirror_and_line_starts_are_second_order(tmp_path, reference):
     solve(h * direction, 2)
     g_line, how = start_gradient(2 * h * direction)
     assert how == "line_start"
+    # The line start's odd (third-order) term from the pair +-a: without it,
+    # the even term alone (exact to second order) starts farther away.
+    ref, key = context.reference, backend_solver.field_key
+    pair = context.solved[key(h * direction)], context.solved[key(-h * direction)]
+    linear = np.einsum("j,jn->n", 2 * h * direction, ref.field_rotations)
+    g_even = rotated_gradient(2 * h * direction, linear + (pair[0] + pair[1]) / 0.5)
+    assert g_line < 0.1 * g_even, (g_line, g_even)
+    # The mirror start at -2a with the pair's third-order term.
+    solve(2 * h * direction, 3)
+    g_mirror4, how = start_gradient(-2 * h * direction)
+    assert how == "mirror_start"
+    g_plain = rotated_gradient(-2 * h * direction,
+                               context.solved[key(2 * h * direction)] - 2.0 * linear)
+    assert g_mirror4 < 0.1 * g_plain, (g_mirror4, g_plain)
     context.solved.clear()
     g_line_response, _ = start_gradient(2 * h * direction)
     assert g_line < 0.1 * g_line_response, (g_line, g_line_response)
