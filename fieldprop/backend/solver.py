@@ -265,7 +265,7 @@ def _start_orbitals(context, field_vector_au) -> tuple[np.ndarray, str]:
     cubic = 0.0
     if best is not None:
         t, x, partner = best
-        cubic = (0.5 * (x - partner) - t * linear) / t ** 3
+        cubic = ((x - partner) / 2.0 - t * linear) / (t * t * t)
     mirror = solved.get(field_key(-f))
     if mirror is not None:
         return _rotate(ref.mo_coeff, ref.mo_occ, mirror + 2.0 * linear + 2.0 * cubic), \
