@@ -91,7 +91,8 @@ class ZeroFieldReference:
     from a store solves them again). ``gradient_floor``: the orbital gradient
     from which the zero-field Newton steps stopped halving it (the floor
     double precision allows for this molecule and model; 0 where they never
-    stalled): field points stop within a margin of it (solver._point_enough).
+    stalled): field points aim at no less than a margin above it
+    (solver._point_target).
     """
 
     density: np.ndarray

@@ -125,6 +125,26 @@ def test_the_subspace_turned_into_a_field_points_orbitals_solves_its_newton_step
     assert hessian.products - plain_products < plain_products
 
 
+def test_a_reference_read_from_a_store_solves_its_subspace_again(tmp_path):
+    """The store keeps no subspace: a process that reads the reference back
+    solves the zero-field response again, from the same orbitals."""
+    context, prepared = _context_with_reference(_water_job(tmp_path))
+    zero = prepared.tasks[0]
+    stored = reference_from_bytes(reference_to_bytes(context.reference))
+    assert stored.response_subspace is None
+    assert stored.gradient_floor == context.reference.gradient_floor
+    other = backend_context.ModelContext(zero.molecule, zero.model, zero.scf, stored)
+    again, own = other.subspace, context.subspace
+    assert again.directions.shape == own.directions.shape
+    # The first direction (the preconditioned right-hand side) is the same;
+    # later ones follow the orbital energies' last digits (the reference's own
+    # from the SCF, these from the Fock matrix), but span the same space.
+    assert np.allclose(again.directions[0], own.directions[0], atol=1e-12)
+    basis = np.linalg.qr(again.directions.T)[0]
+    left = own.directions.T - basis @ (basis.T @ own.directions.T)
+    assert np.linalg.norm(left) < 1e-6 * np.linalg.norm(own.directions)
+
+
 def test_field_points_give_the_same_tensors_with_and_without_the_deflation(
         tmp_path, monkeypatch):
     job = _water_job(tmp_path)
