@@ -195,12 +195,7 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--json", type=Path, help="result JSON path (default JOB.result.json "
                      "beside the job file; - writes it to stdout instead of the tables)")
     _executor_options(run)
-    run.add_argument("--quiet", action="store_true", help="no progress or log lines on stderr")
-    run.add_argument("--log-every", type=_non_negative_float, default=DEFAULT_LOG_EVERY_S,
-                     metavar="SECONDS", help="when stderr is not a terminal (a batch log), "
-                     "a progress line at most this often: points done, SCF cycles, elapsed "
-                     f"and remaining time (default {DEFAULT_LOG_EVERY_S:g}); a terminal gets "
-                     "a progress bar")
+    _progress_options(run)
     run.add_argument("--units", choices=("au", "esu", "si"), default="au",
                      help="units of the tables' tensor components (au; esu: dipole in "
                      "debye, alpha in angstrom^3, beta and gamma in esu; si); the JSON "
@@ -233,10 +228,7 @@ def build_parser() -> argparse.ArgumentParser:
                        help="absolute floor for every order, au (default 1e-6, 1e-5, 1e-3, "
                        "0.1 for mu, alpha, beta, gamma)")
     _executor_options(check)
-    check.add_argument("--quiet", action="store_true", help="no progress or log lines on stderr")
-    check.add_argument("--log-every", type=_non_negative_float, default=DEFAULT_LOG_EVERY_S,
-                       metavar="SECONDS", help="progress line interval when stderr is not a "
-                       f"terminal (default {DEFAULT_LOG_EVERY_S:g})")
+    _progress_options(check)
     _store_options(check)
     check.set_defaults(handler=cmd_check)
 
@@ -354,10 +346,7 @@ def build_parser() -> argparse.ArgumentParser:
                         "result JSON files, NAME.result.json (default SET.results beside the "
                         "set file)")
     _executor_options(screen)
-    screen.add_argument("--quiet", action="store_true", help="no progress or log lines")
-    screen.add_argument("--log-every", type=_non_negative_float, default=DEFAULT_LOG_EVERY_S,
-                        metavar="SECONDS", help="in a batch log, a progress line at most this "
-                        f"often (default {DEFAULT_LOG_EVERY_S:g})")
+    _progress_options(screen)
     _store_options(screen)
     screen.set_defaults(handler=cmd_screen)
 
@@ -386,6 +375,16 @@ def build_parser() -> argparse.ArgumentParser:
                          "as one JSON object per line")
     inspect.set_defaults(handler=cmd_inspect)
     return parser
+
+
+def _progress_options(parser) -> None:
+    """How a long command reports progress: the same options for run, check and screen."""
+    parser.add_argument("--quiet", action="store_true", help="no progress or log lines on stderr")
+    parser.add_argument("--log-every", type=_non_negative_float, default=DEFAULT_LOG_EVERY_S,
+                        metavar="SECONDS", help="when stderr is not a terminal (a batch log), "
+                        "a progress line at most this often: points done, SCF cycles, elapsed "
+                        f"and remaining time (default {DEFAULT_LOG_EVERY_S:g}); a terminal "
+                        "gets a progress bar")
 
 
 def _executor_options(parser) -> None:
