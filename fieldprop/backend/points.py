@@ -48,10 +48,11 @@ def compute_reference(context: ModelContext,
     context.attach(reference)
     work = 0
     if _has_hessian(mf):
-        rotations, pairs, work = zero_field_response(mf, context)
+        rotations, subspace, work = zero_field_response(mf, context)
         reference = dataclasses.replace(
             reference, field_rotations=rotations,
-            response_subspace=(pairs.directions, pairs.products) if pairs else None)
+            response_subspace=None if subspace is None else (subspace.directions,
+                                                             subspace.products))
         context.reference = reference  # the same orbitals: the response stays valid
     record = dataclasses.replace(record, scf_cycles=record.scf_cycles + work,
                                  orientation=orientation_record(context, mf))

@@ -54,10 +54,11 @@ def zero_field_response(mf, context):
     for j in range(3):
         # Each solve is deflated by the directions of those before it (the
         # same Hessian: exact products).
-        earlier = (np.array([p for p, _ in pairs]), np.array([q for _, q in pairs])) \
-            if pairs else None
+        earlier = ResponseSubspace.from_pairs(mf.mo_coeff, mf.mo_occ, pairs)
         rotations.append(hessian.solve(-hessian.vo(context.r[j]), START_RTOL,
-                                       "zero-field response", subspace=earlier, keep=pairs))
+                                       "zero-field response", keep=pairs,
+                                       subspace=None if earlier is None else
+                                       (earlier.directions, earlier.products)))
     rotations = np.array(rotations)
     return rotations, ResponseSubspace.from_pairs(mf.mo_coeff, mf.mo_occ, pairs), \
         hessian.products
