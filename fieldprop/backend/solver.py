@@ -13,8 +13,9 @@ from fieldprop.backend.orbital_hessian import (_has_hessian, _orbital_hessian, _
                                                _set_blocks)
 from fieldprop.backend.orientation import _align, _constraint_values, orientation_constraints
 from fieldprop.errors import ScfNotConvergedError
-from fieldprop.points.records import (DIIS, LINE_START, MIRROR_START, NEWTON, ONE_ELECTRON,
-                                      ORIENTATION, REFERENCE_START, RESPONSE_START)
+from fieldprop.points.records import (DIIS, LINE_START, MAX_LINE_POINTS, MIRROR_START, NEWTON,
+                                      ONE_ELECTRON, ORIENTATION, REFERENCE_START,
+                                      RESPONSE_START)
 
 
 #: The Newton step's relative residual (_newton) is kept within these bounds:
@@ -226,54 +227,80 @@ def _deflation(context, hessian, constraints):
     return context.subspace.mapped(hessian, context.overlap)
 
 
+#: From this many solved points on the line on, a start takes the linear
+#: term from them too instead of from the zero-field response: their
+#: polynomial extrapolates the response's own error (its solve's residual;
+#: for DFT its coarse-grid kernel) by up to the sum of its weights' sizes
+#: (hundreds with two pairs). Measured on a 14-atom push-pull polyene at
+#: HF/6-31G, the start at 0.008 au across the chain and along it, from the
+#: pairs at 0.002 and 0.004 au: 1.4e-6 and 7.6e-7 with the response's
+#: linear term, 3.2e-9 and 2.9e-6 with the points' own; with the point at
+#: -0.008 au added, 2.8e-6 and 1.7e-6 against 2.8e-10 and 8.9e-7. With one
+#: pair (and the opposite point) the response's linear term is better.
+OWN_LINEAR_TERM = 4
+
+
+def _line_weights(t, own_linear: bool) -> np.ndarray:
+    """Weights w of the polynomial through the m points t_k (distinct, non-zero)
+    evaluated at t = 1: with ``own_linear``, kappa(1) = sum_k w_k kappa(t_k)
+    for kappa(t) = c_1 t + ... + c_m t^m; else kappa(1) = L +
+    sum_k w_k (kappa(t_k) - t_k L) for kappa(t) = t L + c_2 t^2 + ... +
+    c_{m+1} t^{m+1}, L the linear response. w solves V^T w = 1 with
+    V_kj = t_k^j over the powers j of the c's."""
+    t = np.asarray(t, dtype=float)
+    first = 1 if own_linear else 2
+    powers = np.arange(first, t.size + first)
+    return np.linalg.solve((t[:, None] ** powers[None, :]).T, np.ones(t.size))
+
+
 def _start_orbitals(context, field_vector_au) -> tuple[np.ndarray, str]:
     """The start of a point at field F, and its name: the zero-field orbitals
-    rotated by
+    rotated by kappa(F) = kappa_1 F + kappa_2 F^2 + kappa_3 F^3 + ... (the
+    occupied-virtual rotations of _rotate), from the solved points on the
+    line through zero field and F, at t F (-1 <= t < 1, t != 0; a solved
+    point's kappa from its converged orbitals, _rotation_from_reference): the
+    polynomial in t through them (and, with fewer than OWN_LINEAR_TERM of
+    them, the linear response), evaluated at t = 1 (_line_weights; the point
+    at -F and the MAX_LINE_POINTS others farthest out):
 
-    - ``mirror_start``: kappa(-F) + 2 kappa_1 F, when the point at -F was solved
-      (kappa(F) = kappa_1 F + kappa_2 F^2 + kappa_3 F^3 + O(F^4): exact to
-      second order), plus 2 kappa_3 F^3 from a solved pair +-a on the same
-      line (exact to fourth order);
-    - ``line_start``: kappa_1 F + kappa_2 F^2 + kappa_3 F^3, both terms from
-      the solved pair +-a = +-t F (0 < t < 1): its even part
-      (kappa(a) + kappa(-a)) / 2 = kappa_2 a^2 + O(a^4) and its odd part
-      (kappa(a) - kappa(-a)) / 2 - kappa_1 a = kappa_3 a^3 + O(a^5) (exact to
-      third order);
-    - ``response_start``: kappa_1 F, the linear response (first order).
+    - ``mirror_start``: the point at -F is among them. With a pair +-a it is
+      exact to fourth order (as kappa(-F) + 2 kappa_1 F + 2 kappa_3 F^3, the
+      pair's odd part giving kappa_3), with no other to second;
+    - ``line_start``: without it; a pair +-a makes it exact to third order
+      (kappa_2 from the pair's even part, kappa_3 from its odd part);
+    - ``response_start``: no solved point on the line: kappa_1 F, the linear
+      response (first order).
 
-    kappa are the occupied-virtual rotations of _rotate; a solved point's comes
-    from its converged orbitals (_rotation_from_reference). Measured on a
-    14-atom push-pull polyene at HF/6-31G: the odd term took the starting
-    gradient of points at 0.004-0.008 au from ~1e-5 to ~1e-7, a Newton
-    step fewer.
+    Each further point raises the order by one (the one that takes over the
+    linear term leaves it). Measured on a 14-atom push-pull polyene at
+    HF/6-31G: a pair's odd term took the starting gradient of points at
+    0.004-0.008 au from ~1e-5 to ~1e-7, a Newton step fewer; two pairs took
+    the points at 0.008 au along the chain from 3.5e-5 to 2.9e-6 (plain line
+    starts) and 6.3e-6 to 8.9e-7 (mirror starts), across it from 1.4e-7 to
+    3.2e-9 and 1.9e-7 to 2.8e-10.
     """
     ref = context.reference
     if ref.field_rotations is None or not np.size(ref.field_rotations):
         return ref.mo_coeff, REFERENCE_START
     f = np.asarray(field_vector_au, dtype=float)
     linear = np.einsum("j,jn->n", f, ref.field_rotations)
-    solved = context.solved
-    best = None
-    for key, x in solved.items():
+    on_line = {}
+    for key, x in context.solved.items():
         a = np.asarray(key)
         t = float(a @ f) / float(f @ f)
-        partner = solved.get(field_key(-a))
-        if (0.0 < t < 1.0 and partner is not None and np.allclose(a, t * f, rtol=0.0,
-                                                                  atol=LINE_START_ATOL_AU)
-                and (best is None or t > best[0])):
-            best = (t, x, partner)
-    cubic = 0.0
-    if best is not None:
-        t, x, partner = best
-        cubic = ((x - partner) / 2.0 - t * linear) / (t * t * t)
-    mirror = solved.get(field_key(-f))
-    if mirror is not None:
-        return _rotate(ref.mo_coeff, ref.mo_occ, mirror + 2.0 * linear + 2.0 * cubic), \
-            MIRROR_START
-    if best is not None:
-        return (_rotate(ref.mo_coeff, ref.mo_occ,
-                        linear + (x + partner) / (2.0 * t * t) + cubic), LINE_START)
-    return _rotate(ref.mo_coeff, ref.mo_occ, linear), RESPONSE_START
+        if -1.0 <= t < 1.0 and t != 0.0 and np.allclose(a, t * f, rtol=0.0,
+                                                         atol=LINE_START_ATOL_AU):
+            on_line[t] = x
+    if not on_line:
+        return _rotate(ref.mo_coeff, ref.mo_occ, linear), RESPONSE_START
+    mirror = -1.0 in on_line
+    chosen = sorted((t for t in on_line if t != -1.0), key=lambda t: (-abs(t), t))
+    chosen = ([-1.0] if mirror else []) + chosen[:MAX_LINE_POINTS]
+    own = len(chosen) >= OWN_LINEAR_TERM
+    weights = _line_weights(chosen, own)
+    kappa = (0.0 if own else linear) + sum(
+        w * (on_line[t] - (0.0 if own else t * linear)) for w, t in zip(weights, chosen))
+    return _rotate(ref.mo_coeff, ref.mo_occ, kappa), MIRROR_START if mirror else LINE_START
 
 
 def field_key(field) -> tuple[float, float, float]:
@@ -417,9 +444,10 @@ def _converge(mf, context, point, scf=None) -> tuple[list[str], int, np.ndarray 
     floor double precision allows, where its derivatives need no more) is
     accepted: the noise model uses the gradient reached. Otherwise it fails.
     ``scf``: the point's own settings (a tightened point's targets; default the
-    context's).
+    context's), with the targets of its field (ScfSpec.at_field: looser
+    farther out, where the stencils divide its noise by larger steps).
     """
-    scf = scf or context.scf
+    scf = (scf or context.scf).at_field(point.field_vector_au)
     target, accepted = scf.gradient_conv_tol, scf.gradient_accepted
     reference = context.reference
     if mf.mol.nelectron == 1:

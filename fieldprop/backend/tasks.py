@@ -98,6 +98,25 @@ def reference_task(task: PointTask, threads: int = 0):
     return record, reference
 
 
+def warm_task(task: PointTask, threads: int = 0) -> None:
+    """Build and keep a model's context (integrals, DFT grid) in a worker that
+    would otherwise wait while another computes the model's zero-field
+    reference: its first field point then only attaches the reference. Only
+    saves time: whatever goes wrong is left to that point."""
+    from fieldprop.backend.context import ModelContext
+
+    if threads:
+        set_threads(threads)
+    key = _context_key(task.model_key)
+    if _cached_context(key) is not None:
+        return
+    try:
+        _keep_context(key, ModelContext(task.molecule, task.model, task.scf))
+    except Exception:  # noqa: BLE001 - the point that needs it builds it again, and says why
+        logger.debug("building the context of model %s ahead failed", task.model_key[:12],
+                     exc_info=True)
+
+
 def point_task(task: PointTask, reference: ZeroFieldReference, solved: dict,
                threads: int = 0):
     """One field point of any model, clamped or with relaxed nuclei:
@@ -121,6 +140,8 @@ def point_task(task: PointTask, reference: ZeroFieldReference, solved: dict,
             return _named_failure(task, f"field point {task.point.label}: the model's set-up",
                                   exc, start), None
         _keep_context(key, context)
+    elif context.reference is None:  # built ahead (warm_task)
+        context.attach(reference)
     context.solved.clear()
     try:
         if task.relax is not None:

@@ -43,7 +43,8 @@ import time
 from dataclasses import dataclass, field
 
 from fieldprop import errors
-from fieldprop.backend.tasks import point_task, reference_task, refuse_another_backend
+from fieldprop.backend.tasks import (point_task, reference_task, refuse_another_backend,
+                                     warm_task)
 from fieldprop.engine.analyse import (NoiseModel, _estimates, _tensor_scales, analyse,
                                       failed_points_error, log_counts, point_counts,
                                       with_relaxation)
@@ -309,6 +310,14 @@ def _references(works: list[JobWork], store, executor, progress: Progress) -> No
                         f"{work.label}: " if work.label else "", zero.model_key[:12])
             _count(work, [zero], progress)
             pending[executor.submit(reference_task, zero, executor.threads)] = work
+        # Workers that would wait for the references build their models'
+        # integrals meanwhile (local processes: each takes one; a cluster
+        # places tasks its own way).
+        if getattr(executor, "warms", False):
+            models = [w.prepared.tasks[0] for w in pending.values()
+                      if any(not t.is_zero_field for t in w.todo())]
+            for i in range(executor.slots - len(pending) if models else 0):
+                executor.submit(warm_task, models[i % len(models)], executor.threads)
         try:
             while pending:
                 for future in executor.first_done(pending):

@@ -31,6 +31,7 @@ from concurrent.futures.process import BrokenProcessPool
 import numpy as np
 
 from fieldprop.errors import InputError
+from fieldprop.points.records import MAX_LINE_POINTS
 
 logger = logging.getLogger(__name__)
 
@@ -66,6 +67,9 @@ class LocalPool:
     A worker that dies (the out-of-memory killer, a signal) breaks a
     ProcessPoolExecutor for every task in it: the pool is then built anew and
     :meth:`lost` tells the caller which tasks to send again."""
+
+    #: Idle workers may build a model's integrals ahead (stages._references).
+    warms = True
 
     def __init__(self, workers: int, threads: int = 1, initializer=None):
         self.slots, self.threads = workers, threads
@@ -196,12 +200,12 @@ def end_with_parent(parent: int) -> None:
 
 def predecessors(tasks) -> dict[int, tuple[int, ...]]:
     """For each of ``tasks`` (by position), the positions of the tasks whose
-    converged orbitals start it best (backend.solver._start_orbitals): the
-    opposite field, when it comes first (mirror start), and the nearest
-    smaller pair on the same line through zero field that comes before it
-    (line start, or the third-order term of a mirror start); else none (it
-    starts from the zero-field orbitals turned by their linear response).
-    A point's predecessors precede it in the plan, so the order is acyclic."""
+    converged orbitals start it best (backend.solver._start_orbitals): those
+    on the same line through zero field that come before it in the plan, the
+    opposite field and, of the others nearer zero field (either side),
+    MAX_LINE_POINTS, the farthest out first; none for a point that starts
+    from the zero-field orbitals turned by their linear response. A point's
+    predecessors precede it in the plan, so the order is acyclic."""
     tasks = list(tasks)
     lines: dict[tuple, dict[float, int]] = {}  # direction -> {signed position: index}
     where: dict[int, tuple[tuple, float]] = {}
@@ -218,12 +222,8 @@ def predecessors(tasks) -> dict[int, tuple[int, ...]]:
     for i, (direction, p) in where.items():
         on_line = lines[direction]
         partner = on_line.get(-p)
-        inner = [q for q in on_line if 0 < abs(q) < abs(p) and q * p > 0 and -q in on_line
-                 and on_line[q] < i and on_line[-q] < i]
-        pair = () if not inner else (on_line[max(inner, key=abs)],
-                                     on_line[-max(inner, key=abs)])
-        if partner is not None and partner < i:
-            out[i] = (partner, *pair)
-        elif pair:
-            out[i] = pair
+        inner = sorted((q for q in on_line if abs(q) < abs(p) and on_line[q] < i),
+                       key=lambda q: (-abs(q), q * p))[:MAX_LINE_POINTS]
+        mirror = (partner,) if partner is not None and partner < i else ()
+        out[i] = mirror + tuple(on_line[q] for q in inner)
     return out

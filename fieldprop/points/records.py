@@ -28,8 +28,8 @@ CPHF_RTOL = 1e-11
 #: Names of the SCF strategies in ``PointRecord.attempts``, as the backend
 #: appends them (defined here once, so that what counts as a retry follows the
 #: solver): the starts of a field point's Newton steps (the zero-field orbitals
-#: rotated by the linear response, by the opposite point's rotation, by a
-#: pair's on the same line, or not rotated when there is no response:
+#: rotated by the linear response, by the opposite point's rotation and
+#: those of points on the same line, or not rotated when there is no response:
 #: backend.solver._start_orbitals), DIIS, the turn of a degenerate open shell
 #: onto its fixed orientation, the Newton steps, the exact one-electron solution.
 RESPONSE_START = "response_start"
@@ -37,6 +37,11 @@ MIRROR_START = "mirror_start"
 LINE_START = "line_start"
 REFERENCE_START = "reference_start"
 FIELD_STARTS = (RESPONSE_START, MIRROR_START, LINE_START, REFERENCE_START)
+#: Solved points on a field point's line (besides the one at the opposite
+#: field) that its start uses at most, those farthest from zero field first:
+#: the start's polynomial (backend.solver._start_orbitals) and the points a
+#: point waits for (points.executors.predecessors) follow this one number.
+MAX_LINE_POINTS = 4
 DIIS = "diis"
 ORIENTATION = "orientation"
 NEWTON = "newton"

@@ -255,6 +255,8 @@ CASES = [
      ["{job}: [scf] gradient_target must lie in [1e-14, 1e-4]"], []),
     ("scf_gradient_needed_not_a_number", job(scf={"gradient_needed": '"tight"'}), {},
      ["{job}: [scf] gradient_needed must be a number"], []),
+    ("scf_scaled_target_text", job(scf={"scaled_target": '"no"'}), {},
+     ["{job}: [scf] scaled_target must be true or false"], []),
     ("scf_tolerance_out_of_range", job(scf={"energy_conv_tol_au": "1e-3"}), {},
      ["{job}: [scf] energy_conv_tol_au must lie in"], []),
     ("scf_max_cycle_too_small", job(scf={"max_cycle": "5"}), {},

@@ -65,6 +65,7 @@ JOBS = {
         gradient_target = 2e-11
         gradient_needed = 7e-9
         solver = "diis"
+        scaled_target = false
         ''',
     "ccsd correlation keys": f'''
         [molecule]
@@ -192,7 +193,10 @@ def test_what_is_derived_is_under_derived(tmp_path):
     assert derived["response"] == {"field_au": job.response.field_au,
                                    "field_au_source": "automatic window",
                                    "window": "adaptive"}
-    assert derived["scf"] == {"gradient_accepted": job.scf.gradient_accepted}
+    assert derived["scf"] == {"gradient_accepted": job.scf.gradient_accepted,
+                              "target_power": job.scf.target_power,
+                              "target_step_au": job.scf.target_step_au}
+    assert job.scf.target_power == 2 and job.scf.target_step_au == job.response.field_au
     assert derived["molecule"]["bohr_source"] == "backend"
     assert derived["molecule"]["atoms"] == [
         {"symbol": a.symbol, "coords_bohr": list(a.coords_bohr)} for a in job.molecule.atoms]
