@@ -331,11 +331,13 @@ def build_parser() -> argparse.ArgumentParser:
                             formatter_class=argparse.RawDescriptionHelpFormatter)
     screen.add_argument("set", type=Path, help="set file (TOML): molecules and the model, "
                         "response and geometry options they share")
-    from fieldprop.outputs.ranking import RANK_KEYS
+    from fieldprop.outputs.ranking import RANK_KEYS, rank_key
 
-    screen.add_argument("--rank-by", choices=RANK_KEYS, default=None,
-                        help="ranking invariant, by magnitude (default: beta_hrs when beta is "
-                        "computed, else gamma_parallel, else alpha_iso, else dipole_norm)")
+    screen.add_argument("--rank-by", choices=RANK_KEYS, type=rank_key, default=None,
+                        metavar="INVARIANT",
+                        help="ranking invariant, by magnitude: " + ", ".join(RANK_KEYS)
+                        + " (default: beta_hrs when beta is computed, else gamma_parallel, "
+                        "else alpha_iso, else dipole_norm)")
     screen.add_argument("--units", choices=("au", "esu", "si"), default="au",
                         help="units of the table and the CSV (the result files stay in au)")
     screen.add_argument("--csv", type=Path, help="write the ranked table as CSV to PATH "

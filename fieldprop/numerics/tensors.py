@@ -299,17 +299,77 @@ def beta_vector(b: np.ndarray) -> np.ndarray:
     return (np.einsum("ijj->i", b) + np.einsum("jij->i", b) + np.einsum("jji->i", b)) / 3.0
 
 
-def beta_hrs(b: np.ndarray) -> float:
+def hrs_averages(b: np.ndarray) -> tuple[float, float]:
+    """(<beta_ZZZ^2>, <beta_XZZ^2>): the orientational averages of
+    hyper-Rayleigh scattering with the incident and scattered light polarised
+    along Z (ZZZ) and the scattered along X (XZZ), of the symmetrised beta
+    (static, Kleinman symmetric): 2/35 B2 + 3/35 V and 4/105 B2 - 1/105 V
+    (Bersohn, Pao and Frisch, J. Chem. Phys. 45, 3184 (1966); Cyvin, Rauch
+    and Decius, J. Chem. Phys. 43, 4083 (1965))."""
     s = symmetrize(b)
     b2 = float(np.sum(s * s))
     v = float(np.sum(np.einsum("ijj->i", s) ** 2))
-    zzz = 2.0 / 35.0 * b2 + 3.0 / 35.0 * v
-    xzz = 4.0 / 105.0 * b2 - 1.0 / 105.0 * v
+    return 2.0 / 35.0 * b2 + 3.0 / 35.0 * v, 4.0 / 105.0 * b2 - 1.0 / 105.0 * v
+
+
+def beta_hrs(b: np.ndarray) -> float:
+    zzz, xzz = hrs_averages(b)
     return float(math.sqrt(max(zzz + xzz, 0.0)))
+
+
+def beta_hrs_zzz(b: np.ndarray) -> float:
+    """sqrt(<beta_ZZZ^2>)."""
+    return float(math.sqrt(max(hrs_averages(b)[0], 0.0)))
+
+
+def beta_hrs_xzz(b: np.ndarray) -> float:
+    """sqrt(<beta_XZZ^2>)."""
+    return float(math.sqrt(max(hrs_averages(b)[1], 0.0)))
+
+
+def beta_hrs_depolarisation_ratio(b: np.ndarray) -> float:
+    """<beta_ZZZ^2> / <beta_XZZ^2>: 5 for a one-dimensional beta (one large
+    component along the charge-transfer axis), 3/2 for a purely octupolar one
+    (Brasselet and Zyss, J. Opt. Soc. Am. B 15, 257 (1998)); NaN for beta = 0."""
+    zzz, xzz = hrs_averages(b)
+    return float(zzz / xzz) if xzz > 0.0 else float("nan")
+
+
+def beta_spherical_parts(b: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The dipolar (J = 1) and octupolar (J = 3) parts of the symmetrised beta:
+    beta^(1)_ijk = 1/5 (d_ij v_k + d_ik v_j + d_jk v_i), v_i = sum_j beta_ijj,
+    and beta^(3) = beta - beta^(1), traceless in every pair of indices
+    (Zyss, J. Chem. Phys. 98, 6583 (1993)). Orthogonal, so |beta|^2 =
+    |beta^(1)|^2 + |beta^(3)|^2, and <beta_ZZZ^2> = 1/5 |beta^(1)|^2 + 2/35
+    |beta^(3)|^2, <beta_XZZ^2> = 1/45 |beta^(1)|^2 + 4/105 |beta^(3)|^2."""
+    s = symmetrize(b)
+    v = np.einsum("ijj->i", s)
+    d = np.eye(3)
+    dipolar = (np.einsum("ij,k->ijk", d, v) + np.einsum("ik,j->ijk", d, v)
+               + np.einsum("jk,i->ijk", d, v)) / 5.0
+    return dipolar, s - dipolar
+
+
+def beta_dipolar_norm(b: np.ndarray) -> float:
+    """|beta^(1)| = sqrt(sum_ijk beta^(1)_ijk^2) (beta_spherical_parts)."""
+    return float(np.linalg.norm(beta_spherical_parts(b)[0]))
+
+
+def beta_octupolar_norm(b: np.ndarray) -> float:
+    """|beta^(3)| (beta_spherical_parts)."""
+    return float(np.linalg.norm(beta_spherical_parts(b)[1]))
 
 
 def gamma_parallel(g: np.ndarray) -> float:
     return float((np.einsum("iijj->", g) + np.einsum("ijij->", g) + np.einsum("ijji->", g)) / 15.0)
+
+
+def gamma_perpendicular(g: np.ndarray) -> float:
+    """<gamma_ZZXX> = 1/30 sum_ij (4 g_iijj - g_ijij - g_ijji): the isotropic
+    average with the field along Z and the probe along X (common practice;
+    static, Kleinman-symmetric gamma gives gamma_parallel / 3)."""
+    return float((4.0 * np.einsum("iijj->", g) - np.einsum("ijij->", g)
+                  - np.einsum("ijji->", g)) / 30.0)
 
 
 def _propagate(fn, tensors: dict[str, TensorResult], names) -> tuple[float, float]:
@@ -355,6 +415,10 @@ def _seminorm_error(value: float, linear: float, bound: float) -> float:
     return max(up, down)
 
 
+#: Invariants that are ratios (dimensionless; undefined where beta is zero).
+RATIOS = {"beta_hrs_depolarisation_ratio"}
+
+
 def invariants(tensors: dict[str, TensorResult]) -> list[Invariant]:
     """The contract's invariants that the computed tensors allow."""
     specs = []
@@ -366,10 +430,17 @@ def invariants(tensors: dict[str, TensorResult]) -> list[Invariant]:
         if "dipole" in tensors:
             specs.append(("beta_parallel", ("dipole", "beta"), None))
         specs += [("beta_vector_norm", ("beta",), lambda b: float(np.linalg.norm(beta_vector(b)))),
-                  ("beta_hrs", ("beta",), beta_hrs)]
+                  ("beta_hrs", ("beta",), beta_hrs),
+                  ("beta_hrs_zzz", ("beta",), beta_hrs_zzz),
+                  ("beta_hrs_xzz", ("beta",), beta_hrs_xzz),
+                  ("beta_hrs_depolarisation_ratio", ("beta",), beta_hrs_depolarisation_ratio),
+                  ("beta_dipolar_norm", ("beta",), beta_dipolar_norm),
+                  ("beta_octupolar_norm", ("beta",), beta_octupolar_norm)]
     if "gamma" in tensors:
-        specs.append(("gamma_parallel", ("gamma",), gamma_parallel))
-    seminorms = {"dipole_norm", "alpha_aniso", "beta_vector_norm", "beta_hrs"}
+        specs += [("gamma_parallel", ("gamma",), gamma_parallel),
+                  ("gamma_perpendicular", ("gamma",), gamma_perpendicular)]
+    seminorms = {"dipole_norm", "alpha_aniso", "beta_vector_norm", "beta_hrs", "beta_hrs_zzz",
+                 "beta_hrs_xzz", "beta_dipolar_norm", "beta_octupolar_norm"}
     out = []
     for name, needs, fn in specs:
         bad = [c for n in needs for c in tensors[n].components if not c.stable]
@@ -388,6 +459,13 @@ def invariants(tensors: dict[str, TensorResult]) -> list[Invariant]:
                                      "bar: the projection on it is undefined"))
                 continue
             fn = lambda m, b: 0.6 * float(m @ beta_vector(b)) / float(np.linalg.norm(m))  # noqa: E731
+        if name in RATIOS:
+            b, b_err = tensors["beta"].value_au, tensors["beta"].error_au
+            size = beta_hrs(b)
+            if size <= 3.0 * beta_hrs(np.abs(b_err)) or size == 0.0:
+                out.append(Invariant(name, None, None, "beta is zero within its error bars: "
+                                     "the ratio is undefined"))
+                continue
         value, err = _propagate(fn, tensors, needs)
         if name in seminorms:
             err = max(err, _seminorm_error(value, err, _seminorm_bound(fn, tensors, needs)))

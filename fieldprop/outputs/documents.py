@@ -7,9 +7,14 @@ definitions, the orientation note) are defined here once."""
 
 from __future__ import annotations
 
+import datetime
+import hashlib
 import json
 import math
 import os
+import platform
+import shlex
+import socket
 import sys
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -31,9 +36,13 @@ CAUTION = ("Results depend on method and basis set (beta and gamma strongly: dif
            "functions and correlation change them by tens of percent); computed NLO "
            "figures guide, and do not replace, measurement.")
 
+#: The property whose units each invariant carries ("ratio": none).
 _INVARIANT_PROPERTY = {"dipole_norm": "dipole", "alpha_iso": "alpha", "alpha_aniso": "alpha",
                        "beta_parallel": "beta", "beta_vector_norm": "beta", "beta_hrs": "beta",
-                       "gamma_parallel": "gamma"}
+                       "beta_hrs_zzz": "beta", "beta_hrs_xzz": "beta",
+                       "beta_hrs_depolarisation_ratio": "ratio", "beta_dipolar_norm": "beta",
+                       "beta_octupolar_norm": "beta", "gamma_parallel": "gamma",
+                       "gamma_perpendicular": "gamma"}
 _INVARIANT_TEXT = {
     "dipole_norm": "|mu|",
     "alpha_iso": "tr(alpha)/3",
@@ -44,7 +53,14 @@ _INVARIANT_TEXT = {
     "beta_vector_norm": "|beta_i|, beta_i = 1/3 sum_j (b_ijj + b_jij + b_jji) (the norm, not "
                         "the projection on the dipole)",
     "beta_hrs": "sqrt(<b_ZZZ^2> + <b_XZZ^2>) (hyper-Rayleigh)",
+    "beta_hrs_zzz": "sqrt(<b_ZZZ^2>) (hyper-Rayleigh, both polarisations along Z)",
+    "beta_hrs_xzz": "sqrt(<b_XZZ^2>) (hyper-Rayleigh, scattered light along X)",
+    "beta_hrs_depolarisation_ratio": "<b_ZZZ^2>/<b_XZZ^2> (5: one-dimensional; 3/2: octupolar)",
+    "beta_dipolar_norm": "|b(J=1)|, b(J=1)_ijk = (d_ij v_k + d_ik v_j + d_jk v_i)/5, "
+                         "v_i = sum_j b_ijj (symmetrised beta)",
+    "beta_octupolar_norm": "|b(J=3)|, b(J=3) = b - b(J=1) (symmetrised beta)",
     "gamma_parallel": "1/15 sum_ij (g_iijj + g_ijij + g_ijji)",
+    "gamma_perpendicular": "1/30 sum_ij (4 g_iijj - g_ijij - g_ijji)",
 }
 
 
@@ -168,7 +184,7 @@ def _invariants_document(items) -> dict:
             entry["reason"] = inv.reason
         else:
             entry["converted"] = {label: {"value": inv.value_au * f, "error": inv.error_au * f}
-                                  for label, f in DISPLAY_UNITS[prop]}
+                                  for label, f in DISPLAY_UNITS.get(prop, ())}
         entry["definition"] = _INVARIANT_TEXT[inv.name]
         invariants[inv.name] = entry
         if inv.name in DEPRECATED_INVARIANTS.values():
@@ -212,6 +228,51 @@ def _job_echo(result: RunResult) -> dict:
         molecule["atoms"] = [{"symbol": symbol, "coords_bohr": list(xyz)} for symbol, xyz
                              in zip(result.molecule.symbols, result.molecule.coords_bohr)]
     return echo
+
+
+def _versions(backend_facts: dict) -> dict[str, str | None]:
+    """The versions that made a result: fieldprop's, the backend's as it
+    reported them (PySCF; libxc where a functional was evaluated, else the
+    installed one), NumPy's, SciPy's and Python's."""
+    from importlib import metadata
+
+    import scipy
+
+    def installed(name):
+        try:
+            return metadata.version(name)
+        except metadata.PackageNotFoundError:
+            return None
+
+    return {"fieldprop": __version__,
+            "pyscf": backend_facts.get("pyscf_version") or installed("pyscf"),
+            "libxc": backend_facts.get("libxc_version"),
+            "numpy": np.__version__, "scipy": scipy.__version__,
+            "python": platform.python_version()}
+
+
+def _job_sha256(path) -> str | None:
+    """SHA-256 (hex) of the job file's bytes as they are now (None if it is gone)."""
+    try:
+        return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+    except OSError:
+        return None
+
+
+def provenance(result: RunResult) -> dict[str, Any]:
+    """What made the result and when: the static frequency of the tensors,
+    creation time (UTC), host, command line, the job file's hash and the
+    versions (contract keys ``response_frequency_au``, ``created_utc``,
+    ``command``, ``versions``; ``host`` and ``job_sha256`` besides)."""
+    return {
+        "response_frequency_au": 0.0,
+        "created_utc": datetime.datetime.now(datetime.timezone.utc).strftime(
+            "%Y-%m-%dT%H:%M:%SZ"),
+        "host": socket.gethostname(),
+        "command": shlex.join(["fieldprop", *sys.argv[1:]]),
+        "job_sha256": _job_sha256(result.job.path),
+        "versions": _versions(result.backend_facts or {}),
+    }
 
 
 def result_document(result: RunResult) -> dict[str, Any]:
@@ -289,7 +350,7 @@ def result_document(result: RunResult) -> dict[str, Any]:
         "warnings": list(result.warnings),
         "caution": CAUTION,
         "wall_time_s": result.wall_time_s,
-    }
+    } | provenance(result)
 
 
 def _points_document(result: RunResult) -> dict[str, Any]:

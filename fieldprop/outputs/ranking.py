@@ -23,11 +23,18 @@ from typing import TextIO
 from tabulate import tabulate
 
 from fieldprop.outputs.files import replacing
-from fieldprop.outputs.summary import INVARIANTS, UNIT_TAGS, _formula, _model, conversion
+from fieldprop.outputs.summary import (INVARIANTS, _formula, _model, conversion,
+                                       invariant_columns)
 
-#: Ranking keys: every invariant, and the short name of the vector norm.
-RANK_KEYS = tuple(name for name, _ in INVARIANTS) + ("beta_vec",)
+#: Ranking keys: every invariant. The old short name of the vector norm is
+#: still taken (rank_key), not offered.
+RANK_KEYS = tuple(name for name, _ in INVARIANTS)
 _ALIASES = {"beta_vec": "beta_vector_norm"}
+
+
+def rank_key(text: str) -> str:
+    """A --rank-by value: an invariant's name, or an old name of one."""
+    return _ALIASES.get(text, text)
 PROPERTY_OF = dict(INVARIANTS)
 
 
@@ -106,9 +113,9 @@ def table(rows: list[Row], units: str) -> tuple[list[str], list[list], list[str]
     present = _present([r.entry for r in rows])
     header, shown = ["rank", "name", "formula"], ["rank", "name", "formula"]
     for name, prop in present:
-        tag = UNIT_TAGS[units][prop]
-        header += [f"{name}_{tag}", f"{name}_error_{tag}"]
-        shown += [f"{name} ({conversion(prop, units, 'taylor')[0]})", "+- error"]
+        columns, headers = invariant_columns(name, prop, units)
+        header += columns
+        shown += headers
     header += ["status", "model", "separated_from_next", "reason"]
     shown += ["status", "model", "separated", "reason"]
     out = []

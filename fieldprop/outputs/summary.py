@@ -51,14 +51,31 @@ UNIT_TAGS = {"au": {p: "au" for p in TABLE_UNITS["au"]},
 #: Invariants in the order of the columns, with their property.
 INVARIANTS = (("dipole_norm", "dipole"), ("alpha_iso", "alpha"), ("alpha_aniso", "alpha"),
               ("beta_parallel", "beta"), ("beta_vector_norm", "beta"), ("beta_hrs", "beta"),
-              ("gamma_parallel", "gamma"))
+              ("beta_hrs_zzz", "beta"), ("beta_hrs_xzz", "beta"),
+              ("beta_hrs_depolarisation_ratio", "ratio"), ("beta_dipolar_norm", "beta"),
+              ("beta_octupolar_norm", "beta"), ("gamma_parallel", "gamma"),
+              ("gamma_perpendicular", "gamma"))
 FORMATS = ("table", "csv", "json")
 
 
 def conversion(prop: str, units: str, convention: str) -> tuple[str, float]:
-    """(unit label, factor from Taylor atomic units) of a property."""
+    """(unit label, factor from Taylor atomic units) of a property ("ratio":
+    a dimensionless invariant, the same in every unit system and convention)."""
+    if prop == "ratio":
+        return "", 1.0
     label, factor = TABLE_UNITS[units][prop]
     return label, factor * CONVENTIONS[convention][prop]
+
+
+def invariant_columns(name: str, prop: str, units: str, convention: str = "taylor"
+                      ) -> tuple[list[str], list[str]]:
+    """The CSV columns of an invariant (value, error: ``<name>_<unit tag>``,
+    ``<name>_error_<unit tag>``; a ratio has no tag) and their display headers."""
+    label = conversion(prop, units, convention)[0]
+    if prop == "ratio":
+        return [name, f"{name}_error"], [name, "+- error"]
+    tag = UNIT_TAGS[units][prop]
+    return [f"{name}_{tag}", f"{name}_error_{tag}"], [f"{name} ({label})", "+- error"]
 
 
 def load_result(path: Path) -> dict:
@@ -124,9 +141,9 @@ def invariant_table(docs: list[tuple[str, dict]], units: str, convention: str
     header = ["file", "formula", "model", "route"]
     shown = list(header)
     for name, prop in present:
-        tag = UNIT_TAGS[units][prop]
-        header += [f"{name}_{tag}", f"{name}_error_{tag}"]
-        shown += [f"{name} ({conversion(prop, units, convention)[0]})", "+- error"]
+        columns, headers = invariant_columns(name, prop, units, convention)
+        header += columns
+        shown += headers
     header.append("status")
     shown.append("status")
     rows = []

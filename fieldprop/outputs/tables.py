@@ -251,7 +251,7 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
         v, e = format_pair(inv.value_au, inv.error_au)
         if inv.value_au is None:
             v = "missing" if inv.reason.startswith("missing") else "unstable"
-        label, factor = DISPLAY_UNITS[prop][0]
+        label, factor = DISPLAY_UNITS[prop][0] if prop in DISPLAY_UNITS else ("", 1.0)
         if inv.value_au is None:
             cv, ce = "-", "-"
         else:

@@ -62,9 +62,28 @@ def test_run_writes_the_contract_json_beside_the_job(tmp_path):
     assert len(doc["tensors"]["beta"]["error"][2][1]) == 3
     assert set(doc["invariants"]) == {"dipole_norm", "alpha_iso", "alpha_aniso",
                                       "beta_parallel", "beta_vector_norm", "beta_vec",
-                                      "beta_hrs"}
+                                      "beta_hrs", "beta_hrs_zzz", "beta_hrs_xzz",
+                                      "beta_hrs_depolarisation_ratio", "beta_dipolar_norm",
+                                      "beta_octupolar_norm"}
     for inv in doc["invariants"].values():
         assert inv["value"] is not None and inv["error"] > 0
+    ratio = doc["invariants"]["beta_hrs_depolarisation_ratio"]
+    # Dimensionless, and between its pure octupolar (J = 3: 3/2) and pure
+    # dipolar (J = 1: 9) values (beta_spherical_parts' averages).
+    assert ratio["converted"] == {} and 1.5 <= ratio["value"] <= 9.0
+    # Provenance: static tensors, when, where, by which command and versions,
+    # from which job file (its hash as it is now).
+    import datetime
+    import hashlib
+
+    assert doc["response_frequency_au"] == 0.0
+    made = datetime.datetime.strptime(doc["created_utc"], "%Y-%m-%dT%H:%M:%SZ")
+    now = datetime.datetime.now(datetime.timezone.utc).replace(tzinfo=None)
+    assert abs((now - made).total_seconds()) < 3600
+    assert doc["command"].startswith("fieldprop run lih.toml") and doc["host"]
+    assert doc["job_sha256"] == hashlib.sha256((tmp_path / "lih.toml").read_bytes()).hexdigest()
+    assert set(doc["versions"]) == {"fieldprop", "pyscf", "libxc", "numpy", "scipy", "python"}
+    assert doc["versions"]["pyscf"] and doc["versions"]["numpy"] and doc["versions"]["python"]
     # The old name of beta_vector_norm still works for a while, marked deprecated.
     old, new = doc["invariants"]["beta_vec"], doc["invariants"]["beta_vector_norm"]
     assert old["value"] == new["value"] and "renamed beta_vector_norm" in old["deprecated"]

@@ -662,6 +662,59 @@ def test_beta_octupolar_d3h():
     assert np.allclose(ft.beta_vector(b), 0.0, atol=1e-15)
 
 
+def test_hyper_rayleigh_set_in_the_two_limits():
+    """The depolarisation ratio and its parts in the limits of REFERENCES sect. 3
+    (Bersohn, Pao and Frisch 1966; Brasselet and Zyss, J. Opt. Soc. Am. B 15,
+    257 (1998)): a one-dimensional beta (only b_zzz = b) has DR = 5,
+    sqrt(<ZZZ^2>) = b/sqrt(7), sqrt(<XZZ^2>) = b/sqrt(35), J = 1 norm
+    sqrt(3/5) b and J = 3 norm sqrt(2/5) b (|b|^2 = b^2 split between them);
+    an octupolar D3h beta has no J = 1 part and DR = 3/2."""
+    bz = 3.7
+    inv = _invariants(beta=_beta_from({(2, 2, 2): bz}))
+    assert inv["beta_hrs_depolarisation_ratio"] == pytest.approx(5.0, rel=1e-12)
+    assert inv["beta_hrs_zzz"] == pytest.approx(bz / math.sqrt(7), rel=1e-12)
+    assert inv["beta_hrs_xzz"] == pytest.approx(bz / math.sqrt(35), rel=1e-12)
+    assert inv["beta_dipolar_norm"] == pytest.approx(math.sqrt(3 / 5) * bz, rel=1e-12)
+    assert inv["beta_octupolar_norm"] == pytest.approx(math.sqrt(2 / 5) * bz, rel=1e-12)
+    bo = 2.0
+    inv = _invariants(beta=_beta_from({(0, 0, 0): bo, (0, 1, 1): -bo}))
+    assert inv["beta_hrs_depolarisation_ratio"] == pytest.approx(1.5, rel=1e-12)
+    assert inv["beta_dipolar_norm"] == pytest.approx(0.0, abs=1e-14)
+    assert inv["beta_octupolar_norm"] == pytest.approx(2.0 * bo, rel=1e-12)
+
+
+def test_spherical_parts_give_the_hyper_rayleigh_averages():
+    """beta = beta(J=1) + beta(J=3), orthogonal, the J = 3 part traceless in
+    each pair of indices; <ZZZ^2> = 1/5 |b1|^2 + 2/35 |b3|^2 and <XZZ^2> =
+    1/45 |b1|^2 + 4/105 |b3|^2 (Zyss, J. Chem. Phys. 98, 6583 (1993);
+    Brasselet and Zyss 1998), against REFERENCES sect. 3's invariant form."""
+    rng = np.random.default_rng(31)
+    for _ in range(5):
+        b = _random_symmetric(rng, 3, 10.0)
+        one, three = ft.beta_spherical_parts(b)
+        assert np.allclose(one + three, _sym(b), atol=1e-12)
+        assert abs(float(np.sum(one * three))) < 1e-10 * float(np.sum(b * b))
+        for trace in ("iij->j", "iji->j", "jii->j"):
+            assert np.allclose(np.einsum(trace, three), 0.0, atol=1e-12)
+        n1, n3 = float(np.sum(one * one)), float(np.sum(three * three))
+        zzz, xzz = _hrs_invariant_form(b)
+        assert zzz == pytest.approx(n1 / 5 + 2 * n3 / 35, rel=1e-12)
+        assert xzz == pytest.approx(n1 / 45 + 4 * n3 / 105, rel=1e-12)
+        assert ft.beta_hrs_zzz(b) ** 2 == pytest.approx(zzz, rel=1e-12)
+        assert ft.beta_hrs_xzz(b) ** 2 == pytest.approx(xzz, rel=1e-12)
+
+
+def test_the_ratio_is_undefined_for_a_beta_that_is_zero_within_its_bars():
+    b = _beta_from({(2, 2, 2): 1e-9})
+    sure = ft.TensorResult("beta", 3, b, np.zeros_like(b), np.ones(b.shape, dtype=bool), ())
+    noisy = ft.TensorResult("beta", 3, b, np.full(b.shape, 1e-6), np.ones(b.shape, dtype=bool),
+                            ())
+    ratio = {i.name: i for i in ft.invariants({"beta": sure})}["beta_hrs_depolarisation_ratio"]
+    assert ratio.value_au == pytest.approx(5.0, rel=1e-12)
+    ratio = {i.name: i for i in ft.invariants({"beta": noisy})}["beta_hrs_depolarisation_ratio"]
+    assert ratio.value_au is None and "zero within its error bars" in ratio.reason
+
+
 def test_hrs_forms_agree_for_random_beta():
     """The two forms of REFERENCES sect. 3 are one polynomial identity: they agree
     to rounding (rel 1e-12) on random tensors, and fieldprop's beta_hrs^2 is their
@@ -769,6 +822,14 @@ def test_orientational_averages_brute_force(rotations):
     check(3 * b_zzz * (n @ mu) / np.linalg.norm(mu), inv["beta_parallel"])
     g_zzzz = np.einsum("sij,si,sj->s", np.einsum("ijkl,sk,sl->sij", g, n, n), n, n)
     check(g_zzzz, inv["gamma_parallel"])
+    check(b_zzz**2, inv["beta_hrs_zzz"] ** 2)
+    check(b_xzz**2, inv["beta_hrs_xzz"] ** 2)
+    # gamma_perpendicular = <gamma_ZZXX>, on a tensor that is not fully
+    # symmetric (the general isotropic average; common practice).
+    g_general = 100.0 * rng.standard_normal((3, 3, 3, 3))
+    g_zzxx = np.einsum("sijkl,si,sj,sk,sl->s", np.broadcast_to(g_general, (len(n),) + g.shape),
+                       n, n, x, x)
+    check(g_zzxx, ft.gamma_perpendicular(g_general))
     check(np.einsum("ij,si,sj->s", a, n, n), inv["alpha_iso"])
 
 
