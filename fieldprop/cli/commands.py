@@ -181,7 +181,8 @@ def cmd_run(args) -> int:
     else:
         write_json_atomic(result_document(result), out_path)
         logger.info("result written to %s (%.1f s)", out_path, result.wall_time_s)
-        _to_stdout(lambda: _write_result(result, args.format, args.units, out_path))
+        _to_stdout(lambda: _write_result(result, args.format, args.units, out_path,
+                                               args.convention))
     if args.plot is not None:
         from fieldprop.outputs.plots import write_plots
 
@@ -287,20 +288,21 @@ def _agreement_rule(args):
         abs_floor_au=floors, strict=args.strict)
 
 
-def _write_result(result, fmt: str, units: str, label) -> None:
-    """A result on stdout: the tables, the result JSON, or a CSV of components."""
+def _write_result(result, fmt: str, units: str, label, convention: str = "taylor") -> None:
+    """A result on stdout: the tables, the result JSON (in au and the Taylor
+    convention, whatever ``units`` and ``convention``), or a CSV of components."""
     from fieldprop.outputs.documents import result_document
     from fieldprop.outputs.tables import write_tables
 
     if fmt == "table":
-        write_tables(result, sys.stdout, units)
+        write_tables(result, sys.stdout, units, convention)
     elif fmt == "json":
         json.dump(result_document(result), sys.stdout, indent=1, allow_nan=False)
         sys.stdout.write("\n")
     else:
         from fieldprop.outputs import summary
 
-        summary.write([(str(label), result_document(result))], sys.stdout, units, "taylor",
+        summary.write([(str(label), result_document(result))], sys.stdout, units, convention,
                       "csv", components=True)
 
 
@@ -574,7 +576,8 @@ def cmd_collect(args) -> int:
         write_json_atomic(result_document(result), out_path)
         logger.info("result written to %s (from %d points)", out_path,
                     len(result.computed_records))
-        _to_stdout(lambda: _write_result(result, args.format, args.units, out_path))
+        _to_stdout(lambda: _write_result(result, args.format, args.units, out_path,
+                                               args.convention))
     if result.missing:
         raise IncompleteError(f"{job.path}: {len(result.missing)} point(s) to compute missing "
                               f"({' '.join(i for _, i in result.missing[:8])}"
@@ -641,10 +644,10 @@ def cmd_screen(args) -> int:
                                               _model_text(o.candidate.job)))
     rows = ranking.rank(entries, key)
     if args.csv is not None and not is_stdout(args.csv):
-        ranking.write_csv_file(rows, args.units, args.csv)
+        ranking.write_csv_file(rows, args.units, args.csv, args.convention)
         logger.info("ranked table written to %s", args.csv)
     if any(r.rank is not None for r in rows):
-        ranking.write_png(rows, key, args.units, png)
+        ranking.write_png(rows, key, args.units, png, args.convention)
         logger.info("summary picture written to %s", png)
     elif png.exists():
         png.unlink()  # an earlier campaign's picture: nothing is ranked now
@@ -653,9 +656,10 @@ def cmd_screen(args) -> int:
                 counts.molecules - counts.failed, counts.failed, counts.computed, counts.reused,
                 counts.scf_cycles, counts.wall_time_s, results)
     if args.csv is not None and is_stdout(args.csv):
-        _to_stdout(lambda: ranking.write_csv(rows, args.units, sys.stdout))
+        _to_stdout(lambda: ranking.write_csv(rows, args.units, sys.stdout, args.convention))
     else:
-        _to_stdout(lambda: ranking.write_table(rows, args.units, key, sys.stdout))
+        _to_stdout(lambda: ranking.write_table(rows, args.units, key, sys.stdout,
+                                               args.convention))
     bad = [r for r in rows if r.status != "ok"]
     if bad:
         raise CampaignError(f"{campaign.path}: {len(bad)} of {len(rows)} molecules without "

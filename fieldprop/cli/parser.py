@@ -196,6 +196,7 @@ def build_parser() -> argparse.ArgumentParser:
                      "beside the job file; - writes it to stdout instead of the tables)")
     _executor_options(run)
     _progress_options(run)
+    _convention_option(run)
     run.add_argument("--units", choices=("au", "esu", "si"), default="au",
                      help="units of the tables' tensor components (au; esu: dipole in "
                      "debye, alpha in angstrom^3, beta and gamma in esu; si); the JSON "
@@ -303,6 +304,7 @@ def build_parser() -> argparse.ArgumentParser:
                          help="what goes to stdout: the tables (default), the result JSON, or "
                          "a CSV of the tensor components")
     collect.add_argument("--quiet", action="store_true", help="no log lines on stderr")
+    _convention_option(collect)
     collect.add_argument("--units", choices=("au", "esu", "si"), default="au",
                          help="units of the tables' tensor components (the JSON stays in au)")
     collect.set_defaults(handler=cmd_collect)
@@ -316,9 +318,7 @@ def build_parser() -> argparse.ArgumentParser:
     report.add_argument("--units", choices=("au", "esu", "si"), default="au",
                         help="au (default); esu: dipole in debye, alpha in angstrom^3, beta "
                         "and gamma in esu; si")
-    report.add_argument("--convention", choices=("taylor", "perturbation"), default="taylor",
-                        help="taylor (default, fieldprop's) or perturbation (the B "
-                        "convention: beta/2, gamma/6)")
+    _convention_option(report)
     report.add_argument("--format", choices=("table", "csv", "json"), default="table",
                         help="a table for people (default), CSV with one header row, or "
                         "one JSON document (schema fieldprop-report-1: columns and rows)")
@@ -331,13 +331,14 @@ def build_parser() -> argparse.ArgumentParser:
                             formatter_class=argparse.RawDescriptionHelpFormatter)
     screen.add_argument("set", type=Path, help="set file (TOML): molecules and the model, "
                         "response and geometry options they share")
-    from fieldprop.outputs.ranking import RANK_KEYS, rank_key
+    from fieldprop.outputs.ranking import RANK_KEYS, resolve_key
 
-    screen.add_argument("--rank-by", choices=RANK_KEYS, type=rank_key, default=None,
+    screen.add_argument("--rank-by", choices=RANK_KEYS, type=resolve_key, default=None,
                         metavar="INVARIANT",
                         help="ranking invariant, by magnitude: " + ", ".join(RANK_KEYS)
                         + " (default: beta_hrs when beta is computed, else gamma_parallel, "
                         "else alpha_iso, else dipole_norm)")
+    _convention_option(screen)
     screen.add_argument("--units", choices=("au", "esu", "si"), default="au",
                         help="units of the table and the CSV (the result files stay in au)")
     screen.add_argument("--csv", type=Path, help="write the ranked table as CSV to PATH "
@@ -377,6 +378,14 @@ def build_parser() -> argparse.ArgumentParser:
                          "as one JSON object per line")
     inspect.set_defaults(handler=cmd_inspect)
     return parser
+
+
+def _convention_option(parser) -> None:
+    """--convention, the same on every command that shows tensors."""
+    parser.add_argument("--convention", choices=("taylor", "perturbation"), default="taylor",
+                        help="of the tables and CSV: taylor (default, fieldprop's: E = E0 - "
+                        "mu F - alpha F^2/2 - beta F^3/6 - gamma F^4/24) or perturbation "
+                        "(beta/2, gamma/6); the result JSON stays taylor")
 
 
 def _progress_options(parser) -> None:

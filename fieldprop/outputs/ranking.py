@@ -30,11 +30,6 @@ from fieldprop.outputs.summary import (INVARIANTS, _formula, _model, conversion,
 #: still taken (rank_key), not offered.
 RANK_KEYS = tuple(name for name, _ in INVARIANTS)
 _ALIASES = {"beta_vec": "beta_vector_norm"}
-
-
-def rank_key(text: str) -> str:
-    """A --rank-by value: an invariant's name, or an old name of one."""
-    return _ALIASES.get(text, text)
 PROPERTY_OF = dict(INVARIANTS)
 
 
@@ -67,6 +62,7 @@ class Row:
 
 
 def resolve_key(key: str) -> str:
+    """A ranking key: an invariant's name, or an old name of one (--rank-by)."""
     return _ALIASES.get(key, key)
 
 
@@ -108,32 +104,33 @@ def _present(entries) -> list[tuple[str, str]]:
             if any(e.document is not None and n in e.document["invariants"] for e in entries)]
 
 
-def table(rows: list[Row], units: str) -> tuple[list[str], list[list], list[str]]:
-    """(CSV header, rows of values, display header)."""
+def table(rows: list[Row], units: str, convention: str = "taylor"
+          ) -> tuple[list[str], list[list], list[str]]:
+    """(CSV header, rows of values, display header), in ``units`` and ``convention``."""
     present = _present([r.entry for r in rows])
     header, shown = ["rank", "name", "formula"], ["rank", "name", "formula"]
     for name, prop in present:
-        columns, headers = invariant_columns(name, prop, units)
+        columns, headers = invariant_columns(name, prop, units, convention)
         header += columns
         shown += headers
-    header += ["status", "model", "separated_from_next", "reason"]
-    shown += ["status", "model", "separated", "reason"]
+    header += ["status", "model", "convention", "separated_from_next", "reason"]
+    shown += ["status", "model", "convention", "separated", "reason"]
     out = []
     for r in rows:
         e = r.entry
         row = [r.rank, e.name, e.formula]
         for name, prop in present:
             value, error = e.invariant(name)
-            factor = conversion(prop, units, "taylor")[1]
+            factor = conversion(prop, units, convention)[1]
             row += [None, None] if value is None else [value * factor, error * factor]
-        row += [r.status, e.model,
+        row += [r.status, e.model, convention,
                 None if r.separated_from_next is None else r.separated_from_next, r.reason]
         out.append(row)
     return header, out, shown
 
 
-def write_csv(rows: list[Row], units: str, out: TextIO) -> None:
-    header, values, _ = table(rows, units)
+def write_csv(rows: list[Row], units: str, out: TextIO, convention: str = "taylor") -> None:
+    header, values, _ = table(rows, units, convention)
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(header)
     for row in values:
@@ -141,14 +138,15 @@ def write_csv(rows: list[Row], units: str, out: TextIO) -> None:
                          else str(v).lower() if isinstance(v, bool) else v for v in row])
 
 
-def write_csv_file(rows: list[Row], units: str, path: Path) -> None:
+def write_csv_file(rows: list[Row], units: str, path: Path, convention: str = "taylor") -> None:
     """The CSV (:func:`write_csv`) as the file ``path``, whole or not at all."""
     with replacing(path, newline="") as out:
-        write_csv(rows, units, out)
+        write_csv(rows, units, out, convention)
 
 
-def write_table(rows: list[Row], units: str, key: str, out: TextIO) -> None:
-    header, values, shown = table(rows, units)
+def write_table(rows: list[Row], units: str, key: str, out: TextIO,
+                convention: str = "taylor") -> None:
+    header, values, shown = table(rows, units, convention)
     text = []
     for row in values:
         cells = []
@@ -162,8 +160,8 @@ def write_table(rows: list[Row], units: str, key: str, out: TextIO) -> None:
             else:
                 cells.append(str(v)[:60])
         text.append(cells)
-    out.write(f"ranked by |{resolve_key(key)}|, best first; error bars are estimates of the "
-              "numerical differentiation only\n")
+    out.write(f"ranked by |{resolve_key(key)}|, best first; {convention} convention; error "
+              "bars are estimates of the numerical differentiation only\n")
     out.write(tabulate(text, headers=shown, disable_numparse=True) + "\n")
 
 
@@ -174,7 +172,8 @@ def entry_from(name: str, document: dict | None, failure: str = "", formula: str
     return Entry(name, document, formula, model, failure)
 
 
-def write_png(rows: list[Row], key: str, units: str, path: Path) -> None:
+def write_png(rows: list[Row], key: str, units: str, path: Path,
+              convention: str = "taylor") -> None:
     """Two panels: the ranking key with error bars per molecule (ranked), and
     the ranking key against alpha_iso (when alpha is there)."""
     import matplotlib
@@ -184,7 +183,7 @@ def write_png(rows: list[Row], key: str, units: str, path: Path) -> None:
 
     key = resolve_key(key)
     prop = PROPERTY_OF[key]
-    label, factor = conversion(prop, units, "taylor")
+    label, factor = conversion(prop, units, convention)
     ranked = [r for r in rows if r.rank is not None]
     names = [r.entry.name for r in ranked]
     values = [abs(r.entry.invariant(key)[0]) * factor for r in ranked]
@@ -200,7 +199,7 @@ def write_png(rows: list[Row], key: str, units: str, path: Path) -> None:
     ax.barh(positions, values, xerr=errors, color="tab:blue", alpha=0.7, capsize=3)
     ax.set_yticks(positions, names, fontsize=8)
     ax.set_xlabel(f"|{key}| ({label})")
-    ax.set_title(f"ranked by |{key}|", fontsize=10)
+    ax.set_title(f"ranked by |{key}| ({convention} convention)", fontsize=10)
     if panels == 2:
         ax = axes[0][1]
         ax.scatter([a * alpha_factor for _, a, _ in pairs], [v for v, _, _ in pairs],

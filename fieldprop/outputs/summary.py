@@ -138,7 +138,7 @@ def invariant_table(docs: list[tuple[str, dict]], units: str, convention: str
     """(CSV header, rows of numbers, display headers): one row per result."""
     present = [(name, prop) for name, prop in INVARIANTS
                if any(name in d["invariants"] for _, d in docs)]
-    header = ["file", "formula", "model", "route"]
+    header = ["file", "formula", "model", "route", "convention"]
     shown = list(header)
     for name, prop in present:
         columns, headers = invariant_columns(name, prop, units, convention)
@@ -149,7 +149,7 @@ def invariant_table(docs: list[tuple[str, dict]], units: str, convention: str
     rows = []
     for label, doc in docs:
         routes = sorted({t.get("route", "?") for t in doc["tensors"].values()})
-        row: list[Any] = [label, _formula(doc), _model(doc), "+".join(routes)]
+        row: list[Any] = [label, _formula(doc), _model(doc), "+".join(routes), convention]
         problems = []
         for name, prop in present:
             entry = doc["invariants"].get(name)
@@ -170,7 +170,8 @@ def invariant_table(docs: list[tuple[str, dict]], units: str, convention: str
 def component_table(docs: list[tuple[str, dict]], units: str, convention: str
                     ) -> tuple[list[str], list[list[Any]], list[str]]:
     """(CSV header, rows, display headers): one row per unique tensor component."""
-    header = ["file", "tensor", "component", "value", "error", "unit", "status", "entry"]
+    header = ["file", "tensor", "component", "value", "error", "unit", "convention", "status",
+              "entry"]
     rows = []
     for label, doc in docs:
         for name in ("dipole", "alpha", "beta", "gamma"):
@@ -183,7 +184,7 @@ def component_table(docs: list[tuple[str, dict]], units: str, convention: str
                 entry = c.get("richardson_entry") or {}
                 rows.append([label, name, c.get("name"),
                              None if value is None else value * factor,
-                             None if error is None else error * factor, unit,
+                             None if error is None else error * factor, unit, convention,
                              c.get("status") if value is not None else
                              f"{c.get('status')}: {c.get('reason')}",
                              f"h{entry.get('level')}, {entry.get('steps')} steps"
@@ -226,8 +227,8 @@ def write(docs: list[tuple[str, dict]], out: TextIO, units: str = "au",
             v, e = _pair_text(row[3], row[4])
             text_rows.append([*row[:3], v, e, *row[5:]])
             continue
-        cells = list(row[:4])
-        for k in range(4, len(row) - 1, 2):
+        cells = list(row[:5])
+        for k in range(5, len(row) - 1, 2):
             cells += list(_pair_text(row[k], row[k + 1]))
         cells.append(row[-1])
         text_rows.append(cells)

@@ -16,7 +16,8 @@ from tabulate import tabulate
 from fieldprop import __version__
 from fieldprop.inputs.job import SYMMETRISE
 from fieldprop.numerics.extrapolate import ComponentStatus
-from fieldprop.numerics.units import DISPLAY_UNITS, FIELD_AU_TO_V_PER_M, TABLE_UNITS
+from fieldprop.numerics.units import DISPLAY_UNITS, FIELD_AU_TO_V_PER_M
+from fieldprop.outputs.summary import conversion
 from fieldprop.outputs.documents import (_INVARIANT_PROPERTY, _INVARIANT_TEXT, CAUTION,
                                          orientation_note)
 
@@ -157,9 +158,18 @@ def _write_geometry(job, out: TextIO) -> None:
                   f"({mol.atoms[i].symbol}) and {j + 1} ({mol.atoms[j].symbol})\n")
 
 
-def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
+#: How each convention's tensors enter the energy (the table header says it).
+CONVENTION_TEXT = {
+    "taylor": "Taylor convention E = E0 - mu F - alpha F^2/2 - beta F^3/6 - gamma F^4/24",
+    "perturbation": "perturbation convention E = E0 - mu F - alpha F^2/2 - beta F^3/3 - "
+                    "gamma F^4/4 (beta and gamma: half and a sixth of the Taylor ones)"}
+
+
+def write_tables(result: RunResult, out: TextIO, units: str = "au",
+                 convention: str = "taylor") -> None:
     """The human-readable report: header, one table per tensor (in ``units``:
-    au, esu or si, units.TABLE_UNITS), invariants."""
+    au, esu or si, units.TABLE_UNITS, and ``convention``: summary.CONVENTIONS),
+    invariants."""
     job, plan = result.job, result.plan
     model = job.model
     basis = (model.basis if isinstance(model.basis, str)
@@ -215,14 +225,14 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
               f"{job.scf.energy_conv_tol_au:g} Eh; E(0) = {result.energy_au:.10f} Eh\n")
     system = {"au": "atomic units", "esu": "tensors in esu (dipole in debye, alpha in "
               "angstrom^3)", "si": "tensors in SI units"}[units]
-    out.write(f"  {system}, Taylor convention E = E0 - mu F - alpha F^2/2 - beta F^3/6 - "
-              "gamma F^4/24; error bars are estimates (Richardson table spread plus round-off "
+    out.write(f"  {system}, {CONVENTION_TEXT[convention]}; static (zero-frequency) "
+              "tensors; error bars are estimates (Richardson table spread plus round-off "
               "floor), not bounds\n")
     if result.orientation is not None:
         out.write(f"  {orientation_note(result.orientation)}\n")
     out.write("\n")
     for name, tensor in result.tensors.items():
-        label, factor = TABLE_UNITS[units][name]
+        label, factor = conversion(name, units, convention)
         rows = []
         for c in tensor.components:
             est = c.estimate
@@ -248,10 +258,13 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
     rows = []
     for inv in result.invariants:
         prop = _INVARIANT_PROPERTY[inv.name]
-        v, e = format_pair(inv.value_au, inv.error_au)
+        scale = conversion(prop, "au", convention)[1]
+        v, e = (format_pair(inv.value_au * scale, inv.error_au * scale)
+                if inv.value_au is not None else ("", ""))
         if inv.value_au is None:
             v = "missing" if inv.reason.startswith("missing") else "unstable"
         label, factor = DISPLAY_UNITS[prop][0] if prop in DISPLAY_UNITS else ("", 1.0)
+        factor *= scale
         if inv.value_au is None:
             cv, ce = "-", "-"
         else:
@@ -259,13 +272,13 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au") -> None:
         rows.append([inv.name, v, e, f"{cv} +- {ce} {label}" if inv.value_au is not None
                      else inv.reason, _INVARIANT_TEXT[inv.name]])
     if rows:
-        out.write("invariants\n")
+        out.write(f"invariants ({convention} convention)\n")
         # Definitions wrapped: the table fits a 160-column terminal.
         out.write(tabulate(rows, headers=["invariant", "value (au)", "+- error", "converted",
                                           "definition"], disable_numparse=True,
                            maxcolwidths=[None, None, None, 44, 56]) + "\n\n")
     if result.relaxation is not None:
-        _write_relaxation(result, out, units)
+        _write_relaxation(result, out, units, convention)
     for text in result.warnings:
         out.write(f"warning: {text}\n")
     if any(p in result.tensors for p in ("beta", "gamma")):
@@ -279,7 +292,8 @@ def _pair_text(est, stable: bool, factor: float) -> str:
     return f"{v} +- {e}"
 
 
-def _write_relaxation(result: RunResult, out: TextIO, units: str) -> None:
+def _write_relaxation(result: RunResult, out: TextIO, units: str,
+                      convention: str = "taylor") -> None:
     """Electronic, nuclear-relaxation and total tensors side by side, and the
     invariants with the nuclei clamped and relaxed."""
     part = result.relaxation
@@ -305,7 +319,7 @@ def _write_relaxation(result: RunResult, out: TextIO, units: str) -> None:
                   f"Newton steps, {gradients} gradients; the remaining energy error at most "
                   f"{worst_e:.1e} Eh (in the error bars)\n\n")
     for name, nuclear in part.nuclear.items():
-        label, factor = TABLE_UNITS[units][name]
+        label, factor = conversion(name, units, convention)
         rows = []
         for ce, cn, ct in zip(result.tensors[name].components, nuclear.components,
                               total.tensors[name].components):
@@ -328,12 +342,13 @@ def _write_relaxation(result: RunResult, out: TextIO, units: str) -> None:
         if inv.name == "dipole_norm":
             continue
         e = clamped[inv.name]
-        rows.append([inv.name, " +- ".join(format_pair(e.value_au, e.error_au))
+        scale = conversion(_INVARIANT_PROPERTY[inv.name], "au", convention)[1]
+        rows.append([inv.name, " +- ".join(format_pair(e.value_au * scale, e.error_au * scale))
                      if e.value_au is not None else "unstable",
-                     " +- ".join(format_pair(inv.value_au, inv.error_au))
+                     " +- ".join(format_pair(inv.value_au * scale, inv.error_au * scale))
                      if inv.value_au is not None else "unstable"])
     if rows:
-        out.write("invariants (au): clamped and relaxed nuclei\n")
+        out.write(f"invariants (au, {convention} convention): clamped and relaxed nuclei\n")
         out.write(tabulate(rows, headers=["invariant", "electronic", "total"],
                            disable_numparse=True) + "\n")
         out.write("  Static limit only: no zero-point vibrational averaging; vibrational "

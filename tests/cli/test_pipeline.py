@@ -4,6 +4,8 @@ Every point is computed in its own process, as a job-array element or an
 ``xargs -P`` child would; the assembled result must be the one ``run`` gives.
 """
 
+import csv
+import io
 import json
 import random
 import textwrap
@@ -114,11 +116,12 @@ def test_points_in_shuffled_order_two_at_a_time_collect_what_run_gives(tmp_path,
     csv = fieldprop("collect", "lih.toml", "--format", "csv", "--quiet", cwd=tmp_path)
     assert csv.returncode == 0
     rows = [line.split(",") for line in csv.stdout.splitlines()]
-    assert rows[0] == ["file", "tensor", "component", "value", "error", "unit", "status",
-                       "entry"]
+    assert rows[0] == ["file", "tensor", "component", "value", "error", "unit", "convention",
+                       "status", "entry"]
     by_name = {r[2]: r for r in rows[1:]}
     alpha_zz = doc["tensors"]["alpha"]["value"][2][2]
     assert float(by_name["alpha_zz"][3]) == alpha_zz and len(rows) == 1 + 3 + 9
+    assert {r[6] for r in rows[1:]} == {"taylor"}
     # The store exported as point lines assembles the same result elsewhere.
     export = fieldprop("inspect", "fieldprop-points.sqlite", "--json-lines", cwd=tmp_path)
     elsewhere = tmp_path / "elsewhere"
@@ -426,7 +429,8 @@ def test_report_converts_units_and_conventions_without_computing(tmp_path):
     assert done.returncode == 0, done.stderr
     header, row = [line.split(",") for line in done.stdout.splitlines()]
     values = dict(zip(header, row))
-    assert header[:4] == ["file", "formula", "model", "route"] and header[-1] == "status"
+    assert header[:5] == ["file", "formula", "model", "route", "convention"]
+    assert header[-1] == "status" and values["convention"] == "perturbation"
     assert values["formula"] == "HLi" and values["status"] == "ok"
     # Gaussian units: 1 C = 10 c statC (c in m/s), a0 in cm, Eh in erg; one
     # atomic unit of beta is e^3 a0^3 / Eh^2 (common practice).
@@ -454,6 +458,26 @@ def test_report_converts_units_and_conventions_without_computing(tmp_path):
     rows = {r[2]: r for r in table["rows"]}
     beta_zzz = next(c for c in doc["tensors"]["beta"]["components"] if c["name"] == "beta_zzz")
     assert rows["beta_zzz"][3] == beta_zzz["value"] and rows["beta_zzz"][5] == "au"
+    # Every command that shows tensors takes the convention, names it in its
+    # CSV and halves beta (gamma: a sixth) in the perturbation one; the JSON
+    # stays Taylor.
+    taylor = {c["name"]: c["value"] for c in doc["tensors"]["beta"]["components"]}
+    for command in (["run", "lih.toml", "--json", "again.json", "--quiet"],
+                    ["collect", "lih.toml", "--json", "collected.json", "--quiet"],
+                    ["report", "lih.result.json", "--components"]):
+        done = fieldprop(*command, "--convention", "perturbation", "--format", "csv",
+                         cwd=tmp_path)
+        assert done.returncode == 0, (command, done.stderr)
+        rows = list(csv.DictReader(io.StringIO(done.stdout)))
+        beta = {r["component"]: r for r in rows if r["tensor"] == "beta"}
+        assert {r["convention"] for r in rows} == {"perturbation"}, command
+        assert float(beta["beta_zzz"]["value"]) == pytest.approx(taylor["beta_zzz"] / 2,
+                                                                 rel=1e-6), command
+        if command[0] == "run":
+            assert json.loads((tmp_path / "again.json").read_text())["convention"] == "taylor"
+    table = fieldprop("report", "lih.result.json", "--convention", "perturbation",
+                      cwd=tmp_path).stdout
+    assert "convention: perturbation" in table
     # A table on screen; a file that is not a result: one line, exit 2.
     shown = fieldprop("report", "lih.result.json", "lih.result.json", cwd=tmp_path)
     assert shown.returncode == 0 and shown.stdout.count("lih.result.json") == 2
