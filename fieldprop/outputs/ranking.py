@@ -5,11 +5,13 @@ result_document`) and failures, in any unit system (:mod:`fieldprop.outputs.summ
 converts). Molecules are ranked by the magnitude of the ranking invariant
 (|beta_parallel| for a sign-carrying one); a molecule without a number for it
 (failed, or the invariant unstable) comes last, unranked. Two neighbours whose
-ranking values overlap within their error bars are marked as not separated.
+ranking values overlap within their (numerical) error bars are marked: their
+bars are not clear of each other.
 
 CSV columns: ``rank, name, formula``, then ``<invariant>_<unit>`` and
-``<invariant>_error_<unit>`` for each invariant, then ``status``, ``model``,
-``separated_from_next`` and ``reason``.
+``<invariant>_error_<unit>`` for each invariant (a ratio: no unit), then
+``status``, ``model``, ``convention``, ``bars_clear_of_next``, ``reason`` and
+``caution`` (RANKING_CAUTION).
 """
 
 from __future__ import annotations
@@ -58,7 +60,7 @@ class Row:
     entry: Entry
     status: str
     reason: str
-    separated_from_next: bool | None
+    bars_clear_of_next: bool | None
 
 
 def resolve_key(key: str) -> str:
@@ -104,6 +106,12 @@ def _present(entries) -> list[tuple[str, str]]:
             if any(e.document is not None and n in e.document["invariants"] for e in entries)]
 
 
+#: What the error bars of a ranking do not contain (a column of the CSV, a
+#: line under the table).
+RANKING_CAUTION = ("bars: numerical differentiation only; the model (method, basis) moves "
+                   "beta by tens of per cent, more than most gaps between neighbours")
+
+
 def table(rows: list[Row], units: str, convention: str = "taylor"
           ) -> tuple[list[str], list[list], list[str]]:
     """(CSV header, rows of values, display header), in ``units`` and ``convention``."""
@@ -113,8 +121,8 @@ def table(rows: list[Row], units: str, convention: str = "taylor"
         columns, headers = invariant_columns(name, prop, units, convention)
         header += columns
         shown += headers
-    header += ["status", "model", "convention", "separated_from_next", "reason"]
-    shown += ["status", "model", "convention", "separated", "reason"]
+    header += ["status", "model", "convention", "bars_clear_of_next", "reason", "caution"]
+    shown += ["status", "model", "convention", "bars clear", "reason"]
     out = []
     for r in rows:
         e = r.entry
@@ -124,7 +132,8 @@ def table(rows: list[Row], units: str, convention: str = "taylor"
             factor = conversion(prop, units, convention)[1]
             row += [None, None] if value is None else [value * factor, error * factor]
         row += [r.status, e.model, convention,
-                None if r.separated_from_next is None else r.separated_from_next, r.reason]
+                None if r.bars_clear_of_next is None else r.bars_clear_of_next, r.reason,
+                RANKING_CAUTION]
         out.append(row)
     return header, out, shown
 
@@ -150,7 +159,7 @@ def write_table(rows: list[Row], units: str, key: str, out: TextIO,
     text = []
     for row in values:
         cells = []
-        for h, v in zip(header, row):
+        for h, v in zip(header[:len(shown)], row):  # the caution goes under the table
             if v is None:
                 cells.append("-")
             elif isinstance(v, float):
@@ -163,6 +172,7 @@ def write_table(rows: list[Row], units: str, key: str, out: TextIO,
     out.write(f"ranked by |{resolve_key(key)}|, best first; {convention} convention; error "
               "bars are estimates of the numerical differentiation only\n")
     out.write(tabulate(text, headers=shown, disable_numparse=True) + "\n")
+    out.write(f"caution: {RANKING_CAUTION}\n")
 
 
 def entry_from(name: str, document: dict | None, failure: str = "", formula: str = "",
@@ -172,10 +182,22 @@ def entry_from(name: str, document: dict | None, failure: str = "", formula: str
     return Entry(name, document, formula, model, failure)
 
 
+def _scaled(values, label: str) -> tuple[float, str]:
+    """A power of ten that brings ``values`` near 1, and the axis unit with it
+    written out (so that no offset text hides at the axis end)."""
+    largest = max((abs(v) for v in values), default=0.0)
+    if largest == 0.0 or 1e-2 <= largest < 1e4:
+        return 1.0, label
+    power = int(math.floor(math.log10(largest)))
+    return 10.0 ** -power, f"10^{power} {label}".strip()
+
+
 def write_png(rows: list[Row], key: str, units: str, path: Path,
               convention: str = "taylor") -> None:
-    """Two panels: the ranking key with error bars per molecule (ranked), and
-    the ranking key against alpha_iso (when alpha is there)."""
+    """Two panels: the ranking key with error bars per molecule (ranked;
+    signed, so a negative value draws to the left), and the ranking key
+    against alpha_iso (when alpha is there). Titles name the model and the
+    convention; axis labels carry the power of ten."""
     import matplotlib
 
     matplotlib.use("Agg")
@@ -186,30 +208,37 @@ def write_png(rows: list[Row], key: str, units: str, path: Path,
     label, factor = conversion(prop, units, convention)
     ranked = [r for r in rows if r.rank is not None]
     names = [r.entry.name for r in ranked]
-    values = [abs(r.entry.invariant(key)[0]) * factor for r in ranked]
+    values = [r.entry.invariant(key)[0] * factor for r in ranked]
     errors = [r.entry.invariant(key)[1] * factor for r in ranked]
-    alpha_label, alpha_factor = conversion("alpha", units, "taylor")
-    pairs = [(abs(r.entry.invariant(key)[0]) * factor, r.entry.invariant("alpha_iso")[0],
-              r.entry.name) for r in ranked if r.entry.invariant("alpha_iso")[0] is not None]
+    scale, unit = _scaled(values, label)
+    alpha_label, alpha_factor = conversion("alpha", units, convention)
+    pairs = [(r.entry.invariant(key)[0] * factor * scale,
+              r.entry.invariant("alpha_iso")[0] * alpha_factor, r.entry.name)
+             for r in ranked if r.entry.invariant("alpha_iso")[0] is not None]
     panels = 2 if pairs and key != "alpha_iso" else 1
-    fig, axes = plt.subplots(1, panels, figsize=(6.0 * panels, 0.35 * len(names) + 2.5),
+    models = sorted({r.entry.model for r in ranked if r.entry.model}) or ["?"]
+    fig, axes = plt.subplots(1, panels, figsize=(6.5 * panels, 0.35 * len(names) + 2.8),
                              squeeze=False, constrained_layout=True)
+    fig.suptitle(f"{', '.join(models)}; {convention} convention; static, gas phase; bars: "
+                 "numerical error only", fontsize=9)
     ax = axes[0][0]
     positions = list(range(len(names)))[::-1]
-    ax.barh(positions, values, xerr=errors, color="tab:blue", alpha=0.7, capsize=3)
+    ax.barh(positions, [v * scale for v in values], xerr=[e * scale for e in errors],
+            color=["tab:blue" if v >= 0 else "tab:red" for v in values], alpha=0.7, capsize=3)
+    ax.axvline(0.0, color="black", linewidth=0.6)
     ax.set_yticks(positions, names, fontsize=8)
-    ax.set_xlabel(f"|{key}| ({label})")
-    ax.set_title(f"ranked by |{key}| ({convention} convention)", fontsize=10)
+    ax.set_xlabel(f"{key} ({unit})" if unit else key)
+    ax.set_title(f"ranked by |{key}|", fontsize=10)
     if panels == 2:
         ax = axes[0][1]
-        ax.scatter([a * alpha_factor for _, a, _ in pairs], [v for v, _, _ in pairs],
-                   color="tab:orange")
+        ax.scatter([a for _, a, _ in pairs], [v for v, _, _ in pairs], color="tab:orange")
         for v, a, n in pairs:
-            ax.annotate(n, (a * alpha_factor, v), fontsize=7, xytext=(3, 3),
-                        textcoords="offset points")
+            ax.annotate(n, (a, v), fontsize=7, xytext=(3, 3), textcoords="offset points",
+                        annotation_clip=False)
+        ax.margins(x=0.2, y=0.1)
         ax.set_xlabel(f"alpha_iso ({alpha_label})")
-        ax.set_ylabel(f"|{key}| ({label})")
-        ax.set_title(f"|{key}| against alpha_iso", fontsize=10)
+        ax.set_ylabel(f"{key} ({unit})" if unit else key)
+        ax.set_title(f"{key} against alpha_iso", fontsize=10)
     try:
         with replacing(path, binary=True) as fh:
             fig.savefig(fh, format="png", dpi=120)

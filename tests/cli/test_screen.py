@@ -119,7 +119,7 @@ def test_three_molecules_give_a_ranked_csv_in_the_units_asked(three):
     assert header[:3] == ["rank", "name", "formula"]
     for column in ("dipole_norm_debye", "dipole_norm_error_debye", "alpha_iso_angstrom3",
                    "alpha_iso_error_angstrom3", "beta_hrs_esu", "beta_hrs_error_esu",
-                   "status", "model", "convention", "separated_from_next", "reason"):
+                   "status", "model", "convention", "bars_clear_of_next", "reason", "caution"):
         assert column in header, column
     assert {r["convention"] for r in rows} == {"taylor"}
     assert {r["name"] for r in rows} == {"water", "formaldehyde", "hydrogen-fluoride"}
