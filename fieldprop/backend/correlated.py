@@ -34,7 +34,7 @@ def _correlated_energy(mf, model, scf_spec, label: str
     solver.verbose = 0
     solver.conv_tol = wanted.energy_change_au
     solver.conv_tol_normt = wanted.amplitude_change
-    solver.max_cycle = max(scf_spec.max_cycle, MIN_AMPLITUDE_ITERATIONS)
+    solver.max_cycle = max(scf_spec.max_iterations, MIN_AMPLITUDE_ITERATIONS)
     eris = solver.ao2mo()
     solver.kernel(eris=eris)
     # The convergence reached: one more (Jacobi) iteration from the final

@@ -19,10 +19,10 @@ from fieldprop.inputs.job import DEFAULT_GRID_LEVEL, Job
 
 
 #: The SCF inside a geometry optimisation (each step's and the final one):
-#: an energy to 1e-10 Eh (far below the criteria's energy change, 1e-6 Eh) and
+#: an energy to 1e-10 Eh (far below the criteria's energy changes, 1e-8 to 1e-6 Eh) and
 #: an orbital gradient of 1e-6, which moved PySCF's nuclear gradient of water
 #: by 2e-9 (HF/6-31G) and 4e-8 Eh/bohr (B3LYP) from a converged SCF's, below
-#: the tightest criteria's largest gradient (2e-6 Eh/bohr).
+#: the finest criteria's largest gradient (3e-6 Eh/bohr).
 OPTIMISATION_ENERGY_TOL_AU = 1e-10
 OPTIMISATION_GRADIENT_TOL = 1e-6
 
@@ -63,6 +63,18 @@ format=%(message)s
 """
 
 
+def _optimiser_thresholds(thresholds: dict[str, float]) -> dict[str, float]:
+    """The job's criteria (job.GEOMETRY_CRITERIA) as the optimiser's keyword
+    arguments (steps in angstrom there)."""
+    from pyscf.data.nist import BOHR
+
+    return {"convergence_energy": thresholds["energy_change_au"],
+            "convergence_gmax": thresholds["gradient_max_au"],
+            "convergence_grms": thresholds["gradient_rms_au"],
+            "convergence_dmax": thresholds["step_max_bohr"] * BOHR,
+            "convergence_drms": thresholds["step_rms_bohr"] * BOHR}
+
+
 def optimize_geometry(job: Job, molecule) -> dict:
     """Optimise ``molecule`` (a MoleculeSpec) at the job's optimisation model
     with geomeTRIC through PySCF, at zero field, to the job's criteria.
@@ -90,7 +102,7 @@ def optimize_geometry(job: Job, molecule) -> dict:
 
         method = mp.MP2(mf, frozen=frozen_orbitals(mol, model) or None)
     thresholds = job.geometry.thresholds()
-    params = {f"convergence_{k}": v for k, v in thresholds.items()}
+    params = _optimiser_thresholds(thresholds)
     steps = []
     try:
         with warnings.catch_warnings(), contextlib.redirect_stdout(io.StringIO()), \
@@ -119,7 +131,7 @@ def optimize_geometry(job: Job, molecule) -> dict:
         # Its gradient, energy and coordinates would be those of no state.
         raise ScfNotConvergedError(
             f"{job.path}: [geometry] optimize: the SCF at the optimised geometry did not "
-            f"converge in [scf] max_cycle = {final.max_cycle} cycles (orbital gradient "
+            f"converge in [scf] max_iterations = {final.max_cycle} cycles (orbital gradient "
             f"{_gradient_norm(final):.1e}, target {final.conv_tol_grad:g}); no geometry is "
             "formed from it")
     target = final

@@ -233,7 +233,7 @@ def _mean_field(mol, model, scf_spec):
         mf = mf.density_fit(auxbasis=None if model.density_fit == "auto" else model.density_fit)
     mf.conv_tol = scf_spec.energy_conv_tol_au
     mf.conv_tol_grad = scf_spec.gradient_conv_tol
-    mf.max_cycle = scf_spec.max_cycle
+    mf.max_cycle = scf_spec.max_iterations
     mf.verbose = 0
     # No checkpoint file: the store keeps what is needed, and PySCF's temporary
     # file, inherited by forked workers, would be deleted twice.

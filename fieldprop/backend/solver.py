@@ -463,11 +463,11 @@ def _converge(mf, context, point, scf=None) -> tuple[list[str], int, np.ndarray 
         attempts.append(DIIS)
         mf.conv_tol_grad = max(target, DIIS_HANDOVER)
         mf.conv_tol = max(scf.energy_conv_tol_au, DIIS_HANDOVER ** 2)
-        mf.max_cycle = min(scf.max_cycle, DIIS_HANDOVER_CYCLES)
+        mf.max_cycle = min(scf.max_iterations, DIIS_HANDOVER_CYCLES)
         mf.kernel()
         cycles += int(getattr(mf, "cycles", 1) or 1)
         mf.conv_tol, mf.conv_tol_grad = scf.energy_conv_tol_au, target
-        mf.max_cycle = scf.max_cycle
+        mf.max_cycle = scf.max_iterations
         start = mf.mo_coeff
         occ = mf.mo_occ
         newton_ok = start is not None

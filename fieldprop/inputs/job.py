@@ -95,10 +95,13 @@ _SECTIONS = {
                  "symmetry", "window",
                  "nuclear_relaxation"},
     "geometry": {"optimize", "method", "functional", "basis", "criteria", "max_steps"},
-    "scf": {"energy_conv_tol_au", "max_cycle", "grid_level", "gradient_target",
+    "scf": {"energy_conv_tol_au", "max_iterations", "grid_level", "gradient_target",
             "gradient_needed", "solver", "scaled_target"},
     "correlation": {"energy_change_au", "amplitude_change"},
 }
+
+#: Keys of earlier versions, refused in one line naming the new one.
+RENAMED_KEYS = {("scf", "max_cycle"): "max_iterations"}
 
 
 @dataclass(frozen=True)
@@ -164,8 +167,8 @@ class ModelSpec:
     basis: str | tuple[tuple[str, str], ...]
     reference: str  # resolved: "restricted" or "unrestricted"
     functional: str | None = None
-    #: Correlated methods: the core orbitals (PySCF's chemcore: 1s for B-Ne,
-    #: and so on) left uncorrelated; the trade's usual default for valence
+    #: Correlated methods: the inner shells (1s for B-Mg, 1s2s2p for Al-Ca,
+    #: and so on: the backend counts them) left uncorrelated; the trade's usual default for valence
     #: correlation. Always False for HF and DFT.
     frozen_core: bool = False
     #: Cartesian instead of spherical d and f functions (6d/10f).
@@ -268,7 +271,7 @@ class ScfSpec:
 
     energy_conv_tol_au: float
     gradient_conv_tol: float
-    max_cycle: int
+    max_iterations: int
     grid_level: int | None  # dft only
     gradient_needed: float = 0.0  # 0: the same as gradient_conv_tol
     solver: str = "newton"
@@ -333,15 +336,23 @@ class ScfSpec:
                 and self.tightened(steps).targets() != self.tightened(steps - 1).targets())
 
 
-#: Convergence criteria of a geometry optimisation, by name: geomeTRIC's
-#: convergence_energy (Eh), _grms and _gmax (Eh/bohr), _drms and _dmax
-#: (angstrom), the values of the sets geomeTRIC names GAU, GAU_TIGHT and
-#: GAU_VERYTIGHT (from its documentation, from memory; passed explicitly).
+#: Convergence criteria of a geometry optimisation, by name. Each is built
+#: from the largest remaining gradient g (Eh/bohr): the largest step at
+#: convergence is g over a soft stiffness of 0.2 Eh/bohr^2 (what that gradient
+#: still moves a soft bend or torsion), the root-mean-square values are half
+#: the largest, and the energy change per step is a small share of
+#: 1/2 k step^2 rounded up to a power of ten: ``coarse`` for ranking many
+#: molecules, ``fine`` (the default) for response tensors whose bars matter,
+#: ``finest`` for references. Every optimisation also stops only once all
+#: five hold.
 GEOMETRY_CRITERIA = {
-    "standard": {"energy": 1e-6, "grms": 3e-4, "gmax": 4.5e-4, "drms": 1.2e-3, "dmax": 1.8e-3},
-    "tight": {"energy": 1e-6, "grms": 1e-5, "gmax": 1.5e-5, "drms": 4e-5, "dmax": 6e-5},
-    "very-tight": {"energy": 1e-6, "grms": 1e-6, "gmax": 2e-6, "drms": 4e-6, "dmax": 6e-6},
+    name: {"energy_change_au": energy, "gradient_max_au": g, "gradient_rms_au": g / 2.0,
+           "step_max_bohr": g / 0.2, "step_rms_bohr": g / 0.4}
+    for name, g, energy in (("coarse", 5e-4, 1e-6), ("fine", 2e-5, 1e-7),
+                            ("finest", 3e-6, 1e-8))
 }
+#: Names of criteria sets of earlier versions: refused, naming the new ones.
+OLD_CRITERIA = ("standard", "tight", "very-tight")
 
 
 @dataclass(frozen=True)
@@ -353,7 +364,7 @@ class GeometrySpec:
     method: str | None = None
     functional: str | None = None
     basis: str | None = None
-    criteria: str = "tight"
+    criteria: str = "fine"
     max_steps: int = 100
 
     def thresholds(self) -> dict[str, float]:
@@ -433,7 +444,7 @@ class Job:
             },
             "scf": {
                 "energy_conv_tol_au": scf.energy_conv_tol_au,
-                "max_cycle": scf.max_cycle,
+                "max_iterations": scf.max_iterations,
                 **({} if scf.grid_level is None else {"grid_level": scf.grid_level}),
                 "gradient_target": scf.gradient_conv_tol,
                 "gradient_needed": scf.gradient_needed,
@@ -932,7 +943,7 @@ def _parse_scf(path: str, table: dict[str, Any], method: str, max_order: int,
         tol = derived_energy_conv_tol_au(max_order)
     elif not 1e-14 <= tol <= 1e-6:
         raise r.fail("energy_conv_tol_au", f"must lie in [1e-14, 1e-6] Eh, got {tol}")
-    max_cycle = r.integer("max_cycle", 200, low=10)
+    max_iterations = r.integer("max_iterations", 200, low=10)
     grid_level = None
     if r.has("grid_level"):
         if method != "dft":
@@ -976,7 +987,7 @@ def _parse_scf(path: str, table: dict[str, Any], method: str, max_order: int,
     if not isinstance(scaled, bool):
         raise r.fail("scaled_target", f"must be true or false, got {scaled!r}")
     power, reach = scaled_target_power(route, max_order) if scaled else (0, 1)
-    return ScfSpec(tol, gradient_tol, max_cycle, grid_level, max(needed, gradient_tol), solver,
+    return ScfSpec(tol, gradient_tol, max_iterations, grid_level, max(needed, gradient_tol), solver,
                    _parse_correlation(path, correlation, method, max_order),
                    power, reach * field_au if power else 0.0)
 
@@ -1079,6 +1090,9 @@ def job_from_tables(shown: str, job_path: Path, data: dict[str, Any]) -> Job:
         if not isinstance(value, dict):
             raise InputError(f"{shown}: {section} must be a [{section}] table")
         for key in value:
+            if (section, key) in RENAMED_KEYS:
+                raise InputError(f"{shown}: [{section}] {key} is a name of earlier versions: "
+                                 f"it is {RENAMED_KEYS[section, key]} now")
             if key not in _SECTIONS[section]:
                 raise InputError(f"{shown}: [{section}] unknown key {key!r}; valid keys: "
                                  f"{', '.join(sorted(_SECTIONS[section]))}")
@@ -1117,6 +1131,10 @@ def _parse_geometry(path: str, table: dict[str, Any], model: ModelSpec) -> Geome
         with_gradient = ", ".join(m for m, t in METHODS.items() if t.nuclear_gradient)
         raise r.fail("method", f"= {effective!r} has no nuclear gradient in fieldprop; optimise "
                      f"at one of {with_gradient} (give [geometry] method and basis)")
-    criteria = r.string("criteria", "tight", tuple(GEOMETRY_CRITERIA))
+    if table.get("criteria") in OLD_CRITERIA:
+        raise r.fail("criteria", f"= {table['criteria']!r} is a name of earlier versions: use "
+                     + ", ".join(f'"{n}" (largest gradient {c["gradient_max_au"]:g} Eh/bohr)'
+                                 for n, c in GEOMETRY_CRITERIA.items()))
+    criteria = r.string("criteria", "fine", tuple(GEOMETRY_CRITERIA))
     max_steps = r.integer("max_steps", 100, low=1)
     return GeometrySpec(optimize, method, functional, basis, criteria, max_steps)

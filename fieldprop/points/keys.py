@@ -9,7 +9,7 @@ share one stored point, whatever their ladders, levels or property lists.
   multiplicity, the basis as given (name, or per element name or text), method,
   functional, reference (restricted/unrestricted), the SCF settings that change
   results (energy and orbital-gradient tolerances, DFT grid level, solver; not
-  ``max_cycle`` or the gradient a stalled point may end at, which only decide
+  ``max_iterations`` or the gradient a stalled point may end at, which only decide
   whether a point is accepted), and
   :data:`NUMERICS_VERSION`.
 - :func:`point_key` adds the quantities computed at the point (:class:`Quantities`),

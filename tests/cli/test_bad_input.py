@@ -259,8 +259,14 @@ CASES = [
      ["{job}: [scf] scaled_target must be true or false"], []),
     ("scf_tolerance_out_of_range", job(scf={"energy_conv_tol_au": "1e-3"}), {},
      ["{job}: [scf] energy_conv_tol_au must lie in"], []),
-    ("scf_max_cycle_too_small", job(scf={"max_cycle": "5"}), {},
-     ["{job}: [scf] max_cycle must be >= 10"], []),
+    ("scf_max_iterations_too_small", job(scf={"max_iterations": "5"}), {},
+     ["{job}: [scf] max_iterations must be >= 10"], []),
+    ("scf_max_cycle_of_earlier_versions", job(scf={"max_cycle": "50"}), {},
+     ["{job}: [scf] max_cycle is a name of earlier versions: it is max_iterations now"], []),
+    ("geometry_criteria_of_earlier_versions",
+     job(after='[geometry]\noptimize = true\ncriteria = "very-tight"\n'), {},
+     ["{job}: [geometry] criteria = 'very-tight' is a name of earlier versions: use \"coarse\""],
+     []),
     # [correlation]
     ("correlation_for_hf", job(correlation={"energy_change_au": "1e-12"}), {},
      ["{job}: [correlation] energy_change_au applies to the amplitude solvers (ccsd, "

@@ -37,7 +37,7 @@ def test_scf_retries_are_recorded(tmp_path, capsys):
     # Eight DIIS cycles cannot reach 1e-11 Eh from the zero-field density, so the
     # ladder (more damping and a level shift, then second-order SCF) must act.
     job = tmp_path / "water.toml"
-    job.write_text(WATER.format(extra="[scf]\nmax_cycle = 10\nenergy_conv_tol_au = 1e-11\n"
+    job.write_text(WATER.format(extra="[scf]\nmax_iterations = 10\nenergy_conv_tol_au = 1e-11\n"
                                       "solver = \"diis\""))
     assert main(["run", str(job), "--quiet"]) == 0
     doc = json.loads((tmp_path / "water.result.json").read_text())

@@ -56,7 +56,7 @@ def test_optimised_water_has_the_hf_631g_shape_and_no_gradient(tmp_path, capsys)
     assert 0.945 < r1 < 0.955 and abs(r1 - r2) < 1e-4
     assert 110.5 < angle < 112.5
     opt = doc["job"]["derived"]["optimisation"]
-    assert opt["criteria"] == "tight" and opt["thresholds"] == GEOMETRY_CRITERIA["tight"]
+    assert opt["criteria"] == "fine" and opt["thresholds"] == GEOMETRY_CRITERIA["fine"]
     # An independent gradient at the coordinates the response used.
     mol = gto.M(atom=[("O", coords[0]), ("H", coords[1]), ("H", coords[2])], unit="Bohr",
                 basis="6-31g", verbose=0)
@@ -64,8 +64,8 @@ def test_optimised_water_has_the_hf_631g_shape_and_no_gradient(tmp_path, capsys)
     mf.conv_tol, mf.conv_tol_grad = 1e-12, 1e-9
     mf.kernel()
     gradient = mf.nuc_grad_method().kernel()
-    assert np.abs(gradient).max() < GEOMETRY_CRITERIA["tight"]["gmax"]
-    assert opt["largest_gradient_au"] < GEOMETRY_CRITERIA["tight"]["gmax"]
+    assert np.abs(gradient).max() < GEOMETRY_CRITERIA["fine"]["gradient_max_au"]
+    assert opt["largest_gradient_au"] < GEOMETRY_CRITERIA["fine"]["gradient_max_au"]
 
 
 def test_a_rerun_takes_the_optimised_geometry_from_the_store(tmp_path, capsys, monkeypatch):
@@ -100,11 +100,12 @@ def test_plan_before_the_optimisation_is_incomplete_and_bad_options_are_refused(
     assert main(["point", str(path), "--zero-field", "--quiet"]) == 0  # creates the store
     capsys.readouterr()
     other = tmp_path / "other.toml"
-    other.write_text(JOB.replace("optimize = true", 'optimize = true\ncriteria = "standard"'))
+    other.write_text(JOB.replace("optimize = true", 'optimize = true\ncriteria = "coarse"'))
     assert main(["plan", str(other), "--count"]) == 3
     assert "optimised geometry" in capsys.readouterr().err
     for extra, key in (('method = "ccsd"\nbasis = "sto-3g"', "method"),
-                       ('criteria = "loose-ish"', "criteria")):
+                       ('criteria = "loose-ish"', "criteria"),
+                       ('criteria = "tight"', "earlier versions")):
         bad = tmp_path / "bad.toml"
         bad.write_text(JOB.replace("optimize = true", "optimize = true\n" + extra))
         assert main(["run", str(bad)]) == 2

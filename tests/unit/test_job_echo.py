@@ -60,7 +60,7 @@ JOBS = {
         symmetry = false
         [scf]
         energy_conv_tol_au = 3e-13
-        max_cycle = 321
+        max_iterations = 321
         grid_level = 4
         gradient_target = 2e-11
         gradient_needed = 7e-9
@@ -98,7 +98,7 @@ JOBS = {
         method = "dft"
         functional = "pbe0"
         basis = "def2-svp"
-        criteria = "standard"
+        criteria = "coarse"
         max_steps = 42
         ''',
     "ion from xyz with an explicit origin": '''

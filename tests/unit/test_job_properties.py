@@ -153,7 +153,7 @@ KEYS = {
     ("scf", "energy_conv_tol_au"): _either(st.floats(1e-14, 1e-6),
                                            st.one_of(st.floats(1e-20, 1e-14, exclude_max=True),
                                                      st.floats(1e-6, 1.0, exclude_min=True))),
-    ("scf", "max_cycle"): _either(st.integers(10, 500), st.integers(-5, 9)),
+    ("scf", "max_iterations"): _either(st.integers(10, 500), st.integers(-5, 9)),
     ("scf", "grid_level"): _either(st.integers(0, 9), st.one_of(st.integers(-3, -1),
                                                                 st.integers(10, 99))),
 }
@@ -291,7 +291,7 @@ def check_job_invariants(job: Job) -> None:
         assert r.origin in ORIGINS
     else:
         assert len(r.origin) == 3 and all(math.isfinite(v) for v in r.origin)
-    assert 1e-14 <= scf.energy_conv_tol_au <= 1e-6 and scf.max_cycle >= 10
+    assert 1e-14 <= scf.energy_conv_tol_au <= 1e-6 and scf.max_iterations >= 10
     assert (scf.grid_level is not None) == (m.method == "dft")
     json.dumps(job.to_dict(), allow_nan=False)  # goes into the result JSON as is
 
@@ -367,7 +367,7 @@ NEAR_MISSES = {
     ("response", "route"): ["numerical", "", 3],
     ("response", "nuclear_relaxation"): ["no", 0],
     ("scf", "energy_conv_tol_au"): [1e-3, 1e-15, 0.0, NAN, "tight"],
-    ("scf", "max_cycle"): [5, 0, 50.0],
+    ("scf", "max_iterations"): [5, 0, 50.0],
     ("scf", "grid_level"): [3],  # with method = "hf"
 }
 _NEAR_MISS_CASES = [(section, key, value) for (section, key), values in NEAR_MISSES.items()
@@ -404,7 +404,7 @@ def test_load_job_accepts_a_full_valid_document():
            "response": {"properties": ["gamma", "dipole"], "field_au": 0.001, "ratio": 2.0,
                         "levels": 3, "origin": [0.0, 0.0, 0.1], "route": "auto",
                         "nuclear_relaxation": False},
-           "scf": {"energy_conv_tol_au": 1e-12, "max_cycle": 100, "grid_level": 3}}
+           "scf": {"energy_conv_tol_au": 1e-12, "max_iterations": 100, "grid_level": 3}}
     with tempfile.TemporaryDirectory() as tmp:
         job = check_outcome(_write_job(Path(tmp), toml_document(doc), None, None), None)
     assert job is not None

@@ -179,14 +179,14 @@ def test_the_automatic_window_shares_the_keys_of_the_equal_explicit_ladder(tmp_p
 
 def test_max_cycle_does_not_change_any_key(tmp_path):
     """max_cycle only decides whether a point converges, never what it converges to."""
-    assert keys_of(tmp_path, scf={"max_cycle": "50"}) == \
-        keys_of(tmp_path, scf={"max_cycle": "500"}) == keys_of(tmp_path)
+    assert keys_of(tmp_path, scf={"max_iterations": "50"}) == \
+        keys_of(tmp_path, scf={"max_iterations": "500"}) == keys_of(tmp_path)
 
 
 @given(st.integers(10, 100_000))
 @SETTINGS
 def test_max_cycle_does_not_change_the_model_key(max_cycle):
-    assert model_key(MOLECULE, MODEL, dataclasses.replace(SCF, max_cycle=max_cycle)) == \
+    assert model_key(MOLECULE, MODEL, dataclasses.replace(SCF, max_iterations=max_cycle)) == \
         model_key(MOLECULE, MODEL, SCF)
 
 
