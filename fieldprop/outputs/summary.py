@@ -133,12 +133,24 @@ def _number(x: Any) -> float | None:
     return float(x) if isinstance(x, (int, float)) and math.isfinite(x) else None
 
 
+#: The parts of a result (the ``part`` column): its keys in the result JSON
+#: for tensors and invariants (None: the part has none). Electronic with the
+#: nuclei clamped always; with nuclear_relaxation = true also the
+#: nuclear-relaxation part alone and the total.
+PARTS = (("electronic", "tensors", "invariants"),
+         ("nuclear_relaxation", "tensors_nuclear_relaxation", None),
+         ("total", "tensors_total", "invariants_total"))
+PART_LEGEND = ("part: electronic = nuclei clamped at the geometry; nuclear_relaxation = what "
+               "the nuclei relaxing in the field add; total = the sum (static limit)")
+
+
 def invariant_table(docs: list[tuple[str, dict]], units: str, convention: str
                     ) -> tuple[list[str], list[list[Any]], list[str]]:
-    """(CSV header, rows of numbers, display headers): one row per result."""
+    """(CSV header, rows of numbers, display headers): one row per result and
+    part (PARTS: electronic, and total where the nuclei were relaxed)."""
     present = [(name, prop) for name, prop in INVARIANTS
                if any(name in d["invariants"] for _, d in docs)]
-    header = ["file", "formula", "model", "route", "convention"]
+    header = ["file", "formula", "model", "route", "convention", "part"]
     shown = list(header)
     for name, prop in present:
         columns, headers = invariant_columns(name, prop, units, convention)
@@ -149,40 +161,53 @@ def invariant_table(docs: list[tuple[str, dict]], units: str, convention: str
     rows = []
     for label, doc in docs:
         routes = sorted({t.get("route", "?") for t in doc["tensors"].values()})
-        row: list[Any] = [label, _formula(doc), _model(doc), "+".join(routes), convention]
-        problems = []
-        for name, prop in present:
-            entry = doc["invariants"].get(name)
-            _, factor = conversion(prop, units, convention)
-            value = _number(entry.get("value")) if isinstance(entry, dict) else None
-            error = _number(entry.get("error")) if isinstance(entry, dict) else None
-            if value is None or error is None:
-                row += [None, None]
-                if isinstance(entry, dict):
-                    problems.append(f"{name}: {entry.get('reason') or 'no number'}")
+        for part, _, key in PARTS:
+            if key is None or not isinstance(doc.get(key), dict):
                 continue
-            row += [value * factor, error * factor]
-        row.append("ok" if not problems else "; ".join(problems))
-        rows.append(row)
+            rows.append(_invariant_row(doc[key], present, units, convention,
+                                       [label, _formula(doc), _model(doc), "+".join(routes),
+                                        convention, part]))
     return header, rows, shown
+
+
+def _invariant_row(invariants: dict, present, units: str, convention: str, row: list) -> list:
+    """``row`` continued with each present invariant's value and error bar
+    (converted) and a status: ok, or what has no number and why."""
+    problems = []
+    for name, prop in present:
+        entry = invariants.get(name)
+        _, factor = conversion(prop, units, convention)
+        value = _number(entry.get("value")) if isinstance(entry, dict) else None
+        error = _number(entry.get("error")) if isinstance(entry, dict) else None
+        if value is None or error is None:
+            row += [None, None]
+            if isinstance(entry, dict):
+                problems.append(f"{name}: {entry.get('reason') or 'no number'}")
+            continue
+        row += [value * factor, error * factor]
+    row.append("ok" if not problems else "; ".join(problems))
+    return row
 
 
 def component_table(docs: list[tuple[str, dict]], units: str, convention: str
                     ) -> tuple[list[str], list[list[Any]], list[str]]:
     """(CSV header, rows, display headers): one row per unique tensor component."""
-    header = ["file", "tensor", "component", "value", "error", "unit", "convention", "status",
-              "entry"]
+    header = ["file", "part", "tensor", "component", "value", "error", "unit", "convention",
+              "status", "entry"]
     rows = []
-    for label, doc in docs:
+    for label, doc, part, tensors in ((label, doc, part, doc.get(key))
+                                      for label, doc in docs for part, key, _ in PARTS):
+        if not isinstance(tensors, dict):
+            continue
         for name in ("dipole", "alpha", "beta", "gamma"):
-            tensor = doc["tensors"].get(name)
+            tensor = tensors.get(name)
             if not isinstance(tensor, dict):
                 continue
             unit, factor = conversion(name, units, convention)
             for c in tensor.get("components") or []:
                 value, error = _number(c.get("value")), _number(c.get("error"))
                 entry = c.get("richardson_entry") or {}
-                rows.append([label, name, c.get("name"),
+                rows.append([label, part, name, c.get("name"),
                              None if value is None else value * factor,
                              None if error is None else error * factor, unit, convention,
                              c.get("status") if value is not None else
@@ -224,11 +249,11 @@ def write(docs: list[tuple[str, dict]], out: TextIO, units: str = "au",
     text_rows = []
     for row in rows:
         if components:
-            v, e = _pair_text(row[3], row[4])
-            text_rows.append([*row[:3], v, e, *row[5:]])
+            v, e = _pair_text(row[4], row[5])
+            text_rows.append([*row[:4], v, e, *row[6:]])
             continue
-        cells = list(row[:5])
-        for k in range(5, len(row) - 1, 2):
+        cells = list(row[:6])
+        for k in range(6, len(row) - 1, 2):
             cells += list(_pair_text(row[k], row[k + 1]))
         cells.append(row[-1])
         text_rows.append(cells)
@@ -238,3 +263,4 @@ def write(docs: list[tuple[str, dict]], out: TextIO, units: str = "au",
                  if convention == "perturbation" else
                  " (E = E0 - mu F - alpha F^2/2 - beta F^3/6 - gamma F^4/24)") + "\n")
     out.write(tabulate(text_rows, headers=shown, disable_numparse=True) + "\n")
+    out.write(PART_LEGEND + "; static (zero-frequency) tensors of the isolated molecule\n")

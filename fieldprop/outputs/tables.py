@@ -241,7 +241,8 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au",
             rows.append([c.plan.name, v, e, _entry_text(est),
                          est.status.value + (f": {est.reason}" if est.reason and not c.stable
                                              else "")])
-        out.write(f"{name} ({label}; {_TABLE_SOURCE[plan.route][name]})\n")
+        out.write(f"{name}, electronic: nuclei clamped ({label}; "
+                  f"{_TABLE_SOURCE[plan.route][name]})\n")
         out.write(tabulate(rows, headers=["component", "value", "+- error", "Richardson entry",
                                           "status"], disable_numparse=True) + "\n")
         if name == "dipole" and result.molecule.charge != 0:
@@ -272,7 +273,7 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au",
         rows.append([inv.name, v, e, f"{cv} +- {ce} {label}" if inv.value_au is not None
                      else inv.reason, _INVARIANT_TEXT[inv.name]])
     if rows:
-        out.write(f"invariants ({convention} convention)\n")
+        out.write(f"invariants, electronic: nuclei clamped ({convention} convention)\n")
         # Definitions wrapped: the table fits a 160-column terminal.
         out.write(tabulate(rows, headers=["invariant", "value (au)", "+- error", "converted",
                                           "definition"], disable_numparse=True,

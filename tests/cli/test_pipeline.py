@@ -116,12 +116,12 @@ def test_points_in_shuffled_order_two_at_a_time_collect_what_run_gives(tmp_path,
     csv = fieldprop("collect", "lih.toml", "--format", "csv", "--quiet", cwd=tmp_path)
     assert csv.returncode == 0
     rows = [line.split(",") for line in csv.stdout.splitlines()]
-    assert rows[0] == ["file", "tensor", "component", "value", "error", "unit", "convention",
-                       "status", "entry"]
-    by_name = {r[2]: r for r in rows[1:]}
+    assert rows[0] == ["file", "part", "tensor", "component", "value", "error", "unit",
+                       "convention", "status", "entry"]
+    by_name = {r[3]: r for r in rows[1:]}
     alpha_zz = doc["tensors"]["alpha"]["value"][2][2]
-    assert float(by_name["alpha_zz"][3]) == alpha_zz and len(rows) == 1 + 3 + 9
-    assert {r[6] for r in rows[1:]} == {"taylor"}
+    assert float(by_name["alpha_zz"][4]) == alpha_zz and len(rows) == 1 + 3 + 9
+    assert {r[7] for r in rows[1:]} == {"taylor"} and {r[1] for r in rows[1:]} == {"electronic"}
     # The store exported as point lines assembles the same result elsewhere.
     export = fieldprop("inspect", "fieldprop-points.sqlite", "--json-lines", cwd=tmp_path)
     elsewhere = tmp_path / "elsewhere"
@@ -429,7 +429,7 @@ def test_report_converts_units_and_conventions_without_computing(tmp_path):
     assert done.returncode == 0, done.stderr
     header, row = [line.split(",") for line in done.stdout.splitlines()]
     values = dict(zip(header, row))
-    assert header[:5] == ["file", "formula", "model", "route", "convention"]
+    assert header[:6] == ["file", "formula", "model", "route", "convention", "part"]
     assert header[-1] == "status" and values["convention"] == "perturbation"
     assert values["formula"] == "HLi" and values["status"] == "ok"
     # Gaussian units: 1 C = 10 c statC (c in m/s), a0 in cm, Eh in erg; one
@@ -455,9 +455,9 @@ def test_report_converts_units_and_conventions_without_computing(tmp_path):
     done = fieldprop("report", "lih.result.json", "--components", "--format", "json",
                      cwd=tmp_path)
     table = json.loads(done.stdout)
-    rows = {r[2]: r for r in table["rows"]}
+    rows = {r[3]: r for r in table["rows"]}
     beta_zzz = next(c for c in doc["tensors"]["beta"]["components"] if c["name"] == "beta_zzz")
-    assert rows["beta_zzz"][3] == beta_zzz["value"] and rows["beta_zzz"][5] == "au"
+    assert rows["beta_zzz"][4] == beta_zzz["value"] and rows["beta_zzz"][6] == "au"
     # Every command that shows tensors takes the convention, names it in its
     # CSV and halves beta (gamma: a sixth) in the perturbation one; the JSON
     # stays Taylor.

@@ -4,6 +4,8 @@ The physics (double-harmonic relations, gradients) is in
 tests/physics/test_nuclear_relaxation.py; here water at HF/STO-3G keeps it fast.
 """
 
+import csv
+import io
 import json
 import textwrap
 
@@ -61,6 +63,22 @@ def test_a_rerun_reuses_every_relaxed_point_and_collect_gives_the_same(tmp_path,
     collected = json.loads(out.read_text())
     assert collected["tensors_nuclear_relaxation"] == first["tensors_nuclear_relaxation"]
     assert collected["invariants_total"] == first["invariants_total"]
+    # The CSVs carry every part, labelled: a row per component of the
+    # electronic, nuclear-relaxation and total tensors (collect, as run), and
+    # the electronic and total invariants (report); total = electronic + nuclear.
+    assert main(["collect", str(path), "--quiet", "--json", str(out), "--format", "csv"]) == 0
+    rows = list(csv.DictReader(io.StringIO(capsys.readouterr().out)))
+    by_part = {(r["part"], r["component"]): float(r["value"]) for r in rows if r["value"]}
+    assert {r["part"] for r in rows} == {"electronic", "nuclear_relaxation", "total"}
+    for name in ("alpha_xx", "alpha_zz", "beta_zzz"):
+        assert by_part["total", name] == pytest.approx(
+            by_part["electronic", name] + by_part["nuclear_relaxation", name], rel=1e-9,
+            abs=1e-12)
+    assert main(["report", str(out), "--format", "csv"]) == 0
+    rows = {r["part"]: r for r in csv.DictReader(io.StringIO(capsys.readouterr().out))}
+    assert set(rows) == {"electronic", "total"}
+    assert float(rows["total"]["alpha_iso_au"]) == pytest.approx(
+        first["invariants_total"]["alpha_iso"]["value"], rel=1e-12)
     # Commands that handle clamped nuclei only say so, in one line.
     assert main(["point", str(path), "--zero-field"]) == 2
     _one_line_error(capsys, "[response] nuclear_relaxation = true", "fieldprop point")
