@@ -33,8 +33,10 @@ if TYPE_CHECKING:
 
 
 CAUTION = ("Results depend on method and basis set (beta and gamma strongly: diffuse "
-           "functions and correlation change them by tens of percent); computed NLO "
-           "figures guide, and do not replace, measurement.")
+           "functions and correlation change them by tens of percent); the tensors are "
+           "static (zero frequency) and of the isolated molecule (gas phase: a solvent "
+           "changes a push-pull beta by tens of percent); computed NLO figures guide, and "
+           "do not replace, measurement.")
 
 #: The property whose units each invariant carries ("ratio": none).
 _INVARIANT_PROPERTY = {"dipole_norm": "dipole", "alpha_iso": "alpha", "alpha_aniso": "alpha",
