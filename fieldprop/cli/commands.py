@@ -182,7 +182,7 @@ def cmd_run(args) -> int:
         write_json_atomic(result_document(result), out_path)
         logger.info("result written to %s (%.1f s)", out_path, result.wall_time_s)
         _to_stdout(lambda: _write_result(result, args.format, args.units, out_path,
-                                               args.convention))
+                                               args.convention, args.all_digits))
     if args.plot is not None:
         from fieldprop.outputs.plots import write_plots
 
@@ -288,14 +288,15 @@ def _agreement_rule(args):
         abs_floor_au=floors, strict=args.strict)
 
 
-def _write_result(result, fmt: str, units: str, label, convention: str = "taylor") -> None:
+def _write_result(result, fmt: str, units: str, label, convention: str = "taylor",
+                  all_digits: bool = False) -> None:
     """A result on stdout: the tables, the result JSON (in au and the Taylor
     convention, whatever ``units`` and ``convention``), or a CSV of components."""
     from fieldprop.outputs.documents import result_document
     from fieldprop.outputs.tables import write_tables
 
     if fmt == "table":
-        write_tables(result, sys.stdout, units, convention)
+        write_tables(result, sys.stdout, units, convention, all_digits)
     elif fmt == "json":
         json.dump(result_document(result), sys.stdout, indent=1, allow_nan=False)
         sys.stdout.write("\n")
@@ -577,7 +578,7 @@ def cmd_collect(args) -> int:
         logger.info("result written to %s (from %d points)", out_path,
                     len(result.computed_records))
         _to_stdout(lambda: _write_result(result, args.format, args.units, out_path,
-                                               args.convention))
+                                               args.convention, args.all_digits))
     if result.missing:
         raise IncompleteError(f"{job.path}: {len(result.missing)} point(s) to compute missing "
                               f"({' '.join(i for _, i in result.missing[:8])}"
@@ -740,7 +741,7 @@ def cmd_report(args) -> int:
 
     docs = [(str(path), summary.load_result(path)) for path in args.results]
     _to_stdout(lambda: summary.write(docs, sys.stdout, args.units, args.convention,
-                                     args.format, args.components))
+                                     args.format, args.components, args.all_digits))
     return 0
 
 

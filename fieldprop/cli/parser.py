@@ -197,6 +197,7 @@ def build_parser() -> argparse.ArgumentParser:
     _executor_options(run)
     _progress_options(run)
     _convention_option(run)
+    _digits_option(run)
     run.add_argument("--units", choices=("au", "esu", "si"), default="au",
                      help="units of the tables' tensor components (au; esu: dipole in "
                      "debye, alpha in angstrom^3, beta and gamma in esu; si); the JSON "
@@ -305,6 +306,7 @@ def build_parser() -> argparse.ArgumentParser:
                          "a CSV of the tensor components")
     collect.add_argument("--quiet", action="store_true", help="no log lines on stderr")
     _convention_option(collect)
+    _digits_option(collect)
     collect.add_argument("--units", choices=("au", "esu", "si"), default="au",
                          help="units of the tables' tensor components (the JSON stays in au)")
     collect.set_defaults(handler=cmd_collect)
@@ -319,6 +321,7 @@ def build_parser() -> argparse.ArgumentParser:
                         help="au (default); esu: dipole in debye, alpha in angstrom^3, beta "
                         "and gamma in esu; si")
     _convention_option(report)
+    _digits_option(report)
     report.add_argument("--format", choices=("table", "csv", "json"), default="table",
                         help="a table for people (default), CSV with one header row, or "
                         "one JSON document (schema fieldprop-report-1: columns and rows)")
@@ -386,6 +389,13 @@ def _convention_option(parser) -> None:
                         help="of the tables and CSV: taylor (default, fieldprop's: E = E0 - "
                         "mu F - alpha F^2/2 - beta F^3/6 - gamma F^4/24) or perturbation "
                         "(beta/2, gamma/6); the result JSON stays taylor")
+
+
+def _digits_option(parser) -> None:
+    """--all-digits, the same on every command whose tables round values."""
+    parser.add_argument("--all-digits", action="store_true",
+                        help="tables show every digit the error bars support (default: at "
+                        "most 6 significant digits); CSV and JSON always carry all")
 
 
 def _progress_options(parser) -> None:

@@ -67,25 +67,31 @@ ALPHA_AU_TO_ANGSTROM3 = BOHR_TO_ANGSTROM**3
 
 #: The unit systems of the tables (``--units``): per property (label, factor
 #: from au). esu: the Gaussian units of the NLO literature, with the dipole in
-#: debye and alpha as a volume (angstrom^3, = 1e-24 cm^3 esu); si: SI.
+#: debye, alpha as a volume (angstrom^3, = 1e-24 cm^3 esu) and beta and gamma
+#: in the customary 1e-30 and 1e-36 esu (common practice); si: SI.
 TABLE_UNITS = {
     "au": {p: ("au", 1.0) for p in PROPERTY_ORDER},
     "esu": {"dipole": ("debye", DIPOLE_AU_TO_DEBYE),
             "alpha": ("angstrom^3", ALPHA_AU_TO_ANGSTROM3),
-            "beta": ("esu", esu_factor(3)), "gamma": ("esu", esu_factor(4))},
+            "beta": ("10^-30 esu", esu_factor(3) * 1e30),
+            "gamma": ("10^-36 esu", esu_factor(4) * 1e36)},
     "si": {p: (label, si_factor(n)) for p, n, label in (
         ("dipole", 1, "C m"), ("alpha", 2, "C m^2 V^-1"), ("beta", 3, "C m^3 V^-2"),
         ("gamma", 4, "C m^4 V^-3"))},
 }
 
-#: For each property, the extra units reported beside atomic units:
-#: ``{property: [(unit label, factor from au), ...]}``.
-DISPLAY_UNITS = {
-    "dipole": [("debye", DIPOLE_AU_TO_DEBYE), ("C m", si_factor(1))],
-    "alpha": [("angstrom^3", ALPHA_AU_TO_ANGSTROM3), ("C m^2 V^-1", si_factor(2))],
-    "beta": [("esu", esu_factor(3)), ("C m^3 V^-2", si_factor(3))],
-    "gamma": [("esu", esu_factor(4)), ("C m^4 V^-3", si_factor(4))],
-}
+#: Each unit spelled for a column name or a JSON key (letters, digits, _ and
+#: -; no spaces or carets): {label: tag}.
+UNIT_TAGS = {"au": "au", "debye": "debye", "angstrom^3": "angstrom3",
+             "10^-30 esu": "1e-30_esu", "10^-36 esu": "1e-36_esu", "C m": "C_m",
+             "C m^2 V^-1": "C_m2_per_V", "C m^3 V^-2": "C_m3_per_V2",
+             "C m^4 V^-3": "C_m4_per_V3"}
+
+#: For each property, the units reported beside atomic units in the result
+#: JSON: ``{property: [(unit tag, factor from au), ...]}``.
+DISPLAY_UNITS = {p: [(UNIT_TAGS[TABLE_UNITS[system][p][0]], TABLE_UNITS[system][p][1])
+                     for system in ("esu", "si")] for p in PROPERTY_ORDER}
+
 
 #: One unified atomic mass unit in electron masses (atomic units of mass).
 AMU_TO_ME = _c.atomic_mass / _c.m_e

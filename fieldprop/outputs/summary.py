@@ -4,16 +4,16 @@ and convention, without computing anything (``fieldprop report``; also the
 
 Two layouts:
 
-- **invariants** (default): one row per result, ``file, formula, model,
-  route``, then for each invariant its value and error bar, then ``status``
-  (``ok``, or what has no number and why);
+- **invariants** (default): one row per result and part, ``file, formula,
+  model, route, convention, part``, then for each invariant its value and
+  error bar, then ``status`` (``ok``, or what has no number and why);
 - **components** (``--components``): one row per unique tensor component:
-  ``file, tensor, component, value, error, unit, status, entry``.
+  ``file, part, tensor, component, value, error, unit, convention, status, entry``.
 
 CSV columns name their unit: ``<invariant>_<unit>`` and
-``<invariant>_error_<unit>`` (``alpha_iso_au``, ``beta_parallel_error_esu``,
-``dipole_norm_debye``); unit tags by system and property are in
-:data:`UNIT_TAGS`. Conventions: ``taylor`` (fieldprop's, E = E0 - mu F -
+``<invariant>_error_<unit>`` (``alpha_iso_au``, ``beta_parallel_error_1e-30_esu``,
+``dipole_norm_debye``, ``alpha_iso_C_m2_per_V``); unit tags by system and
+property are in :data:`UNIT_TAGS`. Conventions: ``taylor`` (fieldprop's, E = E0 - mu F -
 alpha F^2/2 - beta F^3/6 - gamma F^4/24) and ``perturbation`` (the B
 convention, mu(F) = mu + alpha F + beta F^2 + gamma F^3: beta/2, gamma/6; mu
 and alpha unchanged). Factors come from :mod:`fieldprop.numerics.units`.
@@ -37,6 +37,7 @@ from tabulate import tabulate
 from fieldprop.errors import InputError
 from fieldprop.inputs.job import echo_atoms
 from fieldprop.numerics.units import TABLE_UNITS
+from fieldprop.numerics.units import UNIT_TAGS as TAGS
 
 #: The schema of the result documents (report.result_document writes them, this
 #: module reads them).
@@ -45,9 +46,8 @@ RESULT_SCHEMA = "fieldprop-result-1"
 CONVENTIONS = {"taylor": {"dipole": 1.0, "alpha": 1.0, "beta": 1.0, "gamma": 1.0},
                "perturbation": {"dipole": 1.0, "alpha": 1.0, "beta": 0.5, "gamma": 1.0 / 6.0}}
 #: The short unit tag of CSV column names, per unit system and property.
-UNIT_TAGS = {"au": {p: "au" for p in TABLE_UNITS["au"]},
-             "esu": {"dipole": "debye", "alpha": "angstrom3", "beta": "esu", "gamma": "esu"},
-             "si": {p: "si" for p in TABLE_UNITS["si"]}}
+UNIT_TAGS = {system: {p: TAGS[label] for p, (label, _) in units.items()}
+             for system, units in TABLE_UNITS.items()}
 #: Invariants in the order of the columns, with their property.
 INVARIANTS = (("dipole_norm", "dipole"), ("alpha_iso", "alpha"), ("alpha_aniso", "alpha"),
               ("beta_parallel", "beta"), ("beta_vector_norm", "beta"), ("beta_hrs", "beta"),
@@ -221,17 +221,23 @@ def component_table(docs: list[tuple[str, dict]], units: str, convention: str
     return header, rows, header
 
 
-def _pair_text(value, error) -> tuple[str, str]:
+def _pair_text(value, error, significant=None) -> tuple[str, str]:
     from fieldprop.outputs.tables import format_pair
 
     if value is None:
         return "-", "-"
-    return format_pair(value, error)
+    return format_pair(value, error, significant)
 
 
 def write(docs: list[tuple[str, dict]], out: TextIO, units: str = "au",
-          convention: str = "taylor", fmt: str = "table", components: bool = False) -> None:
-    """The results ``docs`` ((label, document) pairs) in one layout and format."""
+          convention: str = "taylor", fmt: str = "table", components: bool = False,
+          all_digits: bool = False) -> None:
+    """The results ``docs`` ((label, document) pairs) in one layout and format
+    (a table: values to tables.SIGNIFICANT_DIGITS, or with ``all_digits``
+    every digit their bars support; CSV and JSON: full precision)."""
+    from fieldprop.outputs.tables import SIGNIFICANT_DIGITS
+
+    significant = None if all_digits else SIGNIFICANT_DIGITS
     build = component_table if components else invariant_table
     header, rows, shown = build(docs, units, convention)
     if fmt == "csv":
@@ -249,12 +255,12 @@ def write(docs: list[tuple[str, dict]], out: TextIO, units: str = "au",
     text_rows = []
     for row in rows:
         if components:
-            v, e = _pair_text(row[4], row[5])
+            v, e = _pair_text(row[4], row[5], significant)
             text_rows.append([*row[:4], v, e, *row[6:]])
             continue
         cells = list(row[:6])
         for k in range(6, len(row) - 1, 2):
-            cells += list(_pair_text(row[k], row[k + 1]))
+            cells += list(_pair_text(row[k], row[k + 1], significant))
         cells.append(row[-1])
         text_rows.append(cells)
     out.write(f"{'tensor components' if components else 'invariants'}; units: {units}; "

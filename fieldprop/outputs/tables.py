@@ -16,7 +16,7 @@ from tabulate import tabulate
 from fieldprop import __version__
 from fieldprop.inputs.job import SYMMETRISE
 from fieldprop.numerics.extrapolate import ComponentStatus
-from fieldprop.numerics.units import DISPLAY_UNITS, FIELD_AU_TO_V_PER_M
+from fieldprop.numerics.units import FIELD_AU_TO_V_PER_M
 from fieldprop.outputs.summary import conversion
 from fieldprop.outputs.documents import (_INVARIANT_PROPERTY, _INVARIANT_TEXT, CAUTION,
                                          orientation_note)
@@ -25,23 +25,36 @@ if TYPE_CHECKING:
     from fieldprop.engine.analyse import RunResult
 
 
-def format_pair(value: float | None, error: float | None) -> tuple[str, str]:
-    """Value and error as text, the value rounded to the error's second digit.
+#: Significant digits of a value in the tables of run, collect and report at
+#: most (--all-digits: every digit its error bar supports).
+SIGNIFICANT_DIGITS = 6
+
+
+def format_pair(value: float | None, error: float | None,
+                significant: int | None = None) -> tuple[str, str]:
+    """Value and error as text, the value rounded to the error's second digit
+    and to at most ``significant`` significant digits (None: no limit).
 
     >>> format_pair(8.0560071234, 2.3e-6)
     ('8.0560071', '2.3e-06')
+    >>> format_pair(8.0560071234, 2.3e-6, significant=4)
+    ('8.056', '2.3e-06')
     >>> format_pair(None, None)
     ('unstable', '-')
     """
     if value is None or error is None or not math.isfinite(value):
         return "unstable", "-"
     if error <= 0 or not math.isfinite(error):
-        return f"{value:.10g}", f"{error:.2g}"
+        return f"{value:.{significant or 10}g}", f"{error:.2g}"
     decimals = max(0, 1 - int(math.floor(math.log10(error))))
+    if significant is not None and value != 0.0:
+        decimals = min(decimals, max(0, significant - 1 - int(math.floor(math.log10(abs(value))))))
     if abs(value) >= 1e7 or decimals > 15:
         digits = max(1, int(math.floor(math.log10(max(abs(value), error)))) -
                      int(math.floor(math.log10(error))) + 1)
-        return f"{value:.{digits}e}", f"{error:.2g}"
+        if significant is not None:
+            digits = min(digits, significant - 1)
+        return f"{value:.{max(digits, 0)}e}", f"{error:.2g}"
     return f"{value:.{decimals}f}", f"{error:.2g}"
 
 
@@ -132,12 +145,12 @@ def symmetry_note(result: RunResult) -> str:
     return ""
 
 
-def _average_rows(average, factor: float) -> list[list[str]]:
+def _average_rows(average, factor: float, significant=None) -> list[list[str]]:
     """A tensor's components in the orientation frame and their average."""
     rows = []
     for c in average.in_frame:
         pairs = [format_pair(None if v is None else v * factor,
-                             None if e is None else e * factor)
+                             None if e is None else e * factor, significant)
                  for v, e in ((c.value_au, c.error_au), (c.average_au, c.average_error_au))]
         rows.append([c.name, *pairs[0], *pairs[1]])
     return rows
@@ -166,10 +179,12 @@ CONVENTION_TEXT = {
 
 
 def write_tables(result: RunResult, out: TextIO, units: str = "au",
-                 convention: str = "taylor") -> None:
+                 convention: str = "taylor", all_digits: bool = False) -> None:
     """The human-readable report: header, one table per tensor (in ``units``:
     au, esu or si, units.TABLE_UNITS, and ``convention``: summary.CONVENTIONS),
-    invariants."""
+    invariants; values to SIGNIFICANT_DIGITS at most, or with ``all_digits``
+    every digit their error bars support."""
+    significant = None if all_digits else SIGNIFICANT_DIGITS
     job, plan = result.job, result.plan
     model = job.model
     basis = (model.basis if isinstance(model.basis, str)
@@ -236,7 +251,8 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au",
         rows = []
         for c in tensor.components:
             est = c.estimate
-            v, e = (format_pair(est.value_au * factor, est.error_au * factor) if c.stable
+            v, e = (format_pair(est.value_au * factor, est.error_au * factor, significant)
+                    if c.stable
                     else (est.status.value, "-"))
             rows.append([c.plan.name, v, e, _entry_text(est),
                          est.status.value + (f": {est.reason}" if est.reason and not c.stable
@@ -252,49 +268,50 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au",
             about = "about n" if o.kind == "linear" else "over all turns"
             out.write(f"\n{name} in the orientation frame ({', '.join(o.labels)}) and its "
                       f"{o.average} average {about} ({label})\n")
-            out.write(tabulate(_average_rows(result.averages[name], factor),
+            out.write(tabulate(_average_rows(result.averages[name], factor, significant),
                                headers=["component", "value", "+- error", f"{o.average} average",
                                         "+- error"], disable_numparse=True) + "\n")
         out.write("\n")
-    rows = []
+    rows, legend = [], []
     for inv in result.invariants:
         prop = _INVARIANT_PROPERTY[inv.name]
-        scale = conversion(prop, "au", convention)[1]
-        v, e = (format_pair(inv.value_au * scale, inv.error_au * scale)
-                if inv.value_au is not None else ("", ""))
+        label, factor = conversion(prop, units, convention)
         if inv.value_au is None:
-            v = "missing" if inv.reason.startswith("missing") else "unstable"
-        label, factor = DISPLAY_UNITS[prop][0] if prop in DISPLAY_UNITS else ("", 1.0)
-        factor *= scale
-        if inv.value_au is None:
-            cv, ce = "-", "-"
+            v, e = ("missing" if inv.reason.startswith("missing") else "unstable"), "-"
         else:
-            cv, ce = format_pair(inv.value_au * factor, inv.error_au * factor)
-        rows.append([inv.name, v, e, f"{cv} +- {ce} {label}" if inv.value_au is not None
-                     else inv.reason, _INVARIANT_TEXT[inv.name]])
+            v, e = format_pair(inv.value_au * factor, inv.error_au * factor, significant)
+        row = [inv.name, v, e, label]
+        if units != "au":
+            scale = conversion(prop, "au", convention)[1]
+            row.append("-" if inv.value_au is None else
+                       " +- ".join(format_pair(inv.value_au * scale, inv.error_au * scale,
+                                               significant)))
+        rows.append(row)
+        legend.append(f"  {inv.name}: {_INVARIANT_TEXT[inv.name]}"
+                      + (f" ({inv.reason})" if inv.value_au is None else ""))
     if rows:
         out.write(f"invariants, electronic: nuclei clamped ({convention} convention)\n")
-        # Definitions wrapped: the table fits a 160-column terminal.
-        out.write(tabulate(rows, headers=["invariant", "value (au)", "+- error", "converted",
-                                          "definition"], disable_numparse=True,
-                           maxcolwidths=[None, None, None, 44, 56]) + "\n\n")
+        out.write(tabulate(rows, headers=["invariant", "value", "+- error", "unit"]
+                           + (["in au"] if units != "au" else []),
+                           disable_numparse=True) + "\n")
+        out.write("\n".join(legend) + "\n\n")
     if result.relaxation is not None:
-        _write_relaxation(result, out, units, convention)
+        _write_relaxation(result, out, units, convention, significant)
     for text in result.warnings:
         out.write(f"warning: {text}\n")
     if any(p in result.tensors for p in ("beta", "gamma")):
         out.write(f"note: {CAUTION}\n")
 
 
-def _pair_text(est, stable: bool, factor: float) -> str:
+def _pair_text(est, stable: bool, factor: float, significant=None) -> str:
     if not stable:
         return est.status.value
-    v, e = format_pair(est.value_au * factor, est.error_au * factor)
+    v, e = format_pair(est.value_au * factor, est.error_au * factor, significant)
     return f"{v} +- {e}"
 
 
 def _write_relaxation(result: RunResult, out: TextIO, units: str,
-                      convention: str = "taylor") -> None:
+                      convention: str = "taylor", significant=None) -> None:
     """Electronic, nuclear-relaxation and total tensors side by side, and the
     invariants with the nuclei clamped and relaxed."""
     part = result.relaxation
@@ -326,9 +343,9 @@ def _write_relaxation(result: RunResult, out: TextIO, units: str,
                               total.tensors[name].components):
             if ce.estimate.status is ComponentStatus.SYMMETRY_ZERO:
                 continue
-            rows.append([ce.plan.name, _pair_text(ce.estimate, ce.stable, factor),
-                         _pair_text(cn.estimate, cn.stable, factor),
-                         _pair_text(ct.estimate, ct.stable, factor)])
+            rows.append([ce.plan.name, _pair_text(ce.estimate, ce.stable, factor, significant),
+                         _pair_text(cn.estimate, cn.stable, factor, significant),
+                         _pair_text(ct.estimate, ct.stable, factor, significant)])
         out.write(f"{name} ({label}; components not zero by symmetry)\n")
         out.write(tabulate(rows, headers=["component", "electronic", "nuclear relaxation",
                                           "total"], disable_numparse=True) + "\n\n")
@@ -344,9 +361,11 @@ def _write_relaxation(result: RunResult, out: TextIO, units: str,
             continue
         e = clamped[inv.name]
         scale = conversion(_INVARIANT_PROPERTY[inv.name], "au", convention)[1]
-        rows.append([inv.name, " +- ".join(format_pair(e.value_au * scale, e.error_au * scale))
+        rows.append([inv.name, " +- ".join(format_pair(e.value_au * scale, e.error_au * scale,
+                                                       significant))
                      if e.value_au is not None else "unstable",
-                     " +- ".join(format_pair(inv.value_au * scale, inv.error_au * scale))
+                     " +- ".join(format_pair(inv.value_au * scale, inv.error_au * scale,
+                                             significant))
                      if inv.value_au is not None else "unstable"])
     if rows:
         out.write(f"invariants (au, {convention} convention): clamped and relaxed nuclei\n")
