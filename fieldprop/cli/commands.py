@@ -160,7 +160,15 @@ def cmd_run(args) -> int:
     job = load_job(args.job)
     out_path = _result_path(args)
     if args.plot is not None and not args.plot.is_dir():
-        raise InputError(f"--plot {args.plot}: is not an existing folder; create it first")
+        # A folder that does not exist yet is made (with its parents) before
+        # any work; one that cannot be made is refused.
+        if args.plot.exists():
+            raise InputError(f"--plot {args.plot}: is a file, not a folder; give a folder")
+        try:
+            args.plot.mkdir(parents=True)
+        except OSError as exc:
+            raise InputError(f"--plot {args.plot}: cannot make this folder "
+                             f"({exc.strerror or exc}); give another") from None
     if args.plot is not None and not os.access(args.plot, os.W_OK | os.X_OK):
         raise InputError(f"--plot {args.plot}: folder is not writable; give another folder")
     prepared = prepare(job)
@@ -280,8 +288,12 @@ def _agreement_rule(args):
                                 ("--abs-floor-au", args.abs_floor_au)) if v is not None]
         if given:
             raise InputError(f"fieldprop check: --strict uses no floor; drop {' and '.join(given)}")
-    floors = (dict(compare.DEFAULT_ABS_FLOOR_AU) if args.abs_floor_au is None
-              else {n: args.abs_floor_au for n in range(1, 5)})
+    given = args.abs_floor_au
+    if given is not None and len(given) not in (1, 4):
+        raise InputError(f"fieldprop check: --abs-floor-au takes one number (every order) or "
+                         f"four (mu, alpha, beta, gamma), got {len(given)}")
+    floors = (dict(compare.DEFAULT_ABS_FLOOR_AU) if given is None
+              else {n: given[0 if len(given) == 1 else n - 1] for n in range(1, 5)})
     return compare.AgreementRule(
         sigmas=compare.DEFAULT_SIGMAS if args.sigmas is None else args.sigmas,
         rel_floor=compare.DEFAULT_REL_FLOOR if args.rel_floor is None else args.rel_floor,
@@ -317,9 +329,13 @@ def _read_point_lines(paths: list[Path] | None):
         if str(path) == "-":
             out.append((sys.stdin.read().splitlines(), "stdin"))
             continue
-        files = sorted(path.glob("*.jsonl")) if path.is_dir() else [path]
-        if not files:
-            raise InputError(f"--points {path}: a directory without *.jsonl files")
+        if path.is_dir():
+            files = sorted(path.glob("*.jsonl"))
+            if not files:  # a job array's folder before its first element: zero points
+                logger.info("--points %s: no *.jsonl files yet (zero points)", path)
+            out += [([], str(path))] if not files else []
+        else:
+            files = [path]
         for file in files:
             try:
                 out.append((file.read_text(encoding="utf-8").splitlines(), str(file)))

@@ -146,7 +146,7 @@ examples:
 SCREEN_EXAMPLES = """\
 examples:
   fieldprop screen candidates.toml --csv ranked.csv --units esu
-  fieldprop screen candidates.toml --rank-by beta_parallel --csv - | sort -t, -k1n
+  fieldprop screen candidates.toml --rank-by beta_parallel --csv - | tail -n +2 | sort -t, -k1n
   fieldprop screen candidates.toml --scheduler tcp://head-node:8786   a Dask cluster
 exit codes: 0 every molecule has every number; 1 some molecule failed or lacks a number
 (the others' results are written, the failed ones named with their reason); 2 bad input
@@ -192,7 +192,7 @@ def build_parser() -> argparse.ArgumentParser:
                          epilog=READING_THE_TABLES + RUN_EXAMPLES,
                          formatter_class=argparse.RawDescriptionHelpFormatter)
     run.add_argument("job", type=Path, help="job file (TOML)")
-    run.add_argument("--json", type=Path, help="result JSON path (default JOB.result.json "
+    run.add_argument("--json", type=Path, metavar="PATH", help="result JSON path (default JOB.result.json "
                      "beside the job file; - writes it to stdout instead of the tables)")
     _executor_options(run)
     _progress_options(run)
@@ -215,20 +215,20 @@ def build_parser() -> argparse.ArgumentParser:
                            epilog=READING_THE_TABLES + CHECK_EXAMPLES,
                            formatter_class=argparse.RawDescriptionHelpFormatter)
     check.add_argument("job", type=Path, help="job file (TOML)")
-    check.add_argument("--against", type=Path, help="reference tensors: result-style JSON, "
+    check.add_argument("--against", type=Path, metavar="FILE", help="reference tensors: result-style JSON, "
                        ".npy or .npz (default: fieldprop's analytic SCF references)")
-    check.add_argument("--json", type=Path, help="write the comparison as JSON to this path "
+    check.add_argument("--json", type=Path, metavar="PATH", help="write the comparison as JSON to this path "
                        "(- writes it to stdout instead of the table)")
-    check.add_argument("--sigmas", type=_positive_float, default=None,
+    check.add_argument("--sigmas", type=_positive_float, default=None, metavar="K",
                        help="agreement within this many error bars (default 3)")
     check.add_argument("--strict", action="store_true",
                        help="error bars only (the finite-field one plus the reference's own, "
                        "when it has one), no relative or absolute floor")
-    check.add_argument("--rel-floor", type=_positive_float, default=None,
+    check.add_argument("--rel-floor", type=_positive_float, default=None, metavar="R",
                        help="relative floor of the allowed difference (default 1e-6)")
-    check.add_argument("--abs-floor-au", type=_positive_float, default=None,
-                       help="absolute floor for every order, au (default 1e-6, 1e-5, 1e-3, "
-                       "0.1 for mu, alpha, beta, gamma)")
+    check.add_argument("--abs-floor-au", type=_positive_float, default=None, nargs="+",
+                       metavar="X", help="absolute floor, au: one for every order, or four for "
+                       "mu, alpha, beta, gamma in turn (default 1e-6 1e-5 1e-3 0.1)")
     _executor_options(check)
     _progress_options(check)
     _store_options(check)
@@ -277,7 +277,8 @@ def build_parser() -> argparse.ArgumentParser:
                        "which every other point starts from: compute it first, once")
     point.add_argument("--stdout", action="store_true", help="write each point as a point "
                        "line (JSON) on stdout instead of storing it; the store is only read")
-    point.add_argument("--threads", type=_positive_int, default=None, help="BLAS/OpenMP "
+    point.add_argument("--threads", type=_positive_int, default=None, metavar="T",
+                       help="BLAS/OpenMP "
                        "threads of this process (default: OMP_NUM_THREADS, else 1)")
     point.add_argument("--retry-failed", action="store_true", help="compute again a point "
                        "stored as failed")
@@ -291,7 +292,7 @@ def build_parser() -> argparse.ArgumentParser:
                              epilog=COLLECT_EXAMPLES,
                              formatter_class=argparse.RawDescriptionHelpFormatter)
     collect.add_argument("job", type=Path, help="job file (TOML)")
-    collect.add_argument("--json", type=Path, help="result JSON path (default JOB.result.json "
+    collect.add_argument("--json", type=Path, metavar="PATH", help="result JSON path (default JOB.result.json "
                          "beside the job file; - writes it to stdout instead of the tables)")
     collect.add_argument("--points", type=Path, metavar="PATH", nargs="+", help="point lines "
                          "of fieldprop point --stdout, beside the store's points: files, "
@@ -344,16 +345,16 @@ def build_parser() -> argparse.ArgumentParser:
     _convention_option(screen)
     screen.add_argument("--units", choices=("au", "esu", "si"), default="au",
                         help="units of the table and the CSV (the result files stay in au)")
-    screen.add_argument("--csv", type=Path, help="write the ranked table as CSV to PATH "
+    screen.add_argument("--csv", type=Path, metavar="PATH", help="write the ranked table as CSV to PATH "
                         "(- for stdout, in place of the table)")
-    screen.add_argument("--png", type=Path, help="summary picture (default "
+    screen.add_argument("--png", type=Path, metavar="PATH", help="summary picture (default "
                         "SET.summary.png beside the set file)")
     screen.add_argument("--results", type=Path, metavar="DIR", help="folder of the molecules' "
                         "result JSON files, NAME.result.json (default SET.results beside the "
                         "set file)")
     _executor_options(screen)
     _progress_options(screen)
-    _store_options(screen)
+    _store_options(screen, beside="the set file")
     screen.set_defaults(handler=cmd_screen)
 
     relax = sub.add_parser("relax", help="the nuclei in one static field: forces on the "
@@ -364,9 +365,9 @@ def build_parser() -> argparse.ArgumentParser:
                        "[geometry] are used, [response] only for the origin")
     relax.add_argument("--field", type=float, nargs=3, required=True, metavar=("FX", "FY", "FZ"),
                        help="the field vector in atomic units (1 au = 5.14e11 V/m)")
-    relax.add_argument("--xyz", type=Path, help="the relaxed structure as XYZ (default "
+    relax.add_argument("--xyz", type=Path, metavar="PATH", help="the relaxed structure as XYZ (default "
                        "JOB.relaxed.xyz beside the job file)")
-    relax.add_argument("--json", type=Path, help="the forces, structures and energies as JSON "
+    relax.add_argument("--json", type=Path, metavar="PATH", help="the forces, structures and energies as JSON "
                        "(- writes it to stdout instead of the table)")
     relax.add_argument("--quiet", action="store_true", help="no log lines on stderr")
     _store_options(relax)
@@ -410,10 +411,10 @@ def _progress_options(parser) -> None:
 
 def _executor_options(parser) -> None:
     """Where the points are computed: the same options for run, check and screen."""
-    parser.add_argument("--workers", type=_positive_int, default=None,
+    parser.add_argument("--workers", type=_positive_int, default=None, metavar="N",
                         help="local processes computing field points in parallel (default: "
                         "one per core this process may use, divided by --threads)")
-    parser.add_argument("--threads", type=_positive_int, default=1,
+    parser.add_argument("--threads", type=_positive_int, default=1, metavar="T",
                         help="BLAS threads per worker process or Dask task (default 1: small "
                         "matrices run faster in more processes than in more threads)")
     where = parser.add_mutually_exclusive_group()
@@ -424,13 +425,13 @@ def _executor_options(parser) -> None:
                        help="the same, with the scheduler's address from its scheduler file")
 
 
-def _store_options(parser) -> None:
+def _store_options(parser, beside: str = "the job file") -> None:
     from fieldprop.points.store import DEFAULT_NAME as DEFAULT_STORE_NAME
 
     group = parser.add_mutually_exclusive_group()
     group.add_argument("--store", type=Path, metavar="PATH", help="point store: computed points "
                        "are kept there and reused by any job that needs them (default "
-                       f"{DEFAULT_STORE_NAME} beside the job file)")
+                       f"{DEFAULT_STORE_NAME} beside {beside})")
     group.add_argument("--no-store", action="store_true", help="keep the points in memory "
                        "only: nothing is read or written")
     parser.add_argument("--retry-failed", action="store_true", help="compute again the points "

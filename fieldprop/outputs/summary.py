@@ -96,8 +96,10 @@ def load_result(path: Path) -> dict:
                          "is written by fieldprop run or collect") from None
     if not isinstance(doc, dict) or doc.get("schema") != RESULT_SCHEMA:
         found = doc.get("schema") if isinstance(doc, dict) else None
-        raise InputError(f"{path}: not a fieldprop result (schema {found!r}, expected "
-                         f"{RESULT_SCHEMA!r})")
+        what = (f"its schema is {found!r}, not {RESULT_SCHEMA!r}" if found is not None else
+                "JSON without the result's schema key")
+        raise InputError(f"{path}: not a fieldprop result ({what}); a result file is written "
+                         "by fieldprop run or collect")
     if doc.get("units") != "au" or doc.get("convention") != "taylor":
         raise InputError(f"{path}: units {doc.get('units')!r} and convention "
                          f"{doc.get('convention')!r}; fieldprop results are in 'au', 'taylor'")

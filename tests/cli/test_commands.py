@@ -127,11 +127,30 @@ def test_run_plot_writes_one_png_per_property_with_every_component(tmp_path):
     assert len(written["beta.png"]) == 18 and "beta_xyz" in written["beta.png"]
 
 
-def test_run_plot_into_a_missing_folder_is_refused_before_work(tmp_path):
+def test_run_plot_into_a_missing_folder_makes_it_and_a_file_is_refused(tmp_path):
     (tmp_path / "lih.toml").write_text(JOB)
-    done = fieldprop("run", "lih.toml", "--plot", "nowhere", cwd=tmp_path)
-    assert done.returncode == 2 and "--plot" in done.stderr
+    (tmp_path / "taken").write_text("a file")
+    done = fieldprop("run", "lih.toml", "--plot", "taken", cwd=tmp_path)
+    assert done.returncode == 2 and "--plot" in done.stderr and "is a file" in done.stderr
     assert not (tmp_path / "lih.result.json").exists()
+    done = fieldprop("run", "lih.toml", "--plot", "new/pictures", "--quiet", "--no-store",
+                     cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    assert (tmp_path / "new" / "pictures" / "beta.png").stat().st_size > 1000
+
+
+def test_check_takes_one_floor_or_four(tmp_path):
+    from fieldprop.cli.commands import _agreement_rule
+    from fieldprop.cli.parser import build_parser
+    from fieldprop.errors import InputError
+
+    parse = build_parser().parse_args
+    rule = _agreement_rule(parse(["check", "j.toml", "--abs-floor-au", "1e-4"]))
+    assert rule.abs_floor_au == {1: 1e-4, 2: 1e-4, 3: 1e-4, 4: 1e-4}
+    rule = _agreement_rule(parse(["check", "j.toml", "--abs-floor-au", "1", "2", "3", "4"]))
+    assert rule.abs_floor_au == {1: 1.0, 2: 2.0, 3: 3.0, 4: 4.0}
+    with pytest.raises(InputError, match="one number .* or four"):
+        _agreement_rule(parse(["check", "j.toml", "--abs-floor-au", "1", "2"]))
 
 
 def test_run_plot_into_an_unwritable_folder_is_refused_before_work(tmp_path, capsys,

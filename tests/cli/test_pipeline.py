@@ -308,9 +308,14 @@ def test_bad_point_lines_are_refused_with_one_line(tmp_path):
     assert done.returncode == 0 and ids[0] not in done.stdout and ids[1] not in done.stdout
     empty = tmp_path / "empty"
     empty.mkdir()
+    # A folder a job array has not written into yet holds zero points: collect
+    # finds every point missing (exit 3), plan lists them all to compute.
     done = fieldprop("collect", "lih.toml", "--points", "empty", cwd=tmp_path)
-    one_error_line(done, 2, "--points empty", "without *.jsonl files")
+    assert done.returncode == 3 and "incomplete" in done.stderr, done.stderr
     assert not (tmp_path / "lih.result.json").exists()
+    done = fieldprop("plan", "lih.toml", "--points", "empty", "--ids", "--missing",
+                     cwd=tmp_path)
+    assert done.returncode == 0 and ids[1] in done.stdout.split(), done.stderr
     done = fieldprop("point", "lih.toml", "--id", "0123456789ab", cwd=tmp_path)
     one_error_line(done, 2, "--id 0123456789ab", "not in this job's plan")
     # plan --count writes the store: a basis the backend lacks is refused
