@@ -756,6 +756,11 @@ def cmd_report(args) -> int:
     from fieldprop.outputs import summary
 
     docs = [(str(path), summary.load_result(path)) for path in args.results]
+    if args.format == "job":
+        if len(docs) != 1:
+            raise InputError(f"fieldprop report --format job: one result file, got {len(docs)}")
+        _to_stdout(lambda: sys.stdout.write(summary.job_file_text(*docs[0])))
+        return 0
     _to_stdout(lambda: summary.write(docs, sys.stdout, args.units, args.convention,
                                      args.format, args.components, args.all_digits))
     return 0

@@ -140,6 +140,7 @@ REPORT_EXAMPLES = """\
 examples:
   fieldprop report water.result.json urea.result.json --units esu
   fieldprop report results/*.json --format csv > table.csv
+  fieldprop report water.result.json --format job > again.toml   the job, rebuilt
   fieldprop report water.result.json --components --convention perturbation
 """
 
@@ -323,9 +324,11 @@ def build_parser() -> argparse.ArgumentParser:
                         "and gamma in esu; si")
     _convention_option(report)
     _digits_option(report)
-    report.add_argument("--format", choices=("table", "csv", "json"), default="table",
-                        help="a table for people (default), CSV with one header row, or "
-                        "one JSON document (schema fieldprop-report-1: columns and rows)")
+    report.add_argument("--format", choices=("table", "csv", "json", "job"), default="table",
+                        help="a table for people (default), CSV with one header row, one "
+                        "JSON document (schema fieldprop-report-1: columns and rows), or "
+                        "job: the job file (TOML) that computes the result again (one "
+                        "result; its keys and values as the result records them)")
     report.add_argument("--components", action="store_true", help="one row per tensor "
                         "component instead of one row of invariants per result")
     report.set_defaults(handler=cmd_report)

@@ -110,6 +110,20 @@ def load_result(path: Path) -> dict:
     return doc
 
 
+def job_file_text(label: str, doc: dict) -> str:
+    """The job file (TOML) that computes the result ``doc`` again: its job
+    echo without what was derived (the echo holds the job file's own
+    sections and keys, every default filled in and the geometry in bohr at
+    full precision)."""
+    import tomli_w
+
+    job = {k: v for k, v in doc["job"].items() if k != "derived"}
+    if not isinstance(job.get("molecule"), dict):
+        raise InputError(f"{label}: its job echo has no [molecule]; it cannot be rebuilt")
+    return (f"# The job of {label}, rebuilt from its result (fieldprop "
+            f"{doc.get('version', '?')}).\n" + tomli_w.dumps(job, multiline_strings=True))
+
+
 def _formula(doc: dict) -> str:
     formula = doc.get("formula")
     if isinstance(formula, str) and formula:

@@ -6,6 +6,7 @@ import subprocess
 import sys
 import textwrap
 
+import numpy as np
 import pytest
 
 from cli_support import fieldprop  # noqa: E402
@@ -363,3 +364,30 @@ def test_a_scheduler_file_that_names_no_scheduler_is_one_line(tmp_path, content)
     assert "Traceback" not in done.stderr
     assert sorted(p.name for p in tmp_path.iterdir()) == sorted(
         ["lih.toml"] + (["scheduler.json"] if content is not None else []))
+
+
+def test_a_job_rebuilt_from_its_result_gives_the_same_tensors(tmp_path):
+    """report --format job writes the job file of a result (its echo, in the
+    job file's own keys); run on it, it computes the same tensors, and its
+    own result rebuilds to the same text."""
+    pytest.importorskip("pyscf")
+    (tmp_path / "lih.toml").write_text(JOB)
+    assert fieldprop("run", "lih.toml", "--quiet", "--no-store", cwd=tmp_path).returncode == 0
+    first = json.loads((tmp_path / "lih.result.json").read_text())
+    rebuilt = fieldprop("report", "lih.result.json", "--format", "job", cwd=tmp_path)
+    assert rebuilt.returncode == 0, rebuilt.stderr
+    (tmp_path / "again.toml").write_text(rebuilt.stdout)
+    done = fieldprop("run", "again.toml", "--quiet", "--no-store", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    again = json.loads((tmp_path / "again.result.json").read_text())
+    for name in ("dipole", "alpha", "beta"):
+        a, b = (np.array(d["tensors"][name]["value"]) for d in (first, again))
+        bars = np.array(first["tensors"][name]["error"]) + np.array(
+            again["tensors"][name]["error"])
+        assert (np.abs(a - b) <= bars + 1e-12).all(), name
+    assert again["job"] == {**first["job"], "derived": again["job"]["derived"]}
+    twice = fieldprop("report", "again.result.json", "--format", "job", cwd=tmp_path).stdout
+    assert twice.splitlines()[1:] == rebuilt.stdout.splitlines()[1:]
+    one_more = fieldprop("report", "lih.result.json", "again.result.json", "--format", "job",
+                         cwd=tmp_path)
+    assert one_more.returncode == 2 and "one result file" in one_more.stderr
