@@ -761,8 +761,12 @@ def cmd_report(args) -> int:
             raise InputError(f"fieldprop report --format job: one result file, got {len(docs)}")
         _to_stdout(lambda: sys.stdout.write(summary.job_file_text(*docs[0])))
         return 0
+    if args.frame != "input" and not args.components:
+        raise InputError("fieldprop report: --frame applies to --components (the invariants "
+                         "are the same in every frame)")
     _to_stdout(lambda: summary.write(docs, sys.stdout, args.units, args.convention,
-                                     args.format, args.components, args.all_digits))
+                                     args.format, args.components, args.all_digits,
+                                     args.frame))
     return 0
 
 

@@ -329,6 +329,10 @@ def build_parser() -> argparse.ArgumentParser:
                         "JSON document (schema fieldprop-report-1: columns and rows), or "
                         "job: the job file (TOML) that computes the result again (one "
                         "result; its keys and values as the result records them)")
+    report.add_argument("--frame", choices=("input", "dipole"), default="input",
+                        help="with --components: the input geometry's frame (default) or the "
+                        "dipole frame (z along the dipole moment, x along the largest "
+                        "perpendicular axis of alpha; error bars carried linearly)")
     report.add_argument("--components", action="store_true", help="one row per tensor "
                         "component instead of one row of invariants per result")
     report.set_defaults(handler=cmd_report)

@@ -372,6 +372,45 @@ def gamma_perpendicular(g: np.ndarray) -> float:
                   - np.einsum("ijji->", g)) / 30.0)
 
 
+def dipole_frame(mu, alpha=None, positions=None) -> np.ndarray:
+    """The dipole frame, rows x, y, z: z along mu (the customary orientation
+    of a push-pull molecule, its charge-transfer axis); x the direction
+    perpendicular to z along which the symmetrised alpha (without alpha, the
+    nuclei's second moment about their centre, ``positions`` (n, 3)) is
+    largest: the molecule's long in-plane axis; its largest component
+    positive; y = z x x. Raises ValueError for mu = 0."""
+    mu = np.asarray(mu, dtype=float)
+    size = float(np.linalg.norm(mu))
+    if size == 0.0:
+        raise ValueError("the dipole frame needs a dipole moment")
+    z = mu / size
+    project = np.eye(3) - np.outer(z, z)
+    if alpha is not None:
+        shape = symmetrize(np.asarray(alpha, dtype=float))
+    else:
+        r = np.asarray(positions, dtype=float)
+        r = r - r.mean(axis=0)
+        shape = r.T @ r
+    values, vectors = np.linalg.eigh(project @ shape @ project)
+    x = project @ vectors[:, int(np.argmax(values))]
+    x /= np.linalg.norm(x)
+    if x[int(np.argmax(np.abs(x)))] < 0:
+        x = -x
+    return np.array([x, np.cross(z, x), z])
+
+
+def turned(t, frame, magnitudes: bool = False) -> np.ndarray:
+    """Tensor ``t`` in the frame whose rows are ``frame``'s axes:
+    t'_abc = R_ai R_bj R_ck t_ijk. With ``magnitudes``, |R| in place of R:
+    error bars carried linearly (sum_ijk |R_ai R_bj R_ck| err_ijk, which
+    assumes no independence of the components' errors, as the invariants)."""
+    r = np.abs(frame) if magnitudes else np.asarray(frame)
+    out = np.asarray(t, dtype=float)
+    for axis in range(out.ndim):
+        out = np.moveaxis(np.tensordot(r, out, axes=([1], [axis])), 0, axis)
+    return out
+
+
 def _propagate(fn, tensors: dict[str, TensorResult], names) -> tuple[float, float]:
     """Value and linear error of fn(*values) over the components of ``names``."""
     values = [tensors[n].value_au for n in names]

@@ -32,6 +32,7 @@ import math
 from pathlib import Path
 from typing import Any, TextIO
 
+import numpy as np
 from tabulate import tabulate
 
 from fieldprop.errors import InputError
@@ -205,12 +206,61 @@ def _invariant_row(invariants: dict, present, units: str, convention: str, row: 
     return row
 
 
-def component_table(docs: list[tuple[str, dict]], units: str, convention: str
-                    ) -> tuple[list[str], list[list[Any]], list[str]]:
-    """(CSV header, rows, display headers): one row per unique tensor component."""
+def _frame_of(label: str, doc: dict):
+    """The dipole frame of a result (tensors.dipole_frame: z along its
+    electronic dipole, x along its alpha's largest perpendicular axis, or the
+    nuclei's without alpha); InputError where the dipole is zero within its
+    error bars or not in the result."""
+    from fieldprop.numerics.tensors import dipole_frame
+
+    tensors = doc["tensors"]
+    dipole = tensors.get("dipole") or {}
+    mu, err = dipole.get("value"), dipole.get("error")
+    if mu is None or err is None or any(v is None for v in list(mu) + list(err)):
+        raise InputError(f"{label}: the dipole frame needs the dipole moment (properties "
+                         "with \"dipole\", every component a number)")
+    mu, err = np.array(mu, dtype=float), np.array(err, dtype=float)
+    if np.linalg.norm(mu) <= 3.0 * np.linalg.norm(err) or np.linalg.norm(mu) < 1e-6:
+        raise InputError(f"{label}: the dipole moment is zero within its error bars: the "
+                         "molecule has no dipole frame")
+    alpha = (tensors.get("alpha") or {}).get("value")
+    if alpha is not None and any(v is None for row in alpha for v in row):
+        alpha = None
+    atoms = [a["coords_bohr"] for a in doc.get("geometry_computed_bohr") or []]
+    return dipole_frame(mu, alpha, atoms if alpha is None else None)
+
+
+def _turned_components(tensor: dict, frame) -> list[dict]:
+    """A tensor's components (the result's layout) in ``frame``; every one
+    without a number when one of the tensor's is (nothing to turn)."""
+    from fieldprop.numerics.tensors import turned
+
+    value, error = tensor.get("value"), tensor.get("error")
+    flat_v = np.array(value, dtype=object).ravel()
+    if any(v is None for v in flat_v) or error is None:
+        return [{**c, "value": None, "error": None, "status": "unstable",
+                 "reason": "not turned: a component of the tensor has no number"}
+                for c in tensor.get("components") or []]
+    v = turned(np.array(value, dtype=float), frame)
+    e = turned(np.array(error, dtype=float), frame, magnitudes=True)
+    out = []
+    for c in tensor.get("components") or []:
+        index = tuple(c["indices"])
+        status = "ok" if c.get("status") == "zero-by-symmetry" else c.get("status")
+        out.append({**c, "value": float(v[index]), "error": float(e[index]),
+                    "status": status})
+    return out
+
+
+def component_table(docs: list[tuple[str, dict]], units: str, convention: str,
+                    frame: str = "input") -> tuple[list[str], list[list[Any]], list[str]]:
+    """(CSV header, rows, display headers): one row per unique tensor
+    component, in the input frame or (``frame`` = "dipole") the dipole frame
+    (_frame_of; components named by their indices in that frame)."""
     header = ["file", "part", "tensor", "component", "value", "error", "unit", "convention",
-              "status", "entry"]
+              "frame", "status", "entry"]
     rows = []
+    axes = {label: _frame_of(label, doc) for label, doc in docs} if frame == "dipole" else {}
     for label, doc, part, tensors in ((label, doc, part, doc.get(key))
                                       for label, doc in docs for part, key, _ in PARTS):
         if not isinstance(tensors, dict):
@@ -220,13 +270,15 @@ def component_table(docs: list[tuple[str, dict]], units: str, convention: str
             if not isinstance(tensor, dict):
                 continue
             unit, factor = conversion(name, units, convention)
-            for c in tensor.get("components") or []:
+            components = (tensor.get("components") or [] if frame != "dipole"
+                          else _turned_components(tensor, axes[label]))
+            for c in components:
                 value, error = _number(c.get("value")), _number(c.get("error"))
                 entry = c.get("richardson_entry") or {}
                 rows.append([label, part, name, c.get("name"),
                              None if value is None else value * factor,
                              None if error is None else error * factor, unit, convention,
-                             c.get("status") if value is not None else
+                             frame, c.get("status") if value is not None else
                              f"{c.get('status')}: {c.get('reason')}",
                              f"h{entry.get('level')}, {entry.get('steps')} steps"
                              if entry and c.get("status") not in (
@@ -247,15 +299,17 @@ def _pair_text(value, error, significant=None) -> tuple[str, str]:
 
 def write(docs: list[tuple[str, dict]], out: TextIO, units: str = "au",
           convention: str = "taylor", fmt: str = "table", components: bool = False,
-          all_digits: bool = False) -> None:
+          all_digits: bool = False, frame: str = "input") -> None:
     """The results ``docs`` ((label, document) pairs) in one layout and format
     (a table: values to tables.SIGNIFICANT_DIGITS, or with ``all_digits``
     every digit their bars support; CSV and JSON: full precision)."""
     from fieldprop.outputs.tables import SIGNIFICANT_DIGITS
 
     significant = None if all_digits else SIGNIFICANT_DIGITS
-    build = component_table if components else invariant_table
-    header, rows, shown = build(docs, units, convention)
+    if components:
+        header, rows, shown = component_table(docs, units, convention, frame)
+    else:
+        header, rows, shown = invariant_table(docs, units, convention)
     if fmt == "csv":
         writer = csv.writer(out, lineterminator="\n")
         writer.writerow(header)
