@@ -7,6 +7,7 @@ from __future__ import annotations
 import contextlib
 import dataclasses
 import io
+import logging
 import os
 import tempfile
 import warnings
@@ -16,6 +17,8 @@ import numpy as np
 from fieldprop.backend.molecule import _mean_field, build_mole, frozen_orbitals
 from fieldprop.backend.solver import _gradient_norm
 from fieldprop.inputs.job import DEFAULT_GRID_LEVEL, Job
+
+logger = logging.getLogger(__name__)
 
 
 #: The SCF inside a geometry optimisation (each step's and the final one):
@@ -61,6 +64,16 @@ args=()
 [formatter_plain]
 format=%(message)s
 """
+
+
+def _step(env: dict, steps: list, job, thresholds: dict) -> None:
+    """One optimisation step done: counted, and logged (a long optimisation
+    is otherwise silent in a batch log)."""
+    steps.append(1)
+    gradient = float(np.abs(env["gradients"]).max())
+    logger.info("%s: optimisation step %d: E = %.10f Eh, largest gradient %.1e Eh/bohr "
+                "(converged below %.0e)", job.path, len(steps), float(env["energy"]), gradient,
+                thresholds["gradient_max_au"])
 
 
 def _optimiser_thresholds(thresholds: dict[str, float]) -> dict[str, float]:
@@ -115,7 +128,8 @@ def optimize_geometry(job: Job, molecule) -> dict:
                 out.write(_GEOMETRIC_LOG_CONFIG)
             converged, mol_eq = geometric_solver.kernel(
                 method, maxsteps=job.geometry.max_steps, assert_convergence=False,
-                callback=lambda env: steps.append(1), logIni=quiet, **params)
+                callback=lambda env: _step(env, steps, job, thresholds), logIni=quiet,
+                **params)
     except Exception as exc:  # noqa: BLE001 - named, never a traceback
         raise ScfNotConvergedError(f"{job.path}: [geometry] optimize: the optimisation failed "
                                    f"inside the backend ({type(exc).__name__}: "
