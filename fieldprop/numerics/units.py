@@ -82,14 +82,14 @@ TABLE_UNITS = {
 
 #: Each unit spelled for a column name or a JSON key (letters, digits, _ and
 #: -; no spaces or carets): {label: tag}.
-UNIT_TAGS = {"au": "au", "debye": "debye", "angstrom^3": "angstrom3",
+LABEL_TAGS = {"au": "au", "debye": "debye", "angstrom^3": "angstrom3",
              "10^-30 esu": "1e-30_esu", "10^-36 esu": "1e-36_esu", "C m": "C_m",
              "C m^2 V^-1": "C_m2_per_V", "C m^3 V^-2": "C_m3_per_V2",
              "C m^4 V^-3": "C_m4_per_V3"}
 
 #: For each property, the units reported beside atomic units in the result
 #: JSON: ``{property: [(unit tag, factor from au), ...]}``.
-DISPLAY_UNITS = {p: [(UNIT_TAGS[TABLE_UNITS[system][p][0]], TABLE_UNITS[system][p][1])
+DISPLAY_UNITS = {p: [(LABEL_TAGS[TABLE_UNITS[system][p][0]], TABLE_UNITS[system][p][1])
                      for system in ("esu", "si")] for p in PROPERTY_ORDER}
 
 

@@ -38,7 +38,7 @@ from tabulate import tabulate
 from fieldprop.errors import InputError
 from fieldprop.inputs.job import echo_atoms
 from fieldprop.numerics.units import TABLE_UNITS
-from fieldprop.numerics.units import UNIT_TAGS as TAGS
+from fieldprop.numerics.units import LABEL_TAGS
 
 #: The schema of the result documents (report.result_document writes them, this
 #: module reads them).
@@ -47,7 +47,7 @@ RESULT_SCHEMA = "fieldprop-result-1"
 CONVENTIONS = {"taylor": {"dipole": 1.0, "alpha": 1.0, "beta": 1.0, "gamma": 1.0},
                "perturbation": {"dipole": 1.0, "alpha": 1.0, "beta": 0.5, "gamma": 1.0 / 6.0}}
 #: The short unit tag of CSV column names, per unit system and property.
-UNIT_TAGS = {system: {p: TAGS[label] for p, (label, _) in units.items()}
+UNIT_TAGS = {system: {p: LABEL_TAGS[label] for p, (label, _) in units.items()}
              for system, units in TABLE_UNITS.items()}
 #: Invariants in the order of the columns, with their property.
 INVARIANTS = (("dipole_norm", "dipole"), ("alpha_iso", "alpha"), ("alpha_aniso", "alpha"),

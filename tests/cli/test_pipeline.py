@@ -442,11 +442,11 @@ def test_report_converts_units_and_conventions_without_computing(tmp_path):
     e_statc = constants.e * constants.c * 10.0
     a0_cm = constants.physical_constants["Bohr radius"][0] * 100.0
     eh_erg = constants.physical_constants["Hartree energy"][0] * 1e7
-    beta_esu = (e_statc * a0_cm) ** 3 / eh_erg ** 2
+    beta_esu = (e_statc * a0_cm) ** 3 / eh_erg ** 2 * 1e30  # in the customary 1e-30 esu
     inv = doc["invariants"]
-    assert float(values["beta_hrs_esu"]) == pytest.approx(inv["beta_hrs"]["value"] * beta_esu
+    assert float(values["beta_hrs_1e-30_esu"]) == pytest.approx(inv["beta_hrs"]["value"] * beta_esu
                                                           / 2, rel=1e-9)
-    assert float(values["beta_hrs_error_esu"]) == pytest.approx(
+    assert float(values["beta_hrs_error_1e-30_esu"]) == pytest.approx(
         inv["beta_hrs"]["error"] * beta_esu / 2, rel=1e-9)
     angstrom3 = (constants.physical_constants["Bohr radius"][0] / constants.angstrom) ** 3
     assert float(values["alpha_iso_angstrom3"]) == pytest.approx(

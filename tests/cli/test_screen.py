@@ -118,13 +118,13 @@ def test_three_molecules_give_a_ranked_csv_in_the_units_asked(three):
     header = list(rows[0])
     assert header[:3] == ["rank", "name", "formula"]
     for column in ("dipole_norm_debye", "dipole_norm_error_debye", "alpha_iso_angstrom3",
-                   "alpha_iso_error_angstrom3", "beta_hrs_esu", "beta_hrs_error_esu",
+                   "alpha_iso_error_angstrom3", "beta_hrs_1e-30_esu", "beta_hrs_error_1e-30_esu",
                    "status", "model", "convention", "bars_clear_of_next", "reason", "caution"):
         assert column in header, column
     assert {r["convention"] for r in rows} == {"taylor"}
     assert {r["name"] for r in rows} == {"water", "formaldehyde", "hydrogen-fluoride"}
     # Best first by |beta_hrs| (the default key with beta computed).
-    values = [float(r["beta_hrs_esu"]) for r in rows]
+    values = [float(r["beta_hrs_1e-30_esu"]) for r in rows]
     assert values == sorted(values, reverse=True)
     assert all(r["status"] == "ok" and r["model"] == "HF/sto-3g" for r in rows)
     # Every molecule has its result file, as run writes it; the CSV carries its
