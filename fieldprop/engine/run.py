@@ -64,8 +64,10 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
     store = PointStore.in_memory() if own_store else store
     executor = make_executor(workers) if own_executor else executor
     ladder = ("1 point, zero field only (no derivative)" if len(plan.points) == 1 else
-              f"{len(plan.points)} field points on {plan.levels} levels (h0 = {plan.field_au:g} "
-              f"au, ratio {plan.ratio:g}), differentiating "
+              f"{'a ladder of ' if prepared.adaptive else ''}{len(plan.points)} field points "
+              f"on {plan.levels} levels (h0 = {plan.field_au:g} au, ratio {plan.ratio:g}"
+              + ("; the adaptive window computes those its components need, stage by stage"
+                 if prepared.adaptive else "") + "), differentiating "
               f"{'E(F)' if plan.route == 'energy' else 'the SCF dipole'}")
     logger.info("%s: %s/%s%s, %s, SCF energy tolerance %g Eh, orbital "
                 "gradient %g (accepted up to %g), solver %s; store %s; %s", job.path,

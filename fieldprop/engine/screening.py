@@ -94,7 +94,7 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
         if on_result is not None:
             on_result(out)
 
-    bar = Progress(progress, log_every_s)
+    bar = Progress(progress, log_every_s, since_s=time.perf_counter() - start)
     try:
         compute_jobs(works, store, pool, bar, finished)
     finally:

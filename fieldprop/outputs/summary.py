@@ -322,21 +322,40 @@ def write(docs: list[tuple[str, dict]], out: TextIO, units: str = "au",
                    "columns": header, "rows": rows}, out, indent=1, allow_nan=False)
         out.write("\n")
         return
-    text_rows = []
-    for row in rows:
-        if components:
-            v, e = _pair_text(row[4], row[5], significant)
-            text_rows.append([*row[:4], v, e, *row[6:]])
-            continue
-        cells = list(row[:6])
-        for k in range(6, len(row) - 1, 2):
-            cells += list(_pair_text(row[k], row[k + 1], significant))
-        cells.append(row[-1])
-        text_rows.append(cells)
     out.write(f"{'tensor components' if components else 'invariants'}; units: {units}; "
               f"convention: {convention}"
               + (" (mu(F) = mu + alpha F + beta F^2 + gamma F^3: beta_T/2, gamma_T/6)"
                  if convention == "perturbation" else
                  " (E = E0 - mu F - alpha F^2/2 - beta F^3/6 - gamma F^4/24)") + "\n")
-    out.write(tabulate(text_rows, headers=shown, disable_numparse=True) + "\n")
+    if components:
+        text_rows = []
+        for row in rows:
+            v, e = _pair_text(row[4], row[5], significant)
+            text_rows.append([*row[:4], v, e, *row[6:]])
+        out.write(tabulate(text_rows, headers=shown, disable_numparse=True) + "\n")
+    else:
+        _write_invariant_columns(header, rows, units, convention, significant, out)
     out.write(PART_LEGEND + "; static (zero-frequency) tensors of the isolated molecule\n")
+
+
+def _write_invariant_columns(header, rows, units: str, convention: str, significant,
+                             out: TextIO) -> None:
+    """The invariant layout for people, narrow: a numbered line per result
+    and part (file, formula, model, route, part, status), then a row per
+    invariant (its unit beside its name) and a column per result."""
+    for k, row in enumerate(rows, 1):
+        out.write(f"  [{k}] {row[0]}: {row[1]}, {row[2]}, {row[3]} route, {row[5]}; "
+                  f"{row[-1]}\n")
+    by_column = {invariant_columns(n, p, units, convention)[0][0]: (n, p)
+                 for n, p in INVARIANTS}
+    table = []
+    for column in range(6, len(header) - 1, 2):
+        name, prop = by_column[header[column]]
+        label = conversion(prop, units, convention)[0]
+        cells = [f"{name} ({label})" if label else name]
+        for row in rows:
+            v, e = _pair_text(row[column], row[column + 1], significant)
+            cells.append("-" if row[column] is None else f"{v} +- {e}")
+        table.append(cells)
+    out.write(tabulate(table, headers=["invariant"] + [f"[{k}]" for k in range(1, len(rows) + 1)],
+                       disable_numparse=True) + "\n")

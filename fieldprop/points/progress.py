@@ -3,8 +3,7 @@
 On a terminal a tqdm bar; in a batch log (stderr not a terminal) a log line at
 most every ``every_s`` seconds and one at the end: points done of the points
 known so far (the total grows as the adaptive window's stages join), SCF
-cycles, the time since the first point was sent and an estimate of the time
-left. Both count the same events, so a terminal and a batch log agree.
+cycles, the time since the command started and an estimate of the time left. Both count the same events, so a terminal and a batch log agree.
 """
 
 from __future__ import annotations
@@ -31,10 +30,13 @@ class Progress:
     """
 
     def __init__(self, bar: bool = False, every_s: float | None = None,
-                 label: str = "field points"):
+                 label: str = "field points", since_s: float = 0.0):
         self.label = label
         self.total = self.done = self.cycles = 0
-        self.start = self.last = time.monotonic()
+        # Elapsed counts from the command's start (``since_s`` seconds ago:
+        # a geometry optimisation before the points, say), not from here.
+        self.last = time.monotonic()
+        self.start = self.last - since_s
         self._bar = tqdm(total=0, desc=label, unit="pt", leave=False) if bar else None
         self.every_s = None if bar else every_s
 
