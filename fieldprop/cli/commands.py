@@ -378,7 +378,7 @@ def cmd_plan(args) -> int:
                         "%s at %s", len(todo), to_compute(prepared), store.label, when)
             _to_stdout(lambda: print(len(todo)))
             return 0
-        fmt = "ids" if args.ids else "json" if args.json_lines else args.format
+        fmt = "ids" if args.ids else "jsonl" if args.json_lines else args.format
         only = {t.key for t in todo} if args.missing else None
         full = (len(make_plan(job, prepared.plan.route).points)
                 if prepared.symmetry is not None else None)

@@ -105,7 +105,7 @@ examples:
 PLAN_EXAMPLES = """\
 examples:
   fieldprop plan water.toml                      the points, and which are stored
-  fieldprop plan water.toml --format json        one JSON object per point
+  fieldprop plan water.toml --format jsonl       one JSON object per point and line
   fieldprop plan water.toml --missing --ids      ids of the points still to compute
   n=$(fieldprop plan water.toml --count)         size of a job array (0..n-1) for
                                                  fieldprop point water.toml --index I
@@ -240,11 +240,12 @@ def build_parser() -> argparse.ArgumentParser:
                           epilog=PLAN_EXAMPLES,
                           formatter_class=argparse.RawDescriptionHelpFormatter)
     plan.add_argument("job", type=Path, help="job file (TOML)")
-    plan.add_argument("--format", choices=("table", "json", "csv"), default="table",
-                      help="table (default); json: one JSON object per point (a stable id "
-                      "from its store key, field vector in au, ladder level, whether it is "
-                      "stored); csv")
-    plan.add_argument("--json-lines", action="store_true", help="the same as --format json")
+    plan.add_argument("--format", choices=("table", "json", "jsonl", "csv"), default="table",
+                      help="table (default); json: one JSON document (schema fieldprop-plan-1) "
+                      "listing the points, as every command's json is one document; jsonl: "
+                      "one JSON object per point and line (a stable id from its store key, "
+                      "field vector in au, ladder level, whether it is stored); csv")
+    plan.add_argument("--json-lines", action="store_true", help="the same as --format jsonl")
     plan.add_argument("--ids", action="store_true", help="just the points' ids, one per line")
     plan.add_argument("--missing", action="store_true", help="list only the points still to "
                       "compute (not stored; stored failures too with --retry-failed)")

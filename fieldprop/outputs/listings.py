@@ -32,7 +32,8 @@ def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
                used=None, near=None) -> None:
     """The field points ``run`` would compute, which components use them, and
     which the store holds already (``stored``: {key: StoredPoint}); ``fmt``
-    table, json (a JSON object per line), csv or ids (an id per line);
+    table, json (one document: its points), jsonl (a JSON object per point and
+    line), csv or ids (an id per line);
     ``only``: the keys to list (default all); ``images``: per point, the index
     of the point it is a symmetry image of and the operation (None: computed);
     the ids listing leaves images out; ``without_symmetry``: the number of
@@ -63,7 +64,8 @@ def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
             if p.index not in image_of:
                 out.write(short_id(t.key) + "\n")
         return
-    if fmt == "json":
+    if fmt in ("json", "jsonl"):
+        docs = []
         for p, t in listed:
             doc = {"id": short_id(t.key), "key": t.key, "index": p.index, "level": p.level,
                    "label": p.label, "offsets": list(p.offsets),
@@ -73,7 +75,12 @@ def write_plan(plan: FieldPlan, tasks, stored, out: TextIO, fmt: str = "table",
                 j, op = image_of[p.index]
                 doc.update(stored="image", image_of=short_id(tasks[j].key),
                            operation=[[float(v) for v in row] for row in op])
-            out.write(json.dumps(doc) + "\n")
+            docs.append(doc)
+        if fmt == "jsonl":
+            out.writelines(json.dumps(doc) + "\n" for doc in docs)
+        else:
+            json.dump({"schema": "fieldprop-plan-1", "points": docs}, out, indent=1)
+            out.write("\n")
         return
     if fmt == "csv":
         writer = csv.writer(out, lineterminator="\n")

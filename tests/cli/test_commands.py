@@ -43,6 +43,11 @@ def test_plan_json_lines_parse_and_match_the_run(tmp_path):
     assert {p["stored"] for p in points} == {"missing", "image"}
     table = fieldprop("plan", "lih.toml", cwd=tmp_path)
     assert table.returncode == 0 and f"{len(points)} field points" in table.stdout
+    # --format json is one document, as on every command; jsonl the lines.
+    whole = json.loads(fieldprop("plan", "lih.toml", "--format", "json", cwd=tmp_path).stdout)
+    assert whole["schema"] == "fieldprop-plan-1" and whole["points"] == points
+    lines = fieldprop("plan", "lih.toml", "--format", "jsonl", cwd=tmp_path).stdout
+    assert [json.loads(line) for line in lines.splitlines()] == points
 
 
 def test_run_writes_the_contract_json_beside_the_job(tmp_path):
