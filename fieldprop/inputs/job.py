@@ -530,6 +530,17 @@ def scaled_target_power(route: str, max_order: int) -> tuple[int, int]:
     return k, (k + 1) // 2
 
 
+def model_text(method: str, functional: str | None, basis) -> str:
+    """A model as every log line, table and CSV writes it: METHOD/functional/
+    basis (a per-element basis: element:name pairs, a basis given as text
+    ``custom``), e.g. ``HF/6-31g`` or ``DFT/b3lyp/6-31g``."""
+    if not isinstance(basis, str):
+        pairs = basis.items() if isinstance(basis, dict) else basis
+        basis = "+".join(f"{sym}:{text if chr(10) not in str(text) else 'custom'}"
+                         for sym, text in pairs) or "per-element basis"
+    return "/".join(str(x) for x in (str(method or "?").upper(), functional, basis) if x)
+
+
 def derived_energy_conv_tol_au(max_order: int) -> float:
     """SCF energy tolerance (Eh) for the highest derivative order requested.
 

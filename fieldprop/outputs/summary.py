@@ -36,7 +36,7 @@ import numpy as np
 from tabulate import tabulate
 
 from fieldprop.errors import InputError
-from fieldprop.inputs.job import echo_atoms
+from fieldprop.inputs.job import echo_atoms, model_text
 from fieldprop.numerics.units import TABLE_UNITS
 from fieldprop.numerics.units import LABEL_TAGS
 
@@ -140,10 +140,7 @@ def _formula(doc: dict) -> str:
 
 def _model(doc: dict) -> str:
     m = doc["job"].get("model") or {}
-    basis = m.get("basis")
-    basis = basis if isinstance(basis, str) else "per-element basis"
-    return "/".join(str(x) for x in (str(m.get("method", "?")).upper(), m.get("functional"),
-                                     basis) if x)
+    return model_text(m.get("method"), m.get("functional"), m.get("basis") or "?")
 
 
 def _number(x: Any) -> float | None:

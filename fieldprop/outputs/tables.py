@@ -14,7 +14,7 @@ import numpy as np
 from tabulate import tabulate
 
 from fieldprop import __version__
-from fieldprop.inputs.job import SYMMETRISE
+from fieldprop.inputs.job import SYMMETRISE, model_text
 from fieldprop.numerics.extrapolate import ComponentStatus
 from fieldprop.numerics.units import FIELD_AU_TO_V_PER_M
 from fieldprop.outputs.summary import conversion
@@ -187,13 +187,10 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au",
     significant = None if all_digits else SIGNIFICANT_DIGITS
     job, plan = result.job, result.plan
     model = job.model
-    basis = (model.basis if isinstance(model.basis, str)
-             else "+".join(f"{sym}:{text if chr(10) not in text else 'custom'}"
-                           for sym, text in model.basis))
-    model_text = "/".join(x for x in (model.method.upper(), model.functional, basis) if x)
+    model_name = model_text(model.method, model.functional, model.basis)
     out.write(f"fieldprop {__version__}: {job.path}\n")
     out.write(f"  molecule {result.molecule.formula}, charge {result.molecule.charge}, "
-              f"multiplicity {result.molecule.multiplicity}; {model_text} ({model.reference}); "
+              f"multiplicity {result.molecule.multiplicity}; {model_name} ({model.reference}); "
               f"{result.backend_facts.get('n_basis_functions', '?')} "
               f"{'cartesian ' if model.cartesian else ''}basis functions"
               f"{_ecp_text(result)}{_fit_text(result)}\n")
