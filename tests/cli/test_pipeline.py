@@ -5,17 +5,21 @@ Every point is computed in its own process, as a job-array element or an
 """
 
 import csv
+import os
+import subprocess
+import sys
 import io
 import json
 import random
 import textwrap
 from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
 
 import numpy as np
 import pytest
 from scipy import constants
 
-from cli_support import fieldprop  # noqa: E402
+from cli_support import environment, fieldprop  # noqa: E402
 
 pytest.importorskip("pyscf")
 
@@ -131,6 +135,43 @@ def test_points_in_shuffled_order_two_at_a_time_collect_what_run_gives(tmp_path,
                       stdin=export.stdout)
     assert again.returncode == 0, again.stderr
     assert json.loads(again.stdout)["tensors"] == doc["tensors"]
+
+
+def test_the_array_element_script_run_by_a_shell_loop_collects_what_run_gives(
+        tmp_path, reference_run):
+    """configs/array_element.sh as a batch scheduler would run it: each element
+    with its index in the scheduler's variable (here SLURM_ARRAY_TASK_ID, set
+    by a shell loop, and one element through SGE_TASK_ID, 1-based), then
+    collect over the folder of point lines gives run's tensors."""
+    import shutil
+
+    root = Path(__file__).resolve().parents[2]
+    shutil.copy(root / "configs" / "array_element.sh", tmp_path)
+    (tmp_path / "lih.toml").write_text(JOB)
+    bin_dir = tmp_path / "bin"  # `fieldprop` as installed: this interpreter's module
+    bin_dir.mkdir()
+    (bin_dir / "fieldprop").write_text(f'#!/bin/sh\nexec "{sys.executable}" -m fieldprop "$@"\n')
+    (bin_dir / "fieldprop").chmod(0o755)
+    env = {**environment(), "PATH": f"{bin_dir}{os.pathsep}{os.environ.get('PATH', '')}"}
+    assert fieldprop("point", "lih.toml", "--zero-field", "--quiet", cwd=tmp_path).returncode == 0
+    n = int(fieldprop("plan", "lih.toml", "--count", cwd=tmp_path).stdout)
+    assert n > 2
+    loop = subprocess.run(
+        ["sh", "-c", f'for i in $(seq 0 {n - 2}); do SLURM_ARRAY_TASK_ID=$i '
+         f'sh array_element.sh lih.toml points || exit 1; done; '
+         f'SGE_TASK_ID={n} sh array_element.sh lih.toml points'],
+        cwd=tmp_path, env=env, capture_output=True, text=True, timeout=600)
+    assert loop.returncode == 0, loop.stderr
+    assert len(list((tmp_path / "points").glob("1-*.jsonl"))) == n
+    assert not list((tmp_path / "points").glob("*.part"))
+    done = fieldprop("collect", "lih.toml", "--points", "points", "--json", "-", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    assert_same_result(json.loads(done.stdout), reference_run)
+    unset = subprocess.run(["sh", "array_element.sh", "lih.toml", "points"], cwd=tmp_path,
+                           env={k: v for k, v in env.items() if "TASK" not in k
+                                and k not in ("PBS_ARRAY_INDEX", "LSB_JOBINDEX")},
+                           capture_output=True, text=True)
+    assert unset.returncode == 2 and "no array index" in unset.stderr
 
 
 def test_a_symmetric_job_computes_only_its_representatives(tmp_path, reference_run):
