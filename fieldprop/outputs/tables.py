@@ -171,6 +171,25 @@ def _write_geometry(job, out: TextIO) -> None:
                   f"({mol.atoms[i].symbol}) and {j + 1} ({mol.atoms[j].symbol})\n")
 
 
+#: Width of the prose lines (headers, notes, warnings) of the tables.
+TEXT_WIDTH = 100
+
+
+def _wrapped(text: str) -> str:
+    """Each line of ``text`` longer than TEXT_WIDTH wrapped at spaces, its
+    continuation indented two more than the line (tables are written apart
+    and never pass through here)."""
+    import textwrap
+
+    out = []
+    for line in text.split("\n"):
+        indent = " " * (len(line) - len(line.lstrip(" ")))
+        out.append(textwrap.fill(line, TEXT_WIDTH, subsequent_indent=indent + "  ",
+                                 break_long_words=False, break_on_hyphens=False)
+                   if len(line) > TEXT_WIDTH else line)
+    return "\n".join(out)
+
+
 #: How each convention's tensors enter the energy (the table header says it).
 CONVENTION_TEXT = {
     "taylor": "Taylor convention E = E0 - mu F - alpha F^2/2 - beta F^3/6 - gamma F^4/24",
@@ -185,6 +204,9 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au",
     invariants; values to SIGNIFICANT_DIGITS at most, or with ``all_digits``
     every digit their error bars support."""
     significant = None if all_digits else SIGNIFICANT_DIGITS
+    import io
+
+    final, out = out, io.StringIO()  # the header's prose, wrapped below
     job, plan = result.job, result.plan
     model = job.model
     model_name = model_text(model.method, model.functional, model.basis)
@@ -242,7 +264,8 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au",
               "floor), not bounds\n")
     if result.orientation is not None:
         out.write(f"  {orientation_note(result.orientation)}\n")
-    out.write("\n")
+    final.write(_wrapped(out.getvalue()) + "\n")
+    out = final
     for name, tensor in result.tensors.items():
         label, factor = conversion(name, units, convention)
         rows = []
@@ -291,13 +314,13 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au",
         out.write(tabulate(rows, headers=["invariant", "value", "+- error", "unit"]
                            + (["in au"] if units != "au" else []),
                            disable_numparse=True) + "\n")
-        out.write("\n".join(legend) + "\n\n")
+        out.write(_wrapped("\n".join(legend)) + "\n\n")
     if result.relaxation is not None:
         _write_relaxation(result, out, units, convention, significant)
     for text in result.warnings:
-        out.write(f"warning: {text}\n")
+        out.write(_wrapped(f"warning: {text}") + "\n")
     if any(p in result.tensors for p in ("beta", "gamma")):
-        out.write(f"note: {CAUTION}\n")
+        out.write(_wrapped(f"note: {CAUTION}") + "\n")
 
 
 def _pair_text(est, stable: bool, factor: float, significant=None) -> str:
@@ -387,13 +410,11 @@ def write_comparison(comparisons, reference, rule, out: TextIO) -> None:
     Entries are listed in sorted index order (beta_xyz, not beta_zyx) unless they
     disagree; every entry of the full tensor is compared.
     """
-    out.write(f"reference: {reference.source}" + (f" ({reference.note})" if reference.note
-                                                 else "") + "\n")
-    out.write(f"agreement: {rule.describe()}; ok where diff/allowed <= 1")
-    if not rule.strict:
-        out.write("; \"ok by floor\": the difference exceeds the error bars' term and only "
-                  "the floor admits it (--strict fails it)")
-    out.write("\n\n")
+    out.write(_wrapped(f"reference: {reference.source}" + (
+        f" ({reference.note})" if reference.note else "")) + "\n")
+    out.write(_wrapped(f"agreement: {rule.describe()}; ok where diff/allowed <= 1" + (
+        "" if rule.strict else "; \"ok by floor\": the difference exceeds the error bars' "
+        "term and only the floor admits it (--strict fails it)")) + "\n\n")
     for name, rows in comparisons.items():
         table = []
         for c in rows:
