@@ -121,11 +121,12 @@ def test_points_in_shuffled_order_two_at_a_time_collect_what_run_gives(tmp_path,
     assert csv.returncode == 0
     rows = [line.split(",") for line in csv.stdout.splitlines()]
     assert rows[0] == ["file", "part", "tensor", "component", "value", "error", "unit",
-                       "convention", "status", "entry"]
+                       "convention", "frame", "status", "entry"]
     by_name = {r[3]: r for r in rows[1:]}
     alpha_zz = doc["tensors"]["alpha"]["value"][2][2]
     assert float(by_name["alpha_zz"][4]) == alpha_zz and len(rows) == 1 + 3 + 9
     assert {r[7] for r in rows[1:]} == {"taylor"} and {r[1] for r in rows[1:]} == {"electronic"}
+    assert {r[8] for r in rows[1:]} == {"input"}
     # The store exported as point lines assembles the same result elsewhere.
     export = fieldprop("inspect", "fieldprop-points.sqlite", "--json-lines", cwd=tmp_path)
     elsewhere = tmp_path / "elsewhere"
