@@ -131,11 +131,11 @@ def optimize_geometry(job: Job, molecule) -> dict:
                 callback=lambda env: _step(env, steps, job, thresholds), logIni=quiet,
                 **params)
     except Exception as exc:  # noqa: BLE001 - named, never a traceback
-        raise ScfNotConvergedError(f"{job.path}: [geometry] optimize: the optimisation failed "
+        raise ScfNotConvergedError(f"{job.path}: [geometry] optimise: the optimisation failed "
                                    f"inside the backend ({type(exc).__name__}: "
                                    f"{' '.join(str(exc).split())[:200]})") from exc
     if not converged:
-        raise ScfNotConvergedError(f"{job.path}: [geometry] optimize: not converged in "
+        raise ScfNotConvergedError(f"{job.path}: [geometry] optimise: not converged in "
                                    f"max_steps = {job.geometry.max_steps} steps; raise it, or "
                                    "start from a better geometry")
     final = _mean_field(mol_eq, model, scf_spec)
@@ -144,7 +144,7 @@ def optimize_geometry(job: Job, molecule) -> dict:
     if not final.converged:
         # Its gradient, energy and coordinates would be those of no state.
         raise ScfNotConvergedError(
-            f"{job.path}: [geometry] optimize: the SCF at the optimised geometry did not "
+            f"{job.path}: [geometry] optimise: the SCF at the optimised geometry did not "
             f"converge in [scf] max_iterations = {final.max_cycle} cycles (orbital gradient "
             f"{_gradient_norm(final):.1e}, target {final.conv_tol_grad:g}); no geometry is "
             "formed from it")

@@ -237,7 +237,7 @@ def relaxation_frame(job: Job, molecule, dipole_route: bool) -> dict:
         raise InputError(f"{where}: the geometry is not a minimum of the job's model (largest "
                          f"gradient component {largest:.1e} Eh/bohr, on atom {atom + 1} "
                          f"{molecule.symbols[atom]}; at most {relaxation.MINIMUM_GRADIENT_AU:g} "
-                         "accepted); set [geometry] optimize = true with the job's model, or "
+                         "accepted); set [geometry] optimise = true with the job's model, or "
                          "give its minimum")
     mf = zero.last[0]
     hessian, hessian_source = _hessian(zero, mf, x0)

@@ -173,7 +173,7 @@ def optimise_task(job, threads: int = 0):
         return None, (str(exc), type(exc).__name__)
     except Exception as exc:  # noqa: BLE001 - named, never a traceback
         text = " ".join(str(exc).split())[:300] or "no message"
-        return None, (f"{job.path}: [geometry] optimize failed inside the backend "
+        return None, (f"{job.path}: [geometry] optimise failed inside the backend "
                       f"({type(exc).__name__}: {text})", BackendError.__name__)
     document["wall_time_s"] = time.perf_counter() - start
     return document, None

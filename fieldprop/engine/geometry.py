@@ -1,6 +1,6 @@
 """The nuclei: geometry optimisation and nuclear relaxation.
 
-With [geometry] optimize, the optimised geometry (:func:`optimised`, stored
+With [geometry] optimise, the optimised geometry (:func:`optimised`, stored
 under :func:`geometry_key`, moved exactly onto its point group by
 :func:`symmetrised_optimum`); with [response] nuclear_relaxation, the
 zero-field minimum every relaxation is held to (:func:`relaxed_reference`),
@@ -65,7 +65,7 @@ def with_geometry(job: Job, document: dict) -> Job:
 
 
 def optimised(job: Job, store=None, compute: bool = True) -> Job:
-    """The job at its optimised geometry when [geometry] optimize is set:
+    """The job at its optimised geometry when [geometry] optimise is set:
     from the store, or optimised now (``compute``) and stored; else ``job``.
     Without ``compute`` a geometry not stored is IncompleteError (exit 3)."""
     if not job.geometry.optimize or job.optimisation is not None:
@@ -74,7 +74,7 @@ def optimised(job: Job, store=None, compute: bool = True) -> Job:
     document = store.get_geometry(key) if store is not None else None
     if document is None:
         if not compute:
-            raise IncompleteError(f"{job.path}: [geometry] optimize: the optimised geometry "
+            raise IncompleteError(f"{job.path}: [geometry] optimise: the optimised geometry "
                                   f"(key {short_id(key)}) is not in "
                                   f"{store.label if store is not None else 'any store'}; "
                                   "fieldprop run, or fieldprop point --zero-field, optimises "

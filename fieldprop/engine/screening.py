@@ -1,6 +1,6 @@
 """Screening campaigns: many molecules, one model, one pool.
 
-Each molecule's geometry optimisation ([geometry] optimize) runs first, in
+Each molecule's geometry optimisation ([geometry] optimise) runs first, in
 the pool; then every molecule is prepared (:func:`fieldprop.engine.run.gather`:
 its plan and the points the store holds, as a stage-engine
 :class:`~fieldprop.engine.stages.JobWork`) and all of them go to the one stage
@@ -107,7 +107,7 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
 
 
 def _optimise(candidates, outcomes, store, pool, progress: bool) -> list:
-    """Geometry optimisations first ([geometry] optimize), in the pool, one
+    """Geometry optimisations first ([geometry] optimise), in the pool, one
     task per molecule whose optimised geometry is not stored; each result is
     stored at once and logged. A failed optimisation fails its molecule.
     Returns each molecule's job (at its optimised geometry where optimised)."""

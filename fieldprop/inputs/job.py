@@ -94,7 +94,8 @@ _SECTIONS = {
     "response": {"properties", "field_au", "ratio", "levels", "origin", "differentiate", "route",
                  "symmetry", "window",
                  "nuclear_relaxation"},
-    "geometry": {"optimize", "method", "functional", "basis", "criteria", "max_steps"},
+    "geometry": {"optimise", "optimize", "method", "functional", "basis", "criteria",
+                 "max_steps"},
     "scf": {"energy_conv_tol_au", "max_iterations", "grid_level", "gradient_target",
             "gradient_needed", "solver", "scaled_target"},
     "correlation": {"energy_change_au", "amplitude_change"},
@@ -455,7 +456,7 @@ class Job:
         if scf.correlation is not None:
             sections["correlation"] = {"energy_change_au": scf.correlation.energy_change_au,
                                        "amplitude_change": scf.correlation.amplitude_change}
-        sections["geometry"] = {"optimize": geometry.optimize}
+        sections["geometry"] = {"optimise": geometry.optimize}
         if geometry.optimize:
             sections["geometry"].update(
                 {k: v for k, v in (("method", geometry.method),
@@ -1122,12 +1123,17 @@ def job_from_tables(shown: str, job_path: Path, data: dict[str, Any]) -> Job:
 
 def _parse_geometry(path: str, table: dict[str, Any], model: ModelSpec) -> GeometrySpec:
     r = _Reader(path, "geometry", table)
-    optimize = table.get("optimize", False)
+    # optimise, as every output spells it; optimize (earlier versions' key) is
+    # the same key.
+    if "optimise" in table and "optimize" in table:
+        raise r.fail("optimize", "and optimise are one key: give one of them")
+    key = "optimize" if "optimize" in table else "optimise"
+    optimize = table.get(key, False)
     if not isinstance(optimize, bool):
-        raise r.fail("optimize", f"must be true or false, got {optimize!r}")
-    others = [k for k in table if k != "optimize"]
+        raise r.fail(key, f"must be true or false, got {optimize!r}")
+    others = [k for k in table if k not in ("optimise", "optimize")]
     if others and not optimize:
-        raise r.fail(others[0], "is given but optimize is not true; set optimize = true or "
+        raise r.fail(others[0], "is given but optimise is not true; set optimise = true or "
                      "remove it")
     method = r.string("method", None, METHOD_NAMES) if r.has("method") else None
     functional = r.string("functional") if r.has("functional") else None

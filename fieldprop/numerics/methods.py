@@ -63,7 +63,7 @@ class MethodTraits:
     amplitude_solver: bool = False
     integration_grid: bool = False
     #: PySCF has the method's nuclear gradient, so E(R; F) can be minimised
-    #: over the nuclei ([response] nuclear_relaxation, [geometry] optimize).
+    #: over the nuclei ([response] nuclear_relaxation, [geometry] optimise).
     nuclear_gradient: bool = False
 
     def has(self, route: Route | str) -> bool:

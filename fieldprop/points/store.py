@@ -30,7 +30,7 @@ transaction per finished point:
   convergence targets (part of its key; NULL: the model's own); vectors,
   matrices, lists and documents are JSON text (floats round-trip exactly);
 - ``geometries(geometry_key, document, created_at, host, version)``: geometries
-  optimised before a job's response (``[geometry] optimize``), keyed by the
+  optimised before a job's response (``[geometry] optimise``), keyed by the
   starting geometry, the optimisation's model and its criteria; ``document``
   JSON (coordinates in bohr, energy, steps, criteria), so a rerun does not
   optimise again; also the zero-field frame of a nuclear relaxation (the

@@ -70,7 +70,7 @@ def job_text(method, functional, basis, geometry, properties, relax: bool) -> st
         basis = "{basis}"
         {f'functional = "{functional}"' if functional else ""}
         [geometry]
-        optimize = true
+        optimise = true
         [response]
         properties = {properties}
         nuclear_relaxation = {"true" if relax else "false"}

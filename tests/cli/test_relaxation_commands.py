@@ -103,7 +103,7 @@ def test_a_geometry_that_is_not_a_minimum_is_refused(tmp_path, capsys):
         """))
     assert main(["run", str(path), "--no-store", "--quiet"]) == 2
     _one_line_error(capsys, f"{path}: [response] nuclear_relaxation: the geometry is not a "
-                    "minimum", "[geometry] optimize = true")
+                    "minimum", "[geometry] optimise = true")
     assert not (tmp_path / "h2.result.json").exists()
 
 

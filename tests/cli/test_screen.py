@@ -240,7 +240,7 @@ def test_the_example_set_is_a_valid_set():
 
 
 def test_a_campaign_optimises_each_geometry_once(tmp_path):
-    """[geometry] optimize in a set: each molecule optimised in the pool, its
+    """[geometry] optimise in a set: each molecule optimised in the pool, its
     XYZ written beside its result, and a rerun takes the geometries from the
     store (none optimised again, no point computed again)."""
     path = write_set(tmp_path, '[[molecule]]\nname = "water"\nsmiles = "O"\n'

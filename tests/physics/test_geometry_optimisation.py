@@ -1,4 +1,4 @@
-"""[geometry] optimize: geomeTRIC through PySCF before the response.
+"""[geometry] optimise: geomeTRIC through PySCF before the response.
 
 Water at HF/6-31G: the textbook trend of the model (a longer bond and a wider
 angle than experiment's 0.958 angstrom and 104.5 degrees: about 0.950 angstrom
@@ -113,7 +113,7 @@ def test_plan_before_the_optimisation_is_incomplete_and_bad_options_are_refused(
         assert len(err) == 1 and "[geometry]" in err[0] and key in err[0]
     bad.write_text(JOB.replace("optimize = true", 'basis = "sto-3g"'))
     assert main(["run", str(bad)]) == 2
-    assert "optimize is not true" in capsys.readouterr().err
+    assert "optimise is not true" in capsys.readouterr().err
 
 
 def test_an_unconverged_final_scf_is_an_error_naming_the_job(tmp_path, monkeypatch):
@@ -144,7 +144,7 @@ def test_an_unconverged_final_scf_is_an_error_naming_the_job(tmp_path, monkeypat
     with pytest.raises(FieldpropError) as caught:
         backend_geometry.optimize_geometry(job, build_molecule(job.molecule, job.response.origin))
     message = str(caught.value)
-    assert str(path) in message and "[geometry] optimize" in message
+    assert str(path) in message and "[geometry] optimise" in message
     assert "SCF" in message and "\n" not in message
 
 

@@ -94,7 +94,7 @@ JOBS = {
         [response]
         properties = ["dipole", "alpha"]
         [geometry]
-        optimize = true
+        optimise = true
         method = "dft"
         functional = "pbe0"
         basis = "def2-svp"
