@@ -53,7 +53,7 @@ _INVARIANT_TEXT = {
     "beta_parallel": "3/5 sum_i mu_i beta_i / |mu|, beta_i = 1/3 sum_j (b_ijj + b_jij + b_jji) "
                      "(EFISH projection on the dipole)",
     "beta_vector_norm": "|beta_i|, beta_i = 1/3 sum_j (b_ijj + b_jij + b_jji) (the norm, not "
-                        "the projection on the dipole)",
+                        "the projection on the dipole; often called beta_tot or beta_0)",
     "beta_hrs": "sqrt(<b_ZZZ^2> + <b_XZZ^2>) (hyper-Rayleigh)",
     "beta_hrs_zzz": "sqrt(<b_ZZZ^2>) (hyper-Rayleigh, both polarisations along Z)",
     "beta_hrs_xzz": "sqrt(<b_XZZ^2>) (hyper-Rayleigh, scattered light along X)",
