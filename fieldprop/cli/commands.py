@@ -11,6 +11,7 @@ import json
 import logging
 import os
 import sys
+import time
 from pathlib import Path
 
 from fieldprop.errors import CampaignError, IncompleteError, InputError
@@ -157,6 +158,7 @@ def cmd_run(args) -> int:
     from fieldprop.outputs.documents import (is_stdout, result_document,
                                              write_json_atomic)
 
+    started = time.monotonic()
     job = load_job(args.job)
     out_path = _result_path(args)
     if args.plot is not None and not args.plot.is_dir():
@@ -180,7 +182,7 @@ def cmd_run(args) -> int:
             prepared = _at_relaxation_minimum(prepared, store)
             result = run_prepared(prepared, store, progress=bar,
                                   retry_failed=args.retry_failed, log_every_s=log_every,
-                                  executor=executor)
+                                  executor=executor, started=started)
     finally:
         executor.close()
     # The file first: a closed stdout (``| head``) must not lose the result.

@@ -47,13 +47,16 @@ def compute(job: Job, workers: int = 1, progress: bool | None = None,
 
 def run_prepared(prepared: Prepared, store=None, workers: int = 1,
                  progress: bool | None = None, retry_failed: bool = False,
-                 log_every_s: float | None = None, executor=None) -> RunResult:
+                 log_every_s: float | None = None, executor=None,
+                 started: float | None = None) -> RunResult:
     """:func:`compute` for a job already prepared (the CLI opens its store only
     once the job has passed every check): the points through the stage engine
     (:func:`fieldprop.engine.stages.run_job`) on ``executor`` (default: ``workers``
     local processes, or this process for one), then the analysis.
     ``progress``: a bar; ``log_every_s``: progress log lines at most that
-    often instead (batch logs)."""
+    often instead (batch logs), their elapsed time counted from ``started``
+    (time.monotonic() at the command's start: a geometry optimisation before
+    the points included; default now)."""
     from fieldprop.engine.stages import make_executor
     from fieldprop.points.progress import Progress
     from fieldprop.engine.stages import JobWork, run_job
@@ -81,7 +84,8 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
     if rows:
         logger.info("%d of the job's field points found in %s", len(work.found), store.label)
     try:
-        return run_job(work, store, executor, Progress(progress, log_every_s))
+        since = 0.0 if started is None else time.monotonic() - started
+        return run_job(work, store, executor, Progress(progress, log_every_s, since_s=since))
     finally:
         if own_executor:
             executor.close()
