@@ -24,13 +24,16 @@ from fieldprop.cli.parser import build_parser  # noqa: E402
 from fieldprop.errors import FieldpropError  # noqa: E402
 
 
-def _configure_logging(quiet: bool) -> None:
+def _configure_logging(quiet: bool, verbose: bool = False) -> None:
     handler = logging.StreamHandler(sys.stderr)
     handler.setFormatter(logging.Formatter("fieldprop: %(message)s"))
     root = logging.getLogger("fieldprop")
     root.handlers[:] = [handler]
     root.setLevel(logging.WARNING if quiet else logging.INFO)
     root.propagate = False
+    from fieldprop.points.progress import POINT_LOG
+
+    POINT_LOG.setLevel(logging.INFO if verbose and not quiet else logging.WARNING)
 
 
 class Terminated(KeyboardInterrupt):
@@ -61,7 +64,7 @@ def main(argv: Sequence[str] | None = None) -> int:
 def _main(argv: Sequence[str] | None) -> int:
     try:
         args = build_parser().parse_args(argv)
-        _configure_logging(getattr(args, "quiet", False))
+        _configure_logging(getattr(args, "quiet", False), getattr(args, "verbose", False))
         return args.handler(args)
     except FieldpropError as exc:
         print(f"fieldprop: error: {exc.kind}: {exc}", file=sys.stderr)

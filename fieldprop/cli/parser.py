@@ -410,6 +410,8 @@ def _digits_option(parser) -> None:
 def _progress_options(parser) -> None:
     """How a long command reports progress: the same options for run, check and screen."""
     parser.add_argument("--quiet", action="store_true", help="no progress or log lines on stderr")
+    parser.add_argument("--verbose", action="store_true", help="also a log line per point: its "
+                        "SCF cycles, time, strategies and the orbital gradient reached")
     parser.add_argument("--log-every", type=_non_negative_float, default=DEFAULT_LOG_EVERY_S,
                         metavar="SECONDS", help="when stderr is not a terminal (a batch log), "
                         "a progress line at most this often: points done, SCF cycles, elapsed "

@@ -14,6 +14,9 @@ import time
 from tqdm import tqdm
 
 logger = logging.getLogger(__name__)
+#: One line per point done (its SCF cycles, time and path), shown with
+#: ``--verbose`` only: the CLI sets this logger's level.
+POINT_LOG = logging.getLogger("fieldprop.points.each")
 
 
 def clock(seconds: float) -> str:
@@ -60,6 +63,13 @@ class Progress:
         """One point done (a PointRecord or a PointFailure)."""
         self.done += 1
         self.cycles += getattr(outcome, "scf_cycles", 0)
+        if POINT_LOG.isEnabledFor(logging.INFO):
+            attempts = getattr(outcome, "attempts", None)
+            POINT_LOG.info("point %s: %s, %.3g s%s", outcome.point.label,
+                           f"{outcome.scf_cycles} SCF cycles" if attempts is not None
+                           else "failed", getattr(outcome, "wall_time_s", 0.0),
+                           f" ({', '.join(attempts)}; orbital gradient "
+                           f"{outcome.gradient_norm:.1e})" if attempts is not None else "")
         if self._bar is not None:
             self._bar.update()
             return

@@ -278,6 +278,12 @@ def test_batch_logs_get_progress_lines_and_quiet_silences_them(tmp_path):
     quiet = fieldprop("run", "lih.toml", "--no-store", "--quiet", "--log-every", "0",
                       cwd=tmp_path)
     assert quiet.returncode == 0 and quiet.stderr == ""
+    # --verbose: also a line per point, with its cycles, time and SCF path.
+    assert not any(ln.startswith("fieldprop: point ") for ln in done.stderr.splitlines())
+    verbose = fieldprop("run", "lih.toml", "--no-store", "--verbose", cwd=tmp_path)
+    points = [ln for ln in verbose.stderr.splitlines() if ln.startswith("fieldprop: point ")]
+    assert verbose.returncode == 0 and len(points) == total, verbose.stderr
+    assert "L0(0,0,0): " in points[0] and "SCF cycles" in points[0] and "newton" in points[0]
 
 
 def test_a_zero_field_failure_inside_the_backend_is_named_not_a_traceback(tmp_path, capsys,
