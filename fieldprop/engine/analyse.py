@@ -509,11 +509,31 @@ def _in_frame(records, frame) -> tuple[PointRecord, ...]:
     return tuple(out)
 
 
+def geometry_warning(job: Job, molecule: MoleculeSpec, reference) -> str | None:
+    """The warning of a zero-field geometry that is not a minimum of the
+    model: the reference's nuclear gradient (the backend's geometry check, HF
+    and DFT) above relaxation.MINIMUM_GRADIENT_AU; None where it is below or
+    was not checked."""
+    from fieldprop.numerics.relaxation import MINIMUM_GRADIENT_AU
+
+    checked = getattr(reference, "nuclear_gradient", None)
+    if checked is None or checked[0] <= MINIMUM_GRADIENT_AU:
+        return None
+    value, atom = checked
+    return (f"{job.path}: the geometry is not a minimum of this model: its largest nuclear "
+            f"gradient at zero field is {value:.1e} Eh/bohr (atom {atom + 1}, "
+            f"{molecule.symbols[atom]}; a minimum has less than {MINIMUM_GRADIENT_AU:g}); the "
+            "tensors belong to this structure, not to the model's equilibrium one: optimise "
+            "it ([geometry] optimise = true) for the model's own")
+
+
 def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
-            store_label: str = "", wall_time_s: float = 0.0, label: str = "") -> RunResult:
+            store_label: str = "", wall_time_s: float = 0.0, label: str = "",
+            reference=None) -> RunResult:
     """Tensors, invariants and warnings from the records of every planned point
     (in plan order; None for a point not computed, whose components are then
-    MISSING: ``collect --allow-partial``). Pure: no PySCF."""
+    MISSING: ``collect --allow-partial``), with the zero-field ``reference``'s
+    geometry check when given (geometry_warning). Pure: no PySCF."""
     job, plan = prepared.job, prepared.plan
     records = tuple(records)
     if len(records) != len(plan.points):
@@ -545,6 +565,9 @@ def analyse(prepared: Prepared, records, counts: PointCounts | None = None,
         name: rotational_average(t, orientation.average, orientation.axes, orientation.labels)
         for name, t in tensors.items()}
     warnings = departure_warnings(job, plan, smooth) + window_warnings(job, plan, tensors)
+    not_minimum = geometry_warning(job, prepared.molecule, reference)
+    if not_minimum is not None:
+        warnings = (not_minimum,) + warnings
     if sym is not None and job.response.symmetry == SYMMETRISE and not sym.exact:
         warnings = (f"{job.path}: [response] symmetry = \"{SYMMETRISE}\": the nuclei were "
                     f"moved by up to {sym.moved_bohr:.1e} bohr onto the point group "

@@ -185,8 +185,10 @@ def collect(job: Job, store=None, route: Route | str | None = None, lines=None,
     found = {t.point.index: rows[t.key].record(t.point) for t in prepared.computed_tasks
              if t.key in rows and rows[t.key].ok}
     counts = point_counts(prepared, 0, len(found))
+    model = store.get_model(zero.model_key) if store is not None else None
     result = analyse(prepared, prepared.expand(found), counts, where,
-                     time.perf_counter() - start)
+                     time.perf_counter() - start,
+                     reference=None if model is None else model[0])
     if job.response.nuclear_relaxation:
         tasks = relaxed_tasks(prepared)
         rows = store.get_points(t.key for t in tasks[1:]) if store is not None else {}

@@ -248,7 +248,7 @@ class JobWork:
     def result(self, store_label: str, wall_time_s: float):
         """The analysis of a finished job (engine.analyse, with relaxation)."""
         result = analyse(self.prepared, self.prepared.records(self.found), self.counts(),
-                         store_label, wall_time_s)
+                         store_label, wall_time_s, reference=self.reference)
         relaxed = self.relaxed_records()
         if relaxed is not None:
             result = with_relaxation(result, self.prepared, *relaxed)

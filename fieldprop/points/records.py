@@ -97,7 +97,9 @@ class ZeroFieldReference:
     from which the zero-field Newton steps stopped halving it (the floor
     double precision allows for this molecule and model; 0 where they never
     stalled): field points aim at no less than a margin above it
-    (solver._point_target).
+    (solver._point_target). ``nuclear_gradient``: (largest |component|,
+    Eh/bohr; its atom, from 0) of the nuclear gradient at zero field, where
+    the model has one (HF, DFT): the geometry check (None: not checked).
     """
 
     density: np.ndarray
@@ -109,6 +111,7 @@ class ZeroFieldReference:
     field_rotations: np.ndarray | None = None
     response_subspace: tuple[np.ndarray, np.ndarray] | None = None
     gradient_floor: float = 0.0
+    nuclear_gradient: tuple[float, int] | None = None
 
 
 @dataclass(frozen=True)

@@ -257,6 +257,8 @@ def reference_to_bytes(reference: ZeroFieldReference) -> bytes:
         if value is not None:
             arrays[name] = np.asarray(value)
     arrays["gradient_floor"] = np.array(reference.gradient_floor)
+    if reference.nuclear_gradient is not None:
+        arrays["nuclear_gradient"] = np.array(reference.nuclear_gradient, dtype=float)
     buffer = io.BytesIO()
     np.savez(buffer, **arrays)
     return buffer.getvalue()
@@ -274,6 +276,9 @@ def reference_from_bytes(blob: bytes) -> ZeroFieldReference:
                  if name in data.files}
         if "gradient_floor" in data.files:  # absent from stores written before it
             extra["gradient_floor"] = float(data["gradient_floor"])
+        if "nuclear_gradient" in data.files:  # absent: not checked (or an older store)
+            value, atom = (float(v) for v in data["nuclear_gradient"])
+            extra["nuclear_gradient"] = (value, int(atom))
         return ZeroFieldReference(data["density"], occupied, float(data["s2"]), ops, **extra)
 
 

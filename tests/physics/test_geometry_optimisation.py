@@ -66,6 +66,34 @@ def test_optimised_water_has_the_hf_631g_shape_and_no_gradient(tmp_path, capsys)
     gradient = mf.nuc_grad_method().kernel()
     assert np.abs(gradient).max() < GEOMETRY_CRITERIA["fine"]["gradient_max_au"]
     assert opt["largest_gradient_au"] < GEOMETRY_CRITERIA["fine"]["gradient_max_au"]
+    # The geometry check at zero field finds the minimum: no warning.
+    assert not any("not a minimum" in w for w in doc["warnings"]), doc["warnings"]
+
+
+def test_a_geometry_that_is_not_a_minimum_is_named_in_one_warning(tmp_path, capsys):
+    """The same sketch without the optimisation: the zero-field check (the
+    model's own nuclear gradient) finds a largest component far above 1e-3
+    Eh/bohr, against PySCF's gradient computed here; one warning says so, in
+    the run's log, the result JSON and collect's result from the store."""
+    import json
+
+    from pyscf import gto, scf
+
+    path = tmp_path / "sketch.toml"
+    path.write_text(JOB.replace("[geometry]\noptimize = true\n", ""))
+    assert main(["run", str(path), "--quiet"]) == 0
+    capsys.readouterr()
+    doc = json.loads((tmp_path / "sketch.result.json").read_text())
+    (warning,) = [w for w in doc["warnings"] if "not a minimum" in w]
+    mol = gto.M(atom="O 0 0 0.1; H 0 0.8 -0.45; H 0 -0.8 -0.45", basis="6-31g", verbose=0)
+    gradient = scf.RHF(mol).run(conv_tol=1e-11).nuc_grad_method().kernel()
+    largest = float(np.abs(gradient).max())
+    assert largest > 1e-2
+    shown = float(warning.split("gradient at zero field is ")[1].split()[0])
+    assert shown == pytest.approx(largest, rel=0.05)  # printed to two digits
+    assert main(["collect", str(path), "--quiet", "--json", str(tmp_path / "c.json")]) == 0
+    collected = json.loads((tmp_path / "c.json").read_text())
+    assert [w for w in collected["warnings"] if "not a minimum" in w] == [warning]
 
 
 def test_a_rerun_takes_the_optimised_geometry_from_the_store(tmp_path, capsys, monkeypatch):
@@ -175,3 +203,28 @@ def test_the_result_s_job_echo_rebuilds_the_job_that_started_the_optimisation(tm
     optimum = [a["coords_bohr"] for a in echo["derived"]["molecule"]["atoms"]]
     assert optimum != [list(a.coords_bohr) for a in job.molecule.atoms]
     assert echo["derived"]["molecule"]["source"] == "inline, optimised"
+
+
+def test_the_fitted_geometry_check_agrees_with_the_exact_gradient(tmp_path, monkeypatch):
+    """Above GEOMETRY_CHECK_FIT_ABOVE basis functions the check's gradient is
+    density-fitted; on the sketch (forced through that path) it agrees with
+    PySCF's exact gradient far better than the 1e-3 Eh/bohr that decides."""
+    from pyscf import gto, scf
+
+    from fieldprop.backend import points as backend_points
+    from fieldprop.backend.context import ModelContext
+    from fieldprop.engine.prepare import prepare
+    from fieldprop.inputs.job import load_job
+
+    path = tmp_path / "sketch.toml"
+    path.write_text(JOB.replace("[geometry]\noptimize = true\n", ""))
+    zero = prepare(load_job(path)).tasks[0]
+    context = ModelContext(zero.molecule, zero.model, zero.scf)
+    exact = backend_points.compute_reference(context, zero)[1].nuclear_gradient
+    monkeypatch.setattr(backend_points, "GEOMETRY_CHECK_FIT_ABOVE", 0)
+    context = ModelContext(zero.molecule, zero.model, zero.scf)
+    fitted = backend_points.compute_reference(context, zero)[1].nuclear_gradient
+    mol = gto.M(atom="O 0 0 0.1; H 0 0.8 -0.45; H 0 -0.8 -0.45", basis="6-31g", verbose=0)
+    reference = np.abs(scf.RHF(mol).run(conv_tol=1e-11).nuc_grad_method().kernel()).max()
+    assert exact[0] == pytest.approx(reference, abs=1e-7)
+    assert fitted[1] == exact[1] and abs(fitted[0] - exact[0]) < 1e-4
