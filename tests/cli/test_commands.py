@@ -277,7 +277,10 @@ def test_batch_logs_get_progress_lines_and_quiet_silences_them(tmp_path):
     assert "\r" not in done.stderr  # no bar redrawn into the log
     quiet = fieldprop("run", "lih.toml", "--no-store", "--quiet", "--log-every", "0",
                       cwd=tmp_path)
-    assert quiet.returncode == 0 and quiet.stderr == ""
+    # Quiet: no progress or log lines; warnings still (this sketch is not a
+    # minimum of its model), each one line.
+    assert quiet.returncode == 0
+    assert all("not a minimum" in ln for ln in quiet.stderr.splitlines()), quiet.stderr
     # --verbose: also a line per point, with its cycles, time and SCF path.
     assert not any(ln.startswith("fieldprop: point ") for ln in done.stderr.splitlines())
     verbose = fieldprop("run", "lih.toml", "--no-store", "--verbose", cwd=tmp_path)
