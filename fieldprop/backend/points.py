@@ -27,8 +27,8 @@ from fieldprop.points.records import PointRecord, PointTask, ZeroFieldReference
 logger = logging.getLogger(__name__)
 
 
-def compute_reference(context: ModelContext,
-                      task: PointTask) -> tuple[PointRecord, ZeroFieldReference]:
+def compute_reference(context: ModelContext, task: PointTask,
+                      check_geometry: bool = True) -> tuple[PointRecord, ZeroFieldReference]:
     """Compute the zero-field point from scratch, and the reference it gives every
     other point: density, orbitals, <S^2>, the symmetry operations its state has
     (the state checks) and the orbitals' linear response to a field (the start
@@ -45,7 +45,8 @@ def compute_reference(context: ModelContext,
                                    symmetry_operations(context.mol, mf),
                                    np.asarray(mf.mo_coeff), np.asarray(mf.mo_occ),
                                    gradient_floor=context.gradient_floor,
-                                   nuclear_gradient=_nuclear_gradient(mf, context))
+                                   nuclear_gradient=(_nuclear_gradient(mf, context)
+                                                     if check_geometry else None))
     context.attach(reference)
     work = 0
     if _has_hessian(mf):
@@ -66,6 +67,10 @@ def compute_reference(context: ModelContext,
 #: HF/6-31G (121 functions), within 4e-5 Eh/bohr of the exact one, far below
 #: the 1e-3 that decides.
 GEOMETRY_CHECK_FIT_ABOVE = 60
+#: The geometry check's own SCF (geometry_check): energy and orbital-gradient
+#: tolerances.
+GEOMETRY_CHECK_ENERGY_TOL_AU = 1e-9
+GEOMETRY_CHECK_GRADIENT_TOL = 1e-6
 
 
 def _nuclear_gradient(mf, context) -> tuple[float, int] | None:
@@ -88,6 +93,21 @@ def _nuclear_gradient(mf, context) -> tuple[float, int] | None:
         return None
     atom = int(np.unravel_index(np.abs(gradient).argmax(), gradient.shape)[0])
     return float(np.abs(gradient).max()), atom
+
+
+def geometry_check(context: ModelContext) -> tuple[float, int] | None:
+    """The geometry check (_nuclear_gradient) from an SCF of its own at zero
+    field (PySCF's, from its initial guess; the context's integrals), for a
+    worker that would otherwise wait for the reference: None where the model
+    has no nuclear gradient or that SCF does not converge."""
+    if not METHODS[context.model.method].mean_field or context.mol.natm < 2:
+        return None
+    mf = context.mean_field((0.0, 0.0, 0.0))
+    # Converged far enough for a gradient to ~1e-6 Eh/bohr, against the 1e-3
+    # that decides (not the points' 1e-12).
+    mf.conv_tol, mf.conv_tol_grad = GEOMETRY_CHECK_ENERGY_TOL_AU, GEOMETRY_CHECK_GRADIENT_TOL
+    mf.kernel()
+    return _nuclear_gradient(mf, context) if mf.converged else None
 
 
 def compute_point(context: ModelContext, task: PointTask, solved=None) -> PointRecord:

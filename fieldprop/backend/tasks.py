@@ -77,9 +77,10 @@ def _named_failure(task: PointTask, what: str, exc: Exception, start: float) -> 
                         time.perf_counter() - start)
 
 
-def reference_task(task: PointTask, threads: int = 0):
+def reference_task(task: PointTask, threads: int = 0, check_geometry: bool = True):
     """A model's zero-field point and its reference: (PointRecord,
-    ZeroFieldReference), or (PointFailure, None)."""
+    ZeroFieldReference), or (PointFailure, None); with its geometry check
+    unless another worker does it (``check_geometry`` False: warm_task)."""
     from fieldprop.backend.context import ModelContext
     from fieldprop.backend.points import compute_reference
 
@@ -88,7 +89,7 @@ def reference_task(task: PointTask, threads: int = 0):
     start = time.perf_counter()
     try:
         context = ModelContext(task.molecule, task.model, task.scf)
-        record, reference = compute_reference(context, task)
+        record, reference = compute_reference(context, task, check_geometry)
     except FieldpropError as exc:
         return PointFailure(task.point, str(exc), type(exc).__name__,
                             time.perf_counter() - start), None
@@ -98,23 +99,30 @@ def reference_task(task: PointTask, threads: int = 0):
     return record, reference
 
 
-def warm_task(task: PointTask, threads: int = 0) -> None:
+def warm_task(task: PointTask, threads: int = 0, check: bool = False):
     """Build and keep a model's context (integrals, DFT grid) in a worker that
     would otherwise wait while another computes the model's zero-field
-    reference: its first field point then only attaches the reference. Only
-    saves time: whatever goes wrong is left to that point."""
+    reference: its first field point then only attaches the reference. With
+    ``check``, also the model's geometry check there (an SCF of its own at
+    zero field and its nuclear gradient: backend.points.geometry_check),
+    returned; None where there is none. Only saves time: whatever goes wrong
+    is left to the points (and the check is then not done)."""
     from fieldprop.backend.context import ModelContext
+    from fieldprop.backend.points import geometry_check
 
     if threads:
         set_threads(threads)
     key = _context_key(task.model_key)
-    if _cached_context(key) is not None:
-        return
+    context = _cached_context(key)
     try:
-        _keep_context(key, ModelContext(task.molecule, task.model, task.scf))
+        if context is None:
+            context = ModelContext(task.molecule, task.model, task.scf)
+            _keep_context(key, context)
+        return geometry_check(context) if check else None
     except Exception:  # noqa: BLE001 - the point that needs it builds it again, and says why
         logger.debug("building the context of model %s ahead failed", task.model_key[:12],
                      exc_info=True)
+        return None
 
 
 def point_task(task: PointTask, reference: ZeroFieldReference, solved: dict,

@@ -290,7 +290,7 @@ def _references(works: list[JobWork], store, executor, progress: Progress) -> No
     if not waiting:
         return
     with store.reference_lock():
-        pending = {}
+        pending, computing = {}, []
         for work in waiting:
             zero = work.prepared.tasks[0]
             if zero.key in work.failed and not work.wanted(zero):
@@ -309,15 +309,26 @@ def _references(works: list[JobWork], store, executor, progress: Progress) -> No
             logger.info("%scomputing the zero-field reference (model %s)",
                         f"{work.label}: " if work.label else "", zero.model_key[:12])
             _count(work, [zero], progress)
-            pending[executor.submit(reference_task, zero, executor.threads)] = work
+            computing.append(work)
         # Workers that would wait for the references build their models'
-        # integrals meanwhile (local processes: each takes one; a cluster
-        # places tasks its own way).
-        if getattr(executor, "warms", False):
-            models = [w.prepared.tasks[0] for w in pending.values()
-                      if any(not t.is_zero_field for t in w.todo())]
-            for i in range(executor.slots - len(pending) if models else 0):
-                executor.submit(warm_task, models[i % len(models)], executor.threads)
+        # integrals meanwhile, and the first of them for each model does its
+        # geometry check (backend.tasks.warm_task), which the reference task
+        # then leaves out; local processes only (each takes one task; a
+        # cluster places tasks its own way).
+        idle = executor.slots - len(computing) if getattr(executor, "warms", False) else 0
+        models = [w.prepared.tasks[0] for w in computing
+                  if any(not t.is_zero_field for t in w.todo())]
+        checks = {}
+        for i in range(idle if models else 0):
+            zero = models[i % len(models)]
+            check = zero.model_key not in checks
+            future = executor.submit(warm_task, zero, executor.threads, check)
+            if check:
+                checks[zero.model_key] = future
+        for work in computing:
+            zero = work.prepared.tasks[0]
+            pending[executor.submit(reference_task, zero, executor.threads,
+                                    zero.model_key not in checks)] = work
         try:
             while pending:
                 for future in executor.first_done(pending):
@@ -337,6 +348,13 @@ def _references(works: list[JobWork], store, executor, progress: Progress) -> No
                             if record.kind == errors.BackendError.__name__ else
                             _error_of(work, [record]), progress)
                         continue
+                    check = checks.pop(zero.model_key, None)
+                    if check is not None:  # done meanwhile by a waiting worker
+                        try:
+                            reference = dataclasses.replace(reference,
+                                                            nuclear_gradient=check.result())
+                        except Exception:  # noqa: BLE001 - advice only: not checked
+                            logger.debug("geometry check lost", exc_info=True)
                     record, reference = adopt_reference(store, work.prepared, record, reference)
                     work.reference = reference
                     work.found[zero.key] = record

@@ -70,9 +70,11 @@ def test_optimised_water_has_the_hf_631g_shape_and_no_gradient(tmp_path, capsys)
     assert not any("not a minimum" in w for w in doc["warnings"]), doc["warnings"]
 
 
-def test_a_geometry_that_is_not_a_minimum_is_named_in_one_warning(tmp_path, capsys):
+@pytest.mark.parametrize("workers", ["1", "2"])
+def test_a_geometry_that_is_not_a_minimum_is_named_in_one_warning(tmp_path, capsys, workers):
     """The same sketch without the optimisation: the zero-field check (the
-    model's own nuclear gradient) finds a largest component far above 1e-3
+    model's own nuclear gradient; in the reference's worker, or with two a
+    waiting worker's own SCF) finds a largest component far above 1e-3
     Eh/bohr, against PySCF's gradient computed here; one warning says so, in
     the run's log, the result JSON and collect's result from the store."""
     import json
@@ -81,7 +83,7 @@ def test_a_geometry_that_is_not_a_minimum_is_named_in_one_warning(tmp_path, caps
 
     path = tmp_path / "sketch.toml"
     path.write_text(JOB.replace("[geometry]\noptimize = true\n", ""))
-    assert main(["run", str(path), "--quiet"]) == 0
+    assert main(["run", str(path), "--quiet", "--workers", workers]) == 0
     capsys.readouterr()
     doc = json.loads((tmp_path / "sketch.result.json").read_text())
     (warning,) = [w for w in doc["warnings"] if "not a minimum" in w]
