@@ -295,7 +295,7 @@ def test_a_zero_field_failure_inside_the_backend_is_named_not_a_traceback(tmp_pa
     import fieldprop.backend.points
     from fieldprop.cli import main
 
-    def broken(context, task):
+    def broken(context, task, *rest):
         raise RuntimeError("injected inside PySCF")
 
     # Where the zero-field task looks it up (backend.tasks imports it from there).

@@ -228,7 +228,7 @@ def test_a_zero_field_stored_as_failed_stops_every_entrance_in_one_line(tmp_path
 
     real = backend_points.compute_reference
 
-    def stubborn(context, task):
+    def stubborn(context, task, *rest):
         raise ScfNotConvergedError(f"SCF did not converge at field point {task.point.label}")
 
     write_job(tmp_path, "lih.toml", properties='["alpha"]')
