@@ -71,6 +71,9 @@ GEOMETRY_CHECK_FIT_ABOVE = 60
 #: tolerances.
 GEOMETRY_CHECK_ENERGY_TOL_AU = 1e-9
 GEOMETRY_CHECK_GRADIENT_TOL = 1e-6
+#: ... and its DIIS cycles at most: the stored reference waits for the check,
+#: and an SCF that needs more (a hard open shell) leaves the geometry unchecked.
+GEOMETRY_CHECK_MAX_CYCLES = 60
 
 
 def _nuclear_gradient(mf, context) -> tuple[float, int] | None:
@@ -106,6 +109,7 @@ def geometry_check(context: ModelContext) -> tuple[float, int] | None:
     # Converged far enough for a gradient to ~1e-6 Eh/bohr, against the 1e-3
     # that decides (not the points' 1e-12).
     mf.conv_tol, mf.conv_tol_grad = GEOMETRY_CHECK_ENERGY_TOL_AU, GEOMETRY_CHECK_GRADIENT_TOL
+    mf.max_cycle = min(mf.max_cycle, GEOMETRY_CHECK_MAX_CYCLES)  # the reference waits for it
     mf.kernel()
     return _nuclear_gradient(mf, context) if mf.converged else None
 
