@@ -76,13 +76,19 @@ GEOMETRY_CHECK_GRADIENT_TOL = 1e-6
 GEOMETRY_CHECK_MAX_CYCLES = 60
 
 
+def _checks_geometry(context) -> bool:
+    """The geometry check applies: a mean-field model (its energy's nuclear
+    gradient is the backend's SCF gradient) of more than one atom."""
+    return METHODS[context.model.method].mean_field and context.mol.natm > 1
+
+
 def _nuclear_gradient(mf, context) -> tuple[float, int] | None:
     """The geometry check: (largest |component| of the nuclear gradient at
     zero field, Eh/bohr; its atom) for a mean-field model (HF, DFT), from the
     converged zero-field SCF ``mf``; None for other methods, one atom, or
     where the backend has no gradient for it (a failure is logged, never
     fatal: the check only warns)."""
-    if not METHODS[context.model.method].mean_field or context.mol.natm < 2:
+    if not _checks_geometry(context):
         return None
     try:
         solver = mf
@@ -103,7 +109,7 @@ def geometry_check(context: ModelContext) -> tuple[float, int] | None:
     field (PySCF's, from its initial guess; the context's integrals), for a
     worker that would otherwise wait for the reference: None where the model
     has no nuclear gradient or that SCF does not converge."""
-    if not METHODS[context.model.method].mean_field or context.mol.natm < 2:
+    if not _checks_geometry(context):  # before an SCF for nothing
         return None
     mf = context.mean_field((0.0, 0.0, 0.0))
     # Converged far enough for a gradient to ~1e-6 Eh/bohr, against the 1e-3

@@ -501,6 +501,6 @@ def _converge(mf, context, point, scf=None) -> tuple[list[str], int, np.ndarray 
         mf.converged = True
         return attempts, cycles, fock
     raise ScfNotConvergedError(
-        f"SCF did not converge at field point {point.label}: orbital gradient {g:.1e} reached after "
-        f"{', '.join(attempts)} ({cycles} cycles); the derivatives need at most "
+        f"SCF did not converge at field point {point.label}: orbital gradient {g:.1e} "
+        f"reached after {', '.join(attempts)} ({cycles} cycles); the derivatives need at most "
         f"{accepted:.1e} (target {target:.1e}); no number is formed from it")

@@ -193,7 +193,8 @@ def build_parser() -> argparse.ArgumentParser:
                          epilog=READING_THE_TABLES + RUN_EXAMPLES,
                          formatter_class=argparse.RawDescriptionHelpFormatter)
     run.add_argument("job", type=Path, help="job file (TOML)")
-    run.add_argument("--json", type=Path, metavar="PATH", help="result JSON path (default JOB.result.json "
+    run.add_argument("--json", type=Path, metavar="PATH",
+                     help="result JSON path (default JOB.result.json "
                      "beside the job file; - writes it to stdout instead of the tables)")
     _executor_options(run)
     _progress_options(run)
@@ -216,9 +217,11 @@ def build_parser() -> argparse.ArgumentParser:
                            epilog=READING_THE_TABLES + CHECK_EXAMPLES,
                            formatter_class=argparse.RawDescriptionHelpFormatter)
     check.add_argument("job", type=Path, help="job file (TOML)")
-    check.add_argument("--against", type=Path, metavar="FILE", help="reference tensors: result-style JSON, "
+    check.add_argument("--against", type=Path, metavar="FILE",
+                       help="reference tensors: result-style JSON, "
                        ".npy or .npz (default: fieldprop's analytic SCF references)")
-    check.add_argument("--json", type=Path, metavar="PATH", help="write the comparison as JSON to this path "
+    check.add_argument("--json", type=Path, metavar="PATH",
+                       help="write the comparison as JSON to this path "
                        "(- writes it to stdout instead of the table)")
     check.add_argument("--sigmas", type=_positive_float, default=None, metavar="K",
                        help="agreement within this many error bars (default 3)")
@@ -294,7 +297,8 @@ def build_parser() -> argparse.ArgumentParser:
                              epilog=COLLECT_EXAMPLES,
                              formatter_class=argparse.RawDescriptionHelpFormatter)
     collect.add_argument("job", type=Path, help="job file (TOML)")
-    collect.add_argument("--json", type=Path, metavar="PATH", help="result JSON path (default JOB.result.json "
+    collect.add_argument("--json", type=Path, metavar="PATH",
+                         help="result JSON path (default JOB.result.json "
                          "beside the job file; - writes it to stdout instead of the tables)")
     collect.add_argument("--points", type=Path, metavar="PATH", nargs="+", help="point lines "
                          "of fieldprop point --stdout, beside the store's points: files, "
@@ -353,7 +357,8 @@ def build_parser() -> argparse.ArgumentParser:
     _convention_option(screen)
     screen.add_argument("--units", choices=("au", "esu", "si"), default="au",
                         help="units of the table and the CSV (the result files stay in au)")
-    screen.add_argument("--csv", type=Path, metavar="PATH", help="write the ranked table as CSV to PATH "
+    screen.add_argument("--csv", type=Path, metavar="PATH",
+                        help="write the ranked table as CSV to PATH "
                         "(- for stdout, in place of the table)")
     screen.add_argument("--png", type=Path, metavar="PATH", help="summary picture (default "
                         "SET.summary.png beside the set file)")
@@ -373,9 +378,11 @@ def build_parser() -> argparse.ArgumentParser:
                        "[geometry] are used, [response] only for the origin")
     relax.add_argument("--field", type=float, nargs=3, required=True, metavar=("FX", "FY", "FZ"),
                        help="the field vector in atomic units (1 au = 5.14e11 V/m)")
-    relax.add_argument("--xyz", type=Path, metavar="PATH", help="the relaxed structure as XYZ (default "
+    relax.add_argument("--xyz", type=Path, metavar="PATH",
+                       help="the relaxed structure as XYZ (default "
                        "JOB.relaxed.xyz beside the job file)")
-    relax.add_argument("--json", type=Path, metavar="PATH", help="the forces, structures and energies as JSON "
+    relax.add_argument("--json", type=Path, metavar="PATH",
+                       help="the forces, structures and energies as JSON "
                        "(- writes it to stdout instead of the table)")
     relax.add_argument("--quiet", action="store_true", help="no log lines on stderr")
     _store_options(relax)

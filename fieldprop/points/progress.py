@@ -3,7 +3,8 @@
 On a terminal a tqdm bar; in a batch log (stderr not a terminal) a log line at
 most every ``every_s`` seconds and one at the end: points done of the points
 known so far (the total grows as the adaptive window's stages join), SCF
-cycles, the time since the command started and an estimate of the time left. Both count the same events, so a terminal and a batch log agree.
+cycles, the time since the command started and an estimate of the time
+left. Both count the same events, so a terminal and a batch log agree.
 """
 
 from __future__ import annotations
