@@ -372,6 +372,14 @@ def gamma_perpendicular(g: np.ndarray) -> float:
                   - np.einsum("ijji->", g)) / 30.0)
 
 
+def dipole_is_zero(mu, error) -> bool:
+    """A dipole moment zero within its error bars (|mu| at most three times
+    the norm of its bars, or below 1e-6 au): no direction to project on or
+    to turn a frame to."""
+    norm = float(np.linalg.norm(mu))
+    return norm <= 3.0 * float(np.linalg.norm(error)) or norm < 1e-6
+
+
 def dipole_frame(mu, alpha=None, positions=None) -> np.ndarray:
     """The dipole frame, rows x, y, z: z along mu (the customary orientation
     of a push-pull molecule, its charge-transfer axis); x the direction
@@ -491,9 +499,7 @@ def invariants(tensors: dict[str, TensorResult]) -> list[Invariant]:
                 (("unstable", unstable), ("missing", missing)) if names)))
             continue
         if name == "beta_parallel":
-            mu, mu_err = tensors["dipole"].value_au, tensors["dipole"].error_au
-            norm = float(np.linalg.norm(mu))
-            if norm <= 3.0 * float(np.linalg.norm(mu_err)) or norm < 1e-6:
+            if dipole_is_zero(tensors["dipole"].value_au, tensors["dipole"].error_au):
                 out.append(Invariant(name, None, None, "dipole moment is zero within its error "
                                      "bar: the projection on it is undefined"))
                 continue

@@ -208,7 +208,7 @@ def _frame_of(label: str, doc: dict):
     electronic dipole, x along its alpha's largest perpendicular axis, or the
     nuclei's without alpha); InputError where the dipole is zero within its
     error bars or not in the result."""
-    from fieldprop.numerics.tensors import dipole_frame
+    from fieldprop.numerics.tensors import dipole_frame, dipole_is_zero
 
     tensors = doc["tensors"]
     dipole = tensors.get("dipole") or {}
@@ -217,7 +217,7 @@ def _frame_of(label: str, doc: dict):
         raise InputError(f"{label}: the dipole frame needs the dipole moment (properties "
                          "with \"dipole\", every component a number)")
     mu, err = np.array(mu, dtype=float), np.array(err, dtype=float)
-    if np.linalg.norm(mu) <= 3.0 * np.linalg.norm(err) or np.linalg.norm(mu) < 1e-6:
+    if dipole_is_zero(mu, err):
         raise InputError(f"{label}: the dipole moment is zero within its error bars: the "
                          "molecule has no dipole frame")
     alpha = (tensors.get("alpha") or {}).get("value")
