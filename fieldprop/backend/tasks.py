@@ -103,7 +103,9 @@ def warm_task(task: PointTask, threads: int = 0, check: bool = False):
     """Build and keep a model's context (integrals, DFT grid) in a worker that
     would otherwise wait while another computes the model's zero-field
     reference: its first field point then only attaches the reference. With
-    ``check``, also the model's geometry check there (an SCF of its own at
+    ``check`` (a model above points.GEOMETRY_CHECK_FIT_ABOVE basis functions,
+    where the check costs more than this worker's own SCF), also the model's
+    geometry check there (an SCF of its own at
     zero field and its nuclear gradient: backend.points.geometry_check),
     returned; None where there is none. Only saves time: whatever goes wrong
     is left to the points (and the check is then not done)."""

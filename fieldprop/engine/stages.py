@@ -43,6 +43,7 @@ import time
 from dataclasses import dataclass, field
 
 from fieldprop import errors
+from fieldprop.backend.points import GEOMETRY_CHECK_FIT_ABOVE
 from fieldprop.backend.tasks import (point_task, reference_task, refuse_another_backend,
                                      warm_task)
 from fieldprop.engine.analyse import (NoiseModel, _estimates, _tensor_scales, analyse,
@@ -318,10 +319,14 @@ def _references(works: list[JobWork], store, executor, progress: Progress) -> No
         idle = executor.slots - len(computing) if getattr(executor, "warms", False) else 0
         models = [w.prepared.tasks[0] for w in computing
                   if any(not t.is_zero_field for t in w.todo())]
+        # Small models check inline: an exact gradient there costs less than
+        # the waiting worker's own SCF, which the reference would wait for.
+        costly = {w.prepared.tasks[0].model_key for w in computing
+                  if w.prepared.facts.get("n_basis_functions", 0) > GEOMETRY_CHECK_FIT_ABOVE}
         checks = {}
         for i in range(idle if models else 0):
             zero = models[i % len(models)]
-            check = zero.model_key not in checks
+            check = zero.model_key not in checks and zero.model_key in costly
             future = executor.submit(warm_task, zero, executor.threads, check)
             if check:
                 checks[zero.model_key] = future
