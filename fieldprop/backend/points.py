@@ -63,10 +63,10 @@ def compute_reference(context: ModelContext, task: PointTask,
 
 #: Above this many basis functions the zero-field geometry check uses a
 #: density-fitted nuclear gradient (PySCF's default auxiliary basis) at the
-#: converged orbitals: 2.2 s instead of 6 s for a 22-atom polyene at
-#: HF/6-31G (121 functions), within 4e-5 Eh/bohr of the exact one, far below
-#: the 1e-3 that decides.
-GEOMETRY_CHECK_FIT_ABOVE = 60
+#: converged orbitals: 0.44 s instead of 1.5 s for a 10-atom polyene at
+#: HF/6-31G (55 functions), 2.2 s instead of 6 s at 22 atoms (121), within
+#: 4e-5 Eh/bohr of the exact one, far below the 1e-3 that decides.
+GEOMETRY_CHECK_FIT_ABOVE = 30
 #: The geometry check's own SCF (geometry_check): energy and orbital-gradient
 #: tolerances.
 GEOMETRY_CHECK_ENERGY_TOL_AU = 1e-9
