@@ -55,10 +55,30 @@ def main(argv: Sequence[str] | None = None) -> int:
     else:
         previous = None
     try:
-        return _main(argv)
+        code = _main(argv)
+    except Terminated:  # arrived as the command was ending, outside _main's handling
+        print("fieldprop: error: terminated: SIGTERM", file=sys.stderr)
+        code = 143
     finally:
         if previous is not None:
             signal.signal(signal.SIGTERM, previous)
+    if argv is None and code in (130, 143):
+        _end_now(code)
+    return code
+
+
+def _end_now(code: int) -> None:
+    """End an interrupted command now. Its points are stored, its files
+    written or left as they were and its workers stopped; what Python would
+    still do at exit is join the worker pool's manager thread, which an
+    interrupt arriving inside the pool's own locking can leave waiting for
+    ever (a batch system's wall-time SIGTERM must end the job)."""
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (OSError, ValueError):
+            pass
+    os._exit(code)
 
 
 def _main(argv: Sequence[str] | None) -> int:

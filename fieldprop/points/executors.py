@@ -166,13 +166,18 @@ def worker_lost(exc: BaseException) -> bool:
 
 def abort_pool(pool) -> None:
     """End a ProcessPoolExecutor now: queued tasks dropped, running workers
-    terminated, and its manager thread given a moment to close its pipes, so
+    terminated (a point of a large molecule is not waited for), and its
+    manager thread given a moment to close its pipes, so
     that the interpreter's exit hook does not write to a pipe being closed
     (a race of Python 3.11's executor that printed an ignored OSError)."""
-    pool.shutdown(wait=False, cancel_futures=True)
-    for process in list((getattr(pool, "_processes", None) or {}).values()):
-        process.terminate()
+    # shutdown() forgets the processes and the manager thread: take them first.
+    processes = list((getattr(pool, "_processes", None) or {}).values())
     manager = getattr(pool, "_executor_manager_thread", None)
+    pool.shutdown(wait=False, cancel_futures=True)
+    for process in processes:
+        process.terminate()
+    for process in processes:
+        process.join(timeout=3.0)
     if manager is not None:
         manager.join(timeout=3.0)
 
