@@ -63,14 +63,14 @@ from fieldprop.backend.gradients import (StructureEvaluator, atom_masses,
                                          compute_relaxed_point, field_mean_field,
                                          relaxation_frame)
 from fieldprop.backend.geometry import optimisation_model, optimize_geometry
-from fieldprop.backend.tasks import (optimise_task, point_task, reference_task,
-                                     refuse_another_backend)
+from fieldprop.backend.tasks import (gradient_task, optimise_task, point_task,
+                                     reference_task, refuse_another_backend)
 
 __all__ = [
     "ModelContext", "StructureEvaluator", "analytic_polarizability", "atom_masses",
     "auxiliary_basis", "backend_versions", "build_mole", "compute_point",
     "compute_reference", "compute_relaxed_point", "diagonal_dipole_step", "field_key",
-    "field_mean_field", "frozen_orbitals", "newton_dipole_step", "optimisation_model",
+    "field_mean_field", "frozen_orbitals", "gradient_task", "newton_dipole_step", "optimisation_model",
     "optimise_task", "optimize_geometry", "orientation_constraints", "orientation_record",
     "point_task", "reference_task", "refuse_another_backend", "relaxation_frame",
     "response_function", "state_issues", "symmetry_operations", "validate",

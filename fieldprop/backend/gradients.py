@@ -26,11 +26,15 @@ from fieldprop.numerics.methods import METHODS
 from fieldprop.points.records import DIIS, PointRecord, PointTask
 
 
-def atom_masses(molecule) -> np.ndarray:
-    """Masses (u) of the most abundant isotopes (PySCF's table), per atom."""
+def atom_masses(molecule, isotopes=()) -> np.ndarray:
+    """Masses (u) per atom: the most abundant isotopes (PySCF's table), but
+    ``isotopes`` ((atom index, mass in u): [molecule] isotope_masses)."""
     from pyscf.data.elements import COMMON_ISOTOPE_MASSES
 
-    return np.array([COMMON_ISOTOPE_MASSES[int(z)] for z in molecule.nuclear_charges])
+    masses = np.array([COMMON_ISOTOPE_MASSES[int(z)] for z in molecule.nuclear_charges])
+    for i, mass in isotopes:
+        masses[i] = mass
+    return masses
 
 
 def _with_field_gradients(mf, field_vector_au, origin_bohr) -> None:
@@ -225,9 +229,10 @@ def relaxation_frame(job: Job, molecule, dipole_route: bool) -> dict:
     from fieldprop.numerics import relaxation
 
     start = time.perf_counter()
-    where = f"{job.path}: [response] nuclear_relaxation"
+    where = (f"{job.path}: [response] "
+             f"{'nuclear_relaxation' if job.response.nuclear_relaxation else 'zero_point'}")
     x0 = np.asarray(molecule.coords_bohr, dtype=float)
-    masses = atom_masses(molecule)
+    masses = atom_masses(molecule, job.molecule.isotope_masses)
     zero = StructureEvaluator(molecule, job.model, job.scf, (0.0, 0.0, 0.0), label="0")
     first = zero(x0)
     gradient = first.gradient

@@ -191,6 +191,32 @@ def optimise_task(job, threads: int = 0):
 
 
 
+def gradient_task(molecule, model, scf, label: str, threads: int = 0):
+    """Energy and nuclear gradient at zero field of ``molecule`` as it stands
+    (a geometry of the zero-point average): ({"energy_au", "gradient_au",
+    "scf_cycles", "wall_time_s"}, None), or (None, (reason, kind))."""
+    import numpy as np
+
+    from fieldprop.backend.gradients import StructureEvaluator
+
+    if threads:
+        set_threads(threads)
+    start = time.perf_counter()
+    try:
+        evaluate = StructureEvaluator(molecule, model, scf, (0.0, 0.0, 0.0), label=label)
+        evaluation = evaluate(np.asarray(molecule.coords_bohr, dtype=float))
+    except FieldpropError as exc:
+        return None, (f"{label}: {exc}", type(exc).__name__)
+    except Exception as exc:  # noqa: BLE001 - named, never a traceback
+        text = " ".join(str(exc).split())[:300] or "no message"
+        return None, (f"{label}: the nuclear gradient failed inside the backend "
+                      f"({type(exc).__name__}: {text})", BackendError.__name__)
+    return {"energy_au": float(evaluation.energy_au),
+            "gradient_au": [[float(v) for v in row] for row in evaluation.gradient],
+            "scf_cycles": evaluate.cycles,
+            "wall_time_s": time.perf_counter() - start}, None
+
+
 def refuse_another_backend(store, zero: PointTask, stored_facts: dict) -> None:
     """InputError (one line, both versions) when the stored model was computed
     with another backend version than this process has: its new points would

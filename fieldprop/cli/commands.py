@@ -92,6 +92,11 @@ def _clamped_only(job, command: str) -> None:
                          f"{command} works with clamped nuclei only; fieldprop run computes "
                          "the relaxed points (resumable, --workers) and fieldprop collect "
                          "reads them back; set it to false here")
+    if job.response.zero_point:
+        raise InputError(f"{job.path}: [response] zero_point = true: fieldprop {command} works "
+                         "at one geometry only; fieldprop run computes the displaced "
+                         "geometries' points (resumable, --workers) and fieldprop collect "
+                         "reads them back; set it to false here")
 
 
 def _at_relaxation_minimum(prepared, store):
@@ -100,7 +105,9 @@ def _at_relaxation_minimum(prepared, store):
     from fieldprop.engine.geometry import relaxed_reference
     from fieldprop.engine.prepare import prepare
 
-    if not prepared.job.response.nuclear_relaxation:
+    from fieldprop.engine.geometry import needs_frame
+
+    if not needs_frame(prepared.job):
         return prepared
     return prepare(relaxed_reference(prepared.job, store), facts=prepared.facts)
 

@@ -210,6 +210,8 @@ class RunResult:
     #: record's) and each tensor's rotational average beside it ({} otherwise).
     orientation: Orientation | None = None
     averages: dict[str, RotationalAverage] = dataclasses.field(default_factory=dict)
+    #: With [response] zero_point: the zero-point part (engine.zero_point.ZeroPoint).
+    zero_point: object = None
 
     @property
     def energy_au(self) -> float:

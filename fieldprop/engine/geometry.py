@@ -134,34 +134,47 @@ def relaxation_key(job: Job, molecule: MoleculeSpec) -> str:
     from fieldprop.numerics import relaxation as nr
     from fieldprop.points.keys import digest
 
-    return digest({"kind": "fieldprop-relaxation-frame",
-                   "model": model_key(molecule, job.model, job.scf),
-                   "route": str(job.response.route),
-                   "tolerances": [nr.MINIMUM_GRADIENT_AU, nr.ENERGY_TOLERANCE_AU,
-                                  nr.DIPOLE_TOLERANCE_AU, nr.MAX_STEPS, nr.STALL_FACTOR]})
+    document = {"kind": "fieldprop-relaxation-frame",
+                "model": model_key(molecule, job.model, job.scf),
+                "route": str(job.response.route),
+                "tolerances": [nr.MINIMUM_GRADIENT_AU, nr.ENERGY_TOLERANCE_AU,
+                               nr.DIPOLE_TOLERANCE_AU, nr.MAX_STEPS, nr.STALL_FACTOR]}
+    if job.molecule.isotope_masses:  # the frame's masses (the Eckart conditions, the modes)
+        document["isotopes"] = [list(pair) for pair in job.molecule.isotope_masses]
+    return digest(document)
+
+
+def needs_frame(job: Job) -> bool:
+    """Whether the job needs the zero-field minimum's frame (Hessian, modes):
+    nuclear relaxation or zero-point averaging."""
+    return job.response.nuclear_relaxation or job.response.zero_point
 
 
 def relaxed_reference(job: Job, store=None, compute: bool = True) -> Job:
-    """With [response] nuclear_relaxation: ``job`` at the zero-field minimum
+    """With [response] nuclear_relaxation or zero_point: ``job`` at the zero-field minimum
     of its model (the frame every relaxation is held to: from the store, or
     computed now and stored; ``job.relaxation`` its document). Refuses
     (InputError) a geometry that is not a minimum. Without ``compute`` a frame
     not stored is IncompleteError (exit 3). Otherwise ``job`` itself."""
-    if not job.response.nuclear_relaxation or job.relaxation is not None:
+    if not needs_frame(job) or job.relaxation is not None:
         return job
     molecule, _ = symmetric_molecule(job)
     key = relaxation_key(job, molecule)
     document = store.get_geometry(key) if store is not None else None
     if document is None:
         if not compute:
-            raise IncompleteError(f"{job.path}: [response] nuclear_relaxation: the zero-field "
+            key_name = "nuclear_relaxation" if job.response.nuclear_relaxation else "zero_point"
+            raise IncompleteError(f"{job.path}: [response] {key_name}: the zero-field "
                                   f"frame (key {short_id(key)}) is not in "
                                   f"{store.label if store is not None else 'any store'}; "
                                   "fieldprop run computes it first")
         from fieldprop.backend import relaxation_frame
 
-        logger.info("%s: the zero-field minimum for nuclear relaxation: gradient, Hessian, "
-                    "dipole derivatives", job.path)
+        logger.info("%s: the zero-field minimum for %s: gradient, Hessian, dipole "
+                    "derivatives", job.path, " and ".join(
+                        w for w, on in (("nuclear relaxation", job.response.nuclear_relaxation),
+                                        ("zero-point averaging", job.response.zero_point))
+                        if on))
         document = relaxation_frame(job, molecule, job.response.route is Route.DIPOLE)
         if store is not None:
             store.put_geometry(key, document)

@@ -85,7 +85,12 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
         logger.info("%d of the job's field points found in %s", len(work.found), store.label)
     try:
         since = 0.0 if started is None else time.monotonic() - started
-        return run_job(work, store, executor, Progress(progress, log_every_s, since_s=since))
+        bar = Progress(progress, log_every_s, since_s=since)
+        if job.response.zero_point:
+            from fieldprop.engine.zero_point import run_zero_point
+
+            return run_zero_point(work, store, executor, bar)
+        return run_job(work, store, executor, bar)
     finally:
         if own_executor:
             executor.close()
@@ -203,6 +208,10 @@ def collect(job: Job, store=None, route: Route | str | None = None, lines=None,
         relaxed = {0: found[0]} | {t.point.index: rows[t.key].record(t.point) for t in tasks[1:]}
         result = with_relaxation(result, prepared, relaxed,
                                  point_counts(prepared, 0, len(relaxed)))
+    if job.response.zero_point:
+        from fieldprop.engine.zero_point import collect_zero_point
+
+        result = collect_zero_point(result, prepared, store, lines)
     return result
 
 

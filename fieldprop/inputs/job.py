@@ -88,12 +88,12 @@ MAX_LEVELS = 6
 
 _SECTIONS = {
     "molecule": {"geometry", "xyz", "units", "charge", "multiplicity", "allow_close_atoms",
-                 "bohr_angstrom"},
+                 "bohr_angstrom", "isotope_masses"},
     "model": {"method", "functional", "basis", "reference", "frozen_core", "cartesian",
               "density_fit"},
     "response": {"properties", "field_au", "ratio", "levels", "origin", "differentiate", "route",
                  "symmetry", "window",
-                 "nuclear_relaxation"},
+                 "nuclear_relaxation", "zero_point"},
     "geometry": {"optimise", "optimize", "method", "functional", "basis", "criteria",
                  "max_steps"},
     "scf": {"energy_conv_tol_au", "max_iterations", "grid_level", "gradient_target",
@@ -140,6 +140,11 @@ class MoleculeInput:
     #: (engine.with_geometry, engine.relaxed_reference); what the job echo
     #: writes as [molecule] geometry. None: the same as ``atoms``.
     given_atoms: tuple[Atom, ...] | None = None
+    #: ([molecule] isotope_masses) (atom index from 0, mass in u) of the atoms
+    #: whose nuclei are not the most abundant isotope: the vibrations'
+    #: masses (zero-point averaging, the Eckart frame); the electrons do not
+    #: see them.
+    isotope_masses: tuple[tuple[int, float], ...] = ()
 
     @property
     def angstrom_to_bohr(self) -> float:
@@ -202,6 +207,9 @@ class ResponseSpec:
     #: settled: fieldprop.numerics.window), "full" (every level of the automatic ladder)
     #: or "fixed" (the job's own field_au: every level).
     window: str = "fixed"
+    #: The zero-point vibrational average's correction ([response] zero_point:
+    #: fieldprop.engine.zero_point).
+    zero_point: bool = False
 
     @property
     def max_order(self) -> int:
@@ -420,6 +428,8 @@ class Job:
                 "allow_close_atoms": mol.allow_close_atoms,
                 "bohr_angstrom": (mol.bohr_source if mol.bohr_source in NAMED_BOHR_ANGSTROM
                                   else mol.bohr_angstrom),
+                **({"isotope_masses": {str(i + 1): m for i, m in mol.isotope_masses}}
+                   if mol.isotope_masses else {}),
             },
             "model": {
                 "method": model.method,
@@ -442,6 +452,7 @@ class Job:
                 "symmetry": response.symmetry,
                 **({"window": response.window} if automatic else {}),
                 "nuclear_relaxation": response.nuclear_relaxation,
+                "zero_point": response.zero_point,
             },
             "scf": {
                 "energy_conv_tol_au": scf.energy_conv_tol_au,
@@ -738,7 +749,37 @@ def _parse_molecule(path: str, job_path: Path, table: dict[str, Any]) -> Molecul
     if not isinstance(allow_close, bool):
         raise r.fail("allow_close_atoms", f"must be true or false, got {allow_close!r}")
     return MoleculeInput(atoms, charge, multiplicity, units, source, allow_close, bohr,
-                         bohr_source, atoms)
+                         bohr_source, atoms, _isotope_masses(r, table, atoms))
+
+
+#: A nuclear mass (u) outside this range is a typing mistake (the lightest
+#: nucleus, 1H, weighs 1.007 u; the heaviest known about 300 u).
+ISOTOPE_MASS_RANGE = (1.0, 320.0)
+
+
+def _isotope_masses(r: "_Reader", table: dict[str, Any], atoms) -> tuple[tuple[int, float], ...]:
+    """[molecule] isotope_masses = { 2 = 2.01410178, ... }: atom number (from 1,
+    in the order of the geometry) to that nucleus's mass in u."""
+    given = table.get("isotope_masses", {})
+    if not isinstance(given, dict):
+        raise r.fail("isotope_masses", "must be a table of atom number = mass in u, e.g. "
+                     f"{{ 2 = 2.01410178 }}, got {given!r}")
+    out = []
+    for key, mass in given.items():
+        try:
+            n = int(key)
+        except ValueError:
+            n = 0
+        if not 1 <= n <= len(atoms):
+            raise r.fail("isotope_masses", f"key {key!r} is not an atom number (1 to "
+                         f"{len(atoms)}, in the order of the geometry)")
+        if isinstance(mass, bool) or not isinstance(mass, (int, float)) \
+                or not ISOTOPE_MASS_RANGE[0] <= mass <= ISOTOPE_MASS_RANGE[1]:
+            raise r.fail("isotope_masses", f"atom {n} ({atoms[n - 1].symbol}): the mass must be "
+                         f"a number of u between {ISOTOPE_MASS_RANGE[0]:g} and "
+                         f"{ISOTOPE_MASS_RANGE[1]:g}, got {mass!r}")
+        out.append((n - 1, float(mass)))
+    return tuple(sorted(out))
 
 
 #: A bohr (angstrom) outside this range is a typing mistake, not another
@@ -931,6 +972,14 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
         raise r.fail("nuclear_relaxation", f"= true needs nuclear gradients of E(R; F), which "
                      f"fieldprop has for {with_gradient}; {method} has none: set it to false, "
                      "or use one of those")
+    zero_point = table.get("zero_point", False)
+    if not isinstance(zero_point, bool):
+        raise r.fail("zero_point", f"must be true or false, got {zero_point!r}")
+    if zero_point and not METHODS[method].nuclear_gradient:
+        with_gradient = ", ".join(m for m, t in METHODS.items() if t.nuclear_gradient)
+        raise r.fail("zero_point", f"= true needs nuclear gradients (the harmonic modes and "
+                     f"the cubic force constants), which fieldprop has for {with_gradient}; "
+                     f"{method} has none: set it to false, or use one of those")
     symmetry = table.get("symmetry", True)
     if not isinstance(symmetry, bool) and symmetry != SYMMETRISE:
         raise r.fail("symmetry", f"must be true (symmetry of the geometry as given), false, "
@@ -943,7 +992,7 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
     if automatic and no_derivatives:
         window = "full"
     return ResponseSpec(props_sorted, field_au, source, ratio, levels, origin, route, relax,
-                        symmetry, window)
+                        symmetry, window, zero_point)
 
 
 def _parse_scf(path: str, table: dict[str, Any], method: str, max_order: int,
@@ -1118,6 +1167,9 @@ def job_from_tables(shown: str, job_path: Path, data: dict[str, Any]) -> Job:
                      response.route, molecule.multiplicity > 1, response.field_au,
                      data.get("correlation", {}))
     geometry = _parse_geometry(shown, data.get("geometry", {}), model)
+    if response.zero_point and len(molecule.atoms) < 2:
+        raise InputError(f"{shown}: [response] zero_point = true: an atom has no vibrations; "
+                         "set it to false")
     return Job(shown, molecule, model, response, scf, geometry)
 
 

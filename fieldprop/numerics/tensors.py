@@ -663,3 +663,28 @@ def difference(total: dict[str, TensorResult],
         out[name] = TensorResult(name, t.order, t.value_au - p.value_au, t.error_au + p.error_au,
                                  t.stable & p.stable, tuple(comps))
     return out
+
+
+def from_arrays(template: TensorResult, value, error) -> TensorResult:
+    """A tensor of ``template``'s components and statuses with the full arrays
+    ``value`` and ``error`` (au): a correction or a total formed from tensors
+    (the zero-point average). Components zero by symmetry in ``template`` stay
+    exactly zero (a property averaged over the totally symmetric vibrational
+    ground state keeps the molecule's symmetry); the Richardson table of the
+    template is not carried (the new numbers have none of their own)."""
+    value = np.array(value, dtype=float)
+    error = np.array(error, dtype=float)
+    comps = []
+    for c in template.components:
+        est = c.estimate
+        if est.status is ComponentStatus.SYMMETRY_ZERO:
+            for idx in c.entries:
+                value[idx] = error[idx] = 0.0
+            comps.append(c)
+            continue
+        idx = c.entries[0]
+        comps.append(ComponentResult(c.plan, ComponentEstimate(
+            float(value[idx]), float(error[idx]), est.chosen_entry, est.status, 0.0, (),
+            est.reason), c.entries))
+    return TensorResult(template.name, template.order, value, error, template.stable.copy(),
+                        tuple(comps))

@@ -220,6 +220,35 @@ def _relaxation_document(part) -> dict:
     }
 
 
+def _zero_point_document(part) -> dict:
+    """How the zero-point correction was formed: the modes, masses, steps,
+    cubic sums, each mode's contribution to each invariant, the counts."""
+    from fieldprop.numerics import zero_point as zp
+
+    return {
+        "method": "first-order zero-point vibrational average (first order in the "
+                  "anharmonicity: 1/4 sum_a d2P/dx_a^2 - 1/4 sum_a dP/dx_a sum_b phi_abb / "
+                  "omega_a, dimensionless normal coordinates x of the zero-field minimum); "
+                  "derivatives by central differences at two steps, Richardson-combined",
+        "steps_dimensionless": list(zp.STEPS),
+        "masses_u": list(part.masses_u),
+        "geometries": part.geometries,
+        "points": {"computed": part.computed, "reused": part.reused},
+        "modes": [{"mode": a + 1, "frequency_cm": float(f), "omega_au": float(w),
+                   "cubic_sum_au": float(part.cubic.value[a]),
+                   "cubic_sum_error_au": float(part.cubic.error[a]),
+                   "displacement_bohr_per_unit": [[float(v) for v in row]
+                                                  for row in part.modes.displacements[a]],
+                   "invariant_contributions": part.contributions[a]}
+                  for a, (f, w) in enumerate(zip(part.modes.frequencies_cm(),
+                                                  part.modes.omega_au))],
+        "leaves_out": "second order in the anharmonicity (quartic force constants, squared "
+                      "cubic ones, higher property derivatives), typically a few per cent of "
+                      "the correction; temperature (the ground state only); the dynamic "
+                      "(frequency-dependent) vibrational terms",
+    }
+
+
 def _job_echo(result: RunResult) -> dict:
     """The job as understood (Job.to_dict), its derived nuclei the ones
     computed: with symmetry = "symmetrise" the moved ones, as in
@@ -313,6 +342,13 @@ def result_document(result: RunResult) -> dict[str, Any]:
                                                       averages=part.total.averages)
         document["invariants_total"] = _invariants_document(part.total.invariants)
         document["nuclear_relaxation"] = _relaxation_document(part)
+    if result.zero_point is not None:
+        part = result.zero_point
+        document["tensors_zero_point"] = _tensors_document(result, part.correction,
+                                                           tables=False)
+        document["tensors_total"] = _tensors_document(result, part.total, tables=False)
+        document["invariants_total"] = _invariants_document(part.total_invariants)
+        document["zero_point"] = _zero_point_document(part)
     return document | {
         "points": _points_document(result),
         "field_plan": {"route": plan.route, "field_au": plan.field_au, "ratio": plan.ratio,

@@ -149,13 +149,17 @@ def _number(x: Any) -> float | None:
 
 #: The parts of a result (the ``part`` column): its keys in the result JSON
 #: for tensors and invariants (None: the part has none). Electronic with the
-#: nuclei clamped always; with nuclear_relaxation = true also the
-#: nuclear-relaxation part alone and the total.
+#: nuclei clamped always; with zero_point = true the zero-point correction,
+#: with nuclear_relaxation = true the nuclear-relaxation part, and with
+#: either the total.
 PARTS = (("electronic", "tensors", "invariants"),
+         ("zero_point", "tensors_zero_point", None),
          ("nuclear_relaxation", "tensors_nuclear_relaxation", None),
          ("total", "tensors_total", "invariants_total"))
-PART_LEGEND = ("part: electronic = nuclei clamped at the geometry; nuclear_relaxation = what "
-               "the nuclei relaxing in the field add; total = the sum (static limit)")
+PART_LEGEND = ("part: electronic = nuclei clamped at the geometry; zero_point = the zero-point "
+               "vibrational average's correction (first order in the anharmonicity); "
+               "nuclear_relaxation = what the nuclei relaxing in the field add; total = the sum "
+               "(static limit)")
 
 
 def invariant_table(docs: list[tuple[str, dict]], units: str, convention: str
