@@ -150,7 +150,7 @@ def gather(job: Job, store=None, lines=None, route: Route | str | None = None,
 
 
 def collect(job: Job, store=None, route: Route | str | None = None, lines=None,
-            allow_partial: bool = False) -> RunResult:
+            allow_partial: bool = False, check_geometry: bool = True) -> RunResult:
     """The result of ``job`` from the points ``store`` holds and point ``lines``
     give (see :func:`gather`), with no PySCF work.
 
@@ -159,6 +159,8 @@ def collect(job: Job, store=None, route: Route | str | None = None, lines=None,
     failed: never an extrapolation from a partial set. With ``allow_partial``,
     missing and failed points (not zero field) are left out instead: the
     components that need them are MISSING, the others are reported.
+    ``check_geometry=False``: no warning for a geometry that is not a minimum
+    (the zero-point average's displaced geometries are not, on purpose).
     """
     start = time.perf_counter()
     sources = [label for _, label in lines or ()]
@@ -193,7 +195,7 @@ def collect(job: Job, store=None, route: Route | str | None = None, lines=None,
     model = store.get_model(zero.model_key) if store is not None else None
     result = analyse(prepared, prepared.expand(found), counts, where,
                      time.perf_counter() - start,
-                     reference=None if model is None else model[0])
+                     reference=None if model is None or not check_geometry else model[0])
     if job.response.nuclear_relaxation:
         tasks = relaxed_tasks(prepared)
         rows = store.get_points(t.key for t in tasks[1:]) if store is not None else {}

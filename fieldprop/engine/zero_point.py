@@ -284,7 +284,7 @@ def collect_zero_point(result: RunResult, prepared: Prepared, store, lines=None)
     displaced = []
     for g in zpw.geometries:
         try:
-            displaced.append(collect(g.job, store, lines=lines))
+            displaced.append(collect(g.job, store, lines=lines, check_geometry=False))
         except errors.FieldpropError as exc:
             raise type(exc)(f"zero-point average, {g.label}: {exc}") from None
     reused = sum(len(r.computed_records) for r in displaced)
