@@ -317,6 +317,8 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au",
         out.write(_wrapped("\n".join(legend)) + "\n\n")
     if result.relaxation is not None:
         _write_relaxation(result, out, units, convention, significant)
+    if result.zero_point is not None:
+        _write_zero_point(result, out, units, convention, significant)
     for text in result.warnings:
         out.write(_wrapped(f"warning: {text}") + "\n")
     if any(p in result.tensors for p in ("beta", "gamma")):
@@ -394,6 +396,64 @@ def _write_relaxation(result: RunResult, out: TextIO, units: str,
         out.write("  Static limit only: no zero-point vibrational averaging; vibrational "
                   "contributions depend strongly on the model, and the optical (high-frequency) "
                   "limit differs.\n\n")
+
+
+def _write_zero_point(result: RunResult, out: TextIO, units: str,
+                      convention: str = "taylor", significant=None) -> None:
+    """Electronic, zero-point correction, nuclear relaxation (where computed)
+    and total tensors side by side; the modes; the invariants."""
+    from fieldprop.numerics import zero_point as zp
+
+    part = result.zero_point
+    relaxed = result.relaxation
+    freqs = part.modes.frequencies_cm()
+    out.write(_wrapped(
+        "zero-point vibrational average (first order in the anharmonicity; the property's "
+        "curvature along each harmonic mode and the shift of the averaged structure, from the "
+        f"tensors and gradients at {part.geometries} displaced geometries, steps "
+        + " and ".join(f"+-{s:g}" for s in zp.STEPS) + " of the dimensionless normal "
+        f"coordinates; {part.computed} field points computed, {part.reused} reused)") + "\n")
+    out.write(_wrapped("  modes (cm^-1): " + ", ".join(f"{f:.0f}" for f in freqs)
+                       + "; masses (u): " + ", ".join(f"{m:.6g}" for m in part.masses_u))
+              + "\n\n")
+    for name, corr in part.correction.items():
+        label, factor = conversion(name, units, convention)
+        rows = []
+        nuclear = relaxed.nuclear[name].components if relaxed is not None else None
+        for i, (ce, cz, ct) in enumerate(zip(result.tensors[name].components, corr.components,
+                                             part.total[name].components)):
+            if ce.estimate.status is ComponentStatus.SYMMETRY_ZERO:
+                continue
+            row = [ce.plan.name, _pair_text(ce.estimate, ce.stable, factor, significant),
+                   _pair_text(cz.estimate, cz.stable, factor, significant)]
+            if nuclear is not None:
+                row.append(_pair_text(nuclear[i].estimate, nuclear[i].stable, factor,
+                                      significant))
+            rows.append(row + [_pair_text(ct.estimate, ct.stable, factor, significant)])
+        out.write(f"{name} ({label}; components not zero by symmetry)\n")
+        out.write(tabulate(rows, headers=["component", "electronic", "zero-point"]
+                           + (["nuclear relaxation"] if relaxed is not None else []) + ["total"],
+                           disable_numparse=True) + "\n\n")
+    clamped = {inv.name: inv for inv in result.invariants}
+    rows = []
+    for inv in part.total_invariants:
+        e = clamped.get(inv.name)
+        if e is None:
+            continue
+        scale = conversion(_INVARIANT_PROPERTY[inv.name], "au", convention)[1]
+        rows.append([inv.name] + [" +- ".join(format_pair(x.value_au * scale, x.error_au * scale,
+                                                          significant))
+                                  if x.value_au is not None else "no number" for x in (e, inv)])
+    if rows:
+        out.write(f"invariants (au, {convention} convention): electronic and total"
+                  + (" (with nuclear relaxation)" if relaxed is not None else "") + "\n")
+        out.write(tabulate(rows, headers=["invariant", "electronic", "total"],
+                           disable_numparse=True) + "\n")
+        out.write(_wrapped(
+            "  The correction is first order in the anharmonicity: it leaves out the quartic "
+            "force constants, the cubic ones squared and higher property derivatives (typically "
+            "a few per cent of the correction), and it is of the vibrational ground state "
+            "(0 K). The bars are those of the numerical differentiation only.") + "\n\n")
 
 
 #: How an entry's verdict reads in check's table.
