@@ -365,6 +365,8 @@ def cmd_plan(args) -> int:
     from fieldprop.points.store import PointStore, default_store_path
 
     job = load_job(args.job)
+    if job.response.zero_point:
+        job = _zero_point_count(job)
     _clamped_only(job, "plan")
     lines = _read_point_lines(args.points)
     path = args.store if args.store is not None else default_store_path(args.job)
@@ -406,6 +408,33 @@ def cmd_plan(args) -> int:
         if store is not None:
             store.close()
     return 0
+
+
+def _zero_point_count(job):
+    """Log what a zero-point average adds to a job's plan, and return the
+    job without it (plan lists the minimum's points: the displaced
+    geometries follow from its Hessian, which fieldprop run computes)."""
+    import dataclasses
+
+    import numpy as np
+
+    from fieldprop.engine.prepare import make_plan
+    from fieldprop.numerics import zero_point as zp
+
+    atoms = [np.asarray(a.coords_bohr) for a in job.molecule.atoms]
+    axis = atoms[1] - atoms[0]
+    linear = all(np.linalg.norm(np.cross(axis, x - atoms[0])) < 1e-6 * np.linalg.norm(axis)
+                 * max(1.0, np.linalg.norm(x - atoms[0])) for x in atoms[2:])
+    modes = 3 * len(atoms) - (5 if linear else 6)
+    geometries = modes * 2 * len(zp.STEPS)
+    ladder = len(make_plan(job, None, None).points)
+    logger.info("%s: [response] zero_point: %d mode%s, so %d displaced geometries, each a job "
+                "of the same model on a ladder of up to %d field points (its own symmetry and "
+                "the adaptive window use fewer), and %d zero-field gradients; fieldprop run "
+                "computes them after the minimum's points listed here", job.path, modes,
+                "" if modes == 1 else "s", geometries, ladder, geometries + 1)
+    return dataclasses.replace(job, response=dataclasses.replace(job.response,
+                                                                 zero_point=False))
 
 
 def _requested_ids(args) -> list[str]:

@@ -188,7 +188,8 @@ def run_zero_point(work: JobWork, store, executor, progress=None) -> RunResult:
     logger.info("%s: zero-point average: %d mode%s (%.0f to %.0f cm^-1), %d displaced "
                 "geometries (steps %s of the dimensionless normal coordinates), %d of their "
                 "field points to compute now (more may follow: adaptive window)",
-                prepared.job.path, len(freqs), "" if len(freqs) == 1 else "s", freqs.min(), freqs.max(), len(zpw.geometries),
+                prepared.job.path, len(freqs), "" if len(freqs) == 1 else "s", freqs.min(),
+                freqs.max(), len(zpw.geometries),
                 " and ".join(f"+-{s:g}" for s in zp.STEPS), todo)
     grads = gradients(prepared, zpw, store, executor)
     compute_jobs([work] + zpw.works, store, executor, progress)

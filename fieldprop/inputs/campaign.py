@@ -108,6 +108,10 @@ def load_set(path: str | Path) -> Campaign:
         raise _fail(shown, "[response] nuclear_relaxation = true: a screening campaign "
                     "computes clamped-nucleus responses only; run the molecules you want "
                     "relaxed as jobs (fieldprop run), or set it to false")
+    if data["response"].get("zero_point") is True:
+        raise _fail(shown, "[response] zero_point = true: a screening campaign computes "
+                    "clamped-nucleus responses at one geometry per molecule; run the molecules "
+                    "you want vibrationally averaged as jobs (fieldprop run), or set it to false")
     shared = {k: data[k] for k in ("model", "response", "scf", "correlation", "geometry")
               if k in data}
     entries: list[tuple[str, str, dict, str | None]] = []  # name, source, molecule table, smiles

@@ -68,6 +68,8 @@ BAD_SETS = {
                   ["[model] method"]),
     "nuclear relaxation": ('[[molecule]]\nname = "w"\nsmiles = "O"\n',
                            ["[response] nuclear_relaxation = true", "clamped-nucleus"]),
+    "zero point": ('[[molecule]]\nname = "w"\nsmiles = "O"\n',
+                   ["[response] zero_point = true", "one geometry per molecule"]),
 }
 
 
@@ -77,6 +79,8 @@ def test_a_bad_set_is_one_line_exit_2_and_nothing_is_written(tmp_path, capsys, c
     shared = SHARED.replace('"hf"', '"hartree"') if case == "bad model" else SHARED
     if case == "nuclear relaxation":
         shared += "nuclear_relaxation = true\n"  # in [response], the last table
+    if case == "zero point":
+        shared += "zero_point = true\n"
     path = write_set(tmp_path, molecules, shared)
     before = set(tmp_path.iterdir())
     result = main(["screen", str(path), "--csv", str(tmp_path / "out.csv")])
