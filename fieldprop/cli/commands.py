@@ -365,6 +365,8 @@ def cmd_plan(args) -> int:
     from fieldprop.points.store import PointStore, default_store_path
 
     job = load_job(args.job)
+    if job.response.zero_point and args.count:
+        return _zero_point_todo(args, job)
     if job.response.zero_point:
         job = _zero_point_count(job)
     _clamped_only(job, "plan")
@@ -435,6 +437,126 @@ def _zero_point_count(job):
                 "" if modes == 1 else "s", geometries, ladder, geometries + 1)
     return dataclasses.replace(job, response=dataclasses.replace(job.response,
                                                                  zero_point=False))
+
+
+def _zero_point_parts(job, store, retry_failed: bool):
+    """A zero-point job's parts as the stage engine sees them: the JobWork of
+    the minimum, then those of the displaced geometries, from ``store``
+    (which must hold the minimum's frame: point --zero-field computes it)."""
+    from fieldprop.engine.run import gather
+    from fieldprop.engine.stages import JobWork
+    from fieldprop.engine.zero_point import displaced_works
+
+    prepared, rows = gather(job, store)
+    zpw = displaced_works(prepared, store, retry_failed)
+    return [JobWork.at_hand(prepared, rows, retry_failed)] + zpw.works
+
+
+def _zero_point_todo_key(works) -> str:
+    from fieldprop.engine.prepare import todo_list_key
+    from fieldprop.points.keys import digest
+
+    return digest({"kind": "fieldprop-zero-point-todo",
+                   "parts": [todo_list_key(w.prepared) for w in works]})
+
+
+def _zero_point_todo(args, job) -> int:
+    """``plan --count`` of a zero-point job: one to-do list of the minimum's
+    points and every displaced geometry's (their current stages)."""
+    from fieldprop.points.store import PointStore, default_store_path
+
+    if args.points:
+        raise InputError(f"{job.path}: [response] zero_point = true: plan --count reads the "
+                         "store only; give the points to it (fieldprop point without --stdout)")
+    path = args.store if args.store is not None else default_store_path(args.job)
+    if not path.exists():
+        raise IncompleteError(f"{job.path}: [response] zero_point: no store at {path}; "
+                              "fieldprop point --zero-field computes the minimum's frame and "
+                              "gradients first")
+    with PointStore.open(path) as store:
+        works = _zero_point_parts(job, store, args.retry_failed)
+        keys = [t.key for w in works for t in w.todo()]
+        when = store.put_todo(_zero_point_todo_key(works), keys)
+        logger.info("%d field points still missing at the minimum and %d displaced geometries "
+                    "(their current stages); the list for point --index fixed in %s at %s",
+                    len(keys), len(works) - 1, store.label, when)
+    _to_stdout(lambda: print(len(keys)))
+    return 0
+
+
+def _zero_point_point(args, job) -> int:
+    """``point`` of a zero-point job: --zero-field computes the optimised
+    geometry, the minimum's frame, every geometry's zero-field gradient and
+    the minimum's zero-field point; --index and --id any point of the
+    minimum or of a displaced geometry (the to-do list of plan --count)."""
+    from threadpoolctl import threadpool_limits
+
+    from fieldprop.backend.tasks import set_threads
+    from fieldprop.engine.geometry import optimised, relaxed_reference
+    from fieldprop.engine.prepare import prepare
+    from fieldprop.engine.stages import compute_jobs
+    from fieldprop.engine.zero_point import displaced_works, gradients
+    from fieldprop.points.executors import InProcess
+    from fieldprop.points.keys import short_id
+    from fieldprop.points.store import PointStore, default_store_path
+
+    if args.stdout:
+        raise InputError(f"{job.path}: [response] zero_point = true: point --stdout is not "
+                         "available (the displaced geometries follow from the store's frame); "
+                         "compute into the store")
+    threads = args.threads or _env_threads()
+    set_threads(threads)
+    path = args.store if args.store is not None else default_store_path(args.job)
+    with PointStore.open(path) as store, threadpool_limits(threads):
+        if args.zero_field:
+            minimum = relaxed_reference(optimised(job, store), store)
+            prepared = prepare(minimum)
+            gradients(prepared, displaced_works(prepared, store), store, InProcess())
+            works = _zero_point_parts(job, store, args.retry_failed)
+            works[0].only = (works[0].prepared.tasks[0],)
+            compute_jobs([works[0]], store, InProcess())
+            if works[0].failure is not None:
+                raise works[0].failure
+            return 0
+        works = _zero_point_parts(job, store, args.retry_failed)
+        if args.index is not None:
+            todo = store.get_todo(_zero_point_todo_key(works))
+            if todo is None:
+                raise InputError(f"{job.path}: --index {args.index}: no to-do list of this "
+                                 f"job in {store.label}; run fieldprop plan {job.path} --count "
+                                 "first (it fixes the list --index counts in)")
+            keys, when = todo
+            if args.index >= len(keys):
+                raise InputError(f"{job.path}: --index {args.index}: the to-do list fixed at "
+                                 f"{when} has {len(keys)} point(s)")
+            wanted = [keys[args.index]]
+        else:
+            wanted = _requested_ids(args)
+        for ident in wanted:
+            text = ident.strip().lower()
+            found = [(w, t) for w in works for t in w.prepared.all_tasks()
+                     if text and t.key.startswith(text)]
+            if len(found) != 1:
+                raise InputError(f"{job.path}: --id {ident}: " + (
+                    "matches several points; give more digits" if found else
+                    "is not a point of this job's minimum or displaced geometries"))
+            work, task = found[0]
+            if not work.wanted(task):
+                logger.info("point %s (%s) is stored already: not computed again",
+                            short_id(task.key), task.point.label)
+                continue
+            work.only = (task,)
+            compute_jobs([work], store, InProcess())
+            if work.failure is not None:
+                raise work.failure
+            if task.key not in work.found:
+                from fieldprop.engine.analyse import failed_points_error
+
+                raise failed_points_error(work.prepared, [work.failed[task.key]],
+                                          args.retry_failed)
+            logger.info("point %s (%s%s) computed", short_id(task.key), task.point.label,
+                        f", {work.label}" if work.label else "")
+    return 0
 
 
 def _requested_ids(args) -> list[str]:
@@ -517,6 +639,8 @@ def cmd_point(args) -> int:
     from fieldprop.points.store import PointStore, default_store_path
 
     job = load_job(args.job)
+    if job.response.zero_point:
+        return _zero_point_point(args, job)
     _clamped_only(job, "point")
     prepared = prepare(job)
     path = args.store if args.store is not None else default_store_path(args.job)

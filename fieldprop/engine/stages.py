@@ -163,6 +163,9 @@ class JobWork:
     computed_now: set = field(default_factory=set)
     relaxed_now: set = field(default_factory=set)
     scf_cycles: int = 0
+    #: Whether the zero-field reference checks that the geometry is a minimum
+    #: (not at the zero-point average's displaced geometries, which are not).
+    check_geometry: bool = True
     #: {task key: converged rotation} of the points computed now.
     rotations: dict = field(default_factory=dict)
     queue: list = field(default_factory=list)
@@ -321,8 +324,8 @@ def _references(works: list[JobWork], store, executor, progress: Progress) -> No
                   if any(not t.is_zero_field for t in w.todo())]
         # Small models check inline: an exact gradient there costs less than
         # the waiting worker's own SCF, which the reference would wait for.
-        costly = {w.prepared.tasks[0].model_key for w in computing
-                  if w.prepared.facts.get("n_basis_functions", 0) > GEOMETRY_CHECK_FIT_ABOVE}
+        costly = {w.prepared.tasks[0].model_key for w in computing if w.check_geometry
+                  and w.prepared.facts.get("n_basis_functions", 0) > GEOMETRY_CHECK_FIT_ABOVE}
         checks = {}
         for i in range(idle if models else 0):
             zero = models[i % len(models)]
@@ -333,7 +336,7 @@ def _references(works: list[JobWork], store, executor, progress: Progress) -> No
         for work in computing:
             zero = work.prepared.tasks[0]
             pending[executor.submit(reference_task, zero, executor.threads,
-                                    zero.model_key not in checks)] = work
+                                    zero.model_key not in checks and work.check_geometry)] = work
         try:
             while pending:
                 for future in executor.first_done(pending):

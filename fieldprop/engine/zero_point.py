@@ -130,7 +130,8 @@ def displaced_works(prepared: Prepared, store, retry_failed: bool = False,
     for g, p in zip(geoms, preps):
         rows = (rows_of(p) if rows_of is not None else
                 store.get_points(t.key for t in p.all_tasks()))
-        works.append(JobWork.at_hand(p, rows, retry_failed, label=g.label))
+        works.append(JobWork.at_hand(p, rows, retry_failed, label=g.label,
+                                     check_geometry=False))
     return ZeroPointWork(modes, geoms, preps, works)
 
 

@@ -218,3 +218,80 @@ def test_water_keeps_its_symmetry_and_heavy_water_corrects_less(tmp_path):
         part.reused
     assert np.array_equal(again.zero_point.correction["alpha"].value_au,
                           part.correction["alpha"].value_au)
+
+
+def _mp2(r, field=0.0, gradient=False):
+    """MP2 (all electrons) of hydrogen fluoride along z with PySCF alone: the
+    energy with +F z on the electrons and -F sum Z_A z_A on the nuclei (origin
+    0), or the field-free bond gradient."""
+    from pyscf import gto, mp, scf
+
+    mol = gto.M(atom=[("H", (0.0, 0.0, 0.0)), ("F", (0.0, 0.0, r))], unit="Bohr",
+                basis="6-31g", verbose=0)
+    mf = scf.RHF(mol)
+    if field:
+        h = mf.get_hcore() + field * mol.intor_symmetric("int1e_r", comp=3)[2]
+        e_nuc = mol.energy_nuc() - field * float(mol.atom_charges() @ mol.atom_coords()[:, 2])
+        mf.get_hcore = lambda *args: h
+        mf.energy_nuc = lambda *args: e_nuc
+    mf.conv_tol, mf.conv_tol_grad = 1e-13, 1e-8
+    mf.kernel()
+    assert mf.converged
+    pt = mp.MP2(mf).run(verbose=0)
+    if gradient:
+        return float(pt.nuc_grad_method().kernel()[1][2])
+    return pt.e_tot
+
+
+def test_mp2_against_the_formula_with_pyscf_alone(tmp_path):
+    from scipy.optimize import brentq
+
+    job = _diatomic_job(tmp_path, 'method = "mp2"\nfrozen_core = false')
+    doc = _run(job, tmp_path)
+    r_e = brentq(lambda r: _mp2(r, gradient=True), 1.55, 1.95, xtol=1e-9)
+    mu = MASSES_U["H"] * MASSES_U["F"] / (MASSES_U["H"] + MASSES_U["F"]) * AMU_TO_ME
+    h, f = 0.01, 2e-3
+    g = {k: _mp2(r_e + k * h, gradient=True) for k in (-1, 1)}
+    k2, k3 = (g[1] - g[-1]) / (2 * h), (g[1] + g[-1]) / (h * h)
+    omega = np.sqrt(k2 / mu)
+
+    def props(r):  # mu_z = -dE/dF, alpha_zz = -d2E/dF2 (central differences in F)
+        e = {s: _mp2(r, s * f) for s in (-1, 0, 1)}
+        return np.array([-(e[1] - e[-1]) / (2 * f), -(e[1] - 2 * e[0] + e[-1]) / (f * f)])
+
+    p = {k: props(r_e + k * h) for k in (-2, -1, 0, 1, 2)}
+    p1 = (p[-2] - 8 * p[-1] + 8 * p[1] - p[2]) / (12 * h)
+    p2 = (-p[-2] + 16 * p[-1] - 30 * p[0] + 16 * p[1] - p[2]) / (12 * h * h)
+    first = p2 / (4 * mu * omega) - p1 * k3 / (4 * mu * mu * omega ** 3)
+    zp = doc["tensors_zero_point"]
+    ours = np.array([zp["dipole"]["value"][2], zp["alpha"]["value"][2][2]])
+    bars = np.array([zp["dipole"]["error"][2], zp["alpha"]["error"][2][2]])
+    assert abs(doc["zero_point"]["modes"][0]["omega_au"] / omega - 1) < 5e-4
+    assert np.all(np.abs(ours - first) <= 0.01 * np.abs(first) + bars), (ours, first, bars)
+
+
+def test_a_job_array_gives_the_run_s_correction(tmp_path, capsys):
+    # The recipe of a batch job array: the minimum's frame and gradients, then
+    # rounds of plan --count and point --index, then collect.
+    job = _diatomic_job(tmp_path, 'method = "hf"')
+    text = (tmp_path / "hf.toml").read_text().replace('"6-31g"', '"sto-3g"')
+    (tmp_path / "hf.toml").write_text(text)
+    assert main(["point", job, "--zero-field", "--quiet"]) == 0
+    for _ in range(4):
+        capsys.readouterr()
+        assert main(["plan", job, "--count"]) == 0
+        count = int(capsys.readouterr().out.strip())
+        if count == 0:
+            break
+        for i in range(count):
+            assert main(["point", job, "--index", str(i), "--quiet"]) == 0
+    assert count == 0
+    collected = tmp_path / "collected.json"
+    assert main(["collect", job, "--json", str(collected), "--quiet"]) == 0
+    ran = _run(job, tmp_path, "--no-store")
+    got = json.loads(collected.read_text())
+    for name in ("dipole", "alpha"):
+        a = np.array(got["tensors_zero_point"][name]["value"])
+        b = np.array(ran["tensors_zero_point"][name]["value"])
+        bars = np.array(ran["tensors_zero_point"][name]["error"])
+        assert np.all(np.abs(a - b) <= 1e-3 * bars + 1e-12)
