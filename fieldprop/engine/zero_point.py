@@ -34,14 +34,21 @@ from fieldprop.points.keys import digest, short_id
 logger = logging.getLogger(__name__)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Geometry:
-    """One displaced geometry: mode (from 0), step (dimensionless), sign."""
+    """One displaced geometry: mode (from 0), step (dimensionless), sign; a
+    geometry that is the image of another (``source``, its index) under an
+    operation of the minimum's point group (``operation``, 3 x 3 about the
+    centre, and ``permutation``: atom A goes to permutation[A]) is not
+    computed: its tensors and gradient are the source's, turned."""
 
     mode: int
     step: float
     sign: int
     job: Job
+    source: int | None = None
+    operation: np.ndarray | None = None
+    permutation: tuple[int, ...] | None = None
 
     @property
     def label(self) -> str:
@@ -66,6 +73,8 @@ class ZeroPoint:
     geometries: int
     computed: int
     reused: int
+    #: Of ``geometries``, the images of others by symmetry (not computed).
+    images: int
     #: The correction before the components zero by symmetry were set to zero.
     raw: dict
     warnings: tuple[str, ...] = ()
@@ -80,17 +89,84 @@ def modes_of(job: Job) -> zp.Modes:
                                            doc["hessian_cartesian"]))
 
 
-def geometries(job: Job, modes: zp.Modes) -> list[Geometry]:
-    """The displaced geometries, mode by mode, each step +s then -s."""
+def geometries(job: Job, modes: zp.Modes, symmetry=None) -> list[Geometry]:
+    """The displaced geometries, mode by mode, each step +s then -s; where
+    an operation of ``symmetry`` (the minimum's point group as its points use
+    it: engine.prepare.symmetry_decision) turns a mode into its opposite, the
+    -s geometry is the +s one's image."""
     x0 = np.asarray([a.coords_bohr for a in job.molecule.atoms], dtype=float)
+    charges = [a.charge for a in job.molecule.atoms]
     out = []
     for a in range(len(modes.omega_au)):
+        mirror = _mirror(symmetry, x0, charges, modes.displacements[a])
         for step in zp.STEPS:
             for sign in (1, -1):
                 coords = x0 + sign * step * modes.displacements[a]
                 label = f"mode {a + 1} at {sign * step:+g}"
-                out.append(Geometry(a, step, sign, displaced_job(job, coords, label)))
+                displaced = displaced_job(job, coords, label)
+                if sign < 0 and mirror is not None:
+                    out.append(Geometry(a, step, sign, displaced, len(out) - 1, *mirror))
+                else:
+                    out.append(Geometry(a, step, sign, displaced))
     return out
+
+
+#: Atoms and displacements match under an operation within this (bohr, and
+#: relative to the displacement's size).
+MIRROR_TOLERANCE = 1e-6
+
+
+def _mirror(symmetry, x0, charges, displacement):
+    """(R, permutation) of an operation of ``symmetry`` (a finite group) that
+    maps the minimum onto itself and the mode's displacement onto its
+    opposite, or None."""
+    if symmetry is None or symmetry.kind != "finite":
+        return None
+    centre = np.asarray(symmetry.centre, dtype=float)
+    d = np.asarray(displacement, dtype=float)
+    size = max(np.abs(d).max(), 1e-300)
+    for op in symmetry.operations[1:]:
+        moved = (x0 - centre) @ op.T + centre
+        perm = []
+        for i, x in enumerate(moved):
+            hits = [j for j in range(len(x0)) if charges[j] == charges[i]
+                    and np.linalg.norm(x0[j] - x) <= MIRROR_TOLERANCE]
+            if len(hits) != 1:
+                break
+            perm.append(hits[0])
+        if len(perm) != len(x0):
+            continue
+        turned = d @ op.T
+        if all(np.abs(turned[i] + d[perm[i]]).max() <= MIRROR_TOLERANCE * size
+               for i in range(len(x0))):
+            return np.asarray(op, dtype=float), tuple(perm)
+    return None
+
+
+class _Image:
+    """The tensors of a geometry that is another's image (Geometry.source):
+    what with_zero_point reads of a RunResult."""
+
+    def __init__(self, source: RunResult, op: np.ndarray):
+        from types import SimpleNamespace
+
+        from fieldprop.numerics.tensors import turned
+
+        self.tensors = {name: SimpleNamespace(value_au=turned(t.value_au, op),
+                                              error_au=turned(t.error_au, op, magnitudes=True))
+                        for name, t in source.tensors.items()}
+        self.unstable_components = source.unstable_components
+        self.missing_components = source.missing_components
+
+
+def _image_gradient(document: dict, g: Geometry) -> dict:
+    """The source's gradient document turned onto its image: atom A's
+    gradient R g_A goes to atom permutation[A]."""
+    source = np.asarray(document["gradient_au"], dtype=float)
+    out = np.zeros_like(source)
+    for a, b in enumerate(g.permutation):
+        out[b] = g.operation @ source[a]
+    return {**document, "gradient_au": out.tolist()}
 
 
 def displaced_job(job: Job, coords_bohr, label: str) -> Job:
@@ -110,29 +186,47 @@ def gradient_key(prepared: Prepared) -> str:
 
 @dataclass
 class ZeroPointWork:
-    """The displaced geometries of a job, prepared, with their JobWorks."""
+    """The displaced geometries of a job (``geometries``: all of them), and
+    the computed ones (``computed``: their indices) prepared, with their
+    JobWorks."""
 
     modes: zp.Modes
     geometries: list[Geometry]
+    computed: list[int]
     prepared: list[Prepared]
     works: list[JobWork]
 
+    @property
+    def images(self) -> int:
+        return len(self.geometries) - len(self.computed)
 
-def displaced_works(prepared: Prepared, store, retry_failed: bool = False,
-                    rows_of=None) -> ZeroPointWork:
-    """The displaced geometries of ``prepared`` and their work, with the
-    records ``store`` holds (``rows_of(prepared)``: {key: StoredPoint} from
-    elsewhere, collect's)."""
+
+def displaced_works(prepared: Prepared, store, retry_failed: bool = False) -> ZeroPointWork:
+    """The displaced geometries of ``prepared`` and the work of those
+    computed, with the records ``store`` holds."""
     modes = modes_of(prepared.job)
-    geoms = geometries(prepared.job, modes)
-    preps = [prepare(g.job, facts=prepared.facts) for g in geoms]
+    geoms = geometries(prepared.job, modes, prepared.symmetry)
+    computed = [i for i, g in enumerate(geoms) if g.source is None]
+    preps = [prepare(geoms[i].job, facts=prepared.facts) for i in computed]
     works = []
-    for g, p in zip(geoms, preps):
-        rows = (rows_of(p) if rows_of is not None else
-                store.get_points(t.key for t in p.all_tasks()))
-        works.append(JobWork.at_hand(p, rows, retry_failed, label=g.label,
+    for i, p in zip(computed, preps):
+        rows = store.get_points(t.key for t in p.all_tasks())
+        works.append(JobWork.at_hand(p, rows, retry_failed, label=geoms[i].label,
                                      check_geometry=False))
-    return ZeroPointWork(modes, geoms, preps, works)
+    return ZeroPointWork(modes, geoms, computed, preps, works)
+
+
+def _all_geometries(zpw: ZeroPointWork, computed_results: list) -> list:
+    """One entry per geometry from the computed ones' (results or gradient
+    documents, in the order of ``zpw.computed``): images turned."""
+    out: list = [None] * len(zpw.geometries)
+    for i, r in zip(zpw.computed, computed_results):
+        out[i] = r
+    for i, g in enumerate(zpw.geometries):
+        if g.source is not None:
+            out[i] = (_image_gradient(out[g.source], g) if isinstance(out[g.source], dict)
+                      else _Image(out[g.source], g.operation))
+    return out
 
 
 def gradients(prepared: Prepared, work: ZeroPointWork, store, executor=None) -> list[dict]:
@@ -140,7 +234,7 @@ def gradients(prepared: Prepared, work: ZeroPointWork, store, executor=None) -> 
     geometry (that order): from ``store``, or computed on ``executor`` and
     stored (None: IncompleteError for any not stored)."""
     everyone = [prepared] + work.prepared
-    labels = ["the minimum"] + [g.label for g in work.geometries]
+    labels = ["the minimum"] + [work.geometries[i].label for i in work.computed]
     docs: list = [store.get_geometry(gradient_key(p)) if store is not None else None
                   for p in everyone]
     absent = [i for i, d in enumerate(docs) if d is None]
@@ -173,7 +267,7 @@ def gradients(prepared: Prepared, work: ZeroPointWork, store, executor=None) -> 
         except BaseException:
             executor.close(abort=True, pending=list(pending))
             raise
-    return docs
+    return [docs[0]] + _all_geometries(work, docs[1:])
 
 
 def run_zero_point(work: JobWork, store, executor, progress=None) -> RunResult:
@@ -187,11 +281,12 @@ def run_zero_point(work: JobWork, store, executor, progress=None) -> RunResult:
     todo = sum(len(w.todo()) for w in zpw.works)
     freqs = zpw.modes.frequencies_cm()
     logger.info("%s: zero-point average: %d mode%s (%.0f to %.0f cm^-1), %d displaced "
-                "geometries (steps %s of the dimensionless normal coordinates), %d of their "
-                "field points to compute now (more may follow: adaptive window)",
+                "geometries (steps %s of the dimensionless normal coordinates; %d of them "
+                "images of others by symmetry), %d of their field points to compute now (more "
+                "may follow: adaptive window)",
                 prepared.job.path, len(freqs), "" if len(freqs) == 1 else "s", freqs.min(),
-                freqs.max(), len(zpw.geometries),
-                " and ".join(f"+-{s:g}" for s in zp.STEPS), todo)
+                freqs.max(), len(zpw.geometries), " and ".join(f"+-{s:g}" for s in zp.STEPS),
+                zpw.images, todo)
     grads = gradients(prepared, zpw, store, executor)
     compute_jobs([work] + zpw.works, store, executor, progress)
     if progress is not None:
@@ -201,14 +296,16 @@ def run_zero_point(work: JobWork, store, executor, progress=None) -> RunResult:
         raise work.failure
     result = work.result(store.label, time.perf_counter() - start)
     displaced = []
-    for g, w in zip(zpw.geometries, zpw.works):
+    for i, w in zip(zpw.computed, zpw.works):
         if w.failure is not None:
-            raise type(w.failure)(f"zero-point average, {g.label}: {w.failure}")
+            raise type(w.failure)(f"zero-point average, {zpw.geometries[i].label}: "
+                                  f"{w.failure}")
         w.reference = None  # displaced on purpose: no "not a minimum" warning
         displaced.append(w.result(store.label, 0.0))
     computed = sum(w.counts().computed for w in zpw.works)
     reused = sum(w.counts().reused for w in zpw.works)
-    return with_zero_point(result, zpw, displaced, grads, computed, reused)
+    return with_zero_point(result, zpw, _all_geometries(zpw, displaced), grads, computed,
+                           reused)
 
 
 def with_zero_point(result: RunResult, zpw: ZeroPointWork, displaced: list[RunResult],
@@ -265,7 +362,7 @@ def with_zero_point(result: RunResult, zpw: ZeroPointWork, displaced: list[RunRe
         "guide" for a in range(n) if freqs[a] < zp.SOFT_MODE_CM)
     part = ZeroPoint(correction, total, tuple(invariants(total)), modes,
                      tuple(job.relaxation["masses_u"]), tuple(contributions), cubic,
-                     len(zpw.geometries), computed, reused, raw, warnings)
+                     len(zpw.geometries), computed, reused, zpw.images, raw, warnings)
     return dataclasses.replace(result, zero_point=part, warnings=result.warnings + warnings)
 
 
@@ -284,10 +381,11 @@ def collect_zero_point(result: RunResult, prepared: Prepared, store, lines=None)
     zpw = displaced_works(prepared, store)
     grads = gradients(prepared, zpw, store, None)
     displaced = []
-    for g in zpw.geometries:
+    for i in zpw.computed:
+        g = zpw.geometries[i]
         try:
             displaced.append(collect(g.job, store, lines=lines, check_geometry=False))
         except errors.FieldpropError as exc:
             raise type(exc)(f"zero-point average, {g.label}: {exc}") from None
     reused = sum(len(r.computed_records) for r in displaced)
-    return with_zero_point(result, zpw, displaced, grads, 0, reused)
+    return with_zero_point(result, zpw, _all_geometries(zpw, displaced), grads, 0, reused)

@@ -233,6 +233,7 @@ def _zero_point_document(part) -> dict:
         "steps_dimensionless": list(zp.STEPS),
         "masses_u": list(part.masses_u),
         "geometries": part.geometries,
+        "images_by_symmetry": part.images,
         "points": {"computed": part.computed, "reused": part.reused},
         "modes": [{"mode": a + 1, "frequency_cm": float(f), "omega_au": float(w),
                    "cubic_sum_au": float(part.cubic.value[a]),

@@ -410,7 +410,9 @@ def _write_zero_point(result: RunResult, out: TextIO, units: str,
     out.write(_wrapped(
         "zero-point vibrational average (first order in the anharmonicity; the property's "
         "curvature along each harmonic mode and the shift of the averaged structure, from the "
-        f"tensors and gradients at {part.geometries} displaced geometries, steps "
+        f"tensors and gradients at {part.geometries} displaced geometries"
+        + (f" ({part.images} of them images of others by symmetry)" if part.images else "")
+        + ", steps "
         + " and ".join(f"+-{s:g}" for s in zp.STEPS) + " of the dimensionless normal "
         f"coordinates; {part.computed} field points computed, {part.reused} reused)") + "\n")
     out.write(_wrapped("  modes (cm^-1): " + ", ".join(f"{f:.0f}" for f in freqs)

@@ -182,7 +182,7 @@ optimise = true
 """
 
 
-def _water(folder, name: str, isotopes: str = ""):
+def _water(folder, name: str, isotopes: str = "", symmetry: str = "true"):
     from fieldprop.engine.geometry import optimised, relaxed_reference
     from fieldprop.engine.prepare import prepare
     from fieldprop.engine.run import run_prepared
@@ -190,7 +190,8 @@ def _water(folder, name: str, isotopes: str = ""):
     from fieldprop.points.store import PointStore
 
     path = folder / f"{name}.toml"
-    path.write_text(WATER.format(isotopes=isotopes))
+    path.write_text(WATER.format(isotopes=isotopes).replace(
+        "zero_point = true", f"zero_point = true\nsymmetry = {symmetry}"))
     with PointStore.open(folder / "points.sqlite") as store:
         job = relaxed_reference(optimised(load_job(path), store), store)
         return run_prepared(prepare(job), store, workers=2, progress=False)
@@ -199,13 +200,19 @@ def _water(folder, name: str, isotopes: str = ""):
 def test_water_keeps_its_symmetry_and_heavy_water_corrects_less(tmp_path):
     water = _water(tmp_path, "water")
     part = water.zero_point
-    assert part.geometries == 12
+    # The B2 stretch's -s geometries are its +s ones mirrored: 2 of 12 not computed.
+    assert part.geometries == 12 and part.images == 2
     raw = part.raw["alpha"]
     for i, j in ((0, 1), (0, 2), (1, 2)):  # forbidden by C2v (the molecule in the yz plane)
         assert abs(raw.value[i, j]) <= raw.error[i, j] + 1e-10 * np.abs(raw.value).max()
         assert part.correction["alpha"].value_au[i, j] == 0.0
     for k in (0, 1):
         assert abs(part.raw["dipole"].value[k]) <= part.raw["dipole"].error[k] + 1e-12
+    plain = _water(tmp_path, "plain", symmetry="false").zero_point  # every geometry computed
+    assert plain.images == 0
+    for name in ("dipole", "alpha"):
+        assert np.all(np.abs(plain.raw[name].value - part.raw[name].value)
+                      <= plain.raw[name].error + part.raw[name].error + 1e-12)
     heavy = _water(tmp_path, "heavy", "isotope_masses = { 2 = 2.01410178, 3 = 2.01410178 }")
     assert heavy.zero_point.masses_u[1] == pytest.approx(2.01410178)
     light_iso = part.correction["alpha"].value_au.trace()
