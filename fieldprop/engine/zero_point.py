@@ -80,25 +80,35 @@ class ZeroPoint:
     warnings: tuple[str, ...] = ()
 
 
-def modes_of(job: Job) -> zp.Modes:
-    """The harmonic modes of the job's zero-field frame (job.relaxation)."""
+def modes_of(job: Job, symmetry=None) -> zp.Modes:
+    """The harmonic modes of the job's zero-field frame (job.relaxation), its
+    Hessian averaged over the minimum's point group ``symmetry`` (finite
+    groups) first."""
     from fieldprop.numerics.relaxation import Frame
 
     doc = job.relaxation
-    return zp.Modes.from_frame(Frame.build(doc["coords_bohr"], doc["masses_u"],
-                                           doc["hessian_cartesian"]))
+    hessian = doc["hessian_cartesian"]
+    if symmetry is not None and symmetry.kind == "finite":
+        hessian = zp.symmetrised_hessian(hessian, doc["coords_bohr"],
+                                         [a.charge for a in job.molecule.atoms],
+                                         symmetry.operations, symmetry.centre)
+    return zp.Modes.from_frame(Frame.build(doc["coords_bohr"], doc["masses_u"], hessian))
 
 
-def geometries(job: Job, modes: zp.Modes, symmetry=None) -> list[Geometry]:
+def geometries(job: Job, modes: zp.Modes, symmetry=None, masses=None) -> list[Geometry]:
     """The displaced geometries, mode by mode, each step +s then -s; where
     an operation of ``symmetry`` (the minimum's point group as its points use
     it: engine.prepare.symmetry_decision) turns a mode into its opposite, the
     -s geometry is the +s one's image."""
     x0 = np.asarray([a.coords_bohr for a in job.molecule.atoms], dtype=float)
-    charges = [a.charge for a in job.molecule.atoms]
+    # An operation must map each nucleus onto one of the same charge and mass
+    # (a single deuterium breaks the vibrations' symmetry, not the electrons').
+    labels = [(a.charge, None if masses is None else round(float(m), 6))
+              for a, m in zip(job.molecule.atoms, masses if masses is not None
+                              else [None] * len(job.molecule.atoms))]
     out = []
     for a in range(len(modes.omega_au)):
-        mirror = _mirror(symmetry, x0, charges, modes.displacements[a])
+        mirror = _mirror(symmetry, x0, labels, modes.displacements[a])
         for step in zp.STEPS:
             for sign in (1, -1):
                 coords = x0 + sign * step * modes.displacements[a]
@@ -116,25 +126,17 @@ def geometries(job: Job, modes: zp.Modes, symmetry=None) -> list[Geometry]:
 MIRROR_TOLERANCE = 1e-6
 
 
-def _mirror(symmetry, x0, charges, displacement):
+def _mirror(symmetry, x0, labels, displacement):
     """(R, permutation) of an operation of ``symmetry`` (a finite group) that
-    maps the minimum onto itself and the mode's displacement onto its
-    opposite, or None."""
+    maps the minimum onto itself (each nucleus onto one of the same label)
+    and the mode's displacement onto its opposite, or None."""
     if symmetry is None or symmetry.kind != "finite":
         return None
-    centre = np.asarray(symmetry.centre, dtype=float)
     d = np.asarray(displacement, dtype=float)
     size = max(np.abs(d).max(), 1e-300)
     for op in symmetry.operations[1:]:
-        moved = (x0 - centre) @ op.T + centre
-        perm = []
-        for i, x in enumerate(moved):
-            hits = [j for j in range(len(x0)) if charges[j] == charges[i]
-                    and np.linalg.norm(x0[j] - x) <= MIRROR_TOLERANCE]
-            if len(hits) != 1:
-                break
-            perm.append(hits[0])
-        if len(perm) != len(x0):
+        perm = zp.atom_permutation(op, x0, labels, symmetry.centre, MIRROR_TOLERANCE)
+        if perm is None:
             continue
         turned = d @ op.T
         if all(np.abs(turned[i] + d[perm[i]]).max() <= MIRROR_TOLERANCE * size
@@ -204,8 +206,9 @@ class ZeroPointWork:
 def displaced_works(prepared: Prepared, store, retry_failed: bool = False) -> ZeroPointWork:
     """The displaced geometries of ``prepared`` and the work of those
     computed, with the records ``store`` holds."""
-    modes = modes_of(prepared.job)
-    geoms = geometries(prepared.job, modes, prepared.symmetry)
+    modes = modes_of(prepared.job, prepared.symmetry)
+    geoms = geometries(prepared.job, modes, prepared.symmetry,
+                       prepared.job.relaxation["masses_u"])
     computed = [i for i, g in enumerate(geoms) if g.source is None]
     preps = [prepare(geoms[i].job, facts=prepared.facts) for i in computed]
     works = []

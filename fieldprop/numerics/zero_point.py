@@ -98,6 +98,49 @@ class Modes:
         return self.displacements.reshape(len(self.omega_au), -1) @ g
 
 
+def atom_permutation(operation, coords_bohr, labels, centre, tolerance=1e-6):
+    """The atoms' permutation under ``operation`` (3 x 3, about ``centre``):
+    atom A goes to atom perm[A] with the same label (charge, mass); None where
+    the operation does not map the nuclei onto themselves."""
+    x = np.asarray(coords_bohr, dtype=float)
+    c = np.asarray(centre, dtype=float)
+    moved = (x - c) @ np.asarray(operation).T + c
+    perm = []
+    for i, y in enumerate(moved):
+        hits = [j for j in range(len(x)) if labels[j] == labels[i]
+                and np.linalg.norm(x[j] - y) <= tolerance]
+        if len(hits) != 1:
+            return None
+        perm.append(hits[0])
+    return tuple(perm)
+
+
+def symmetrised_hessian(hessian, coords_bohr, charges, operations, centre) -> np.ndarray:
+    """The Cartesian Hessian (3N, 3N) averaged over the point group
+    ``operations`` (its numerical noise, a DFT grid's in particular, leaves it
+    a little off the group): the modes of the averaged one are symmetry-
+    adapted, so a displacement along a totally symmetric mode keeps the
+    molecule's symmetry exactly, and the others are exactly turned into their
+    opposites by some operation."""
+    h = np.asarray(hessian, dtype=float)
+    n = h.shape[0] // 3
+    total = np.zeros_like(h)
+    used = 0
+    for op in operations:
+        perm = atom_permutation(op, coords_bohr, list(charges), centre)
+        if perm is None:
+            continue
+        m = np.zeros_like(h)
+        for a, b in enumerate(perm):
+            m[3 * b:3 * b + 3, 3 * a:3 * a + 3] = op
+        total += m @ h @ m.T
+        used += 1
+    if not used:
+        return h
+    out = total / used
+    return 0.5 * (out + out.T) if n else out
+
+
 @dataclass(frozen=True)
 class Derivatives:
     """dP/dx_a and d2P/dx_a^2 of a property per mode (leading axis a), and

@@ -220,6 +220,12 @@ def test_water_keeps_its_symmetry_and_heavy_water_corrects_less(tmp_path):
     assert np.sign(light_iso) == np.sign(heavy_iso)
     # sqrt(1.008 / 2.014) = 0.71 for motions of the hydrogens alone.
     assert 0.62 < heavy_iso / light_iso < 0.80, heavy_iso / light_iso
+    # One deuterium: the vibrations lose the mirror symmetry the electrons keep
+    # (no geometry is taken as another's image), and the correction lies
+    # between water's and heavy water's.
+    mixed = _water(tmp_path, "mixed", "isotope_masses = { 2 = 2.01410178 }")
+    assert mixed.zero_point.images == 0
+    assert heavy_iso < mixed.zero_point.correction["alpha"].value_au.trace() < light_iso
     again = _water(tmp_path, "water")
     assert again.zero_point.computed == 0 and again.zero_point.reused == part.computed + \
         part.reused
