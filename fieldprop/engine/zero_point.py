@@ -28,6 +28,7 @@ from fieldprop.engine.prepare import Prepared, prepare
 from fieldprop.engine.stages import JobWork, compute_jobs
 from fieldprop.inputs.job import Atom, Job
 from fieldprop.numerics import zero_point as zp
+from fieldprop.numerics.extrapolate import ComponentStatus
 from fieldprop.numerics.tensors import Invariant, TensorResult, from_arrays, invariants
 from fieldprop.points.keys import digest, short_id
 
@@ -342,11 +343,11 @@ def with_zero_point(result: RunResult, zpw: ZeroPointWork, displaced: list[RunRe
                                    values(-1, "error_au"))
         part = zp.correction(modes.omega_au, d, cubic)
         raw[name] = part
-        correction[name] = from_arrays(t, part.value, part.error)
+        correction[name] = from_arrays(t, part.value, part.error, ComponentStatus.OK)
         per_mode[name] = part
     base = result.relaxation.total.tensors if result.relaxation is not None else result.tensors
     total = {name: from_arrays(base[name], base[name].value_au + c.value_au,
-                               base[name].error_au + c.error_au)
+                               base[name].error_au + c.error_au, ComponentStatus.OK)
              for name, c in correction.items()}
     clamped = {inv.name: inv.value_au for inv in result.invariants}
     contributions = []

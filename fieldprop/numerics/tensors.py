@@ -665,13 +665,16 @@ def difference(total: dict[str, TensorResult],
     return out
 
 
-def from_arrays(template: TensorResult, value, error) -> TensorResult:
+def from_arrays(template: TensorResult, value, error,
+                status: ComponentStatus | None = None) -> TensorResult:
     """A tensor of ``template``'s components and statuses with the full arrays
     ``value`` and ``error`` (au): a correction or a total formed from tensors
     (the zero-point average). Components zero by symmetry in ``template`` stay
     exactly zero (a property averaged over the totally symmetric vibrational
     ground state keeps the molecule's symmetry); the Richardson table of the
-    template is not carried (the new numbers have none of their own)."""
+    template is not carried (the new numbers have none of their own).
+    ``status``, where given, replaces the template's for its trusted
+    components (what the new bars rest on is not the template's table)."""
     value = np.array(value, dtype=float)
     error = np.array(error, dtype=float)
     comps = []
@@ -683,8 +686,9 @@ def from_arrays(template: TensorResult, value, error) -> TensorResult:
             comps.append(c)
             continue
         idx = c.entries[0]
+        own = est.status if status is None or not c.stable else status
         comps.append(ComponentResult(c.plan, ComponentEstimate(
-            float(value[idx]), float(error[idx]), est.chosen_entry, est.status, 0.0, (),
+            float(value[idx]), float(error[idx]), est.chosen_entry, own, 0.0, (),
             est.reason), c.entries))
     return TensorResult(template.name, template.order, value, error, template.stable.copy(),
                         tuple(comps))
