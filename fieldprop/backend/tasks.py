@@ -217,6 +217,55 @@ def gradient_task(molecule, model, scf, label: str, threads: int = 0):
             "wall_time_s": time.perf_counter() - start}, None
 
 
+def excitation_task(molecule, model, scf, states: int, label: str, threads: int = 0):
+    """The lowest ``states`` excited states of the model at zero field: TDHF
+    for hf, TDDFT for dft (both the full linear response, not the
+    Tamm-Dancoff approximation; singlets of a closed shell). ({"method",
+    "states": [{"energy_au", "oscillator_strength", "transition_dipole_au"}]},
+    None), or (None, (reason, kind))."""
+    import numpy as np
+
+    from fieldprop.backend.gradients import field_mean_field
+
+    if threads:
+        set_threads(threads)
+    start = time.perf_counter()
+    try:
+        from pyscf import tdscf
+
+        mf, _ = field_mean_field(molecule, model, scf, (0.0, 0.0, 0.0))
+        mf.conv_tol, mf.conv_tol_grad = 1e-11, 1e-7
+        mf.kernel()
+        if not mf.converged:
+            mf = mf.newton()
+            mf.kernel(mf.make_rdm1())
+        if not mf.converged:
+            return None, (f"{label}: the zero-field SCF of the excited states did not "
+                          "converge; no estimate is formed", "ScfNotConvergedError")
+        td = tdscf.TDHF(mf) if model.method == "hf" else tdscf.TDDFT(mf)
+        td.nstates, td.verbose = states, 0
+        td.kernel()
+        converged = np.atleast_1d(td.converged)
+        if not converged.all():
+            return None, (f"{label}: the excited-state solver did not converge for state(s) "
+                          f"{', '.join(str(i + 1) for i in np.flatnonzero(~converged))}; no "
+                          "estimate is formed", "ScfNotConvergedError")
+        strengths = td.oscillator_strength(gauge="length")
+        dipoles = td.transition_dipole()
+    except FieldpropError as exc:
+        return None, (f"{label}: {exc}", type(exc).__name__)
+    except Exception as exc:  # noqa: BLE001 - named, never a traceback
+        text = " ".join(str(exc).split())[:300] or "no message"
+        return None, (f"{label}: the excited states failed inside the backend "
+                      f"({type(exc).__name__}: {text})", BackendError.__name__)
+    method = "TDHF" if model.method == "hf" else f"TDDFT ({model.functional})"
+    return {"method": f"{method}, full linear response (not Tamm-Dancoff), zero field",
+            "states": [{"energy_au": float(e), "oscillator_strength": float(f),
+                        "transition_dipole_au": [float(v) for v in d]}
+                       for e, f, d in zip(td.e, strengths, dipoles)],
+            "wall_time_s": time.perf_counter() - start}, None
+
+
 def refuse_another_backend(store, zero: PointTask, stored_facts: dict) -> None:
     """InputError (one line, both versions) when the stored model was computed
     with another backend version than this process has: its new points would

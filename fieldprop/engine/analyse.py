@@ -212,6 +212,8 @@ class RunResult:
     averages: dict[str, RotationalAverage] = dataclasses.field(default_factory=dict)
     #: With [response] zero_point: the zero-point part (engine.zero_point.ZeroPoint).
     zero_point: object = None
+    #: With [response] optical_wavelengths_nm: engine.optical.OpticalEstimates.
+    optical: object = None
 
     @property
     def energy_au(self) -> float:

@@ -89,8 +89,14 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
         if job.response.zero_point:
             from fieldprop.engine.zero_point import run_zero_point
 
-            return run_zero_point(work, store, executor, bar)
-        return run_job(work, store, executor, bar)
+            result = run_zero_point(work, store, executor, bar)
+        else:
+            result = run_job(work, store, executor, bar)
+        if job.response.optical_wavelengths_nm:
+            from fieldprop.engine.optical import with_optical
+
+            result = with_optical(result, prepared, store, executor)
+        return result
     finally:
         if own_executor:
             executor.close()
@@ -214,6 +220,10 @@ def collect(job: Job, store=None, route: Route | str | None = None, lines=None,
         from fieldprop.engine.zero_point import collect_zero_point
 
         result = collect_zero_point(result, prepared, store, lines)
+    if job.response.optical_wavelengths_nm:
+        from fieldprop.engine.optical import with_optical
+
+        result = with_optical(result, prepared, store)
     return result
 
 

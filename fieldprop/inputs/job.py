@@ -93,7 +93,7 @@ _SECTIONS = {
               "density_fit"},
     "response": {"properties", "field_au", "ratio", "levels", "origin", "differentiate", "route",
                  "symmetry", "window",
-                 "nuclear_relaxation", "zero_point"},
+                 "nuclear_relaxation", "zero_point", "optical_wavelengths_nm"},
     "geometry": {"optimise", "optimize", "method", "functional", "basis", "criteria",
                  "max_steps"},
     "scf": {"energy_conv_tol_au", "max_iterations", "grid_level", "gradient_target",
@@ -210,6 +210,9 @@ class ResponseSpec:
     #: The zero-point vibrational average's correction ([response] zero_point:
     #: fieldprop.engine.zero_point).
     zero_point: bool = False
+    #: Two-state optical-frequency estimates of beta at these wavelengths (nm):
+    #: fieldprop.numerics.optical.
+    optical_wavelengths_nm: tuple[float, ...] = ()
 
     @property
     def max_order(self) -> int:
@@ -453,6 +456,8 @@ class Job:
                 **({"window": response.window} if automatic else {}),
                 "nuclear_relaxation": response.nuclear_relaxation,
                 "zero_point": response.zero_point,
+                **({"optical_wavelengths_nm": list(response.optical_wavelengths_nm)}
+                   if response.optical_wavelengths_nm else {}),
             },
             "scf": {
                 "energy_conv_tol_au": scf.energy_conv_tol_au,
@@ -980,6 +985,7 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
         raise r.fail("zero_point", f"= true needs nuclear gradients (the harmonic modes and "
                      f"the cubic force constants), which fieldprop has for {with_gradient}; "
                      f"{method} has none: set it to false, or use one of those")
+    wavelengths = _wavelengths(r, table, method, props_sorted)
     symmetry = table.get("symmetry", True)
     if not isinstance(symmetry, bool) and symmetry != SYMMETRISE:
         raise r.fail("symmetry", f"must be true (symmetry of the geometry as given), false, "
@@ -992,7 +998,35 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
     if automatic and no_derivatives:
         window = "full"
     return ResponseSpec(props_sorted, field_au, source, ratio, levels, origin, route, relax,
-                        symmetry, window, zero_point)
+                        symmetry, window, zero_point, wavelengths)
+
+
+#: Wavelengths (nm) outside this range are typing mistakes, not optics (the
+#: vacuum ultraviolet to the far infrared).
+WAVELENGTH_RANGE_NM = (100.0, 100000.0)
+
+
+def _wavelengths(r: "_Reader", table: dict[str, Any], method: str,
+                 properties) -> tuple[float, ...]:
+    """[response] optical_wavelengths_nm: a list of wavelengths (nm) for the
+    two-state estimates; they need beta and the model's own excitations."""
+    given = table.get("optical_wavelengths_nm", [])
+    key = "optical_wavelengths_nm"
+    if not isinstance(given, list) or any(isinstance(v, bool) or not isinstance(v, (int, float))
+                                          for v in given):
+        raise r.fail(key, f"must be a list of wavelengths in nm, e.g. [1064, 1907], got {given!r}")
+    low, high = WAVELENGTH_RANGE_NM
+    for v in given:
+        if not low <= v <= high:
+            raise r.fail(key, f"{v!r} is not a wavelength between {low:g} and {high:g} nm")
+    if given and "beta" not in properties:
+        raise r.fail(key, "estimates beta at optical frequencies from the static beta: add "
+                     "\"beta\" to properties")
+    if given and not METHODS[method].mean_field:
+        raise r.fail(key, f"needs the model's own excited states (TDHF, TDDFT), which fieldprop "
+                     f"has for hf and dft; {method} has none: remove the key, or use one of "
+                     "those")
+    return tuple(sorted({float(v) for v in given}))
 
 
 def _parse_scf(path: str, table: dict[str, Any], method: str, max_order: int,

@@ -220,6 +220,37 @@ def _relaxation_document(part) -> dict:
     }
 
 
+def _optical_document(part) -> dict:
+    """The two-state optical-frequency estimates (engine.optical)."""
+    from fieldprop.numerics import optical
+
+    return {
+        "note": "two-state estimates from the static electronic (nuclei clamped) beta, not "
+                "frequency-dependent calculations; a guide to the size of dispersion",
+        "model": "two-state dispersion factor beta(-w_s; w_1, w_2) / beta(0) = w_eg^4 (3 w_eg^2 "
+                 "+ w_1 w_2 - w_s^2) / (3 (w_eg^2 - w_1^2)(w_eg^2 - w_2^2)(w_eg^2 - w_s^2))",
+        "excited_states_method": part.method,
+        "rule": optical.RULE,
+        "state": part.state,
+        "excitation_energy_au": part.excitation_energy_au,
+        "excitation_energy_ev": (None if part.excitation_energy_au is None
+                                 else optical.energy_ev(part.excitation_energy_au)),
+        "oscillator_strength": part.oscillator_strength,
+        "resonance_margin_ev": optical.RESONANCE_MARGIN_EV,
+        "states_seen": [{"state": i + 1, "energy_au": s["energy_au"],
+                         "energy_ev": optical.energy_ev(s["energy_au"]),
+                         "oscillator_strength": s["oscillator_strength"]}
+                        for i, s in enumerate(part.states)],
+        "entries": [{"wavelength_nm": e["wavelength_nm"],
+                     "photon_energy_ev": e["photon_energy_ev"], "process": e["process"],
+                     "factor": e["factor"], "resonant": e["resonant"],
+                     **({"reason": e["reason"]} if "reason" in e else {}),
+                     "invariants": {name: {"value": v, "error": err}
+                                    for name, (v, err) in e["invariants"].items()}}
+                    for e in part.entries],
+    }
+
+
 def _zero_point_document(part) -> dict:
     """How the zero-point correction was formed: the modes, masses, steps,
     cubic sums, each mode's contribution to each invariant, the counts."""
@@ -343,6 +374,8 @@ def result_document(result: RunResult) -> dict[str, Any]:
                                                       averages=part.total.averages)
         document["invariants_total"] = _invariants_document(part.total.invariants)
         document["nuclear_relaxation"] = _relaxation_document(part)
+    if result.optical is not None:
+        document["optical_estimates"] = _optical_document(result.optical)
     if result.zero_point is not None:
         part = result.zero_point
         document["tensors_zero_point"] = _tensors_document(result, part.correction,

@@ -319,6 +319,8 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au",
         _write_relaxation(result, out, units, convention, significant)
     if result.zero_point is not None:
         _write_zero_point(result, out, units, convention, significant)
+    if result.optical is not None:
+        _write_optical(result, out, units, convention, significant)
     for text in result.warnings:
         out.write(_wrapped(f"warning: {text}") + "\n")
     if any(p in result.tensors for p in ("beta", "gamma")):
@@ -396,6 +398,50 @@ def _write_relaxation(result: RunResult, out: TextIO, units: str,
         out.write("  Static limit only: no zero-point vibrational averaging; vibrational "
                   "contributions depend strongly on the model, and the optical (high-frequency) "
                   "limit differs.\n\n")
+
+
+#: The invariants the optical estimates' table shows (the result JSON has
+#: every beta invariant): hyper-Rayleigh, the vector norm, the EFISH one.
+OPTICAL_COLUMNS = ("beta_hrs", "beta_vector_norm", "beta_parallel")
+
+
+def _write_optical(result: RunResult, out: TextIO, units: str,
+                   convention: str = "taylor", significant=None) -> None:
+    """The two-state optical-frequency estimates: the excited state used and,
+    per wavelength and process, the factor and the beta invariants."""
+    from fieldprop.numerics import optical
+
+    part = result.optical
+    out.write(_wrapped(
+        "optical-frequency estimates (two-state model from the static electronic beta: guides "
+        "to the size of dispersion, not frequency-dependent calculations)") + "\n")
+    if part.excitation_energy_au is None:
+        out.write("  no excited state with oscillator strength: no estimate\n\n")
+        return
+    ev = optical.energy_ev(part.excitation_energy_au)
+    out.write(_wrapped(f"  excitation: state {part.state} of {part.method}, {ev:.3f} eV "
+                       f"({optical.wavelength_nm(part.excitation_energy_au):.0f} nm), "
+                       "oscillator strength "
+                       f"{part.oscillator_strength:.3f}; chosen as {optical.RULE}; resonant "
+                       f"within {optical.RESONANCE_MARGIN_EV:g} eV") + "\n")
+    present = {n for e in part.entries for n in e["invariants"]}
+    names = [n for n in OPTICAL_COLUMNS if n in present]  # the JSON has them all
+    rows = []
+    for e in part.entries:
+        row = [f"{e['wavelength_nm']:g}", e["process"],
+               "resonant" if e["resonant"] else "-" if e["factor"] is None
+               else f"{e['factor']:.4f}"]
+        for name in names:
+            v, err = e["invariants"].get(name, (None, None))
+            if v is None:
+                row.append("-")
+                continue
+            label, factor = conversion(_INVARIANT_PROPERTY[name], units, convention)
+            row.append(" +- ".join(format_pair(v * factor, err * factor, significant)))
+        rows.append(row)
+    unit = conversion("beta", units, convention)[0]
+    out.write(tabulate(rows, headers=["nm", "process", "factor"] + names,
+                       disable_numparse=True) + f"\n  ({unit}; {convention} convention)\n\n")
 
 
 def _write_zero_point(result: RunResult, out: TextIO, units: str,

@@ -257,6 +257,16 @@ CASES = [
      ["{job}: [molecule] isotope_masses atom 1 (H): the mass must be a number of u"], []),
     ("isotope_masses_not_a_table", job(molecule={"isotope_masses": "2.014"}), {},
      ["{job}: [molecule] isotope_masses must be a table of atom number = mass in u"], []),
+    ("optical_without_beta", job(response={"optical_wavelengths_nm": "[1064]"}), {},
+     ["{job}: [response] optical_wavelengths_nm estimates beta", "add \"beta\""], []),
+    ("optical_not_a_list", job(response={"optical_wavelengths_nm": "1064"}), {},
+     ["{job}: [response] optical_wavelengths_nm must be a list of wavelengths in nm"], []),
+    ("optical_out_of_range", job(response={"optical_wavelengths_nm": "[1.064]"}), {},
+     ["{job}: [response] optical_wavelengths_nm 1.064 is not a wavelength between"], []),
+    ("optical_mp2", job(model={"method": '"mp2"'}, response={
+        "optical_wavelengths_nm": "[1064]", "properties": '["beta"]'}), {},
+     ["{job}: [response] optical_wavelengths_nm needs the model's own excited states",
+      "mp2 has none"], []),
     # [scf]
     ("scf_grid_level_for_hf", job(scf={"grid_level": "3"}), {},
      ["{job}: [scf] grid_level applies to method = \"dft\" only"], []),
