@@ -787,10 +787,16 @@ def cmd_screen(args) -> int:
     key = args.rank_by or next(k for p, k in (("beta", "beta_hrs"), ("gamma", "gamma_parallel"),
                                               ("alpha", "alpha_iso"), ("dipole", "dipole_norm"))
                                if p in props)
-    needed = ranking.PROPERTY_OF[ranking.resolve_key(key)]
+    needed = ranking.property_of(ranking.resolve_key(key))
     if needed not in props:
         raise InputError(f"--rank-by {key}: needs {needed}, which the set's [response] "
                          f"properties ({', '.join(props)}) do not compute")
+    estimate = ranking.estimate_parts(key)
+    wavelengths = campaign.candidates[0].job.response.optical_wavelengths_nm
+    if estimate is not None and estimate[2] not in wavelengths:
+        raise InputError(f"--rank-by {key}: {estimate[2]:g} nm is not among the set's [response] "
+                         "optical_wavelengths_nm ("
+                         + (", ".join(f"{w:g}" for w in wavelengths) or "none") + ")")
     pool = _executor(args)
     logger.info("%s: %d molecules, %s/%s; %s", campaign.path, len(campaign.candidates),
                 campaign.candidates[0].job.model.method, campaign.candidates[0].job.model.basis,
@@ -823,7 +829,7 @@ def cmd_screen(args) -> int:
                                               _model_text(o.candidate.job)))
     rows = ranking.rank(entries, key)
     if args.csv is not None and not is_stdout(args.csv):
-        ranking.write_csv_file(rows, args.units, args.csv, args.convention)
+        ranking.write_csv_file(rows, args.units, args.csv, args.convention, key)
         logger.info("ranked table written to %s", args.csv)
     if any(r.rank is not None for r in rows):
         ranking.write_png(rows, key, args.units, png, args.convention)
@@ -835,7 +841,8 @@ def cmd_screen(args) -> int:
                 counts.molecules - counts.failed, counts.failed, counts.computed, counts.reused,
                 counts.scf_cycles, counts.wall_time_s, results)
     if args.csv is not None and is_stdout(args.csv):
-        _to_stdout(lambda: ranking.write_csv(rows, args.units, sys.stdout, args.convention))
+        _to_stdout(lambda: ranking.write_csv(rows, args.units, sys.stdout, args.convention,
+                                             key))
     else:
         _to_stdout(lambda: ranking.write_table(rows, args.units, key, sys.stdout,
                                                args.convention))

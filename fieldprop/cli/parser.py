@@ -179,6 +179,18 @@ def _positive_float(text: str) -> float:
     return value
 
 
+def _rank_key(text: str) -> str:
+    """--rank-by: an invariant (or an old name of one), or an optical estimate."""
+    from fieldprop.outputs.ranking import RANK_KEYS, resolve_key, valid_key
+
+    key = resolve_key(text)
+    if not valid_key(key):
+        raise argparse.ArgumentTypeError(
+            f"{text!r} is not a ranking key: give an invariant ({', '.join(RANK_KEYS)}) or an "
+            "optical estimate such as beta_hrs_shg_1064nm")
+    return key
+
+
 def build_parser() -> argparse.ArgumentParser:
     from fieldprop.points.store import DEFAULT_NAME as DEFAULT_STORE_NAME
 
@@ -347,13 +359,14 @@ def build_parser() -> argparse.ArgumentParser:
                             formatter_class=argparse.RawDescriptionHelpFormatter)
     screen.add_argument("set", type=Path, help="set file (TOML): molecules and the model, "
                         "response and geometry options they share")
-    from fieldprop.outputs.ranking import RANK_KEYS, resolve_key
+    from fieldprop.outputs.ranking import RANK_KEYS
 
-    screen.add_argument("--rank-by", choices=RANK_KEYS, type=resolve_key, default=None,
-                        metavar="INVARIANT",
+    screen.add_argument("--rank-by", type=_rank_key, default=None, metavar="INVARIANT",
                         help="ranking invariant, by magnitude: " + ", ".join(RANK_KEYS)
                         + " (default: beta_hrs when beta is computed, else gamma_parallel, "
-                        "else alpha_iso, else dipole_norm)")
+                        "else alpha_iso, else dipole_norm); or an optical estimate of the set's "
+                        "optical_wavelengths_nm, such as beta_hrs_shg_1064nm (second-harmonic) "
+                        "or beta_hrs_eo_1550nm (electro-optic)")
     _convention_option(screen)
     screen.add_argument("--units", choices=("au", "esu", "si"), default="au",
                         help="units of the table and the CSV (the result files stay in au)")

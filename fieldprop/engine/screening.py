@@ -91,6 +91,8 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
             logger.error("%s: failed: %s", out.candidate.name, out.failure)
         else:
             out.result = work.result(store.label, time.perf_counter() - start)
+            if work.prepared.job.response.optical_wavelengths_nm:
+                out.result = _with_estimates(out, work, store, pool)
         if on_result is not None:
             on_result(out)
 
@@ -104,6 +106,20 @@ def run_campaign(campaign: Campaign, store, pool, progress: bool = False,
                             sum(o.computed for o in outcomes), sum(o.reused for o in outcomes),
                             sum(o.scf_cycles for o in outcomes), time.perf_counter() - start)
     return outcomes, counts
+
+
+def _with_estimates(out: MoleculeOutcome, work: JobWork, store, pool):
+    """A molecule's result with its optical-frequency estimates (the excited
+    states computed on the pool and stored); None, the molecule failed, when
+    they cannot be formed."""
+    from fieldprop.engine.optical import with_optical
+
+    try:
+        return with_optical(out.result, work.prepared, store, pool)
+    except errors.FieldpropError as exc:
+        out.failure, out.kind = str(exc), type(exc).__name__
+        logger.error("%s: failed: %s", out.candidate.name, exc)
+        return None
 
 
 def _optimise(candidates, outcomes, store, pool, progress: bool) -> list:

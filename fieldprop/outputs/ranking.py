@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import csv
 import math
+import re
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TextIO
@@ -33,6 +34,29 @@ from fieldprop.outputs.summary import (INVARIANTS, _formula, _model, conversion,
 RANK_KEYS = tuple(name for name, _ in INVARIANTS)
 _ALIASES = {"beta_vec": "beta_vector_norm"}
 PROPERTY_OF = dict(INVARIANTS)
+#: An optical-frequency estimate as a ranking key: a beta invariant, the
+#: process (shg: second-harmonic, eo: electro-optic) and the wavelength, as in
+#: beta_hrs_shg_1064nm (the result JSON's optical_estimates).
+ESTIMATE_KEY = re.compile(r"^(beta_[a-z_]+?)_(shg|eo)_(\d+(?:\.\d+)?)nm$")
+PROCESS_CODES = {"shg": "second-harmonic", "eo": "electro-optic"}
+
+
+def estimate_parts(key: str) -> tuple[str, str, float] | None:
+    """(invariant, process, wavelength in nm) of an estimate key, else None."""
+    m = ESTIMATE_KEY.match(key)
+    if m is None or PROPERTY_OF.get(m.group(1)) != "beta":
+        return None
+    return m.group(1), PROCESS_CODES[m.group(2)], float(m.group(3))
+
+
+def valid_key(key: str) -> bool:
+    return key in PROPERTY_OF or estimate_parts(key) is not None
+
+
+def property_of(key: str) -> str:
+    """The property whose units a ranking key takes."""
+    parts = estimate_parts(key)
+    return PROPERTY_OF[parts[0] if parts is not None else key]
 
 
 @dataclass(frozen=True)
@@ -48,7 +72,15 @@ class Entry:
     def invariant(self, name: str) -> tuple[float | None, float | None]:
         if self.document is None:
             return None, None
-        item = self.document["invariants"].get(name) or {}
+        parts = estimate_parts(name)
+        if parts is not None:
+            invariant, process, wavelength = parts
+            entries = (self.document.get("optical_estimates") or {}).get("entries") or ()
+            item = next(((e.get("invariants") or {}).get(invariant) or {} for e in entries
+                         if e.get("process") == process
+                         and abs(float(e.get("wavelength_nm", -1)) - wavelength) < 1e-9), {})
+        else:
+            item = self.document["invariants"].get(name) or {}
         value, error = item.get("value"), item.get("error")
         ok = all(isinstance(x, (int, float)) and math.isfinite(x) for x in (value, error))
         return (float(value), float(error)) if ok else (None, None)
@@ -112,10 +144,13 @@ RANKING_CAUTION = ("bars: numerical differentiation only; the model (method, bas
                    "beta by tens of per cent, more than most gaps between neighbours")
 
 
-def table(rows: list[Row], units: str, convention: str = "taylor"
+def table(rows: list[Row], units: str, convention: str = "taylor", key: str | None = None
           ) -> tuple[list[str], list[list], list[str]]:
-    """(CSV header, rows of values, display header), in ``units`` and ``convention``."""
+    """(CSV header, rows of values, display header), in ``units`` and
+    ``convention``; ranked by an optical estimate (``key``), its column too."""
     present = _present([r.entry for r in rows])
+    if key is not None and estimate_parts(key) is not None:
+        present.append((key, "beta"))
     header, shown = ["rank", "name", "formula"], ["rank", "name", "formula"]
     for name, prop in present:
         columns, headers = invariant_columns(name, prop, units, convention)
@@ -138,8 +173,9 @@ def table(rows: list[Row], units: str, convention: str = "taylor"
     return header, out, shown
 
 
-def write_csv(rows: list[Row], units: str, out: TextIO, convention: str = "taylor") -> None:
-    header, values, _ = table(rows, units, convention)
+def write_csv(rows: list[Row], units: str, out: TextIO, convention: str = "taylor",
+              key: str | None = None) -> None:
+    header, values, _ = table(rows, units, convention, key)
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(header)
     for row in values:
@@ -147,15 +183,16 @@ def write_csv(rows: list[Row], units: str, out: TextIO, convention: str = "taylo
                          else str(v).lower() if isinstance(v, bool) else v for v in row])
 
 
-def write_csv_file(rows: list[Row], units: str, path: Path, convention: str = "taylor") -> None:
+def write_csv_file(rows: list[Row], units: str, path: Path, convention: str = "taylor",
+                   key: str | None = None) -> None:
     """The CSV (:func:`write_csv`) as the file ``path``, whole or not at all."""
     with replacing(path, newline="") as out:
-        write_csv(rows, units, out, convention)
+        write_csv(rows, units, out, convention, key)
 
 
 def write_table(rows: list[Row], units: str, key: str, out: TextIO,
                 convention: str = "taylor") -> None:
-    header, values, shown = table(rows, units, convention)
+    header, values, shown = table(rows, units, convention, key)
     text = []
     for row in values:
         cells = []
@@ -204,7 +241,7 @@ def write_png(rows: list[Row], key: str, units: str, path: Path,
     import matplotlib.pyplot as plt
 
     key = resolve_key(key)
-    prop = PROPERTY_OF[key]
+    prop = property_of(key)
     label, factor = conversion(prop, units, convention)
     ranked = [r for r in rows if r.rank is not None]
     names = [r.entry.name for r in ranked]

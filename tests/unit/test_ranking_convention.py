@@ -76,3 +76,46 @@ def test_the_summary_picture_signs_scales_and_names_its_model(tmp_path, monkeypa
     title = fig._suptitle.get_text()
     assert "HF/6-31G" in title.upper() and "perturbation" in title
     assert ranking._scaled([2.0, -3.0], "au") == (1.0, "au")
+
+
+def _with_estimate(name, beta_hrs, factor_1064):
+    entry = _entry(name, beta_hrs, 1.0)
+    entry.document["optical_estimates"] = {"entries": [
+        {"wavelength_nm": 1064.0, "process": "second-harmonic", "factor": factor_1064,
+         "invariants": {"beta_hrs": {"value": beta_hrs * factor_1064, "error": 1e-4}}},
+        {"wavelength_nm": 1064.0, "process": "electro-optic", "factor": None, "resonant": True,
+         "invariants": {}}]}
+    return entry
+
+
+def test_a_screen_ranks_by_an_optical_estimate():
+    # Static order a > b; at 1064 nm b's dispersion (closer to its band) wins.
+    a, b = _with_estimate("a", 100.0, 1.1), _with_estimate("b", 90.0, 1.5)
+    assert [r.entry.name for r in ranking.rank([a, b], "beta_hrs")] == ["a", "b"]
+    rows = ranking.rank([a, b], "beta_hrs_shg_1064nm")
+    assert [r.entry.name for r in rows] == ["b", "a"]
+    out = io.StringIO()
+    ranking.write_csv(rows, "au", out, "taylor", "beta_hrs_shg_1064nm")
+    table = list(csv.DictReader(io.StringIO(out.getvalue())))
+    assert float(table[0]["beta_hrs_shg_1064nm_au"]) == pytest.approx(135.0)
+    # A resonant estimate has no number: the molecule is not ranked by it.
+    rows = ranking.rank([a, b], "beta_hrs_eo_1064nm")
+    assert all(r.rank is None for r in rows)
+    assert ranking.estimate_parts("beta_hrs_eo_1550nm") == ("beta_hrs", "electro-optic", 1550.0)
+    assert ranking.estimate_parts("alpha_iso_shg_1064nm") is None
+    assert not ranking.valid_key("beta_hrs_shg_nm")
+
+
+def test_an_unknown_ranking_key_is_one_line_exit_2(tmp_path, capsys):
+    from fieldprop.cli import main
+
+    path = tmp_path / "set.toml"
+    path.write_text('[[molecule]]\nname = "w"\nsmiles = "O"\n[model]\nmethod = "hf"\n'
+                    'basis = "sto-3g"\n[response]\nproperties = ["beta"]\n')
+    assert main(["screen", str(path), "--rank-by", "beta_hrs_shg"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "'beta_hrs_shg' is not a ranking key" in err[0]
+    assert main(["screen", str(path), "--rank-by", "beta_hrs_shg_1064nm"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "1064 nm is not among the set's [response] optical_wavelen" in err[0]
+    assert not (tmp_path / "set.results").exists()
