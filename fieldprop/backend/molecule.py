@@ -231,6 +231,19 @@ def _mean_field(mol, model, scf_spec):
         mf = cls(mol)
     if model.density_fit is not None:
         mf = mf.density_fit(auxbasis=None if model.density_fit == "auto" else model.density_fit)
+    if getattr(model, "solvent_epsilon", None) is not None:
+        # The solute in a polarizable continuum: the reaction field answers its
+        # whole density (the field's share included) self-consistently, and
+        # PySCF's response function then includes the continuum's response
+        # (equilibrium solvation: the static limit).
+        mf = mf.PCM()
+        mf.with_solvent.method = {"iefpcm": "IEF-PCM", "cpcm": "C-PCM"}[model.solvent_model]
+        mf.with_solvent.eps = model.solvent_epsilon
+        mf.with_solvent.equilibrium_solvation = True
+        mf.with_solvent.verbose = 0
+        from fieldprop.backend.solvent import cache
+
+        cache(mf.with_solvent)
     mf.conv_tol = scf_spec.energy_conv_tol_au
     mf.conv_tol_grad = scf_spec.gradient_conv_tol
     mf.max_cycle = scf_spec.max_iterations

@@ -231,8 +231,6 @@ def excitation_task(molecule, model, scf, states: int, label: str, threads: int 
         set_threads(threads)
     start = time.perf_counter()
     try:
-        from pyscf import tdscf
-
         mf, _ = field_mean_field(molecule, model, scf, (0.0, 0.0, 0.0))
         mf.conv_tol, mf.conv_tol_grad = 1e-11, 1e-7
         mf.kernel()
@@ -242,7 +240,9 @@ def excitation_task(molecule, model, scf, states: int, label: str, threads: int 
         if not mf.converged:
             return None, (f"{label}: the zero-field SCF of the excited states did not "
                           "converge; no estimate is formed", "ScfNotConvergedError")
-        td = tdscf.TDHF(mf) if model.method == "hf" else tdscf.TDDFT(mf)
+        # A solvated model's own TD (PySCF's): vertical, non-equilibrium: the
+        # ground state's reaction field, no continuum response to the transition.
+        td = mf.TDHF() if model.method == "hf" else mf.TDDFT()
         td.nstates, td.verbose = states, 0
         td.kernel()
         converged = np.atleast_1d(td.converged)

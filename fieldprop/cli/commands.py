@@ -865,9 +865,9 @@ def _formula_text(job) -> str:
 
 
 def _model_text(job) -> str:
-    m = job.model
-    basis = m.basis if isinstance(m.basis, str) else "per-element basis"
-    return "/".join(x for x in (m.method.upper(), m.functional, basis) if x)
+    from fieldprop.inputs.job import model_name
+
+    return model_name(job.model)
 
 
 #: The largest field ``relax`` takes (au): beyond it the structure leaves the

@@ -246,8 +246,11 @@ def symmetry_decision(job: Job):
     if symmetry_refusal(job, molecule):
         return molecule, None, None
     sym = symmetry.detect(molecule.nuclear_charges, molecule.coords_bohr)
-    if sym is not None and METHODS[job.model.method].integration_grid:
-        sym = sym.lattice_subgroup()  # the operations that map the grid onto itself
+    if sym is not None and (METHODS[job.model.method].integration_grid
+                            or job.model.solvent_epsilon is not None):
+        # The operations that map the grid (and a continuum's cavity surface,
+        # the same atom-centred spheres) onto itself.
+        sym = sym.lattice_subgroup()
     if sym is None:
         return molecule, None, None
     origin = np.asarray(molecule.origin_bohr)

@@ -24,7 +24,7 @@ from fieldprop.engine.prepare import (Prepared, make_plan, make_tasks, prepare,
                                       symmetric_molecule, tightened_task, to_compute)
 from fieldprop.engine.stages import JobWork, settle
 from fieldprop.errors import IncompleteError, InputError, UnstableResultError
-from fieldprop.inputs.job import MAX_TIGHTENING, Job, model_text
+from fieldprop.inputs.job import MAX_TIGHTENING, Job, model_name
 from fieldprop.numerics.methods import Route
 from fieldprop.points.keys import backend_version_conflict, model_key, short_id
 
@@ -74,7 +74,7 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
               f"{'E(F)' if plan.route == 'energy' else 'the SCF dipole'}")
     logger.info("%s: %s, %s, SCF energy tolerance %g Eh, orbital "
                 "gradient %g (accepted up to %g), solver %s; store %s; %s", job.path,
-                model_text(job.model.method, job.model.functional, job.model.basis), ladder,
+                model_name(job.model), ladder,
                 job.scf.energy_conv_tol_au, job.scf.gradient_conv_tol,
                 job.scf.gradient_accepted, job.scf.solver, store.label, executor.label)
     if progress is None:

@@ -90,7 +90,7 @@ _SECTIONS = {
     "molecule": {"geometry", "xyz", "units", "charge", "multiplicity", "allow_close_atoms",
                  "bohr_angstrom", "isotope_masses"},
     "model": {"method", "functional", "basis", "reference", "frozen_core", "cartesian",
-              "density_fit"},
+              "density_fit", "solvent", "solvent_model"},
     "response": {"properties", "field_au", "ratio", "levels", "origin", "differentiate", "route",
                  "symmetry", "window",
                  "nuclear_relaxation", "zero_point", "optical_wavelengths_nm"},
@@ -184,6 +184,13 @@ class ModelSpec:
     #: the orbital basis, or None for exact integrals. A model change, not a
     #: numerical error: it is part of every point's key.
     density_fit: str | None = None
+    #: A continuum solvent ([model] solvent): its name in the solvent table
+    #: (None: given by its dielectric constant alone, or no solvent), its
+    #: static dielectric constant, and the continuum model ("iefpcm" or
+    #: "cpcm"; None without a solvent). Part of every point's key.
+    solvent: str | None = None
+    solvent_epsilon: float | None = None
+    solvent_model: str | None = None
 
 
 @dataclass(frozen=True)
@@ -443,6 +450,10 @@ class Job:
                 "cartesian": model.cartesian,
                 "density_fit": {None: False, "auto": True}.get(model.density_fit,
                                                                model.density_fit),
+                **({} if model.solvent_epsilon is None else {
+                    "solvent": (model.solvent if model.solvent is not None
+                                else {"epsilon": model.solvent_epsilon}),
+                    "solvent_model": model.solvent_model}),
             },
             "response": {
                 "properties": list(response.properties),
@@ -547,15 +558,33 @@ def scaled_target_power(route: str, max_order: int) -> tuple[int, int]:
     return k, (k + 1) // 2
 
 
-def model_text(method: str, functional: str | None, basis) -> str:
+def model_text(method: str, functional: str | None, basis, solvent=None,
+               solvent_model: str | None = None) -> str:
     """A model as every log line, table and CSV writes it: METHOD/functional/
     basis (a per-element basis: element:name pairs, a basis given as text
-    ``custom``), e.g. ``HF/6-31g`` or ``DFT/b3lyp/6-31g``."""
+    ``custom``), e.g. ``HF/6-31g`` or ``DFT/b3lyp/6-31g``; in a continuum
+    solvent (its name, or {"epsilon": ...}) ``HF/6-31g in water (IEF-PCM)``."""
     if not isinstance(basis, str):
         pairs = basis.items() if isinstance(basis, dict) else basis
         basis = "+".join(f"{sym}:{text if chr(10) not in str(text) else 'custom'}"
                          for sym, text in pairs) or "per-element basis"
-    return "/".join(str(x) for x in (str(method or "?").upper(), functional, basis) if x)
+    text = "/".join(str(x) for x in (str(method or "?").upper(), functional, basis) if x)
+    if solvent is None:
+        return text
+    where = (f"epsilon {solvent['epsilon']:g}" if isinstance(solvent, dict)
+             else str(solvent))
+    return f"{text} in {where} ({SOLVENT_MODEL_NAMES.get(solvent_model, solvent_model)})"
+
+
+#: How the continuum models are written.
+SOLVENT_MODEL_NAMES = {"iefpcm": "IEF-PCM", "cpcm": "C-PCM"}
+
+
+def model_name(model: "ModelSpec") -> str:
+    """:func:`model_text` of a ModelSpec."""
+    solvent = (None if model.solvent_epsilon is None else
+               model.solvent if model.solvent is not None else {"epsilon": model.solvent_epsilon})
+    return model_text(model.method, model.functional, model.basis, solvent, model.solvent_model)
 
 
 def derived_energy_conv_tol_au(max_order: int) -> float:
@@ -865,8 +894,61 @@ def _parse_model(path: str, table: dict[str, Any], multiplicity: int) -> ModelSp
     if density_fit is not None and correlated:
         raise r.fail("density_fit", f"applies to hf and dft (their Coulomb and exchange "
                      f"integrals), not to {method}; remove it")
+    solvent, epsilon, solvent_model = _solvent(r, table, method)
     return ModelSpec(method=method, basis=basis, reference=reference, functional=functional,
-                     frozen_core=frozen_core, cartesian=cartesian, density_fit=density_fit)
+                     frozen_core=frozen_core, cartesian=cartesian, density_fit=density_fit,
+                     solvent=solvent, solvent_epsilon=epsilon, solvent_model=solvent_model)
+
+
+SOLVENT_MODELS = ("iefpcm", "cpcm")
+#: Short names people type for solvents of the table.
+SOLVENT_ALIASES = {"dmso": "dimethylsulfoxide", "dmf": "n,n-dimethylformamide",
+                   "thf": "tetrahydrofuran", "dcm": "dichloromethane"}
+
+
+def solvent_table() -> dict[str, tuple[float, float]]:
+    """{name (lower case): (static dielectric constant, refractive index)}:
+    the Minnesota Solvent Descriptor Database as PySCF carries it
+    (pyscf.solvent.smd.solvent_db; C. P. Kelly, C. J. Cramer and D. G. Truhlar
+    and earlier editions, University of Minnesota)."""
+    from pyscf.solvent.smd import solvent_db
+
+    return {name.lower(): (float(v[5]), float(v[0])) for name, v in solvent_db.items()}
+
+
+def _solvent(r: "_Reader", table: dict[str, Any], method: str):
+    """[model] solvent = "<name>" or { epsilon = ... }, and solvent_model."""
+    given = table.get("solvent")
+    if given is None:
+        if "solvent_model" in table:
+            raise r.fail("solvent_model", "is given but there is no solvent; add solvent = "
+                         "\"<name>\" or solvent = { epsilon = ... }, or remove it")
+        return None, None, None
+    if not METHODS[method].mean_field:
+        raise r.fail("solvent", f"applies to hf and dft (their continuum reaction field at "
+                     f"every field point); {method} has none yet: remove it, or use one of those")
+    if isinstance(given, str):
+        name = SOLVENT_ALIASES.get(given.strip().lower(), given.strip().lower())
+        known = solvent_table()
+        if name not in known:
+            near = sorted(k for k in known if k.startswith(name[:3]))[:6]
+            raise r.fail("solvent", f"{given!r} is not in the solvent table (the Minnesota "
+                         "Solvent Descriptor Database's names, e.g. water, acetonitrile, "
+                         "dimethylsulfoxide, chloroform, methanol, toluene)"
+                         + (f"; near it: {', '.join(near)}" if near else "")
+                         + "; or give solvent = { epsilon = ... }")
+        solvent, epsilon = name, known[name][0]
+    elif isinstance(given, dict):
+        extra = [k for k in given if k != "epsilon"]
+        eps = given.get("epsilon")
+        if extra or isinstance(eps, bool) or not isinstance(eps, (int, float)) \
+                or not 1.0 <= eps <= 1000.0:
+            raise r.fail("solvent", "as a table must be { epsilon = <static dielectric "
+                         f"constant, 1 to 1000> }}, got {given!r}")
+        solvent, epsilon = None, float(eps)
+    else:
+        raise r.fail("solvent", f"must be a solvent's name or {{ epsilon = ... }}, got {given!r}")
+    return solvent, epsilon, r.string("solvent_model", "iefpcm", SOLVENT_MODELS)
 
 
 #: [response] differentiate was called ``route`` before; the old name still works
@@ -1201,6 +1283,11 @@ def job_from_tables(shown: str, job_path: Path, data: dict[str, Any]) -> Job:
                      response.route, molecule.multiplicity > 1, response.field_au,
                      data.get("correlation", {}))
     geometry = _parse_geometry(shown, data.get("geometry", {}), model)
+    for key in ("nuclear_relaxation", "zero_point"):
+        if model.solvent_epsilon is not None and getattr(response, key):
+            raise InputError(f"{shown}: [model] solvent with [response] {key} = true: not "
+                             "available yet (it needs the solvated model's nuclear Hessian and "
+                             "field-dependent gradients); remove one of them")
     if response.zero_point and len(molecule.atoms) < 2:
         raise InputError(f"{shown}: [response] zero_point = true: an atom has no vibrations; "
                          "set it to false")

@@ -38,6 +38,19 @@ CAUTION = ("Results depend on method and basis set (beta and gamma strongly: dif
            "changes a push-pull beta by tens of percent); computed NLO figures guide, and "
            "do not replace, measurement.")
 
+SOLVATED_CAUTION = (
+    "Results depend on method and basis set (beta and gamma strongly: diffuse functions and "
+    "correlation change them by tens of percent); the tensors are static (zero frequency) and "
+    "of the solute in a polarizable continuum: its response in the reaction field, with no "
+    "cavity-field or local-field factors (the field acting on it is the field in the cavity, "
+    "not the applied one); computed NLO figures guide, and do not replace, measurement.")
+
+
+def caution(model) -> str:
+    """The caution of a result of ``model`` (a ModelSpec): gas phase or solvated."""
+    return CAUTION if getattr(model, "solvent_epsilon", None) is None else SOLVATED_CAUTION
+
+
 #: The property whose units each invariant carries ("ratio": none).
 _INVARIANT_PROPERTY = {"dipole_norm": "dipole", "alpha_iso": "alpha", "alpha_aniso": "alpha",
                        "beta_parallel": "beta", "beta_vector_norm": "beta", "beta_hrs": "beta",
@@ -218,6 +231,36 @@ def _relaxation_document(part) -> dict:
         "relaxed": [{"point": r.point.label, "field_vector_au": list(r.point.field_vector_au),
                      **r.relaxation} for r in part.total.computed_records if r.relaxation],
     }
+
+
+def _solvent_document(model) -> dict | None:
+    """The continuum solvent (None: gas phase), with the usual local-field
+    factors as optional conversions."""
+    if model.solvent_epsilon is None:
+        return None
+    from fieldprop.inputs.job import SOLVENT_MODEL_NAMES, solvent_table
+
+    eps = model.solvent_epsilon
+    index = solvent_table().get(model.solvent, (None, None))[1] if model.solvent else None
+    out = {"name": model.solvent, "epsilon": eps,
+           "model": SOLVENT_MODEL_NAMES[model.solvent_model],
+           "source": "dielectric constants and refractive indices: the Minnesota Solvent "
+                     "Descriptor Database (as pyscf.solvent.smd carries it)",
+           "note": "the solute's response in the reaction field of the continuum (equilibrium "
+                   "solvation, every field point self-consistent); no cavity-field or "
+                   "local-field factors are applied to the tensors"}
+    if index:
+        n2 = index * index
+        # Lorentz: f = (n^2 + 2)/3 at optical frequencies; Onsager's static
+        # cavity-field factor f0 = eps (n^2 + 2)/(n^2 + 2 eps) (L. Onsager,
+        # J. Am. Chem. Soc. 58, 1486 (1936); cited from memory).
+        out["refractive_index"] = index
+        out["local_field_factors"] = {
+            "lorentz_optical": (n2 + 2.0) / 3.0,
+            "onsager_static": eps * (n2 + 2.0) / (n2 + 2.0 * eps),
+            "note": "optional conversions to macroscopic susceptibilities (e.g. EFISH: "
+                    "f0 f_w^2 f_2w); not applied"}
+    return out
 
 
 def _optical_document(part) -> dict:
@@ -420,7 +463,8 @@ def result_document(result: RunResult) -> dict[str, Any]:
         "unit_factors": {p: {label: f for label, f in DISPLAY_UNITS[p]}
                          for p in PROPERTY_ORDER},
         "warnings": list(result.warnings),
-        "caution": CAUTION,
+        "caution": caution(result.job.model),
+        "solvent": _solvent_document(result.job.model),
         "wall_time_s": result.wall_time_s,
     } | provenance(result)
 

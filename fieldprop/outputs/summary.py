@@ -140,7 +140,8 @@ def _formula(doc: dict) -> str:
 
 def _model(doc: dict) -> str:
     m = doc["job"].get("model") or {}
-    return model_text(m.get("method"), m.get("functional"), m.get("basis") or "?")
+    return model_text(m.get("method"), m.get("functional"), m.get("basis") or "?",
+                      m.get("solvent"), m.get("solvent_model"))
 
 
 def _number(x: Any) -> float | None:

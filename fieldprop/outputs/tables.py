@@ -14,11 +14,11 @@ import numpy as np
 from tabulate import tabulate
 
 from fieldprop import __version__
-from fieldprop.inputs.job import SYMMETRISE, model_text
+from fieldprop.inputs.job import SYMMETRISE, model_name
 from fieldprop.numerics.extrapolate import ComponentStatus
 from fieldprop.numerics.units import FIELD_AU_TO_V_PER_M
 from fieldprop.outputs.summary import conversion
-from fieldprop.outputs.documents import (_INVARIANT_PROPERTY, _INVARIANT_TEXT, CAUTION,
+from fieldprop.outputs.documents import (_INVARIANT_PROPERTY, _INVARIANT_TEXT, caution,
                                          orientation_note)
 
 if TYPE_CHECKING:
@@ -209,10 +209,10 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au",
     final, out = out, io.StringIO()  # the header's prose, wrapped below
     job, plan = result.job, result.plan
     model = job.model
-    model_name = model_text(model.method, model.functional, model.basis)
+    model_label = model_name(model)
     out.write(f"fieldprop {__version__}: {job.path}\n")
     out.write(f"  molecule {result.molecule.formula}, charge {result.molecule.charge}, "
-              f"multiplicity {result.molecule.multiplicity}; {model_name} ({model.reference}); "
+              f"multiplicity {result.molecule.multiplicity}; {model_label} ({model.reference}); "
               f"{result.backend_facts.get('n_basis_functions', '?')} "
               f"{'cartesian ' if model.cartesian else ''}basis functions"
               f"{_ecp_text(result)}{_fit_text(result)}\n")
@@ -324,7 +324,7 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au",
     for text in result.warnings:
         out.write(_wrapped(f"warning: {text}") + "\n")
     if any(p in result.tensors for p in ("beta", "gamma")):
-        out.write(_wrapped(f"note: {CAUTION}") + "\n")
+        out.write(_wrapped(f"note: {caution(job.model)}") + "\n")
 
 
 def _pair_text(est, stable: bool, factor: float, significant=None) -> str:

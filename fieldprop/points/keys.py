@@ -125,6 +125,8 @@ def model_document(molecule, model, scf) -> dict:
                 "grid_level": scf.grid_level, "solver": getattr(scf, "solver", "newton")},
     } | ({"density_fit": model.density_fit}
          if getattr(model, "density_fit", None) else {}) | (  # absent: keys as they were
+        {"solvent": {"epsilon": _exact(model.solvent_epsilon), "model": model.solvent_model}}
+        if getattr(model, "solvent_epsilon", None) is not None else {}) | (
         {"correlation": _correlation_document(scf.correlation)}
         if getattr(scf, "correlation", None) is not None else {})
 
