@@ -792,6 +792,10 @@ def cmd_screen(args) -> int:
         raise InputError(f"--rank-by {key}: needs {needed}, which the set's [response] "
                          f"properties ({', '.join(props)}) do not compute")
     estimate = ranking.estimate_parts(key)
+    if estimate is not None and campaign.conformers is not None:
+        raise InputError(f"--rank-by {key}: a set with [conformers] ranks by the ensemble's "
+                         "static invariants; the optical estimates stay in each conformer's "
+                         "result: rank by an invariant")
     wavelengths = campaign.candidates[0].job.response.optical_wavelengths_nm
     if estimate is not None and estimate[2] not in wavelengths:
         raise InputError(f"--rank-by {key}: {estimate[2]:g} nm is not among the set's [response] "
@@ -820,13 +824,18 @@ def cmd_screen(args) -> int:
                                         log_every_s=log_every, on_result=keep,
                                         retry_failed=args.retry_failed)
     entries = []
+    groups: dict[str, list] = {}
     for o in outcomes:
-        if o.result is not None:
+        if o.candidate.group is not None:
+            groups.setdefault(o.candidate.group, []).append(o)
+        elif o.result is not None:
             entries.append(ranking.entry_from(o.candidate.name, result_document(o.result)))
         else:
             entries.append(ranking.entry_from(o.candidate.name, None, o.failure,
                                               _formula_text(o.candidate.job),
                                               _model_text(o.candidate.job)))
+    for name, members in groups.items():
+        entries.append(_ensemble_entry(name, members, campaign.conformers, results, key))
     rows = ranking.rank(entries, key)
     if args.csv is not None and not is_stdout(args.csv):
         ranking.write_csv_file(rows, args.units, args.csv, args.convention, key)
@@ -853,6 +862,38 @@ def cmd_screen(args) -> int:
                                                           for r in bad[:5])
                             + (" ..." if len(bad) > 5 else ""))
     return 0
+
+
+def _ensemble_entry(name: str, members, options, results: Path, key: str):
+    """A SMILES molecule's conformers as one ranked entry: its ensemble
+    document (written as <name>.ensemble.json) or, where a conformer failed,
+    the failure."""
+    from fieldprop.outputs import ranking
+    from fieldprop.outputs.documents import result_document, write_json_atomic
+    from fieldprop.outputs.ensembles import ensemble_document
+
+    path = results / f"{name}.ensemble.json"
+    failed = [o for o in members if o.result is None]
+    if failed:
+        if path.exists():
+            path.unlink()
+        o = failed[0]
+        return ranking.entry_from(name, None, f"conformer {o.candidate.conformer}: {o.failure}",
+                                  _formula_text(o.candidate.job), _model_text(o.candidate.job))
+    document = ensemble_document(
+        name, [(o.candidate.conformer, o.candidate.force_field_kcal_mol,
+                f"{o.candidate.name}.result.json", result_document(o.result)) for o in members],
+        options.temperature_k)
+    write_json_atomic(document, path)
+    kept = [c for c in document["conformers"] if c["same_minimum_as"] is None]
+    value = document["invariants"].get(ranking.estimate_parts(key)[0]
+                                       if ranking.estimate_parts(key) else key) or {}
+    note = (f"{len(kept)} of {len(members)} at {options.temperature_k:g} K: weights "
+            + "/".join(f"{c['weight']:.2f}" for c in kept))
+    logger.info("%s: ensemble of %s%s; written to %s", name, note,
+                f"; {key} from {value['min']:.6g} to {value['max']:.6g} across them"
+                if value.get("min") is not None else "", path)
+    return ranking.entry_from(name, document, note=note)
 
 
 def _formula_text(job) -> str:

@@ -42,7 +42,10 @@ from fieldprop.numerics.units import BACKEND_BOHR_ANGSTROM, NAMED_BOHR_ANGSTROM
 MOLECULE_KEYS = {"name", "xyz", "geometry", "smiles", "units", "charge", "multiplicity",
                  "allow_close_atoms", "bohr_angstrom"}
 #: Top-level keys and tables of a set file.
-SET_KEYS = {"xyz_dir", "molecule", "model", "response", "scf", "correlation", "geometry"}
+SET_KEYS = {"xyz_dir", "molecule", "model", "response", "scf", "correlation", "geometry",
+            "conformers"}
+#: Keys of a set's [conformers] table (inputs.structures.ConformerOptions).
+CONFORMER_KEYS = {"keep", "embed", "rmsd_angstrom", "window_kcal_mol", "temperature_k"}
 #: A molecule's name names its result files: letters, digits, . _ - only.
 NAME_PATTERN = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,99}$")
 
@@ -55,12 +58,21 @@ class Candidate:
     source: str  # "xyz_dir", "xyz", "geometry" or "smiles"
     job: Job
     smiles: str | None = None
+    #: A conformer of a SMILES molecule ([conformers]): the molecule's name
+    #: (``name`` is ``<group>.c<k>``), its number k from 1, and its force-field
+    #: energy above the lowest conformer (kcal/mol).
+    group: str | None = None
+    conformer: int | None = None
+    force_field_kcal_mol: float | None = None
 
 
 @dataclass(frozen=True)
 class Campaign:
     path: str
     candidates: tuple[Candidate, ...]
+    #: [conformers]: how SMILES molecules became conformer ensembles (None: one
+    #: structure each).
+    conformers: object = None
 
 
 def _fail(path: str, what: str) -> InputError:
@@ -114,6 +126,7 @@ def load_set(path: str | Path) -> Campaign:
                     "you want vibrationally averaged as jobs (fieldprop run), or set it to false")
     shared = {k: data[k] for k in ("model", "response", "scf", "correlation", "geometry")
               if k in data}
+    options = _conformer_options(shown, data)
     entries: list[tuple[str, str, dict, str | None]] = []  # name, source, molecule table, smiles
     if "xyz_dir" in data:
         folder_text = data["xyz_dir"]
@@ -166,6 +179,16 @@ def load_set(path: str | Path) -> Campaign:
             raise _fail(shown, f"{where}: xyz file {table['xyz']!r} not found (relative to the "
                         "set file)")
         made = ""
+        if smiles is not None and options is not None:
+            for k, (table_k, made, energy) in enumerate(
+                    _conformers(shown, where, smiles, molecule, options), start=1):
+                job = job_from_tables(f"{shown} ({where}, conformer {k})", set_path,
+                                      {"molecule": table_k, **shared})
+                job = dataclasses.replace(job, molecule=dataclasses.replace(
+                    job.molecule, source=f"smiles {smiles}, conformer {k} ({made})"))
+                candidates.append(Candidate(f"{name}.c{k}", source, job, smiles, name, k,
+                                            energy))
+            continue
         if smiles is not None:
             molecule, made = _from_smiles(shown, where, smiles, molecule)
         job = job_from_tables(f"{shown} ({where})", set_path,
@@ -174,7 +197,62 @@ def load_set(path: str | Path) -> Campaign:
             job = dataclasses.replace(job, molecule=dataclasses.replace(
                 job.molecule, source=f"smiles {smiles} ({made})"))
         candidates.append(Candidate(name, source, job, smiles))
-    return Campaign(shown, tuple(candidates))
+    return Campaign(shown, tuple(candidates), options)
+
+
+def _conformer_options(shown: str, data: dict):
+    """The set's [conformers] table as ConformerOptions (None without it)."""
+    from fieldprop.inputs.structures import ConformerOptions
+
+    table = data.get("conformers")
+    if table is None:
+        return None
+    if not isinstance(table, dict):
+        raise _fail(shown, "conformers must be a [conformers] table")
+    for key in table:
+        if key not in CONFORMER_KEYS:
+            raise _fail(shown, f"[conformers] unknown key {key!r}; valid: "
+                        f"{', '.join(sorted(CONFORMER_KEYS))}")
+    geometry = data.get("geometry") or {}
+    if not (geometry.get("optimise") is True or geometry.get("optimize") is True):
+        raise _fail(shown, "[conformers] needs [geometry] optimise = true: the conformers' "
+                    "weights come from the model's energies at its own minima")
+    default = ConformerOptions()
+    values = {}
+    for key, low, high, kind in (("keep", 2, 20, int), ("embed", 2, 500, int),
+                                 ("rmsd_angstrom", 0.01, 5.0, float),
+                                 ("window_kcal_mol", 0.1, 50.0, float),
+                                 ("temperature_k", 1.0, 2000.0, float)):
+        value = table.get(key, getattr(default, key))
+        if isinstance(value, bool) or not isinstance(value, (int, float)) \
+                or (kind is int and not isinstance(value, int)) or not low <= value <= high:
+            what = "an integer" if kind is int else "a number"
+            raise _fail(shown, f"[conformers] {key} must be {what} from {low:g} to {high:g}, "
+                        f"got {value!r}")
+        values[key] = kind(value)
+    if values["embed"] < values["keep"]:
+        raise _fail(shown, f"[conformers] embed = {values['embed']} is fewer than keep = "
+                    f"{values['keep']}")
+    return ConformerOptions(**values)
+
+
+def _conformers(shown: str, where: str, smiles, molecule: dict, options):
+    """Per conformer of ``smiles``: the molecule table, how it was made, and
+    its force-field energy above the lowest (kcal/mol)."""
+    from fieldprop.inputs.structures import conformers_from_smiles
+
+    if not isinstance(smiles, str) or not smiles.strip():
+        raise _fail(shown, f"{where}: smiles must be a SMILES string, got {smiles!r}")
+    try:
+        found = conformers_from_smiles(smiles.strip(), options)
+    except ValueError as exc:
+        raise _fail(shown, f"{where}: smiles {smiles!r}: {exc}") from None
+    out = []
+    for structure, energy in found:
+        table, made = _from_structure(shown, where, smiles, molecule, structure)
+        out.append((table, made + f", {structure.force_field} {energy:.2f} kcal/mol above "
+                    "the lowest conformer", energy))
+    return out
 
 
 def _from_smiles(shown: str, where: str, smiles, molecule: dict) -> tuple[dict, str]:
@@ -192,6 +270,15 @@ def _from_smiles(shown: str, where: str, smiles, molecule: dict) -> tuple[dict, 
         structure = from_smiles(smiles.strip())
     except ValueError as exc:
         raise _fail(shown, f"{where}: smiles {smiles!r}: {exc}") from None
+    return _from_structure(shown, where, smiles, molecule, structure)
+
+
+def _from_structure(shown: str, where: str, smiles, molecule: dict, structure
+                    ) -> tuple[dict, str]:
+    """The molecule table with ``structure`` (from ``smiles``), checked."""
+    if "units" in molecule:
+        raise _fail(shown, f"{where}: units is given with smiles; a SMILES structure is built "
+                    "in angstrom: remove units")
     for key, implied in (("charge", structure.charge), ("multiplicity", structure.multiplicity)):
         given = molecule.get(key, implied)
         if given != implied:

@@ -108,3 +108,75 @@ def from_smiles(smiles: str) -> SmilesStructure:
     return SmilesStructure(tuple(a.GetSymbol() for a in mol.GetAtoms()),
                            tuple(tuple(float(v) for v in row) for row in positions),
                            int(charge), int(multiplicity), force_field, rdkit.__version__)
+
+
+@dataclass(frozen=True)
+class ConformerOptions:
+    """How a SMILES becomes a conformer ensemble (a set file's [conformers]):
+    ``embed`` conformers embedded (ETKDG, seeded), cleaned by the force
+    field; two whose heavy-atom RMSD (after alignment) is below
+    ``rmsd_angstrom`` count once; those more than ``window_kcal_mol`` above
+    the lowest force-field energy are dropped; the ``keep`` lowest remain."""
+
+    keep: int = 3
+    embed: int = 30
+    rmsd_angstrom: float = 0.5
+    window_kcal_mol: float = 6.0
+    temperature_k: float = 298.15
+
+
+def conformers_from_smiles(smiles: str, options: ConformerOptions
+                           ) -> list[tuple[SmilesStructure, float]]:
+    """The conformers of ``smiles`` (see ConformerOptions), lowest force-field
+    energy first, each with that energy (kcal/mol); the same on every run
+    (seeded embedding, deterministic pruning). ValueError with a short reason
+    when it cannot be parsed or embedded."""
+    import rdkit
+    from rdkit import Chem
+    from rdkit.Chem import AllChem, Descriptors, rdMolAlign
+    from rdkit.rdBase import BlockLogs
+
+    quiet = BlockLogs()
+    mol = Chem.MolFromSmiles(smiles)
+    if mol is None or mol.GetNumAtoms() == 0:
+        raise ValueError("RDKit cannot parse it")
+    charge = Chem.GetFormalCharge(mol)
+    multiplicity = Descriptors.NumRadicalElectrons(mol) + 1
+    mol = Chem.AddHs(mol)
+    params = AllChem.ETKDGv3()
+    params.randomSeed = EMBEDDING_SEED
+    params.numThreads = 1  # the same conformers whatever the machine
+    ids = list(AllChem.EmbedMultipleConfs(mol, numConfs=options.embed, params=params))
+    if not ids:
+        raise ValueError("RDKit could not embed it in 3D")
+    if AllChem.MMFFHasAllMoleculeParams(mol):
+        force_field = "MMFF94"
+        results = AllChem.MMFFOptimizeMoleculeConfs(mol, maxIters=FORCE_FIELD_STEPS,
+                                                    numThreads=1)
+    else:
+        force_field = "UFF"
+        results = AllChem.UFFOptimizeMoleculeConfs(mol, maxIters=FORCE_FIELD_STEPS,
+                                                   numThreads=1)
+    energies = {cid: float(e) for cid, (status, e) in zip(ids, results) if status == 0}
+    if not energies:
+        raise ValueError(f"RDKit's {force_field} clean-up converged for no conformer; give an "
+                         "xyz geometry instead")
+    order = sorted(energies, key=lambda c: (round(energies[c], 6), c))
+    lowest = energies[order[0]]
+    heavy = Chem.RemoveHs(mol)
+    kept: list[int] = []
+    for cid in order:
+        if energies[cid] - lowest > options.window_kcal_mol:
+            break
+        if any(rdMolAlign.GetBestRMS(heavy, heavy, k, cid) < options.rmsd_angstrom
+               for k in kept):
+            continue
+        kept.append(cid)
+        if len(kept) == options.keep:
+            break
+    del quiet
+    symbols = tuple(a.GetSymbol() for a in mol.GetAtoms())
+    return [(SmilesStructure(symbols, tuple(tuple(float(v) for v in row)
+                                            for row in mol.GetConformer(cid).GetPositions()),
+                             int(charge), int(multiplicity), force_field, rdkit.__version__),
+             energies[cid] - lowest) for cid in kept]

@@ -68,6 +68,8 @@ class Entry:
     formula: str = ""
     model: str = ""
     failure: str = ""
+    #: A conformer ensemble: how many conformers and their weights.
+    note: str = ""
 
     def invariant(self, name: str) -> tuple[float | None, float | None]:
         if self.document is None:
@@ -156,8 +158,11 @@ def table(rows: list[Row], units: str, convention: str = "taylor", key: str | No
         columns, headers = invariant_columns(name, prop, units, convention)
         header += columns
         shown += headers
-    header += ["status", "model", "convention", "bars_clear_of_next", "reason", "caution"]
-    shown += ["status", "model", "convention", "bars clear", "reason"]
+    ensembles = any(r.entry.note for r in rows)
+    header += ["status", "model", "convention", "bars_clear_of_next"] + (
+        ["conformers"] if ensembles else []) + ["reason", "caution"]
+    shown += ["status", "model", "convention", "bars clear"] + (
+        ["conformers"] if ensembles else []) + ["reason"]
     out = []
     for r in rows:
         e = r.entry
@@ -167,8 +172,8 @@ def table(rows: list[Row], units: str, convention: str = "taylor", key: str | No
             factor = conversion(prop, units, convention)[1]
             row += [None, None] if value is None else [value * factor, error * factor]
         row += [r.status, e.model, convention,
-                None if r.bars_clear_of_next is None else r.bars_clear_of_next, r.reason,
-                RANKING_CAUTION]
+                None if r.bars_clear_of_next is None else r.bars_clear_of_next]
+        row += ([e.note] if ensembles else []) + [r.reason, RANKING_CAUTION]
         out.append(row)
     return header, out, shown
 
@@ -213,10 +218,10 @@ def write_table(rows: list[Row], units: str, key: str, out: TextIO,
 
 
 def entry_from(name: str, document: dict | None, failure: str = "", formula: str = "",
-               model: str = "") -> Entry:
+               model: str = "", note: str = "") -> Entry:
     if document is not None:
         formula, model = _formula(document), _model(document)
-    return Entry(name, document, formula, model, failure)
+    return Entry(name, document, formula, model, failure, note)
 
 
 def _scaled(values, label: str) -> tuple[float, str]:

@@ -263,3 +263,71 @@ def test_a_campaign_optimises_each_geometry_once(tmp_path):
     again = subprocess.run(command, capture_output=True, text=True, timeout=600)
     assert again.returncode == 0, again.stderr
     assert "optimising" not in again.stderr and " 0 field points computed" in again.stderr
+
+
+CONFORMER_SET = """
+[[molecule]]
+name = "aminobutadiene"
+smiles = "C=CC=CN"
+[model]
+method = "hf"
+basis = "sto-3g"
+[response]
+properties = ["dipole", "alpha"]
+[geometry]
+optimise = true
+[conformers]
+keep = 3
+"""
+
+
+def test_a_flexible_molecule_is_ranked_by_its_conformer_ensemble(tmp_path):
+    # 1-amino-1,3-butadiene: s-trans and s-cis about its single bond.
+    path = tmp_path / "set.toml"
+    path.write_text(CONFORMER_SET)
+    assert main(["screen", str(path), "--workers", "2", "--quiet",
+                 "--csv", str(tmp_path / "ranked.csv")]) == 0
+    doc = json.loads((tmp_path / "set.results" / "aminobutadiene.ensemble.json").read_text())
+    conformers = doc["conformers"]
+    assert len(conformers) >= 2
+    assert sum(c["weight"] for c in conformers) == pytest.approx(1.0, abs=1e-12)
+    # Boltzmann at 298.15 K from the model's energies: the lowest weighs most.
+    lowest = min(conformers, key=lambda c: c["energy_au"])
+    assert lowest["weight"] == max(c["weight"] for c in conformers)
+    values = [json.loads((tmp_path / "set.results" / c["result"]).read_text())
+              ["invariants"]["alpha_iso"]["value"] for c in conformers]
+    ensemble = doc["invariants"]["alpha_iso"]
+    assert min(values) <= ensemble["value"] <= max(values)
+    assert ensemble["value"] == pytest.approx(sum(c["weight"] * v
+                                                  for c, v in zip(conformers, values)))
+    with open(tmp_path / "ranked.csv") as fh:
+        row = next(csv.DictReader(fh))
+    assert row["name"] == "aminobutadiene" and row["conformers"].startswith(f"{len(values)} of")
+    assert float(row["alpha_iso_au"]) == pytest.approx(ensemble["value"])
+
+
+def test_conformers_are_the_same_in_every_process():
+    code = ("from fieldprop.inputs.structures import conformers_from_smiles, ConformerOptions; "
+            "import json; c = conformers_from_smiles('NC=CC=CC=O', ConformerOptions(keep=4)); "
+            "print(json.dumps([[s.coords_angstrom, e] for s, e in c]))")
+    runs = [json.loads(subprocess.run([sys.executable, "-c", code], capture_output=True,
+                                      text=True, check=True).stdout) for _ in range(2)]
+    assert len(runs[0]) >= 2 and runs[0] == runs[1]
+
+
+@pytest.mark.parametrize("table, words", [
+    ("[conformers]\nkeep = 1\n", ["[conformers] keep must be an integer from 2 to 20"]),
+    ("[conformers]\nseed = 3\n", ["[conformers] unknown key 'seed'"]),
+])
+def test_a_bad_conformer_table_is_one_line(tmp_path, capsys, table, words):
+    path = tmp_path / "set.toml"
+    path.write_text(CONFORMER_SET.split("[conformers]")[0] + table)
+    assert main(["screen", str(path)]) == 2
+    one_line(capsys, 2, 2, "set.toml", *words)
+
+
+def test_conformers_need_optimised_geometries(tmp_path, capsys):
+    path = tmp_path / "set.toml"
+    path.write_text(CONFORMER_SET.replace("[geometry]\noptimise = true\n", ""))
+    result = main(["screen", str(path)])
+    one_line(capsys, 2, result, "set.toml", "[conformers] needs [geometry] optimise = true")
