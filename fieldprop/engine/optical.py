@@ -113,4 +113,9 @@ def with_optical(result: RunResult, prepared: Prepared, store, executor=None) ->
     if part.excitation_energy_au is None:
         warnings = (f"{result.job.path}: no excited state with oscillator strength among the "
                     f"{optical.STATES_SEEN} lowest: no optical-frequency estimate",)
+    warnings += tuple(
+        f"{result.job.path}: the {e['process']} estimate at {e['wavelength_nm']:g} nm is "
+        f"resonant (the excitation at {optical.energy_ev(part.excitation_energy_au):.2f} eV, "
+        f"margin {optical.RESONANCE_MARGIN_EV:g} eV): no number; a two-state estimate means "
+        "nothing there" for e in part.entries if e["resonant"])
     return dataclasses.replace(result, optical=part, warnings=result.warnings + warnings)

@@ -89,6 +89,18 @@ def test_estimates_are_the_static_invariants_times_the_two_state_factors(tmp_pat
     again = tmp_path / "again.json"
     assert main(["collect", job, "--quiet", "--json", str(again)]) == 0
     assert json.loads(again.read_text())["optical_estimates"]["entries"] == est["entries"]
+    # A wavelength whose second harmonic sits on the excitation: flagged, no
+    # number, a warning; its electro-optic estimate (at w alone) still formed.
+    hartree = constants.physical_constants["Hartree energy"][0]
+    resonant = 2 * constants.h * constants.c / (w_eg * hartree) * 1e9  # 2 hbar w = w_eg
+    job = _job(tmp_path, method, f"[{resonant:.3f}]")
+    assert main(["collect", job, "--quiet", "--json", str(again)]) == 0
+    doc = json.loads(again.read_text())
+    shg, eo = doc["optical_estimates"]["entries"]
+    assert shg["process"] == "second-harmonic" and shg["resonant"] and shg["factor"] is None
+    assert not shg["invariants"] and "resonant" in shg["reason"]
+    assert not eo["resonant"] and eo["factor"] > 1.0
+    assert any("resonant" in w for w in doc["warnings"])
 
 
 def test_collect_without_the_excited_states_is_incomplete(tmp_path, capsys):
