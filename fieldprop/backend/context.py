@@ -96,6 +96,8 @@ class ModelContext:
         #: The orbital gradient from which the zero-field Newton steps stopped
         #: halving it (solver._newton; 0 where they never stalled).
         self.gradient_floor = 0.0
+        #: An AO density the zero-field SCF starts from (None: PySCF's guess).
+        self.guess = None
         if reference is not None:
             self.attach(reference)
 

@@ -464,7 +464,11 @@ def _converge(mf, context, point, scf=None) -> tuple[list[str], int, np.ndarray 
         mf.conv_tol_grad = max(target, DIIS_HANDOVER)
         mf.conv_tol = max(scf.energy_conv_tol_au, DIIS_HANDOVER ** 2)
         mf.max_cycle = min(scf.max_iterations, DIIS_HANDOVER_CYCLES)
-        mf.kernel()
+        guess = getattr(context, "guess", None)
+        if guess is not None and np.shape(guess) == np.shape(mf.get_init_guess()):
+            mf.kernel(guess)
+        else:
+            mf.kernel()
         cycles += int(getattr(mf, "cycles", 1) or 1)
         mf.conv_tol, mf.conv_tol_grad = scf.energy_conv_tol_au, target
         mf.max_cycle = scf.max_iterations

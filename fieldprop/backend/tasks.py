@@ -77,10 +77,13 @@ def _named_failure(task: PointTask, what: str, exc: Exception, start: float) -> 
                         time.perf_counter() - start)
 
 
-def reference_task(task: PointTask, threads: int = 0, check_geometry: bool = True):
+def reference_task(task: PointTask, threads: int = 0, check_geometry: bool = True,
+                   guess=None):
     """A model's zero-field point and its reference: (PointRecord,
     ZeroFieldReference), or (PointFailure, None); with its geometry check
-    unless another worker does it (``check_geometry`` False: warm_task)."""
+    unless another worker does it (``check_geometry`` False: warm_task).
+    ``guess``: an AO density to start the SCF from (a nearby geometry's: the
+    zero-point average's displaced geometries start from the minimum's)."""
     from fieldprop.backend.context import ModelContext
     from fieldprop.backend.points import compute_reference
 
@@ -89,6 +92,7 @@ def reference_task(task: PointTask, threads: int = 0, check_geometry: bool = Tru
     start = time.perf_counter()
     try:
         context = ModelContext(task.molecule, task.model, task.scf)
+        context.guess = guess
         record, reference = compute_reference(context, task, check_geometry)
     except FieldpropError as exc:
         return PointFailure(task.point, str(exc), type(exc).__name__,

@@ -166,6 +166,9 @@ class JobWork:
     #: Whether the zero-field reference checks that the geometry is a minimum
     #: (not at the zero-point average's displaced geometries, which are not).
     check_geometry: bool = True
+    #: An AO density the zero-field SCF starts from (a displaced geometry:
+    #: the minimum's); None: PySCF's guess.
+    guess: object = None
     #: {task key: converged rotation} of the points computed now.
     rotations: dict = field(default_factory=dict)
     queue: list = field(default_factory=list)
@@ -336,7 +339,8 @@ def _references(works: list[JobWork], store, executor, progress: Progress) -> No
         for work in computing:
             zero = work.prepared.tasks[0]
             pending[executor.submit(reference_task, zero, executor.threads,
-                                    zero.model_key not in checks and work.check_geometry)] = work
+                                    zero.model_key not in checks and work.check_geometry,
+                                    work.guess)] = work
         try:
             while pending:
                 for future in executor.first_done(pending):
@@ -371,6 +375,12 @@ def _references(works: list[JobWork], store, executor, progress: Progress) -> No
         except BaseException:
             executor.close(abort=True, pending=list(pending))
             raise
+
+
+def reference_first(work: JobWork, store, executor, progress: Progress | None = None) -> None:
+    """``work``'s zero-field reference now (from the store, or computed), before
+    the other jobs of a compute_jobs call that start from it."""
+    _references([work], store, executor, progress or Progress(False))
 
 
 def _lost_failure(task: PointTask, exc: BaseException) -> PointFailure:

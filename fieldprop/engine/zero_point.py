@@ -25,7 +25,7 @@ import numpy as np
 from fieldprop import errors
 from fieldprop.engine.analyse import RunResult, log_counts
 from fieldprop.engine.prepare import Prepared, prepare
-from fieldprop.engine.stages import JobWork, compute_jobs
+from fieldprop.engine.stages import JobWork, compute_jobs, reference_first
 from fieldprop.inputs.job import Atom, Job
 from fieldprop.numerics import zero_point as zp
 from fieldprop.numerics.extrapolate import ComponentStatus
@@ -292,6 +292,13 @@ def run_zero_point(work: JobWork, store, executor, progress=None) -> RunResult:
                 freqs.max(), len(zpw.geometries), " and ".join(f"+-{s:g}" for s in zp.STEPS),
                 zpw.images, todo)
     grads = gradients(prepared, zpw, store, executor)
+    # The minimum's reference first: its density starts every displaced
+    # geometry's zero-field SCF (each is the minimum moved by a fraction of
+    # its zero-point amplitude).
+    reference_first(work, store, executor, progress)
+    if work.reference is not None:
+        for w in zpw.works:
+            w.guess = work.reference.density
     compute_jobs([work] + zpw.works, store, executor, progress)
     if progress is not None:
         progress.close()
