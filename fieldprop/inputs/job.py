@@ -191,6 +191,9 @@ class ModelSpec:
     solvent: str | None = None
     solvent_epsilon: float | None = None
     solvent_model: str | None = None
+    #: The named solvent's refractive index (the local-field factors); not
+    #: part of the key.
+    solvent_refractive_index: float | None = None
 
 
 @dataclass(frozen=True)
@@ -894,26 +897,17 @@ def _parse_model(path: str, table: dict[str, Any], multiplicity: int) -> ModelSp
     if density_fit is not None and correlated:
         raise r.fail("density_fit", f"applies to hf and dft (their Coulomb and exchange "
                      f"integrals), not to {method}; remove it")
-    solvent, epsilon, solvent_model = _solvent(r, table, method)
+    solvent, epsilon, index, solvent_model = _solvent(r, table, method)
     return ModelSpec(method=method, basis=basis, reference=reference, functional=functional,
                      frozen_core=frozen_core, cartesian=cartesian, density_fit=density_fit,
-                     solvent=solvent, solvent_epsilon=epsilon, solvent_model=solvent_model)
+                     solvent=solvent, solvent_epsilon=epsilon, solvent_model=solvent_model,
+                     solvent_refractive_index=index)
 
 
 SOLVENT_MODELS = ("iefpcm", "cpcm")
 #: Short names people type for solvents of the table.
 SOLVENT_ALIASES = {"dmso": "dimethylsulfoxide", "dmf": "n,n-dimethylformamide",
                    "thf": "tetrahydrofuran", "dcm": "dichloromethane"}
-
-
-def solvent_table() -> dict[str, tuple[float, float]]:
-    """{name (lower case): (static dielectric constant, refractive index)}:
-    the Minnesota Solvent Descriptor Database as PySCF carries it
-    (pyscf.solvent.smd.solvent_db; C. P. Kelly, C. J. Cramer and D. G. Truhlar
-    and earlier editions, University of Minnesota)."""
-    from pyscf.solvent.smd import solvent_db
-
-    return {name.lower(): (float(v[5]), float(v[0])) for name, v in solvent_db.items()}
 
 
 def _solvent(r: "_Reader", table: dict[str, Any], method: str):
@@ -923,11 +917,13 @@ def _solvent(r: "_Reader", table: dict[str, Any], method: str):
         if "solvent_model" in table:
             raise r.fail("solvent_model", "is given but there is no solvent; add solvent = "
                          "\"<name>\" or solvent = { epsilon = ... }, or remove it")
-        return None, None, None
+        return None, None, None, None
     if not METHODS[method].mean_field:
         raise r.fail("solvent", f"applies to hf and dft (their continuum reaction field at "
                      f"every field point); {method} has none yet: remove it, or use one of those")
     if isinstance(given, str):
+        from fieldprop.backend.solvent import solvent_table
+
         name = SOLVENT_ALIASES.get(given.strip().lower(), given.strip().lower())
         known = solvent_table()
         if name not in known:
@@ -937,7 +933,7 @@ def _solvent(r: "_Reader", table: dict[str, Any], method: str):
                          "dimethylsulfoxide, chloroform, methanol, toluene)"
                          + (f"; near it: {', '.join(near)}" if near else "")
                          + "; or give solvent = { epsilon = ... }")
-        solvent, epsilon = name, known[name][0]
+        solvent, (epsilon, index) = name, known[name]
     elif isinstance(given, dict):
         extra = [k for k in given if k != "epsilon"]
         eps = given.get("epsilon")
@@ -945,10 +941,10 @@ def _solvent(r: "_Reader", table: dict[str, Any], method: str):
                 or not 1.0 <= eps <= 1000.0:
             raise r.fail("solvent", "as a table must be { epsilon = <static dielectric "
                          f"constant, 1 to 1000> }}, got {given!r}")
-        solvent, epsilon = None, float(eps)
+        solvent, epsilon, index = None, float(eps), None
     else:
         raise r.fail("solvent", f"must be a solvent's name or {{ epsilon = ... }}, got {given!r}")
-    return solvent, epsilon, r.string("solvent_model", "iefpcm", SOLVENT_MODELS)
+    return solvent, epsilon, index, r.string("solvent_model", "iefpcm", SOLVENT_MODELS)
 
 
 #: [response] differentiate was called ``route`` before; the old name still works

@@ -238,10 +238,10 @@ def _solvent_document(model) -> dict | None:
     factors as optional conversions."""
     if model.solvent_epsilon is None:
         return None
-    from fieldprop.inputs.job import SOLVENT_MODEL_NAMES, solvent_table
+    from fieldprop.inputs.job import SOLVENT_MODEL_NAMES
 
     eps = model.solvent_epsilon
-    index = solvent_table().get(model.solvent, (None, None))[1] if model.solvent else None
+    index = model.solvent_refractive_index
     out = {"name": model.solvent, "epsilon": eps,
            "model": SOLVENT_MODEL_NAMES[model.solvent_model],
            "source": "dielectric constants and refractive indices: the Minnesota Solvent "

@@ -158,3 +158,25 @@ def test_the_kept_integrals_and_factorisation_give_pyscf_s_numbers():
     assert np.abs(v_plain - v_kept).max() <= 1e-10 * np.abs(v_plain).max()
     x = rng.normal(size=(2, mol.nao, mol.nao))
     assert np.allclose(plain._B_dot_x(x), kept._B_dot_x(x), rtol=0, atol=1e-10)
+
+
+def test_excited_states_in_the_continuum_are_pyscf_s():
+    # PySCF's TD copies the continuum with its optical dielectric constant: the
+    # kept factorisation must be the copy's, not the ground state's.
+    from pyscf import gto, scf
+
+    from fieldprop.backend.solvent import cache
+
+    mol = gto.M(atom=WATER.replace("\n", "; "), basis="sto-3g", verbose=0)
+    energies = []
+    for kept in (False, True):
+        mf = scf.RHF(mol).PCM()
+        mf.with_solvent.eps = 78.355
+        if kept:
+            cache(mf.with_solvent)
+        mf.kernel()
+        td = mf.TDHF()
+        td.nstates, td.verbose = 3, 0
+        td.kernel()
+        energies.append(np.asarray(td.e))
+    assert np.allclose(energies[0], energies[1], rtol=0, atol=1e-10)
