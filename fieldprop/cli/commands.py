@@ -855,7 +855,7 @@ def cmd_screen(args) -> int:
     else:
         _to_stdout(lambda: ranking.write_table(rows, args.units, key, sys.stdout,
                                                args.convention))
-    bad = [r for r in rows if r.status != "ok"]
+    bad = [r for r in rows if r.status not in ("ok", "resonant")]  # resonant: no estimate, by rule
     if bad:
         raise CampaignError(f"{campaign.path}: {len(bad)} of {len(rows)} molecules without "
                             f"every number: " + "; ".join(f"{r.entry.name} ({r.status})"
@@ -880,10 +880,13 @@ def _ensemble_entry(name: str, members, options, results: Path, key: str):
         o = failed[0]
         return ranking.entry_from(name, None, f"conformer {o.candidate.conformer}: {o.failure}",
                                   _formula_text(o.candidate.job), _model_text(o.candidate.job))
+    from fieldprop.inputs.structures import symmetric_rmsd
+
+    smiles, bohr = members[0].candidate.smiles, members[0].candidate.job.molecule.bohr_angstrom
     document = ensemble_document(
         name, [(o.candidate.conformer, o.candidate.force_field_kcal_mol,
                 f"{o.candidate.name}.result.json", result_document(o.result)) for o in members],
-        options.temperature_k)
+        options.temperature_k, lambda a, b: symmetric_rmsd(smiles, a, b, bohr))
     write_json_atomic(document, path)
     kept = [c for c in document["conformers"] if c["same_minimum_as"] is None]
     value = document["invariants"].get(ranking.estimate_parts(key)[0]

@@ -27,6 +27,7 @@ from fieldprop.engine.analyse import RunResult, log_counts
 from fieldprop.engine.prepare import Prepared, prepare
 from fieldprop.engine.stages import JobWork, compute_jobs, reference_first
 from fieldprop.inputs.job import Atom, Job
+from fieldprop.inputs.molecule import build_molecule
 from fieldprop.numerics import zero_point as zp
 from fieldprop.numerics.extrapolate import ComponentStatus
 from fieldprop.numerics.tensors import Invariant, TensorResult, from_arrays, invariants
@@ -102,6 +103,10 @@ def geometries(job: Job, modes: zp.Modes, symmetry=None, masses=None) -> list[Ge
     it: engine.prepare.symmetry_decision) turns a mode into its opposite, the
     -s geometry is the +s one's image."""
     x0 = np.asarray([a.coords_bohr for a in job.molecule.atoms], dtype=float)
+    # Every geometry's dipole about the minimum's origin: an ion's dipole
+    # depends on it, and a centre moving with the nuclei would add its motion.
+    origin = tuple(float(v) for v in build_molecule(job.molecule,
+                                                    job.response.origin).origin_bohr)
     # An operation must map each nucleus onto one of the same charge and mass
     # (a single deuterium breaks the vibrations' symmetry, not the electrons').
     labels = [(a.charge, None if masses is None else round(float(m), 6))
@@ -114,7 +119,7 @@ def geometries(job: Job, modes: zp.Modes, symmetry=None, masses=None) -> list[Ge
             for sign in (1, -1):
                 coords = x0 + sign * step * modes.displacements[a]
                 label = f"mode {a + 1} at {sign * step:+g}"
-                displaced = displaced_job(job, coords, label)
+                displaced = displaced_job(job, coords, label, origin)
                 if sign < 0 and mirror is not None:
                     out.append(Geometry(a, step, sign, displaced, len(out) - 1, *mirror))
                 else:
@@ -172,13 +177,15 @@ def _image_gradient(document: dict, g: Geometry) -> dict:
     return {**document, "gradient_au": out.tolist()}
 
 
-def displaced_job(job: Job, coords_bohr, label: str) -> Job:
-    """``job`` at other nuclei (clamped, no zero-point average of its own)."""
+def displaced_job(job: Job, coords_bohr, label: str, origin_bohr=None) -> Job:
+    """``job`` at other nuclei (clamped, no zero-point average of its own),
+    its origin ``origin_bohr`` where given."""
     atoms = tuple(Atom(a.symbol, tuple(float(v) for v in xyz))
                   for a, xyz in zip(job.molecule.atoms, coords_bohr))
     molecule = dataclasses.replace(job.molecule, atoms=atoms,
                                    source=f"{job.molecule.source}, zero-point {label}")
-    response = dataclasses.replace(job.response, zero_point=False, nuclear_relaxation=False)
+    response = dataclasses.replace(job.response, zero_point=False, nuclear_relaxation=False,
+                                   **({} if origin_bohr is None else {"origin": origin_bohr}))
     return dataclasses.replace(job, molecule=molecule, response=response, relaxation=None)
 
 

@@ -110,6 +110,27 @@ def from_smiles(smiles: str) -> SmilesStructure:
                            int(charge), int(multiplicity), force_field, rdkit.__version__)
 
 
+def symmetric_rmsd(smiles: str, coords_a_bohr, coords_b_bohr, bohr_angstrom: float) -> float:
+    """RMSD (bohr) of two structures of ``smiles`` (atoms in RDKit's order
+    with explicit hydrogens, as conformers_from_smiles makes them) after the
+    best superposition over the molecule's equivalent-atom permutations
+    (RDKit's GetBestRMS; proper rotations only: mirror images stay apart)."""
+    from rdkit import Chem
+    from rdkit.Chem import rdMolAlign
+    from rdkit.Geometry import Point3D
+
+    mol = Chem.AddHs(Chem.MolFromSmiles(smiles))
+    mols = []
+    for coords in (coords_a_bohr, coords_b_bohr):
+        m = Chem.Mol(mol)
+        conf = Chem.Conformer(m.GetNumAtoms())
+        for i, (x, y, z) in enumerate(np.asarray(coords, dtype=float) * bohr_angstrom):
+            conf.SetAtomPosition(i, Point3D(float(x), float(y), float(z)))
+        m.AddConformer(conf, assignId=True)
+        mols.append(m)
+    return float(rdMolAlign.GetBestRMS(mols[0], mols[1])) / bohr_angstrom
+
+
 @dataclass(frozen=True)
 class ConformerOptions:
     """How a SMILES becomes a conformer ensemble (a set file's [conformers]):

@@ -9,7 +9,12 @@ invariant's ensemble value is sum_i w_i P_i, its bar sum_i w_i err_i (the
 conformers' numerical bars; the weights' own uncertainty, from the model's
 relative energies, is not in it). Two conformers whose optimised structures
 coincide (energies within ``SAME_ENERGY_AU`` and RMSD within
-``SAME_RMSD_BOHR`` after the best superposition) are one minimum, counted once.
+``SAME_RMSD_BOHR`` after the best superposition, equivalent atoms matched
+where the caller's RMSD does) are one minimum, counted once. The
+hyper-Rayleigh quantities, square roots of orientational averages of
+intensities, are averaged as intensities (:func:`incoherent`, and the
+depolarisation ratio as a ratio of the mixture's intensities: the
+conformers scatter incoherently); every other invariant linearly.
 
 >>> w = boltzmann_weights([0.0, 0.0], 298.15)
 >>> [round(float(x), 12) for x in w]
@@ -49,13 +54,16 @@ def superposed_rmsd(a, b) -> float:
     return float(np.sqrt(np.mean(np.sum((p @ r - q) ** 2, axis=1))))
 
 
-def duplicates(energies_au, coords_bohr) -> list[int | None]:
-    """Per conformer, the earlier conformer whose minimum it is (None: its own)."""
+def duplicates(energies_au, coords_bohr, rmsd=None) -> list[int | None]:
+    """Per conformer, the earlier conformer whose minimum it is (None: its
+    own). ``rmsd(a, b)`` (bohr): the caller's, matching equivalent atoms
+    (default :func:`superposed_rmsd`, atoms in order)."""
+    rmsd = rmsd or superposed_rmsd
     out: list[int | None] = []
     for i, (e, x) in enumerate(zip(energies_au, coords_bohr)):
         same = next((j for j in range(i) if out[j] is None
                      and abs(energies_au[j] - e) <= SAME_ENERGY_AU
-                     and superposed_rmsd(coords_bohr[j], x) <= SAME_RMSD_BOHR), None)
+                     and rmsd(coords_bohr[j], x) <= SAME_RMSD_BOHR), None)
         out.append(same)
     return out
 
@@ -64,3 +72,24 @@ def weighted(values, errors, weights) -> tuple[float, float, float, float]:
     """(sum w P, sum w err, min P, max P)."""
     v, e, w = (np.asarray(x, dtype=float) for x in (values, errors, weights))
     return float(w @ v), float(w @ e), float(v.min()), float(v.max())
+
+
+def incoherent(values, errors, weights) -> tuple[float, float, float, float]:
+    """An intensity-like quantity, P = sqrt(<beta^2>) (hyper-Rayleigh): the
+    conformers scatter incoherently, so their intensities add:
+    (sqrt(sum w P^2), its bar sum w P err / P, min P, max P)."""
+    v, e, w = (np.asarray(x, dtype=float) for x in (values, errors, weights))
+    total = float(np.sqrt(w @ (v * v)))
+    error = float(w @ (v * e)) / total if total > 0 else float(w @ e)
+    return total, error, float(v.min()), float(v.max())
+
+
+def intensity_ratio(zzz, zzz_errors, xzz, xzz_errors, weights) -> tuple[float, float]:
+    """The hyper-Rayleigh depolarisation ratio of the mixture,
+    sum w <b_ZZZ^2> / sum w <b_XZZ^2>, and its bar."""
+    a_v, a_e, b_v, b_e, w = (np.asarray(x, dtype=float)
+                             for x in (zzz, zzz_errors, xzz, xzz_errors, weights))
+    a, b = float(w @ (a_v * a_v)), float(w @ (b_v * b_v))
+    da, db = float(w @ (2 * a_v * a_e)), float(w @ (2 * b_v * b_e))
+    ratio = a / b
+    return ratio, ratio * (da / a + db / b)

@@ -317,6 +317,10 @@ def _zero_point_document(part) -> dict:
                    "invariant_contributions": part.contributions[a]}
                   for a, (f, w) in enumerate(zip(part.modes.frequencies_cm(),
                                                   part.modes.omega_au))],
+        "contributions_note": "a mode's invariant_contributions are the change of each "
+                              "invariant when that mode's correction alone is added; modes "
+                              "of one frequency (a degenerate set) share theirs "
+                              "arbitrarily, only the set's sum is meaningful",
         "leaves_out": "second order in the anharmonicity (quartic force constants, squared "
                       "cubic ones, higher property derivatives), typically a few per cent of "
                       "the correction; temperature (the ground state only); the dynamic "

@@ -10,18 +10,24 @@ from fieldprop.numerics import ensemble
 ENSEMBLE_SCHEMA = "fieldprop-ensemble-1"
 
 
+#: Invariants averaged as intensities (numerics.ensemble.incoherent).
+INCOHERENT = ("beta_hrs", "beta_hrs_zzz", "beta_hrs_xzz")
+RATIO = "beta_hrs_depolarisation_ratio"
+
+
 def ensemble_document(name: str, conformers: list[tuple[int, float | None, str, dict]],
-                      temperature_k: float) -> dict:
+                      temperature_k: float, rmsd=None) -> dict:
     """``conformers``: (number, force-field energy above the lowest in
     kcal/mol, result file name, result document) of every conformer, all
     computed. Invariants present in every conformer with a number are
-    weighted; others have none (and say why)."""
+    weighted; others have none (and say why). ``rmsd``: how two optimised
+    structures are compared (numerics.ensemble.duplicates)."""
     from scipy import constants
 
     energies = [doc["energy_au"] for _, _, _, doc in conformers]
     coords = [[a["coords_bohr"] for a in doc["geometry_computed_bohr"]]
               for _, _, _, doc in conformers]
-    same = ensemble.duplicates(energies, coords)
+    same = ensemble.duplicates(energies, coords, rmsd)
     distinct = [i for i, s in enumerate(same) if s is None]
     weights = ensemble.boltzmann_weights([energies[i] for i in distinct], temperature_k)
     weight_of = dict(zip(distinct, weights))
@@ -37,7 +43,19 @@ def ensemble_document(name: str, conformers: list[tuple[int, float | None, str, 
             invariants[key] = {"value": None, "error": None,
                                "reason": "a conformer has no number for it"}
             continue
-        value, error, low, high = ensemble.weighted(values, errors, weights)
+        if key == RATIO:
+            parts = [[(conformers[i][3]["invariants"].get(k) or {}).get(x) for i in distinct]
+                     for k in ("beta_hrs_zzz", "beta_hrs_xzz") for x in ("value", "error")]
+            if any(v is None for p in parts for v in p):
+                invariants[key] = {"value": None, "error": None,
+                                   "reason": "a conformer has no hyper-Rayleigh intensities"}
+                continue
+            value, error = ensemble.intensity_ratio(*parts, weights)
+            invariants[key] = {"value": value, "error": error, "min": min(values),
+                               "max": max(values)}
+            continue
+        average = ensemble.incoherent if key in INCOHERENT else ensemble.weighted
+        value, error, low, high = average(values, errors, weights)
         invariants[key] = {"value": value, "error": error, "min": low, "max": high}
     return {
         "schema": ENSEMBLE_SCHEMA,
@@ -49,8 +67,10 @@ def ensemble_document(name: str, conformers: list[tuple[int, float | None, str, 
         "temperature_k": temperature_k,
         "method": "Boltzmann weights from the model's zero-field energies at each conformer's "
                   "own optimised minimum; invariants weighted (the tensors' orientations "
-                  "differ between conformers: tensors are not averaged); bars: the "
-                  "conformers' numerical bars weighted, without the weights' uncertainty",
+                  "differ between conformers: tensors are not averaged), the hyper-Rayleigh "
+                  "ones as intensities (sqrt(sum w beta_hrs^2); the depolarisation ratio as "
+                  "the mixture's intensity ratio), the others linearly; bars: the "
+                  "conformers' numerical bars carried, without the weights' uncertainty",
         "conformers": [{"conformer": number, "result": file, "energy_au": energies[i],
                         "relative_kcal_mol": (energies[i] - lowest) * kcal,
                         "force_field_kcal_mol": ff,

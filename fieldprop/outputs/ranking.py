@@ -71,6 +71,16 @@ class Entry:
     #: A conformer ensemble: how many conformers and their weights.
     note: str = ""
 
+    def resonant(self, name: str) -> bool:
+        """Whether the optical estimate ``name`` is resonant for this molecule."""
+        parts = estimate_parts(name)
+        if self.document is None or parts is None:
+            return False
+        _, process, wavelength = parts
+        entries = (self.document.get("optical_estimates") or {}).get("entries") or ()
+        return any(e.get("resonant") for e in entries if e.get("process") == process
+                   and abs(float(e.get("wavelength_nm", -1)) - wavelength) < 1e-9)
+
     def invariant(self, name: str) -> tuple[float | None, float | None]:
         if self.document is None:
             return None, None
@@ -120,7 +130,10 @@ def rank(entries: list[Entry], key: str) -> list[Row]:
         rows.append(Row(n + 1, e, status, reason, separated))
     for e, _, _ in sorted(rest, key=lambda x: x[0].name):
         status, reason = _status(e)
-        if status == "ok":
+        if status == "ok" and e.resonant(key):
+            status, reason = "resonant", (f"{key}: the two-state estimate is resonant there "
+                                          "(no number; see its result file)")
+        elif status == "ok":
             status, reason = "unranked", f"{key}: no number (see its result file)"
         rows.append(Row(None, e, status, reason, None))
     return rows

@@ -100,7 +100,7 @@ def test_a_screen_ranks_by_an_optical_estimate():
     assert float(table[0]["beta_hrs_shg_1064nm_au"]) == pytest.approx(135.0)
     # A resonant estimate has no number: the molecule is not ranked by it.
     rows = ranking.rank([a, b], "beta_hrs_eo_1064nm")
-    assert all(r.rank is None for r in rows)
+    assert all(r.rank is None and r.status == "resonant" for r in rows)
     assert ranking.estimate_parts("beta_hrs_eo_1550nm") == ("beta_hrs", "electro-optic", 1550.0)
     assert ranking.estimate_parts("alpha_iso_shg_1064nm") is None
     assert not ranking.valid_key("beta_hrs_shg_nm")
