@@ -371,8 +371,11 @@ def _write_relaxation(result: RunResult, out: TextIO, units: str,
                          _pair_text(cn.estimate, cn.stable, factor, significant),
                          _pair_text(ct.estimate, ct.stable, factor, significant)])
         out.write(f"{name} ({label}; components not zero by symmetry)\n")
+        # With a zero-point part, "total" is that table's (all parts): here
+        # the relaxed nuclei's own.
+        relaxed = "total" if result.zero_point is None else "with relaxed nuclei"
         out.write(tabulate(rows, headers=["component", "electronic", "nuclear relaxation",
-                                          "total"], disable_numparse=True) + "\n\n")
+                                          relaxed], disable_numparse=True) + "\n\n")
     if frame.get("double_harmonic_alpha_au") and "alpha" in part.nuclear:
         a = np.asarray(frame["double_harmonic_alpha_au"])
         out.write("  double-harmonic alpha^nr = sum over modes (dmu/dQ)^2/omega^2 (zero-field "
@@ -393,11 +396,14 @@ def _write_relaxation(result: RunResult, out: TextIO, units: str,
                      if inv.value_au is not None else "unstable"])
     if rows:
         out.write(f"invariants (au, {convention} convention): clamped and relaxed nuclei\n")
-        out.write(tabulate(rows, headers=["invariant", "electronic", "total"],
+        last = "total" if result.zero_point is None else "with relaxed nuclei"
+        out.write(tabulate(rows, headers=["invariant", "electronic", last],
                            disable_numparse=True) + "\n")
-        out.write("  Static limit only: no zero-point vibrational averaging; vibrational "
-                  "contributions depend strongly on the model, and the optical (high-frequency) "
-                  "limit differs.\n\n")
+        averaged = ("no zero-point vibrational averaging here (zero_point = true adds it)"
+                    if result.zero_point is None else "the zero-point correction follows")
+        out.write(_wrapped(f"  Static limit only: {averaged}; vibrational contributions "
+                           "depend strongly on the model, and the optical (high-frequency) "
+                           "limit differs.") + "\n\n")
 
 
 #: The invariants the optical estimates' table shows (the result JSON has
