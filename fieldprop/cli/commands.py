@@ -845,8 +845,10 @@ def cmd_screen(args) -> int:
         logger.info("summary picture written to %s", png)
     elif png.exists():
         png.unlink()  # an earlier campaign's picture: nothing is ranked now
-    logger.info("%d molecules: %d done, %d failed; %d field points computed, %d reused; "
-                "%d SCF cycles; %.1f s; results in %s", counts.molecules,
+    what = (f"{counts.molecules} structures ({len(entries)} molecules, their conformers)"
+            if groups else f"{counts.molecules} molecules")
+    logger.info("%s: %d done, %d failed; %d field points computed, %d reused; "
+                "%d SCF cycles; %.1f s; results in %s", what,
                 counts.molecules - counts.failed, counts.failed, counts.computed, counts.reused,
                 counts.scf_cycles, counts.wall_time_s, results)
     if args.csv is not None and is_stdout(args.csv):

@@ -208,25 +208,43 @@ def write_csv_file(rows: list[Row], units: str, path: Path, convention: str = "t
         write_csv(rows, units, out, convention, key)
 
 
+#: The invariants the ranked text table shows beside the ranking key (the CSV
+#: has every one): a table a terminal can show.
+TABLE_INVARIANTS = ("alpha_iso", "beta_hrs", "beta_vector_norm", "gamma_parallel")
+
+
 def write_table(rows: list[Row], units: str, key: str, out: TextIO,
                 convention: str = "taylor") -> None:
-    header, values, shown = table(rows, units, convention, key)
+    """The ranked table for a terminal: the ranking key and the headline
+    invariants (TABLE_INVARIANTS) as value +- error, status, model, whether
+    the bars clear the next molecule's, the conformers of an ensemble, the
+    reason; every invariant is in the CSV."""
+    key = resolve_key(key)
+    present = {n for n, _ in _present([r.entry for r in rows])}
+    names = [key] + [n for n in TABLE_INVARIANTS if n in present and n != key]
+    ensembles = any(r.entry.note for r in rows)
+    headers = ["rank", "name", "formula"]
+    factors = []
+    for name in names:
+        label, factor = conversion(property_of(name), units, convention)
+        headers.append(f"{name} ({label})" if label else name)
+        factors.append(factor)
+    headers += ["status", "model", "bars clear"] + (["conformers"] if ensembles else []) + [
+        "reason"]
     text = []
-    for row in values:
-        cells = []
-        for h, v in zip(header[:len(shown)], row):  # the caution goes under the table
-            if v is None:
-                cells.append("-")
-            elif isinstance(v, float):
-                cells.append(f"{v:.4g}" if "_error_" in h else f"{v:.6g}")
-            elif isinstance(v, bool):
-                cells.append("yes" if v else "NO (overlaps next)")
-            else:
-                cells.append(str(v)[:60])
+    for r in rows:
+        e = r.entry
+        cells = ["-" if r.rank is None else str(r.rank), e.name, e.formula]
+        for name, factor in zip(names, factors):
+            value, error = e.invariant(name)
+            cells.append("-" if value is None else f"{value * factor:.6g} +- {error * factor:.2g}")
+        cells += [r.status, e.model, "-" if r.bars_clear_of_next is None else
+                  "yes" if r.bars_clear_of_next else "NO (overlaps next)"]
+        cells += ([e.note] if ensembles else []) + [r.reason[:60]]
         text.append(cells)
-    out.write(f"ranked by |{resolve_key(key)}|, best first; {convention} convention; error "
-              "bars are estimates of the numerical differentiation only\n")
-    out.write(tabulate(text, headers=shown, disable_numparse=True) + "\n")
+    out.write(f"ranked by |{key}|, best first; {convention} convention; error bars are "
+              "estimates of the numerical differentiation only; every invariant: --csv\n")
+    out.write(tabulate(text, headers=headers, disable_numparse=True) + "\n")
     out.write(f"caution: {RANKING_CAUTION}\n")
 
 
