@@ -195,6 +195,17 @@ def optimise_task(job, threads: int = 0):
 
 
 
+def _task_failure(label: str, what: str, exc: Exception) -> tuple[str, str]:
+    """(reason, kind) of a plain task's exception: a FieldpropError as it
+    says, anything else named as a failure inside the backend."""
+    if isinstance(exc, FieldpropError):
+        return f"{label}: {exc}", type(exc).__name__
+    logger.debug("%s: %s", label, what, exc_info=True)
+    text = " ".join(str(exc).split())[:300] or "no message"
+    return (f"{label}: {what} failed inside the backend ({type(exc).__name__}: {text})",
+            BackendError.__name__)
+
+
 def gradient_task(molecule, model, scf, label: str, threads: int = 0):
     """Energy and nuclear gradient at zero field of ``molecule`` as it stands
     (a geometry of the zero-point average): ({"energy_au", "gradient_au",
@@ -209,12 +220,8 @@ def gradient_task(molecule, model, scf, label: str, threads: int = 0):
     try:
         evaluate = StructureEvaluator(molecule, model, scf, (0.0, 0.0, 0.0), label=label)
         evaluation = evaluate(np.asarray(molecule.coords_bohr, dtype=float))
-    except FieldpropError as exc:
-        return None, (f"{label}: {exc}", type(exc).__name__)
     except Exception as exc:  # noqa: BLE001 - named, never a traceback
-        text = " ".join(str(exc).split())[:300] or "no message"
-        return None, (f"{label}: the nuclear gradient failed inside the backend "
-                      f"({type(exc).__name__}: {text})", BackendError.__name__)
+        return None, _task_failure(label, "the nuclear gradient", exc)
     return {"energy_au": float(evaluation.energy_au),
             "gradient_au": [[float(v) for v in row] for row in evaluation.gradient],
             "scf_cycles": evaluate.cycles,
@@ -256,12 +263,8 @@ def excitation_task(molecule, model, scf, states: int, label: str, threads: int 
                           "estimate is formed", "ScfNotConvergedError")
         strengths = td.oscillator_strength(gauge="length")
         dipoles = td.transition_dipole()
-    except FieldpropError as exc:
-        return None, (f"{label}: {exc}", type(exc).__name__)
     except Exception as exc:  # noqa: BLE001 - named, never a traceback
-        text = " ".join(str(exc).split())[:300] or "no message"
-        return None, (f"{label}: the excited states failed inside the backend "
-                      f"({type(exc).__name__}: {text})", BackendError.__name__)
+        return None, _task_failure(label, "the excited states", exc)
     method = "TDHF" if model.method == "hf" else f"TDDFT ({model.functional})"
     return {"method": f"{method}, full linear response (not Tamm-Dancoff), zero field",
             "states": [{"energy_au": float(e), "oscillator_strength": float(f),

@@ -421,13 +421,15 @@ def _zero_point_count(job):
     import numpy as np
 
     from fieldprop.engine.prepare import make_plan
+    from fieldprop.inputs.atomic_weights import ATOMIC_WEIGHTS
     from fieldprop.numerics import zero_point as zp
+    from fieldprop.numerics.relaxation import eckart_basis
 
-    atoms = [np.asarray(a.coords_bohr) for a in job.molecule.atoms]
-    axis = atoms[1] - atoms[0]
-    linear = all(np.linalg.norm(np.cross(axis, x - atoms[0])) < 1e-6 * np.linalg.norm(axis)
-                 * max(1.0, np.linalg.norm(x - atoms[0])) for x in atoms[2:])
-    modes = 3 * len(atoms) - (5 if linear else 6)
+    # The vibrations as the frame counts them (3N - 6, 3N - 5 linear); the
+    # masses do not change their number.
+    modes = eckart_basis(np.array([a.coords_bohr for a in job.molecule.atoms]),
+                         np.array([ATOMIC_WEIGHTS[a.charge] for a in job.molecule.atoms])
+                         ).shape[1]
     geometries = modes * 2 * len(zp.STEPS)
     ladder = len(make_plan(job, None, None).points)
     logger.info("%s: [response] zero_point: %d mode%s, so %d displaced geometries, each a job "

@@ -63,23 +63,31 @@ class SmilesStructure:
         return text, "" if group is None else group.name
 
 
-def from_smiles(smiles: str) -> SmilesStructure:
-    """The 3D structure of ``smiles``; ValueError with a short reason when it
-    cannot be parsed or embedded."""
-    import rdkit
+def _embedding(smiles: str):
+    """(molecule with explicit hydrogens, charge, multiplicity, seeded ETKDG
+    parameters) of ``smiles``; ValueError where RDKit cannot parse it."""
     from rdkit import Chem
     from rdkit.Chem import AllChem, Descriptors
-    from rdkit.rdBase import BlockLogs
 
-    quiet = BlockLogs()  # RDKit's own messages, while it lives: ours is the one line
     mol = Chem.MolFromSmiles(smiles)
     if mol is None or mol.GetNumAtoms() == 0:
         raise ValueError("RDKit cannot parse it")
     charge = Chem.GetFormalCharge(mol)
     multiplicity = Descriptors.NumRadicalElectrons(mol) + 1
-    mol = Chem.AddHs(mol)
     params = AllChem.ETKDGv3()
     params.randomSeed = EMBEDDING_SEED
+    return Chem.AddHs(mol), charge, multiplicity, params
+
+
+def from_smiles(smiles: str) -> SmilesStructure:
+    """The 3D structure of ``smiles``; ValueError with a short reason when it
+    cannot be parsed or embedded."""
+    import rdkit
+    from rdkit.Chem import AllChem
+    from rdkit.rdBase import BlockLogs
+
+    quiet = BlockLogs()  # RDKit's own messages, while it lives: ours is the one line
+    mol, charge, multiplicity, params = _embedding(smiles)
     if AllChem.EmbedMolecule(mol, params) != 0:
         params.useRandomCoords = True  # RDKit's advice for hard cases; still seeded
         if AllChem.EmbedMolecule(mol, params) != 0:
@@ -154,18 +162,11 @@ def conformers_from_smiles(smiles: str, options: ConformerOptions
     when it cannot be parsed or embedded."""
     import rdkit
     from rdkit import Chem
-    from rdkit.Chem import AllChem, Descriptors, rdMolAlign
+    from rdkit.Chem import AllChem, rdMolAlign
     from rdkit.rdBase import BlockLogs
 
     quiet = BlockLogs()
-    mol = Chem.MolFromSmiles(smiles)
-    if mol is None or mol.GetNumAtoms() == 0:
-        raise ValueError("RDKit cannot parse it")
-    charge = Chem.GetFormalCharge(mol)
-    multiplicity = Descriptors.NumRadicalElectrons(mol) + 1
-    mol = Chem.AddHs(mol)
-    params = AllChem.ETKDGv3()
-    params.randomSeed = EMBEDDING_SEED
+    mol, charge, multiplicity, params = _embedding(smiles)
     params.numThreads = 1  # the same conformers whatever the machine
     ids = list(AllChem.EmbedMultipleConfs(mol, numConfs=options.embed, params=params))
     if not ids:
