@@ -434,6 +434,9 @@ def _next_stage(work: JobWork, store, progress: Progress, on_finished) -> None:
                     "floor)" if tighter else "")
     stage = [t for t in work.stage_tasks() if not t.is_zero_field or t.tightening]
     if work.only is None and all(t.relax is None for t in stage):
+        # Points already found come first: a point the adaptive window adds
+        # inside them (a smaller step) starts from them.
+        stage = sorted(stage, key=lambda t: t.key not in work.found)
         order = predecessors(stage)
         work.before = {t.key: tuple(stage[j].key for j in order[i])
                        for i, t in enumerate(stage)}

@@ -31,7 +31,7 @@ from concurrent.futures.process import BrokenProcessPool
 import numpy as np
 
 from fieldprop.errors import InputError
-from fieldprop.points.records import MAX_LINE_POINTS
+from fieldprop.points.records import MAX_LINE_POINTS, line_preference
 
 logger = logging.getLogger(__name__)
 
@@ -207,10 +207,11 @@ def predecessors(tasks) -> dict[int, tuple[int, ...]]:
     """For each of ``tasks`` (by position), the positions of the tasks whose
     converged orbitals start it best (backend.solver._start_orbitals): those
     on the same line through zero field that come before it in the plan, the
-    opposite field and, of the others nearer zero field (either side),
-    MAX_LINE_POINTS, the farthest out first; none for a point that starts
-    from the zero-field orbitals turned by their linear response. A point's
-    predecessors precede it in the plan, so the order is acyclic."""
+    opposite field and, of the others (either side, nearer zero field or
+    farther out), MAX_LINE_POINTS in the order of records.line_preference;
+    none for a point that starts from the zero-field orbitals turned by their
+    linear response. A point's predecessors precede it in the plan, so the
+    order is acyclic."""
     tasks = list(tasks)
     lines: dict[tuple, dict[float, int]] = {}  # direction -> {signed position: index}
     where: dict[int, tuple[tuple, float]] = {}
@@ -227,8 +228,8 @@ def predecessors(tasks) -> dict[int, tuple[int, ...]]:
     for i, (direction, p) in where.items():
         on_line = lines[direction]
         partner = on_line.get(-p)
-        inner = sorted((q for q in on_line if abs(q) < abs(p) and on_line[q] < i),
-                       key=lambda q: (-abs(q), q * p))[:MAX_LINE_POINTS]
+        others = sorted((q for q in on_line if abs(q) != abs(p) and on_line[q] < i),
+                        key=lambda q: line_preference(q / p))[:MAX_LINE_POINTS]
         mirror = (partner,) if partner is not None and partner < i else ()
-        out[i] = mirror + tuple(on_line[q] for q in inner)
+        out[i] = mirror + tuple(on_line[q] for q in others)
     return out

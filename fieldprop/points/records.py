@@ -10,6 +10,7 @@ computed, with the reason.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -38,10 +39,22 @@ LINE_START = "line_start"
 REFERENCE_START = "reference_start"
 FIELD_STARTS = (RESPONSE_START, MIRROR_START, LINE_START, REFERENCE_START)
 #: Solved points on a field point's line (besides the one at the opposite
-#: field) that its start uses at most, those farthest from zero field first:
+#: field) that its start uses at most, in the order of :func:`line_preference`:
 #: the start's polynomial (backend.solver._start_orbitals) and the points a
 #: point waits for (points.executors.predecessors) follow this one number.
 MAX_LINE_POINTS = 4
+
+
+def line_preference(t: float) -> tuple[float, float, float]:
+    """Sort key of a solved point at t F (t != 0, 1, -1) for the start of the
+    point F on its line: nearest to |t| = 1 on a log scale first (inside,
+    ``|t| < 1``, the farthest from zero field; outside, the nearest), the one
+    farther out at equal distance (interpolation between it and zero field
+    rather than extrapolation), the opposite side first at equal size. A point
+    that the adaptive window adds inside points already solved (a smaller
+    step) so starts from the polynomial through them, an interpolation,
+    instead of from the linear response alone."""
+    return (abs(math.log(abs(t))), -abs(t), t)
 DIIS = "diis"
 ORIENTATION = "orientation"
 NEWTON = "newton"

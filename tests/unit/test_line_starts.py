@@ -12,7 +12,7 @@ from hypothesis import strategies as st
 from fieldprop.backend.solver import OWN_LINEAR_TERM, _line_weights
 from fieldprop.inputs.job import SCALED_TARGET_CEILING, ScfSpec, scaled_target_power
 from fieldprop.points.executors import predecessors
-from fieldprop.points.records import MAX_LINE_POINTS
+from fieldprop.points.records import MAX_LINE_POINTS, line_preference
 
 
 def _extrapolated(t, values, linear, own):
@@ -87,6 +87,33 @@ def test_predecessors_are_the_opposite_point_and_the_farthest_inner_points():
         for j in pred:
             g = np.array(fields[j], dtype=float)
             assert abs(abs(f @ g) - np.linalg.norm(f) * np.linalg.norm(g)) < 1e-15
+
+
+def test_a_point_inside_solved_points_waits_for_the_nearest_of_them():
+    """The adaptive window adds a smaller step after the larger ones are
+    found (they come first in the stage: engine.stages.settle): the new
+    point's predecessors are its mirror, if it comes first, and the solved
+    points nearest to it on a log scale, outside it, the nearer side first."""
+    h = 0.001
+    fields = [(0, 0, 0)]
+    for level in (2, 4, 8):
+        fields += [(-level * h, 0, 0), (level * h, 0, 0)]
+    fields += [(-h, 0, 0), (h, 0, 0)]
+    tasks = [_task(i, f) for i, f in enumerate(fields)]
+    before = predecessors(tasks)
+    at = {f: i for i, f in enumerate(fields)}
+    # -h: +-2h (log distance ln 2), then +-4h, the opposite side first at
+    # equal size (as for inner points); +h: its mirror -h first.
+    assert before[at[(-h, 0, 0)]] == tuple(
+        at[f] for f in [(2 * h, 0, 0), (-2 * h, 0, 0), (4 * h, 0, 0), (-4 * h, 0, 0)])
+    assert before[at[(h, 0, 0)]] == (at[(-h, 0, 0)],) + tuple(
+        at[f] for f in [(-2 * h, 0, 0), (2 * h, 0, 0), (-4 * h, 0, 0), (4 * h, 0, 0)])
+    # Inside points keep their old order: farthest out first, the far side first.
+    assert line_preference(0.5) < line_preference(0.25)
+    assert line_preference(-0.5) < line_preference(0.5)
+    # Outside, the nearest first; at equal log distance the outer one.
+    assert line_preference(2.0) < line_preference(4.0)
+    assert line_preference(2.0) < line_preference(0.5)
 
 
 def test_targets_scale_with_the_field_by_the_noise_power_of_the_route():
