@@ -96,6 +96,10 @@ class ModelContext:
         #: The orbital gradient from which the zero-field Newton steps stopped
         #: halving it (solver._newton; 0 where they never stalled).
         self.gradient_floor = 0.0
+        #: The zero field's Newton solves (orbitals, occupations, their
+        #: (direction, product) pairs): they deflate its response solves
+        #: (response.zero_field_response) and join the points' subspace.
+        self.newton_pairs: list = []
         #: An AO density the zero-field SCF starts from (None: PySCF's guess).
         self.guess = None
         if reference is not None:

@@ -48,20 +48,37 @@ def zero_field_response(mf, context):
     (3, n), the ResponseSubspace of their solves (None without one) and the
     Hessian products spent. The Newton steps' response function serves
     (context.response: for DFT a coarse-grid kernel): the rotations only start
-    the points, and the subspace only preconditions their steps."""
+    the points, and the subspace only preconditions their steps.
+
+    The zero field's own Newton solves, kept in the context
+    (ModelContext.newton_pairs; not for a reference read from a store),
+    deflate the first solve and join the subspace; each solve is deflated by
+    those before it. Measured on a 22-atom push-pull polyene at HF/6-31G: 31
+    products instead of 38, and 430 cycles over the 46 field points instead
+    of 441 (without the Newton directions in the points' subspace, whose own
+    solves then keep fewer: 624)."""
     hessian = _orbital_hessian(mf, context.response, context.constraints)
+    directions, products = [], []
+    if not context.constraints:
+        for c, occ, pairs in context.newton_pairs:
+            mapped = ResponseSubspace.from_pairs(c, occ, pairs).mapped(hessian, context.overlap)
+            if mapped is not None:
+                directions.append(mapped[0])
+                products.append(mapped[1])
     pairs, rotations = [], []
     for j in range(3):
-        # Each solve is deflated by the directions of those before it (the
-        # same Hessian: exact products).
-        earlier = ResponseSubspace.from_pairs(mf.mo_coeff, mf.mo_occ, pairs)
+        before = directions + [np.array([p for p, _ in pairs])] if pairs else directions
+        after = products + [np.array([q for _, q in pairs])] if pairs else products
         rotations.append(hessian.solve(-hessian.vo(context.r[j]), START_RTOL,
                                        "zero-field response", keep=pairs,
-                                       subspace=None if earlier is None else
-                                       (earlier.directions, earlier.products)))
-    rotations = np.array(rotations)
-    return rotations, ResponseSubspace.from_pairs(mf.mo_coeff, mf.mo_occ, pairs), \
-        hessian.products
+                                       subspace=(np.vstack(before), np.vstack(after))
+                                       if before else None))
+    if pairs:
+        directions.append(np.array([p for p, _ in pairs]))
+        products.append(np.array([q for _, q in pairs]))
+    subspace = (ResponseSubspace(mf.mo_coeff, mf.mo_occ, np.vstack(directions),
+                                 np.vstack(products)) if directions else None)
+    return np.array(rotations), subspace, hessian.products
 
 
 def analytic_polarizability(mf, r, constraints=(), subspace=None) -> np.ndarray:

@@ -196,10 +196,13 @@ def _newton(mf, context, c, occ, target: float, constraints=(),
         # a share of the target.
         rtol = float(np.clip(max(NEWTON_TARGET_SHARE * target / g,
                                  NEWTON_RTOL_PER_GRADIENT * g), *NEWTON_RTOL_BOUNDS))
+        kept = [] if context.reference is None else None
         try:
             x = hessian.solve(-hessian.vo(fock), rtol, "Newton step",
                               subspace=_deflation(context, hessian, constraints),
-                              verify=False)
+                              keep=kept, verify=False)
+            if kept and not constraints:
+                context.newton_pairs.append((c, occ, kept))
         except ScfNotConvergedError:
             work += hessian.products
             break  # leave it to the ladder
@@ -464,6 +467,7 @@ def _converge(mf, context, point, scf=None) -> tuple[list[str], int, np.ndarray 
     newton_ok = scf.solver == "newton" and _has_hessian(mf)
     constraints = context.constraints
     if newton_ok and reference is None:
+        context.newton_pairs = []
         attempts.append(DIIS)
         mf.conv_tol_grad = max(target, DIIS_HANDOVER)
         mf.conv_tol = max(scf.energy_conv_tol_au, DIIS_HANDOVER ** 2)

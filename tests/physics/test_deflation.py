@@ -127,14 +127,26 @@ def test_the_subspace_turned_into_a_field_points_orbitals_solves_its_newton_step
 
 def test_a_reference_read_from_a_store_solves_its_subspace_again(tmp_path):
     """The store keeps no subspace: a process that reads the reference back
-    solves the zero-field response again, from the same orbitals."""
+    solves the zero-field response again, from the same orbitals (without the
+    zero field's Newton directions, which only the process that converged it
+    has: the same solves as the reference's own without them)."""
+    from fieldprop.backend.response import zero_field_response
+
     context, prepared = _context_with_reference(_water_job(tmp_path))
     zero = prepared.tasks[0]
     stored = reference_from_bytes(reference_to_bytes(context.reference))
     assert stored.response_subspace is None
     assert stored.gradient_floor == context.reference.gradient_floor
     other = backend_context.ModelContext(zero.molecule, zero.model, zero.scf, stored)
-    again, own = other.subspace, context.subspace
+    with_newton = context.subspace
+    assert context.newton_pairs, "the zero field's Newton solves are kept"
+    context.newton_pairs = []
+    mf = context.mean_field((0.0, 0.0, 0.0))
+    mf.mo_coeff, mf.mo_occ = stored.mo_coeff, stored.mo_occ
+    mf.mo_energy = backend_context._orbital_energies(mf)
+    own = zero_field_response(mf, context)[1]
+    again = other.subspace
+    assert with_newton.directions.shape[0] > own.directions.shape[0]
     assert again.directions.shape == own.directions.shape
     # The first direction (the preconditioned right-hand side) is the same;
     # later ones follow the orbital energies' last digits (the reference's own
