@@ -209,6 +209,35 @@ def test_an_exception_inside_pyscf_fails_that_point_by_name_without_a_traceback(
     assert stored.count("failed") == 1 and stored.count("stored") == len(stored) - 1
 
 
+def _reference_context(job):
+    """A model context with the zero-field reference of ``job`` computed, and
+    its zero-field task."""
+    zero = next(t for t in prepare(job).tasks if t.is_zero_field)
+    context = backend_context.ModelContext(zero.molecule, zero.model, zero.scf)
+    backend_points.compute_reference(context, zero)
+    return context, zero
+
+
+def _start_gradient(context, field):
+    """The orbital gradient of the start a point at ``field`` would take now,
+    and the start's name."""
+    c, how = backend_solver._start_orbitals(context, field)
+    mf = context.mean_field(field)
+    occ = context.reference.mo_occ
+    fock = mf.get_fock(dm=mf.make_rdm1(c, occ))
+    return backend_solver._gradient_norm(mf, fock, (), c, occ), how
+
+
+def _solve(context, zero, field, index):
+    """Compute the point at ``field`` in ``context`` (its rotation is kept as a start)."""
+    import dataclasses
+
+    from fieldprop.numerics.plan import FieldPoint
+
+    task = dataclasses.replace(zero, point=FieldPoint(index, (9, 9, 9), 0, tuple(field)))
+    return backend_points.compute_point(context, task)
+
+
 @pytest.mark.parametrize("reference", ["closed", "restricted-open"])
 def test_mirror_and_line_starts_are_second_order(tmp_path, reference):
     """After the point at -F is solved, the start at +F (mirror) is exact to
@@ -221,24 +250,16 @@ def test_mirror_and_line_starts_are_second_order(tmp_path, reference):
     line start at 2a to 0.016 (water) and 0.011 (NH2) of the even term's
     alone, and the mirror start at -2a to 0.007 and 0.003 of the plain
     mirror's."""
-    from fieldprop.numerics.plan import FieldPoint
 
     job = (_job(tmp_path, WATER, 'method = "hf"\n        basis = "6-31g*"')
            if reference == "closed" else
            _job(tmp_path, nh2_geometry(), 'method = "hf"\n        basis = "6-31g*"\n'
                 '        reference = "restricted"', multiplicity=2))
-    prepared = prepare(job)
-    zero = next(t for t in prepared.tasks if t.is_zero_field)
-    context = backend_context.ModelContext(zero.molecule, zero.model, zero.scf)
-    backend_points.compute_reference(context, zero)
+    context, zero = _reference_context(job)
     direction = np.array([0.3, -0.5, 0.8]) / np.linalg.norm([0.3, -0.5, 0.8])
 
     def start_gradient(field):
-        c, how = backend_solver._start_orbitals(context, field)
-        mf = context.mean_field(field)
-        occ = context.reference.mo_occ
-        fock = mf.get_fock(dm=mf.make_rdm1(c, occ))
-        return backend_solver._gradient_norm(mf, fock, (), c, occ), how
+        return _start_gradient(context, field)
 
     def rotated_gradient(field, kappa):
         ref = context.reference
@@ -248,10 +269,7 @@ def test_mirror_and_line_starts_are_second_order(tmp_path, reference):
         return backend_solver._gradient_norm(mf, fock, (), c, ref.mo_occ)
 
     def solve(field, index):
-        import dataclasses
-
-        task = dataclasses.replace(zero, point=FieldPoint(index, (9, 9, 9), 0, tuple(field)))
-        return backend_points.compute_point(context, task)
+        return _solve(context, zero, field, index)
 
     h = 0.004
     g_response, how = start_gradient(h * direction)
@@ -287,30 +305,15 @@ def test_a_point_inside_solved_points_starts_from_their_interpolation(tmp_path):
     field, an interpolation: far closer than the response start (water
     HF/6-31G* at 0.002 au from +-0.004 and +-0.008 au: measured 9e-11 against
     1.5e-5, 6e-6 of the response start's gradient)."""
-    from fieldprop.numerics.plan import FieldPoint
-    import dataclasses
-
-    job = _job(tmp_path, WATER, 'method = "hf"\n        basis = "6-31g*"')
-    zero = next(t for t in prepare(job).tasks if t.is_zero_field)
-    context = backend_context.ModelContext(zero.molecule, zero.model, zero.scf)
-    backend_points.compute_reference(context, zero)
+    context, zero = _reference_context(_job(tmp_path, WATER,
+                                            'method = "hf"\n        basis = "6-31g*"'))
     direction = np.array([0.3, -0.5, 0.8]) / np.linalg.norm([0.3, -0.5, 0.8])
-
-    def start_gradient(field):
-        c, how = backend_solver._start_orbitals(context, field)
-        mf = context.mean_field(field)
-        occ = context.reference.mo_occ
-        fock = mf.get_fock(dm=mf.make_rdm1(c, occ))
-        return backend_solver._gradient_norm(mf, fock, (), c, occ), how
-
     h = 0.002
-    g_response, how = start_gradient(h * direction)
+    g_response, how = _start_gradient(context, h * direction)
     assert how == "response_start"
     for index, t in enumerate((-2, 2, -4, 4), start=1):
-        task = dataclasses.replace(zero, point=FieldPoint(index, (9, 9, 9), 0,
-                                                          tuple(t * h * direction)))
-        backend_points.compute_point(context, task)
-    g_inside, how = start_gradient(h * direction)
+        _solve(context, zero, t * h * direction, index)
+    g_inside, how = _start_gradient(context, h * direction)
     assert how == "line_start"
     assert g_inside < 1e-2 * g_response, (g_inside, g_response)
 
