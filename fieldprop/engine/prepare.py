@@ -146,7 +146,7 @@ def make_plan(job: Job, route: Route | str | None = None, symmetry=None) -> Fiel
         frame = symmetry.frame()
         forced_zero = (symmetry if frame is None else symmetry.in_frame(frame)).forced_zero
     return plan_fields(r.properties, r.field_au, r.ratio, r.levels, route or r.route,
-                       forced_zero, frame)
+                       forced_zero, frame, r.index_symmetry)
 
 
 def quantities(job: Job, route: Route) -> Quantities:

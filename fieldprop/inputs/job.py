@@ -35,6 +35,7 @@ from typing import Any
 
 from fieldprop.errors import InputError
 from fieldprop.numerics.methods import METHODS, Route, methods_with
+from fieldprop.numerics.plan import INDEX_SYMMETRY
 from fieldprop.numerics.units import BACKEND_BOHR_ANGSTROM, NAMED_BOHR_ANGSTROM, PROPERTY_ORDER
 
 logger = logging.getLogger(__name__)
@@ -92,7 +93,7 @@ _SECTIONS = {
     "model": {"method", "functional", "basis", "reference", "frozen_core", "cartesian",
               "density_fit", "solvent", "solvent_model"},
     "response": {"properties", "field_au", "ratio", "levels", "origin", "differentiate", "route",
-                 "symmetry", "window",
+                 "symmetry", "window", "index_symmetry",
                  "nuclear_relaxation", "zero_point", "optical_wavelengths_nm"},
     "geometry": {"optimise", "optimize", "method", "functional", "basis", "criteria",
                  "max_steps"},
@@ -223,6 +224,11 @@ class ResponseSpec:
     #: Two-state optical-frequency estimates of beta at these wavelengths (nm):
     #: fieldprop.numerics.optical.
     optical_wavelengths_nm: tuple[float, ...] = ()
+    #: On the dipole route, "assume" (each unique component one derivative of
+    #: one mu_i, filling every permutation of its indices: fewer field
+    #: points) or "test" (every derivative of every mu_i: the tensor's index
+    #: symmetry checks the numbers); fieldprop.numerics.plan.
+    index_symmetry: str = "assume"
 
     @property
     def max_order(self) -> int:
@@ -468,6 +474,8 @@ class Job:
                 "differentiate": str(response.route),
                 "symmetry": response.symmetry,
                 **({"window": response.window} if automatic else {}),
+                **({"index_symmetry": response.index_symmetry}
+                   if response.route is Route.DIPOLE else {}),
                 "nuclear_relaxation": response.nuclear_relaxation,
                 "zero_point": response.zero_point,
                 **({"optical_wavelengths_nm": list(response.optical_wavelengths_nm)}
@@ -1075,8 +1083,14 @@ def _parse_response(path: str, table: dict[str, Any], method: str,
                      "a job with its own field_au does not use: remove window, or field_au")
     if automatic and no_derivatives:
         window = "full"
+    index_symmetry = r.string("index_symmetry", "assume", INDEX_SYMMETRY)
+    if index_symmetry == "test" and route is not Route.DIPOLE:
+        raise r.fail("index_symmetry", "= \"test\" computes every derivative of every dipole "
+                     "component (the dipole route); the energy route's components are "
+                     "derivatives of one energy, symmetric by construction: remove "
+                     "index_symmetry, or differentiate = \"dipole\"")
     return ResponseSpec(props_sorted, field_au, source, ratio, levels, origin, route, relax,
-                        symmetry, window, zero_point, wavelengths)
+                        symmetry, window, zero_point, wavelengths, index_symmetry)
 
 
 #: Wavelengths (nm) outside this range are typing mistakes, not optics (the

@@ -28,9 +28,17 @@ Routes
 - ...); a tensor of order n needs the n-th derivative, one per unique sorted
 index tuple (3, 6, 10, 15 components).
 ``dipole``: q = mu_i and sign = +1 (mu_i(F) = mu_i + alpha_ij F_j + ...); a tensor
-of order n needs derivatives of order n - 1 of each mu_i, so the first index is
-computed separately from the others and index-permutation symmetry is a real
-check rather than a construction.
+of order n needs derivatives of order n - 1 of the mu_i. A static response
+tensor is symmetric in all its indices (each is a derivative of one energy),
+so with ``index_symmetry = "assume"`` (the default) each unique component is
+one derivative of one mu_i, the one that needs the fewest field directions at
+once, and fills every permutation of its indices: beta_xxy is d2 mu_y/dF_x^2,
+on the x axis, not d2 mu_x/dF_x dF_y, on a diagonal line; of beta's ten
+unique components only beta_xyz needs a diagonal line (d2 mu_x/dF_y dF_z).
+With ``"test"`` every derivative of every mu_i is computed, so the first
+index is differentiated separately from the others and the tensor's
+index-permutation symmetry is a check of the numbers rather than a
+construction (three diagonal lines for beta).
 ``alpha``: q = the analytic (CPHF/CPKS) alpha_ij(F), sign = +1; beta and gamma
 are its first and second derivatives, two orders below the energy route (the
 reference route of ``fieldprop check``); the dipole is the analytic one.
@@ -108,7 +116,9 @@ class ComponentPlan:
     dipole or analytic alpha) and ``element`` which element of it: () for the
     energy, (i,) for mu_i, (i, j) for alpha_ij. ``derivative`` counts the
     differentiations along x, y, z; ``indices`` are the tensor indices it fills
-    (with all permutations of the differentiated ones).
+    (with all permutations of the differentiated ones; with ``symmetric``,
+    all permutations of every index: the dipole route's index_symmetry =
+    "assume").
     """
 
     tensor: str
@@ -118,6 +128,7 @@ class ComponentPlan:
     derivative: tuple[int, int, int]
     sign: float
     stencils: tuple[Stencil, ...]  # one per ladder level, level 0 first
+    symmetric: bool = False
 
     @property
     def order(self) -> int:
@@ -149,6 +160,9 @@ class FieldPlan:
     #: Rows: the axes (in the input frame) along which the offsets run and the
     #: components are differentiated; None: the input frame's x, y, z.
     frame: tuple[tuple[float, float, float], ...] | None = None
+    #: On the dipole route: "assume" (one derivative per unique component) or
+    #: "test" (every derivative of every mu_i); see the module's Routes.
+    index_symmetry: str = "assume"
 
     def steps_au(self) -> tuple[float, ...]:
         """The ladder h_k = field_au * ratio**k, k = 0..levels-1."""
@@ -306,36 +320,61 @@ def canonical(offsets: tuple[int, int, int], level: int, ratio: float,
     return offsets, level
 
 
-def component_recipes(properties, route: Route | str) -> list[
-        tuple[str, tuple[int, ...], Route, tuple[int, ...], tuple[int, int, int], float]]:
-    """(tensor, indices, quantity, element, derivative counts, sign) per component needed."""
+#: [response] index_symmetry: the dipole route's one derivative per unique
+#: component ("assume") or every derivative of every mu_i ("test").
+INDEX_SYMMETRY = ("assume", "test")
+
+
+def component_recipes(properties, route: Route | str, index_symmetry: str = "assume") -> list[
+        tuple[str, tuple[int, ...], Route, tuple[int, ...], tuple[int, int, int], float, bool]]:
+    """(tensor, indices, quantity, element, derivative counts, sign, symmetric)
+    per component needed (symmetric: it fills every permutation of its
+    indices, ComponentPlan.symmetric)."""
     try:
         route = Route(route)
     except ValueError:
         raise ValueError(f"route must be 'energy', 'dipole' or 'alpha', got {route!r}") from None
+    if index_symmetry not in INDEX_SYMMETRY:
+        raise ValueError(f"index_symmetry must be one of {INDEX_SYMMETRY}, got {index_symmetry!r}")
     recipes = []
     for prop in properties:
         n = PROPERTY_ORDER[prop]
         if route is Route.ENERGY:
             for idx in itertools.combinations_with_replacement(range(3), n):
                 counts = tuple(idx.count(a) for a in range(3))
-                recipes.append((prop, idx, Route.ENERGY, (), counts, -1.0))
-        elif route is Route.DIPOLE or n == 1:
+                recipes.append((prop, idx, Route.ENERGY, (), counts, -1.0, False))
+        elif n == 1 or (route is Route.DIPOLE and index_symmetry == "test"):
             # The dipole route, and the dipole itself on the alpha route: d^(n-1) mu_i.
             for i in range(3):
                 for rest in itertools.combinations_with_replacement(range(3), n - 1):
                     counts = tuple(rest.count(a) for a in range(3))
-                    recipes.append((prop, (i, *rest), Route.DIPOLE, (i,), counts, 1.0))
+                    recipes.append((prop, (i, *rest), Route.DIPOLE, (i,), counts, 1.0, False))
+        elif route is Route.DIPOLE:
+            # One derivative of one mu_i per unique component: the mu_i whose
+            # derivative runs along the fewest axes at once (then the first).
+            for idx in itertools.combinations_with_replacement(range(3), n):
+                i = min(sorted(set(idx)), key=lambda a: len(set(_without(idx, a))))
+                rest = _without(idx, i)
+                counts = tuple(rest.count(a) for a in range(3))
+                recipes.append((prop, (i, *rest), Route.DIPOLE, (i,), counts, 1.0, True))
         else:
             for i, j in itertools.combinations_with_replacement(range(3), 2):
                 for rest in itertools.combinations_with_replacement(range(3), n - 2):
                     counts = tuple(rest.count(a) for a in range(3))
-                    recipes.append((prop, (i, j, *rest), Route.ALPHA, (i, j), counts, 1.0))
+                    recipes.append((prop, (i, j, *rest), Route.ALPHA, (i, j), counts, 1.0,
+                                    False))
     return recipes
 
 
+def _without(idx: tuple[int, ...], a: int) -> tuple[int, ...]:
+    """``idx`` (sorted) with one ``a`` taken out."""
+    k = idx.index(a)
+    return idx[:k] + idx[k + 1:]
+
+
 def plan_fields(properties, field_au: float, ratio: float, levels: int,
-                route: str = "energy", forced_zero=None, frame=None) -> FieldPlan:
+                route: str = "energy", forced_zero=None, frame=None,
+                index_symmetry: str = "assume") -> FieldPlan:
     """Plan the field points and per-component stencils.
 
     Parameters
@@ -352,6 +391,9 @@ def plan_fields(properties, field_au: float, ratio: float, levels: int,
         frame) along which offsets run and components are differentiated:
         the plan then gives the tensors in that frame (a molecule's symmetry
         frame; the engine turns them back).
+    index_symmetry : on the dipole route, "assume" (one derivative per unique
+        component, filling every permutation of its indices) or "test" (every
+        derivative of every mu_i).
 
     Returns
     -------
@@ -362,7 +404,7 @@ def plan_fields(properties, field_au: float, ratio: float, levels: int,
     if field_au <= 0 or ratio <= 1 or levels < 1:
         raise ValueError("need field_au > 0, ratio > 1, levels >= 1")
     route = Route(route)
-    recipes = component_recipes(properties, route)
+    recipes = component_recipes(properties, route, index_symmetry)
     # The zero-field point is always computed: it gives E0 and the warm start.
     keys: dict[tuple[tuple[int, int, int], int], None] = {((0, 0, 0), 0): None}
     raw: list[tuple[tuple, list[tuple[int, list]]]] = []
@@ -396,12 +438,14 @@ def plan_fields(properties, field_au: float, ratio: float, levels: int,
     points = tuple(FieldPoint(i, off, lvl, field_vector(off, field_au, ratio, lvl, frame))
                    for i, (off, lvl) in enumerate(ordered))
     components = []
-    for _, (tensor, idx, quantity, element, counts, sign), per_level in raw:
+    for _, (tensor, idx, quantity, element, counts, sign, symmetric), per_level in raw:
         stencils = tuple(Stencil(k, step_au(field_au, ratio, k),
                                  tuple((index[key], w) for key, w in terms))
                          for k, terms in per_level)
-        components.append(ComponentPlan(tensor, idx, quantity, element, counts, sign, stencils))
-    return FieldPlan(route, field_au, ratio, levels, points, tuple(components), frame)
+        components.append(ComponentPlan(tensor, idx, quantity, element, counts, sign, stencils,
+                                        symmetric))
+    return FieldPlan(route, field_au, ratio, levels, points, tuple(components), frame,
+                     index_symmetry if route is Route.DIPOLE else "test")
 
 
 def stencil_estimate(component: ComponentPlan, stencil: Stencil, energies_au, dipoles_au,

@@ -10,9 +10,11 @@ Sign convention (Taylor, the contract's)::
 
 so alpha_ij = -d2E/dF_i dF_j = d mu_i / dF_j and so on. On the energy route each
 unique component fills every permutation of its indices; on the dipole route
-component (i, j, k, ...) is the derivative of mu_i along j, k, ..., filling only
-permutations of the differentiated indices, so the tensor's deviation from full
-index symmetry is a measure of numerical quality.
+component (i, j, k, ...) is the derivative of mu_i along j, k, ...: with
+index_symmetry "assume" (fieldprop.numerics.plan) one per unique component,
+filling every permutation of its indices; with "test" one per mu_i and
+derivative, filling only permutations of the differentiated indices, so the
+tensor's deviation from full index symmetry is a measure of numerical quality.
 
 Invariants (REFERENCES sect. 3; the contract's names): ``dipole_norm`` = |mu|;
 ``alpha_iso`` = tr(alpha)/3; ``alpha_aniso`` = sqrt{1/2[(axx-ayy)^2 + (ayy-azz)^2 +
@@ -117,7 +119,7 @@ class Invariant:
 
 
 def _entries(plan: ComponentPlan) -> tuple[tuple[int, ...], ...]:
-    if plan.source == "energy":
+    if plan.source == "energy" or plan.symmetric:
         perms = set(itertools.permutations(plan.indices))
     elif plan.source.startswith("alpha_"):
         (i, j), rest = plan.indices[:2], plan.indices[2:]

@@ -167,6 +167,7 @@ def _tensors_document(result: RunResult, tensors_in: dict, tables: bool = True,
             "components": [{
                 "name": c.plan.name,
                 "indices": list(c.plan.indices),
+                "entries": [list(e) for e in c.entries],
                 "source": c.plan.source,
                 "value": c.estimate.value_au if c.stable else None,
                 "error": c.estimate.error_au if c.stable else None,
@@ -432,7 +433,10 @@ def result_document(result: RunResult) -> dict[str, Any]:
         document["zero_point"] = _zero_point_document(part)
     return document | {
         "points": _points_document(result),
-        "field_plan": {"route": plan.route, "field_au": plan.field_au, "ratio": plan.ratio,
+        "field_plan": {"route": plan.route,
+                       **({"index_symmetry": plan.index_symmetry}
+                          if plan.route == "dipole" else {}),
+                       "field_au": plan.field_au, "ratio": plan.ratio,
                        "levels": plan.levels, "steps_au": list(plan.steps_au()),
                        "window": result.job.response.window,
                        **({"component_levels": {
@@ -511,7 +515,8 @@ def state_checks_document(result: RunResult) -> dict[str, Any]:
             "points_checked": report.checked,
             "largest_relative_residual": _finite(report.largest_relative),
             "departures": [{"point": d.label, "field_vector_au": list(d.field_vector_au),
-                            "kind": d.kind, "reason": d.reason, "residual": d.residual, "noise": d.noise, "change": d.change,
+                            "kind": d.kind, "reason": d.reason, "residual": d.residual,
+                            "noise": d.noise, "change": d.change,
                             "relative": _finite(d.relative) if d.kind == "taylor" else None,
                             "nodes": d.nodes}
                            for d in report.departures],

@@ -90,6 +90,17 @@ _TABLE_SOURCE = {
 }
 
 
+def _table_source(plan, name: str) -> str:
+    """What a table's components are: the derivative taken (and, on the dipole
+    route, whether each fills its index permutations)."""
+    text = _TABLE_SOURCE[plan.route][name]
+    if plan.route == "dipole" and name in ("alpha", "beta", "gamma"):
+        text += (", one per unique component (index symmetry assumed)"
+                 if plan.index_symmetry == "assume" else
+                 ", every mu_i (index symmetry tested: permutations computed apart)")
+    return text
+
+
 def _fit_text(result: RunResult) -> str:
     """'; density fitting: cc-pvdz-jkfit (116 functions)' or ''."""
     if result.job.model.density_fit is None:
@@ -278,7 +289,7 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au",
                          est.status.value + (f": {est.reason}" if est.reason and not c.stable
                                              else "")])
         out.write(f"{name}, electronic: nuclei clamped ({label}; "
-                  f"{_TABLE_SOURCE[plan.route][name]})\n")
+                  f"{_table_source(plan, name)})\n")
         out.write(tabulate(rows, headers=["component", "value", "+- error", "Richardson entry",
                                           "status"], disable_numparse=True) + "\n")
         if name == "dipole" and result.molecule.charge != 0:

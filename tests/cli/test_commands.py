@@ -122,7 +122,8 @@ def test_run_plot_writes_one_png_per_property_with_every_component(tmp_path):
         data = (tmp_path / "pictures" / name).read_bytes()
         assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 10_000
 
-    # The panels are the computed components (9 for alpha, 18 for beta on this route).
+    # The panels are the computed components (6 for alpha, 10 for beta on this
+    # route, the index symmetry assumed).
     from fieldprop.engine.run import compute
     from fieldprop.inputs.job import load_job
     from fieldprop.outputs.plots import write_plots
@@ -130,7 +131,7 @@ def test_run_plot_writes_one_png_per_property_with_every_component(tmp_path):
     result = compute(load_job(tmp_path / "lih.toml"), progress=False)
     written = write_plots(result.tensors, result.plan, tmp_path / "pictures")
     assert written["alpha.png"] == [c.plan.name for c in result.tensors["alpha"].components]
-    assert len(written["beta.png"]) == 18 and "beta_xyz" in written["beta.png"]
+    assert len(written["beta.png"]) == 10 and "beta_xyz" in written["beta.png"]
 
 
 def test_run_plot_into_a_missing_folder_makes_it_and_a_file_is_refused(tmp_path):

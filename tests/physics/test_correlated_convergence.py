@@ -171,7 +171,8 @@ def test_a_mean_field_run_that_settles_is_not_tightened(tmp_path):
     """Water, HF/6-31G, mu, alpha, beta on the dipole route, the automatic
     window: no point is tightened and the window's points are those it
     used before (25 computed, 6 symmetry images: measured before the
-    tightening existed)."""
+    tightening existed, with every mu_i's own derivatives: index_symmetry =
+    "test")."""
     _, result = run_job(tmp_path, """
         [molecule]
         geometry = \"\"\"
@@ -184,6 +185,7 @@ def test_a_mean_field_run_that_settles_is_not_tightened(tmp_path):
         basis = "6-31g"
         [response]
         properties = ["dipole", "alpha", "beta"]
+        index_symmetry = "test"
         """)
     assert not result.tightening
     assert all(w[2] == 0 for w in result.windows)

@@ -69,14 +69,16 @@ def test_dipole_route_beta_gamma_are_index_symmetric(tmp_path):
         [response]
         properties = ["beta", "gamma"]
         differentiate = "dipole"
+        index_symmetry = "test"
         field_au = 0.002
         """)
     for name in ("beta", "gamma"):
         t = result.tensors[name]
         assert np.max(np.abs(t.value_au)) > 1.0  # a non-trivial tensor
-        # On the dipole route beta_ijk = d2 mu_i / dF_j dF_k: beta_ijk and beta_jik
-        # come from different stencils on different dipole components, so their
-        # agreement is a real test of the static (Kleinman) symmetry.
+        # On the dipole route beta_ijk = d2 mu_i / dF_j dF_k: with index_symmetry
+        # = "test", beta_ijk and beta_jik come from different stencils on
+        # different dipole components, so their agreement is a real test of the
+        # static (Kleinman) symmetry.
         for perm in ((1, 0, 2), (2, 1, 0)) if name == "beta" else ((1, 0, 2, 3), (3, 1, 2, 0)):
             diff = np.abs(t.value_au - np.transpose(t.value_au, perm))
             bars = 3.0 * (t.error_au + np.transpose(t.error_au, perm))

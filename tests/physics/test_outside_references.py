@@ -82,8 +82,11 @@ def _beta_from_dipoles(mol, origin, h):
 def water_beta_reference(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("beta")
     jobs = {}
-    for route in ("dipole", "energy"):
-        jobs[route] = run_job(tmp, f"""
+    for name, route, extra in (("dipole", "dipole", ""),
+                               ("dipole, index symmetry tested", "dipole",
+                                'index_symmetry = "test"'),
+                               ("energy", "energy", "")):
+        jobs[name] = run_job(tmp, f"""
             [molecule]
             geometry = \"\"\"
 {rotated_water()}
@@ -96,7 +99,8 @@ def water_beta_reference(tmp_path_factory):
             field_au = 0.002
             levels = 3
             differentiate = "{route}"
-            """, f"{route}.toml")
+            {extra}
+            """, f"{name.replace(' ', '_').replace(',', '')}.toml")
     job, result = jobs["dipole"]
     mol = _pyscf_mol(job, "6-31g")
     origin = np.asarray(result.molecule.origin_bohr)
@@ -108,7 +112,7 @@ def water_beta_reference(tmp_path_factory):
     return jobs, (4 * small - large) / 3
 
 
-@pytest.mark.parametrize("route", ["dipole", "energy"])
+@pytest.mark.parametrize("route", ["dipole", "dipole, index symmetry tested", "energy"])
 def test_beta_of_a_molecule_off_its_axes_equals_central_differences_of_pyscf_dipoles(
         water_beta_reference, route):
     jobs, reference = water_beta_reference
@@ -117,6 +121,24 @@ def test_beta_of_a_molecule_off_its_axes_equals_central_differences_of_pyscf_dip
     assert np.abs(reference).max() > 1.0  # off its axes, every entry mixes: a real test
     assert agree(beta.value_au, beta.error_au, reference, 2e-5).all(), (
         np.abs(beta.value_au - reference).max(), beta.error_au.max())
+
+
+def test_assumed_index_symmetry_fills_permutations_from_fewer_points(water_beta_reference):
+    """With the index symmetry assumed (the dipole route's default), each unique
+    beta component is one derivative of one mu_i and fills every permutation
+    of its indices: the tensor is symmetric by construction, and water in its
+    C2v frame needs no diagonal line at all (beta_xxz from mu_z on the x
+    axis), where the tested symmetry computes d2 mu_x/dF_x dF_z on one."""
+    jobs, _ = water_beta_reference
+    assumed = jobs["dipole"][1]
+    tested = jobs["dipole, index symmetry tested"][1]
+    beta = assumed.tensors["beta"].value_au
+    for perm in ((1, 0, 2), (2, 1, 0), (0, 2, 1)):
+        assert np.array_equal(beta, np.transpose(beta, perm))
+    assert len(assumed.records) < len(tested.records), (len(assumed.records),
+                                                        len(tested.records))
+    assert len(assumed.tensors["beta"].components) == 10
+    assert len(tested.tensors["beta"].components) == 18
 
 
 @pytest.mark.parametrize("method", ["mp2", "ccsd(t)"])

@@ -94,9 +94,11 @@ def test_symmetry_gives_the_full_stencils_tensors_with_fewer_points(tmp_path, na
         assert np.all(sym.tensors["beta"].value_au == 0.0)
         assert np.all(sym.tensors["dipole"].value_au == 0.0)
     if placed == "aligned" and name == "water":
-        # C2v in its axes: the -x and -y points of each level are mirror images
-        # of the +x and +y ones, and alpha_xy, beta_xyz, ... need none.
-        assert (full.counts.computed, sym.counts.planned, computed) == (37, 31, 25)
+        # C2v in its axes, the index symmetry assumed: without symmetry the three
+        # axes and beta_xyz's diagonal line (25 points); with it beta_xyz is
+        # forbidden (19 planned) and the -x and -y points of each level are
+        # mirror images of the +x and +y ones (13 computed).
+        assert (full.counts.computed, sym.counts.planned, computed) == (25, 19, 13)
 
 
 def test_an_open_shell_keeps_every_point(tmp_path):

@@ -29,6 +29,7 @@ from fieldprop.inputs.job import (DIPOLE_ROUTE_METHODS, MAX_COORDINATE_BOHR, MET
                            MIN_DISTANCE_BOHR, ORIGINS, Job, load_job)
 from fieldprop.numerics.methods import METHODS as TRAITS
 from fieldprop.numerics.plan import plan_fields
+from fieldprop.numerics.tensors import _entries
 from fieldprop.numerics.units import PROPERTY_ORDER
 from toml_text import toml_document
 
@@ -466,9 +467,12 @@ def taylor_residual(weights, offsets, derivative) -> tuple[tuple[int, int, int],
 @given(props=st.sets(st.sampled_from(list(PROPERTY_ORDER)), min_size=1).flatmap(
            lambda s: st.permutations(sorted(s))),
        field_au=st.floats(1e-4, 1e-2), ratio=_RATIOS, levels=st.integers(1, 5),
-       route=st.sampled_from(["energy", "dipole"]))
-def test_plan_fields_points_and_stencils(props, field_au, ratio, levels, route):
-    plan = plan_fields(tuple(props), field_au, ratio, levels, route)
+       route=st.sampled_from(["energy", "dipole"]),
+       index_symmetry=st.sampled_from(["assume", "test"]))
+def test_plan_fields_points_and_stencils(props, field_au, ratio, levels, route,
+                                         index_symmetry):
+    plan = plan_fields(tuple(props), field_au, ratio, levels, route,
+                       index_symmetry=index_symmetry)
     points = plan.points
 
     # Point 0 is the zero field; indices are positions.
@@ -480,12 +484,18 @@ def test_plan_fields_points_and_stencils(props, field_au, ratio, levels, route):
     for a, b in itertools.combinations(vectors, 2):
         assert max(abs(x - y) for x, y in zip(a, b)) > 1e-10 * field_au, (a, b)
 
-    # One component per unique tensor index set (energy) or per first index (dipole).
+    # One component per unique tensor index set (energy; dipole with the index
+    # symmetry assumed) or per first index (dipole, index symmetry tested).
     expected = 0
     for p in props:
         n = PROPERTY_ORDER[p]
-        expected += math.comb(n + 2, 2) if route == "energy" else 3 * math.comb(n + 1, 2)
+        expected += (3 * math.comb(n + 1, 2) if route == "dipole" and index_symmetry == "test"
+                     else math.comb(n + 2, 2))
     assert len(plan.components) == expected
+    # Every entry of every tensor is filled by exactly one component.
+    for p in props:
+        filled = [e for c in plan.components if c.tensor == p for e in _entries(c)]
+        assert sorted(filled) == list(itertools.product(range(3), repeat=PROPERTY_ORDER[p]))
 
     used = set()
     for comp in plan.components:
