@@ -915,7 +915,7 @@ def _formula_text(job) -> str:
 def _model_text(job) -> str:
     from fieldprop.inputs.job import model_name
 
-    return model_name(job.model)
+    return model_name(job.model, job.molecule.multiplicity)
 
 
 #: The largest field ``relax`` takes (au): beyond it the structure leaves the

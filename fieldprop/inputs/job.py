@@ -570,16 +570,34 @@ def scaled_target_power(route: str, max_order: int) -> tuple[int, int]:
 
 
 def model_text(method: str, functional: str | None, basis, solvent=None,
-               solvent_model: str | None = None) -> str:
+               solvent_model: str | None = None, reference: str | None = None,
+               multiplicity: int = 1) -> str:
     """A model as every log line, table and CSV writes it: METHOD/functional/
     basis (a per-element basis: element:name pairs, a basis given as text
     ``custom``), e.g. ``HF/6-31g`` or ``DFT/b3lyp/6-31g``; in a continuum
-    solvent (its name, or {"epsilon": ...}) ``HF/6-31g in water (IEF-PCM)``."""
+    solvent (its name, or {"epsilon": ...}) ``HF/6-31g in water (IEF-PCM)``.
+    The determinant, where it is not a closed shell's restricted one, is part
+    of the name: an unrestricted ``reference`` gives UHF, UKS (for dft) or
+    U + the correlated method (UMP2, UCCSD), a restricted one of
+    ``multiplicity`` > 1 ROHF, ROKS, or the correlated method "on ROHF".
+
+    >>> model_text("dft", "b3lyp", "6-31g", reference="unrestricted", multiplicity=2)
+    'UKS/b3lyp/6-31g'
+    >>> model_text("hf", None, "6-31g", reference="restricted", multiplicity=2)
+    'ROHF/6-31g'
+    """
     if not isinstance(basis, str):
         pairs = basis.items() if isinstance(basis, dict) else basis
         basis = "+".join(f"{sym}:{text if chr(10) not in str(text) else 'custom'}"
                          for sym, text in pairs) or "per-element basis"
-    text = "/".join(str(x) for x in (str(method or "?").upper(), functional, basis) if x)
+    name = str(method or "?").upper()
+    kind = ("U" if reference == "unrestricted"
+            else "RO" if reference == "restricted" and multiplicity > 1 else "")
+    if kind:
+        mean_field = {"HF": "HF", "DFT": "KS"}.get(name)
+        name = (kind + mean_field if mean_field else "U" + name if kind == "U"
+                else f"{name} on ROHF")
+    text = "/".join(str(x) for x in (name, functional, basis) if x)
     if solvent is None:
         return text
     where = (f"epsilon {solvent['epsilon']:g}" if isinstance(solvent, dict)
@@ -591,11 +609,12 @@ def model_text(method: str, functional: str | None, basis, solvent=None,
 SOLVENT_MODEL_NAMES = {"iefpcm": "IEF-PCM", "cpcm": "C-PCM"}
 
 
-def model_name(model: "ModelSpec") -> str:
-    """:func:`model_text` of a ModelSpec."""
+def model_name(model: "ModelSpec", multiplicity: int = 1) -> str:
+    """:func:`model_text` of a ModelSpec (of a molecule of ``multiplicity``)."""
     solvent = (None if model.solvent_epsilon is None else
                model.solvent if model.solvent is not None else {"epsilon": model.solvent_epsilon})
-    return model_text(model.method, model.functional, model.basis, solvent, model.solvent_model)
+    return model_text(model.method, model.functional, model.basis, solvent, model.solvent_model,
+                      model.reference, multiplicity)
 
 
 def derived_energy_conv_tol_au(max_order: int) -> float:

@@ -140,8 +140,10 @@ def _formula(doc: dict) -> str:
 
 def _model(doc: dict) -> str:
     m = doc["job"].get("model") or {}
+    multiplicity = (doc["job"].get("molecule") or {}).get("multiplicity", 1)
     return model_text(m.get("method"), m.get("functional"), m.get("basis") or "?",
-                      m.get("solvent"), m.get("solvent_model"))
+                      m.get("solvent"), m.get("solvent_model"), m.get("reference"),
+                      multiplicity if isinstance(multiplicity, int) else 1)
 
 
 def _number(x: Any) -> float | None:

@@ -220,7 +220,7 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au",
     final, out = out, io.StringIO()  # the header's prose, wrapped below
     job, plan = result.job, result.plan
     model = job.model
-    model_label = model_name(model)
+    model_label = model_name(model, result.molecule.multiplicity)
     out.write(f"fieldprop {__version__}: {job.path}\n")
     out.write(f"  molecule {result.molecule.formula}, charge {result.molecule.charge}, "
               f"multiplicity {result.molecule.multiplicity}; {model_label} ({model.reference}); "

@@ -119,3 +119,23 @@ def test_an_unknown_ranking_key_is_one_line_exit_2(tmp_path, capsys):
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "1064 nm is not among the set's [response] optical_wavelen" in err[0]
     assert not (tmp_path / "set.results").exists()
+
+
+def test_the_model_named_in_a_ranking_says_which_determinant():
+    """An open shell's model is named by its determinant (UHF, ROKS, UMP2),
+    not as the closed shell's HF or DFT: the numbers differ between them."""
+    def model(method, reference, multiplicity, functional=None):
+        document = {"formula": "NH2",
+                    "job": {"model": {"method": method, "basis": "6-31g",
+                                      "reference": reference,
+                                      **({"functional": functional} if functional else {})},
+                            "molecule": {"multiplicity": multiplicity}},
+                    "tensors": {}, "invariants": {}}
+        return ranking.entry_from("amidogen", document).model
+
+    assert model("hf", "restricted", 1) == "HF/6-31g"
+    assert model("hf", "unrestricted", 2) == "UHF/6-31g"
+    assert model("hf", "restricted", 2) == "ROHF/6-31g"
+    assert model("dft", "restricted", 2, "pbe") == "ROKS/pbe/6-31g"
+    assert model("dft", "unrestricted", 1, "b3lyp") == "UKS/b3lyp/6-31g"
+    assert model("mp2", "unrestricted", 2) == "UMP2/6-31g"
