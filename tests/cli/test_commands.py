@@ -340,7 +340,7 @@ def test_tables_in_esu_or_si_convert_every_component(tmp_path, system, label, fa
     assert done.returncode == 0, done.stderr
     doc = json.loads((tmp_path / "lih.result.json").read_text())
     section = done.stdout.split(f"beta, electronic: nuclei clamped ({label}; "
-                                "d2 mu_i/dF_j dF_k)")[1].split("\n\n")[0]
+                                "d2 mu_i/dF_j dF_k, one per unique component")[1].split("\n\n")[0]
     row = next(line for line in section.splitlines() if line.startswith("beta_zzz "))
     shown = float(row.split()[1])
     au = doc["tensors"]["beta"]["value"][2][2][2]

@@ -124,7 +124,8 @@ def test_points_in_shuffled_order_two_at_a_time_collect_what_run_gives(tmp_path,
                        "convention", "frame", "status", "entry"]
     by_name = {r[3]: r for r in rows[1:]}
     alpha_zz = doc["tensors"]["alpha"]["value"][2][2]
-    assert float(by_name["alpha_zz"][4]) == alpha_zz and len(rows) == 1 + 3 + 9
+    # A header, the dipole's three components and alpha's six unique ones.
+    assert float(by_name["alpha_zz"][4]) == alpha_zz and len(rows) == 1 + 3 + 6
     assert {r[7] for r in rows[1:]} == {"taylor"} and {r[1] for r in rows[1:]} == {"electronic"}
     assert {r[8] for r in rows[1:]} == {"input"}
     # The store exported as point lines assembles the same result elsewhere.
@@ -232,8 +233,10 @@ def test_point_lines_on_stdout_collect_without_the_store(tmp_path, reference_run
 
 def test_missing_points_are_named_and_partial_results_marked(tmp_path):
     """collect: exit 3 naming exactly the missing ids; --allow-partial reports
-    what the points found determine (here alpha_xx, alpha_yx, alpha_zx: the x
-    line; mu at zero field) and marks the rest missing, exit 3 all the same."""
+    what the points found determine (here alpha_xx alone: the x line gives
+    d mu_i/dF_x, and with the index symmetry assumed alpha_xy and alpha_xz are
+    d mu_x/dF_y and d mu_x/dF_z, on the other lines; mu at zero field) and
+    marks the rest missing, exit 3 all the same."""
     (tmp_path / "lih.toml").write_text(JOB)
     points = plan_lines(tmp_path)
     on_x = [p["id"] for p in points if p["offsets"][1:] == [0, 0]]  # zero field and the x line
@@ -256,7 +259,7 @@ def test_missing_points_are_named_and_partial_results_marked(tmp_path):
     assert {m["id"] for m in doc["points"]["missing"]} == missing
     alpha = {c["name"]: c for c in doc["tensors"]["alpha"]["components"]}
     determined = {n for n, c in alpha.items() if c["status"] != "missing"}
-    assert determined == {"alpha_xx", "alpha_yx", "alpha_zx"}
+    assert determined == {"alpha_xx"}
     assert all(alpha[n]["value"] is None and alpha[n]["reason"] for n in alpha
                if n not in determined)
     assert all(isinstance(alpha[n]["value"], float) for n in determined)
