@@ -160,9 +160,6 @@ class FieldPlan:
     #: Rows: the axes (in the input frame) along which the offsets run and the
     #: components are differentiated; None: the input frame's x, y, z.
     frame: tuple[tuple[float, float, float], ...] | None = None
-    #: On the dipole route: "assume" (one derivative per unique component) or
-    #: "test" (every derivative of every mu_i); see the module's Routes.
-    index_symmetry: str = "assume"
 
     def steps_au(self) -> tuple[float, ...]:
         """The ladder h_k = field_au * ratio**k, k = 0..levels-1."""
@@ -444,8 +441,7 @@ def plan_fields(properties, field_au: float, ratio: float, levels: int,
                          for k, terms in per_level)
         components.append(ComponentPlan(tensor, idx, quantity, element, counts, sign, stencils,
                                         symmetric))
-    return FieldPlan(route, field_au, ratio, levels, points, tuple(components), frame,
-                     index_symmetry if route is Route.DIPOLE else "test")
+    return FieldPlan(route, field_au, ratio, levels, points, tuple(components), frame)
 
 
 def stencil_estimate(component: ComponentPlan, stencil: Stencil, energies_au, dipoles_au,

@@ -433,10 +433,7 @@ def result_document(result: RunResult) -> dict[str, Any]:
         document["zero_point"] = _zero_point_document(part)
     return document | {
         "points": _points_document(result),
-        "field_plan": {"route": plan.route,
-                       **({"index_symmetry": plan.index_symmetry}
-                          if plan.route == "dipole" else {}),
-                       "field_au": plan.field_au, "ratio": plan.ratio,
+        "field_plan": {"route": plan.route, "field_au": plan.field_au, "ratio": plan.ratio,
                        "levels": plan.levels, "steps_au": list(plan.steps_au()),
                        "window": result.job.response.window,
                        **({"component_levels": {

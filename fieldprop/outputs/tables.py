@@ -95,8 +95,8 @@ def _table_source(plan, name: str) -> str:
     route, whether each fills its index permutations)."""
     text = _TABLE_SOURCE[plan.route][name]
     if plan.route == "dipole" and name in ("alpha", "beta", "gamma"):
-        text += (", one per unique component (index symmetry assumed)"
-                 if plan.index_symmetry == "assume" else
+        symmetric = any(c.symmetric for c in plan.components if c.tensor == name)
+        text += (", one per unique component (index symmetry assumed)" if symmetric else
                  ", every mu_i (index symmetry tested: permutations computed apart)")
     return text
 
@@ -223,7 +223,7 @@ def write_tables(result: RunResult, out: TextIO, units: str = "au",
     model_label = model_name(model, result.molecule.multiplicity)
     out.write(f"fieldprop {__version__}: {job.path}\n")
     out.write(f"  molecule {result.molecule.formula}, charge {result.molecule.charge}, "
-              f"multiplicity {result.molecule.multiplicity}; {model_label} ({model.reference}); "
+              f"multiplicity {result.molecule.multiplicity}; {model_label}; "
               f"{result.backend_facts.get('n_basis_functions', '?')} "
               f"{'cartesian ' if model.cartesian else ''}basis functions"
               f"{_ecp_text(result)}{_fit_text(result)}\n")
