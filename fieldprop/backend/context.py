@@ -144,6 +144,12 @@ class ModelContext:
         solver.mo_coeff, solver.mo_occ = mo_coeff, mo_occ
         return response_function(solver)
 
+    @property
+    def coarse_kernel(self) -> bool:
+        """The Newton steps' exchange-correlation kernel lies on a coarser grid
+        than the job's (DFT above NEWTON_GRID_LEVEL)."""
+        return self._coarse_solver is not self.template
+
     @functools.cached_property
     def _coarse_solver(self):
         """The template, or for DFT on a finer grid than NEWTON_GRID_LEVEL a

@@ -274,6 +274,11 @@ class _HessianSolver:
         """-tr(r dD) for the rotation x: the dipole change it causes (one component)."""
         return float(-2.0 * self.weight * (rmo @ x))
 
+    def matmat(self, xs) -> np.ndarray:
+        """The products of the rows of ``xs`` (one matvec each; _OrbitalHessian
+        takes them in one pass of the response function)."""
+        return np.array([self.matvec(x) for x in xs])
+
 
 class _OrbitalHessian(_HessianSolver):
     """The real orbital Hessian A + B of a converged RHF, UHF, RKS or UKS object,
@@ -331,6 +336,25 @@ class _OrbitalHessian(_HessianSolver):
             v1 = v1 if len(dms) == 2 else [v1]
             out = [o_ + cv.T @ vs @ co for o_, (co, cv, de), vs in zip(out, self.blocks, v1)]
         return np.concatenate([o_.ravel() for o_ in out])
+
+    def matmat(self, xs) -> np.ndarray:
+        """The products of the rows of ``xs``, with one call of the response
+        function for all of them (for DFT one pass over the grid: the basis
+        functions' values, a quarter of a Fock build's time, are shared)."""
+        xs = np.atleast_2d(np.asarray(xs))
+        self.products += len(xs)
+        parts = [self._split(x) for x in xs]  # [row][block]
+        out = [[de * p[b] for b, (co, cv, de) in enumerate(self.blocks)] for p in parts]
+        if self.response is not None:
+            dms = np.array([[self.weight * (cv @ p[b] @ co.T) for p in parts]
+                            for b, (co, cv, de) in enumerate(self.blocks)])
+            dms = dms + dms.transpose(0, 1, 3, 2)  # [block][row]
+            v1 = self.response(dms if len(self.blocks) == 2 else dms[0])
+            v1 = v1 if len(self.blocks) == 2 else [v1]
+            for b, (co, cv, de) in enumerate(self.blocks):
+                for k in range(len(xs)):
+                    out[k][b] = out[k][b] + cv.T @ v1[b][k] @ co
+        return np.array([np.concatenate([o_.ravel() for o_ in row]) for row in out])
 
     def vo(self, matrices) -> np.ndarray:
         """The occupied-virtual blocks of AO matrices (one per block, or one for all)."""
