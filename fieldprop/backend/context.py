@@ -171,7 +171,8 @@ class ModelContext:
         """The ResponseSubspace that deflates the Newton steps' solves: the
         reference's own, or (a reference read from a store, which does not
         keep it) its zero-field response solved again here, once per
-        process. None without an orbital Hessian."""
+        process (not refined: the stored rotations are). None without an
+        orbital Hessian."""
         from fieldprop.backend.orbital_hessian import ResponseSubspace
         from fieldprop.backend.response import zero_field_response
 
@@ -184,7 +185,7 @@ class ModelContext:
         mf._eri, mf._opt = self.template._eri, self.template._opt
         mf.mo_coeff, mf.mo_occ = ref.mo_coeff, ref.mo_occ
         mf.mo_energy = _orbital_energies(mf)
-        return zero_field_response(mf, self)[1]
+        return zero_field_response(mf, self, refine=False)[1]
 
     def mean_field(self, field_vector_au):
         """A mean-field object for one field point, sharing the context's integrals."""

@@ -43,13 +43,14 @@ def _dipole_error(mf, r, fock, dipole_route: bool, constraints=(), response=None
 START_RTOL = 1e-6
 
 
-def zero_field_response(mf, context):
+def zero_field_response(mf, context, refine: bool = True):
     """The zero-field orbitals' linear response to a field along x, y and z
     (3, n), the ResponseSubspace of their solves (None without one) and the
     Hessian products spent. The Newton steps' response function serves
     (context.response: for DFT a coarse-grid kernel; the rotations are then
-    refined on the job's grid, _refined): the subspace only preconditions the
-    points' steps.
+    refined on the job's grid, _refined, unless not ``refine``: a caller that
+    wants the subspace alone): the subspace only preconditions the points'
+    steps.
 
     The zero field's own Newton solves, kept in the context
     (ModelContext.newton_pairs; not for a reference read from a store),
@@ -79,7 +80,7 @@ def zero_field_response(mf, context):
         products.append(np.array([q for _, q in pairs]))
     rotations, work = np.array(rotations), hessian.products
     deflation = (np.vstack(directions), np.vstack(products)) if directions else None
-    if context.coarse_kernel:
+    if refine and context.coarse_kernel:
         rotations, exact = _refined(mf, context, hessian, rhs, rotations, deflation)
         work = hessian.products + exact
     subspace = (ResponseSubspace(mf.mo_coeff, mf.mo_occ, *deflation)

@@ -103,3 +103,22 @@ def test_products_of_several_rows_at_once_are_the_single_products(tmp_path, mult
     one_by_one = np.array([hessian.matvec(x) for x in xs])
     assert np.allclose(together, one_by_one, rtol=0, atol=1e-10 * np.abs(one_by_one).max())
     assert hessian.products == 6
+
+
+def test_a_reference_read_back_keeps_its_refined_rotations_and_refines_nothing(
+        tmp_path, monkeypatch):
+    """Another process reads the reference from the store: its rotations are
+    the refined ones, and the subspace it solves again (the store keeps none)
+    spends no pass on the job's grid."""
+    from fieldprop.points.store import reference_from_bytes, reference_to_bytes
+
+    context, mf = _reference(tmp_path, WATER, "b3lyp")
+    stored = reference_from_bytes(reference_to_bytes(context.reference))
+    assert np.array_equal(stored.field_rotations, context.reference.field_rotations)
+
+    def refined(*args):
+        raise AssertionError("refined again")
+
+    monkeypatch.setattr(backend_response, "_refined", refined)
+    other = backend_context.ModelContext(context.molecule, context.model, context.scf, stored)
+    assert other.subspace is not None
