@@ -111,20 +111,20 @@ def _converge_structure(mf, dm0, scf_spec, attempts: list[str]) -> tuple[int, fl
     attempts.append(DIIS)
     cycles, g = 0, math.inf
     for tolerance, most in ((scf_spec.gradient_accepted, STRUCTURE_DIIS_CYCLES),
-                            (scf_spec.gradient_conv_tol, STRUCTURE_POLISH_CYCLES)):
+                            (scf_spec.gradient_target, STRUCTURE_POLISH_CYCLES)):
         mf.conv_tol_grad = tolerance
         mf.max_cycle = min(scf_spec.max_iterations, most)
         mf.kernel(dm0 if mf.mo_coeff is None else mf.make_rdm1())
         cycles += int(getattr(mf, "cycles", 1) or 1)
         g = _gradient_norm(mf) if mf.mo_coeff is not None else math.inf
-        if g <= scf_spec.gradient_conv_tol:
+        if g <= scf_spec.gradient_target:
             break
     mf.max_cycle = scf_spec.max_iterations
     if g <= scf_spec.gradient_accepted:
         return cycles, g
     attempts.clear()
     cycles += _ladder(mf, mf.make_rdm1() if mf.mo_coeff is not None else dm0,
-                      scf_spec.gradient_conv_tol, attempts)
+                      scf_spec.gradient_target, attempts)
     return cycles, _gradient_norm(mf)
 
 

@@ -245,7 +245,7 @@ def _mean_field(mol, model, scf_spec):
 
         cache(mf.with_solvent)
     mf.conv_tol = scf_spec.energy_conv_tol_au
-    mf.conv_tol_grad = scf_spec.gradient_conv_tol
+    mf.conv_tol_grad = scf_spec.gradient_target
     mf.max_cycle = scf_spec.max_iterations
     mf.verbose = 0
     # No checkpoint file: the store keeps what is needed, and PySCF's temporary

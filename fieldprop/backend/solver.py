@@ -462,7 +462,7 @@ def _converge(mf, context, point, scf=None) -> tuple[list[str], int, np.ndarray 
     farther out, where the stencils divide its noise by larger steps).
     """
     scf = (scf or context.scf).at_field(point.field_vector_au)
-    target, accepted = scf.gradient_conv_tol, scf.gradient_accepted
+    target, accepted = scf.gradient_target, scf.gradient_accepted
     reference = context.reference
     if mf.mol.nelectron == 1:
         # No electron-electron terms (PySCF's HF1e): one diagonalisation of the

@@ -75,7 +75,7 @@ def run_prepared(prepared: Prepared, store=None, workers: int = 1,
     logger.info("%s: %s, %s, SCF energy tolerance %g Eh, orbital "
                 "gradient %g (accepted up to %g), solver %s; store %s; %s", job.path,
                 model_name(job.model, job.molecule.multiplicity), ladder,
-                job.scf.energy_conv_tol_au, job.scf.gradient_conv_tol,
+                job.scf.energy_conv_tol_au, job.scf.gradient_target,
                 job.scf.gradient_accepted, job.scf.solver, store.label, executor.label)
     if progress is None:
         progress = sys.stderr.isatty()

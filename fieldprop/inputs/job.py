@@ -280,7 +280,7 @@ TIGHTEST_AMPLITUDE_CHANGE = 1e-12
 class ScfSpec:
     """SCF settings; tolerances derived from the requested order unless given.
 
-    ``gradient_conv_tol`` is the orbital-gradient norm each point aims at;
+    ``gradient_target`` is the orbital-gradient norm each point aims at;
     ``gradient_needed`` the largest one at which a point is still accepted when
     it stalls (at the floor double precision allows for the molecule): there
     its noise alone would put the round-off floor of the highest-order component
@@ -298,10 +298,10 @@ class ScfSpec:
     """
 
     energy_conv_tol_au: float
-    gradient_conv_tol: float
+    gradient_target: float
     max_iterations: int
     grid_level: int | None  # dft only
-    gradient_needed: float = 0.0  # 0: the same as gradient_conv_tol
+    gradient_needed: float = 0.0  # 0: the same as gradient_target
     solver: str = "newton"
     #: The amplitude solver's convergence (coupled-cluster methods; None for
     #: the others): the [correlation] table, travelling with the SCF settings
@@ -314,7 +314,7 @@ class ScfSpec:
 
     @property
     def gradient_accepted(self) -> float:
-        return max(self.gradient_conv_tol, self.gradient_needed)
+        return max(self.gradient_target, self.gradient_needed)
 
     def at_field(self, field_vector_au) -> "ScfSpec":
         """These settings for the point at ``field_vector_au``: the gradients
@@ -327,8 +327,8 @@ class ScfSpec:
             return self
         scale = (q / self.target_step_au) ** self.target_power
         return replace(self,
-                       gradient_conv_tol=min(self.gradient_conv_tol * scale,
-                                             max(SCALED_TARGET_CEILING, self.gradient_conv_tol)),
+                       gradient_target=min(self.gradient_target * scale,
+                                             max(SCALED_TARGET_CEILING, self.gradient_target)),
                        gradient_needed=min(self.gradient_accepted * scale,
                                            max(SCALED_TARGET_CEILING, self.gradient_accepted)))
 
@@ -347,7 +347,7 @@ class ScfSpec:
                 max(correlation.energy_change_au / factor, TIGHTEST_ENERGY_CHANGE_AU),
                 max(correlation.amplitude_change / factor, TIGHTEST_AMPLITUDE_CHANGE),
                 correlation.accepted_au)
-        return replace(self, gradient_conv_tol=max(self.gradient_conv_tol / factor,
+        return replace(self, gradient_target=max(self.gradient_target / factor,
                                                    TIGHTEST_GRADIENT),
                        gradient_needed=self.gradient_accepted, correlation=correlation)
 
@@ -355,7 +355,7 @@ class ScfSpec:
         """The convergence targets a tightening divides (orbital gradient;
         the amplitude solver's energy and amplitude changes)."""
         c = self.correlation
-        return (self.gradient_conv_tol,) + (() if c is None else (c.energy_change_au,
+        return (self.gradient_target,) + (() if c is None else (c.energy_change_au,
                                                                   c.amplitude_change))
 
     def can_tighten(self, steps: int) -> bool:
@@ -485,7 +485,7 @@ class Job:
                 "energy_conv_tol_au": scf.energy_conv_tol_au,
                 "max_iterations": scf.max_iterations,
                 **({} if scf.grid_level is None else {"grid_level": scf.grid_level}),
-                "gradient_target": scf.gradient_conv_tol,
+                "gradient_target": scf.gradient_target,
                 "gradient_needed": scf.gradient_needed,
                 "solver": scf.solver,
                 "scaled_target": bool(scf.target_power),

@@ -105,7 +105,9 @@ def digest(document) -> str:
 
 
 def model_document(molecule, model, scf) -> dict:
-    """The canonical form hashed by :func:`model_key` (also stored, for people)."""
+    """The canonical form hashed by :func:`model_key` (also stored, for people).
+    Its names are frozen with the keys (``gradient_conv_tol`` is the job's
+    ``gradient_target``): renaming one would orphan every stored point."""
     basis = model.basis if isinstance(model.basis, str) else [list(p) for p in model.basis]
     return {
         "kind": "fieldprop-model",
@@ -121,7 +123,7 @@ def model_document(molecule, model, scf) -> dict:
         "frozen_core": bool(getattr(model, "frozen_core", False)),
         "cartesian": bool(getattr(model, "cartesian", False)),
         "scf": {"energy_conv_tol_au": _exact(scf.energy_conv_tol_au),
-                "gradient_conv_tol": _exact(scf.gradient_conv_tol),
+                "gradient_conv_tol": _exact(scf.gradient_target),
                 "grid_level": scf.grid_level, "solver": getattr(scf, "solver", "newton")},
     } | ({"density_fit": model.density_fit}
          if getattr(model, "density_fit", None) else {}) | (  # absent: keys as they were
@@ -140,7 +142,7 @@ def tolerance_document(scf) -> dict:
     """The convergence targets of a tightened point (ScfSpec.tightened): part
     of its key, so that it is another point than its untightened twin and is
     reused by any job that tightens the same point alike."""
-    out = {"gradient_conv_tol": _exact(scf.gradient_conv_tol)}
+    out = {"gradient_conv_tol": _exact(scf.gradient_target)}
     if getattr(scf, "correlation", None) is not None:
         out["correlation"] = _correlation_document(scf.correlation)
     return out

@@ -84,7 +84,7 @@ def cold_scf(job):
     context = ModelContext(_molecule(job), job.model, job.scf)
     mf = context.mean_field((0.0, 0.0, 0.0))
     mf.conv_tol, mf.conv_tol_grad, mf.max_cycle = job.scf.energy_conv_tol_au, \
-        job.scf.gradient_conv_tol, 500
+        job.scf.gradient_target, 500
     mf.kernel()
     return int(mf.cycles), bool(mf.converged)
 

@@ -270,7 +270,7 @@ def test_oh_radical_at_rohf_converges_on_both_routes_and_matches_a_rohf_response
     for result in (dipole_route, energy_route):
         # Every point converged to its target on the Newton path, none on
         # PySCF's ladder (which does not know the orientation).
-        target = result.job.scf.gradient_conv_tol
+        target = result.job.scf.gradient_target
         for r in result.computed_records:
             assert not r.retried and r.gradient_norm <= target, (r.point.label, r.attempts,
                                                                  r.gradient_norm)

@@ -85,7 +85,7 @@ def keys_of(tmp_path: Path, geometry: str = H2, **sections) -> list[str]:
 def keyed_scf(scf) -> tuple:
     """The SCF settings that enter the model key (see fieldprop.points.keys): not
     max_cycle or other settings that only decide whether a point is accepted."""
-    return scf.energy_conv_tol_au, scf.gradient_conv_tol, scf.grid_level
+    return scf.energy_conv_tol_au, scf.gradient_target, scf.grid_level
 
 
 def vectors_by_key(tmp_path: Path, **sections) -> dict[str, tuple[float, float, float]]:
@@ -288,7 +288,7 @@ MODEL_CHANGES = [
     ("energy_tolerance", MOLECULE, MODEL, dataclasses.replace(SCF, energy_conv_tol_au=1e-12)),
     ("energy_tolerance_one_ulp", MOLECULE, MODEL,
      dataclasses.replace(SCF, energy_conv_tol_au=math.nextafter(1e-11, 1.0))),
-    ("gradient_tolerance", MOLECULE, MODEL, dataclasses.replace(SCF, gradient_conv_tol=1e-10)),
+    ("gradient_tolerance", MOLECULE, MODEL, dataclasses.replace(SCF, gradient_target=1e-10)),
     ("grid_level", MOLECULE, MODEL, dataclasses.replace(SCF, grid_level=3)),
     ("cartesian", MOLECULE, dataclasses.replace(MODEL, cartesian=True), SCF),
 ]

@@ -128,7 +128,7 @@ def test_targets_scale_with_the_field_by_the_noise_power_of_the_route():
     spec = ScfSpec(1e-12, 1e-12, 200, None, 6e-11, target_power=2, target_step_au=0.0005)
     assert spec.at_field((0.0005, 0.0, -0.0005)) is spec
     far = spec.at_field((0.0, -0.002, 0.0))
-    assert far.gradient_conv_tol == pytest.approx(16e-12)
+    assert far.gradient_target == pytest.approx(16e-12)
     assert far.gradient_accepted == pytest.approx(16 * 6e-11)
     assert spec.at_field((1.0, 0.0, 0.0)).gradient_accepted == SCALED_TARGET_CEILING
     plain = ScfSpec(1e-12, 1e-12, 200, None)

@@ -52,16 +52,16 @@ def test_correlation_defaults_follow_the_highest_order(tmp_path):
 def test_tightening_divides_every_target_down_to_the_floors(tmp_path):
     scf = _job(tmp_path).scf
     one = scf.tightened(1)
-    assert one.gradient_conv_tol == pytest.approx(scf.gradient_conv_tol / TIGHTENING_FACTOR)
+    assert one.gradient_target == pytest.approx(scf.gradient_target / TIGHTENING_FACTOR)
     assert one.correlation.energy_change_au == pytest.approx(
         scf.correlation.energy_change_au / TIGHTENING_FACTOR)
     # A tightened point accepts what the untightened one accepted.
     assert one.gradient_accepted == scf.gradient_accepted
     assert one.correlation.accepted_au == scf.correlation.energy_change_au
-    assert scf.tightened(MAX_TIGHTENING).gradient_conv_tol >= TIGHTEST_GRADIENT
+    assert scf.tightened(MAX_TIGHTENING).gradient_target >= TIGHTEST_GRADIENT
     assert scf.can_tighten(1) and not scf.can_tighten(MAX_TIGHTENING + 1)
     assert scf.tightened(0) is scf
-    at_floor = dataclasses.replace(scf, gradient_conv_tol=TIGHTEST_GRADIENT, correlation=None)
+    at_floor = dataclasses.replace(scf, gradient_target=TIGHTEST_GRADIENT, correlation=None)
     assert not at_floor.can_tighten(1)  # nothing left to tighten
 
 
@@ -73,7 +73,7 @@ def test_tightened_points_are_other_points_and_untightened_keys_are_unchanged(tm
     assert tightened_task(tasks[3], 0) is tasks[3]
     assert len({t.key for t in tasks} | {t.key for t in tight}) == 2 * len(tasks)
     assert tightened_task(tasks[3], 1).key == tight[3].key  # the same in any job
-    assert tight[3].tolerances["gradient_conv_tol"] == (job.scf.gradient_conv_tol
+    assert tight[3].tolerances["gradient_conv_tol"] == (job.scf.gradient_target
                                                         / TIGHTENING_FACTOR).hex()
     # The correlation settings are part of a CC model's key, and of no other.
     looser = _job(tmp_path, extra="[correlation]\nenergy_change_au = 1e-10\n")
