@@ -70,7 +70,7 @@ def test_the_refined_response_is_the_job_grids_own(tmp_path, monkeypatch, geomet
     assert np.linalg.norm(refined - exact) <= 1e-7 * scale
     # Without the refinement the coarse kernel's error is there, a thousand
     # times larger (so the check above can fail).
-    monkeypatch.setattr(backend_response, "MAX_REFINEMENTS", 0)
+    monkeypatch.setattr(backend_response, "REFINEMENTS", 0)
     coarse = backend_response.zero_field_response(mf, context)[0]
     assert np.linalg.norm(coarse - exact) >= 1e-5 * scale
 
