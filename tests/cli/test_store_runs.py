@@ -151,9 +151,13 @@ def test_an_interrupted_two_worker_run_stops_promptly_and_keeps_its_points(tmp_p
     computes only the rest."""
     (tmp_path / "water.toml").write_text(WATER_EVERY_POINT)
     store = tmp_path / "fieldprop-points.sqlite"
+    # Ctrl-C's default action restored in the run: a shell starts a command in
+    # the background with SIGINT ignored, and the child would inherit that
+    # (and, rightly, never see the signal) when the suite itself runs so.
     proc = subprocess.Popen([sys.executable, "-m", "fieldprop", "run", "water.toml",
                              "--workers", "2"], cwd=tmp_path, env=_env(),
-                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True,
+                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
     deadline = time.monotonic() + 300
     while stored_points(store) < 8 and proc.poll() is None and time.monotonic() < deadline:
         time.sleep(0.02)
