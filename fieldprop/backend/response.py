@@ -96,10 +96,11 @@ def zero_field_response(mf, context, refine: bool = True):
 #: rotations (relative residual 3e-5 on the job's grid) started the mirror and
 #: line points at 0.004 au at orbital gradients of 1e-6 to 6e-6, a second
 #: Newton step for most; refined once (5e-9; twice: 1e-12) at 4e-10 to 5e-7,
-#: one step, and the median point took 2.1 s instead of 3.1 s. A second round
-#: started no point better, and cost formaldehyde's alpha at B3LYP/
-#: aug-cc-pVDZ (13 points) 2.8 s of 31 (one round: 1.3 s). The round is not
-#: verified: the rotations only start the points, whose own gradients judge them.
+#: one step, and the median point took 2.1 s instead of 3.1 s. Rounds until a
+#: verified 1e-8 started no point better and cost formaldehyde's alpha at
+#: B3LYP/aug-cc-pVDZ (13 points) 4.1 s of 31 (one round: 1.3 s). The round is
+#: not verified: the rotations only start the points, whose own gradients
+#: judge them.
 REFINEMENTS = 1
 #: Relative residual of a refinement's coarse solves.
 REFINEMENT_RTOL = 1e-4
