@@ -169,15 +169,11 @@ def main() -> None:
             row = [atoms, cold["nao"], model, len(field), f"{cycles:.0f}", cold["cycles"],
                    f"{per_point:.2f}", f"{cold['wall']:.2f}", f"{per_point / cold['wall']:.2f}",
                    f"{wall:.1f}"]
-            if model == "hf":
-                analytic, an_wall = _python(ANALYTIC, text, threads=args.workers)
-                ref = np.array(analytic["beta"])
-                beta = np.array(result["tensors"]["beta"]["value"], dtype=float)
-                gap = float(np.max(np.abs(beta - ref)) / np.max(np.abs(ref)))
-                row += [f"{an_wall:.1f}", f"{wall / an_wall:.2f}", f"{gap:.1e}"]
-            elif args.analytic_dft:
-                analytic, an_wall = _python(ANALYTIC_DFT, text, model, str(DEFAULT_GRID_LEVEL),
-                                            threads=args.workers)
+            analytic_run = ((ANALYTIC, text) if model == "hf" else
+                            (ANALYTIC_DFT, text, model, str(DEFAULT_GRID_LEVEL))
+                            if args.analytic_dft else None)
+            if analytic_run is not None:
+                analytic, an_wall = _python(*analytic_run, threads=args.workers)
                 ref = np.array(analytic["beta"])
                 beta = np.array(result["tensors"]["beta"]["value"], dtype=float)
                 gap = float(np.max(np.abs(beta - ref)) / np.max(np.abs(ref)))
